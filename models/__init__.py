@@ -1,0 +1,18 @@
+"""Crosswind band models: what the crystal is.
+
+Importing this package switches JAX to 64-bit floats (``jax_enable_x64``) once, for the whole
+process: every array Crosswind creates is float64/complex128, and a user's own JAX code in the
+same process also gets 64-bit defaults.
+"""
+import jax as _jax
+
+_jax.config.update("jax_enable_x64", True)
+
+from .band_model import BandModel  # noqa: E402
+from .domain import Continuum, Lattice  # noqa: E402
+from .geometry import BandGeometry, band_geometry, geometry_at  # noqa: E402
+from .params import Parameter, ParamSpec  # noqa: E402
+from .registry import build, catalogue, describe_catalogue  # noqa: E402
+
+__all__ = ["BandModel", "BandGeometry", "Continuum", "Lattice", "Parameter", "ParamSpec",
+           "band_geometry", "build", "catalogue", "describe_catalogue", "geometry_at"]

@@ -1,0 +1,71 @@
+"""The model catalogue: ``build(name, **params)`` and the listing behind ``crosswind models``."""
+from __future__ import annotations
+
+import difflib
+from dataclasses import dataclass
+from typing import Callable
+
+from .band_model import BandModel
+from .params import ParamSpec
+
+
+@dataclass(frozen=True)
+class CatalogueEntry:
+    name: str
+    spec: ParamSpec
+    builder: Callable[[dict, dict], BandModel]
+    summary: str
+    hamiltonian: str
+    source: str
+
+
+_CATALOGUE: dict[str, CatalogueEntry] = {}
+
+
+def register(name: str, spec: ParamSpec, *, summary: str, hamiltonian: str, source: str):
+    """Decorator adding ``builder(real_params, static_params) -> BandModel`` to the catalogue."""
+
+    def deco(builder):
+        _CATALOGUE[name] = CatalogueEntry(name, spec, builder, summary, hamiltonian, source)
+        return builder
+
+    return deco
+
+
+def _load():
+    from . import builtin  # noqa: F401  (registers the built-in models)
+
+
+def catalogue() -> dict[str, CatalogueEntry]:
+    """All catalogue entries by name."""
+    _load()
+    return dict(_CATALOGUE)
+
+
+def build(name: str, **params) -> BandModel:
+    """Build a catalogue model.
+
+    ``params`` are checked against the model's parameter spec: an unknown name raises
+    ``ValueError`` listing the valid ones; a concrete value out of range raises ``ValueError``
+    giving the range.  Traced JAX values are accepted so gradients flow through the model.
+    """
+    _load()
+    if name not in _CATALOGUE:
+        close = difflib.get_close_matches(name, list(_CATALOGUE), n=1)
+        hint = f" Did you mean '{close[0]}'?" if close else ""
+        raise ValueError(f"unknown model '{name}'.{hint} Available: {', '.join(sorted(_CATALOGUE))}.")
+    entry = _CATALOGUE[name]
+    real, static = entry.spec.resolve(params)
+    return entry.builder(real, static)
+
+
+def describe_catalogue() -> str:
+    """Human-readable listing: every model, its Hamiltonian, source and parameters."""
+    lines = []
+    for name, e in sorted(catalogue().items()):
+        lines.append(f"{name}: {e.summary}")
+        lines.append(f"  H = {e.hamiltonian}")
+        lines.append(f"  source: {e.source}")
+        lines.append(e.spec.table())
+        lines.append("")
+    return "\n".join(lines)

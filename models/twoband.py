@@ -1,0 +1,24 @@
+"""Helpers for two-band blocks H = d0·1 + d·σ."""
+from __future__ import annotations
+
+import jax.numpy as jnp
+
+PAULI = jnp.array([[[0, 1], [1, 0]], [[0, -1j], [1j, 0]], [[1, 0], [0, -1]]], dtype=jnp.complex128)
+EYE2 = jnp.eye(2, dtype=jnp.complex128)
+
+
+def from_dvector(d0, d):
+    """Blocks (S, 2, 2) from d0 (S,) and d (S, 3)."""
+    return d0.astype(jnp.complex128)[:, None, None] * EYE2[None] + jnp.einsum("sc,cij->sij", d.astype(jnp.complex128), PAULI)
+
+
+def hamiltonian_of(dvector):
+    """A Hamiltonian function built from a d-vector function (kept as a module-level object by
+    the caller so that its identity, and hence JAX's compilation cache, is stable)."""
+
+    def h(k, params):
+        d0, d = dvector(k, params)
+        return from_dvector(d0, d)
+
+    h.__name__ = f"H_from_{getattr(dvector, '__name__', 'dvector')}"
+    return h

@@ -1,0 +1,1 @@
+"""Validation cases (data + sources) run by `crosswind validate` and the tests."""
