@@ -98,7 +98,9 @@ class ParamSpec:
                             f"{self.owner}: parameter '{p.name}' = {v:g} {p.unit} is outside the allowed "
                             f"range [{lo:g}, {hi:g}] {p.unit} ({p.meaning})."
                         )
-                real[p.name] = jnp.asarray(value, dtype=jnp.float64)
+                # concrete inputs stay concrete (numpy) so builders may read them with float()
+                # even inside jax.jit; traced inputs pass through untouched so gradients flow
+                real[p.name] = np.float64(value) if _is_concrete(value) else jnp.asarray(value, dtype=jnp.float64)
             else:
                 if not _is_concrete(value):
                     raise ValueError(
