@@ -1,0 +1,93 @@
+"""Chemical potential from a carrier density, and gate voltage → density.
+
+``mu_from_density`` solves n(μ, T) = n_target for μ by bisection inside ``jax.lax.custom_root``:
+the forward pass brackets and bisects (robust when μ sits in a gap, where Newton diverges), and
+the derivative comes from the implicit-function theorem, dμ/dθ = −(∂n/∂θ)/(∂n/∂μ), not from
+differentiating the iterations.  n(μ, T) is evaluated on one fixed k-mesh (``resolution``) for
+all bisection steps, so the root is that of a smooth function of μ.
+
+``gate_density`` is the parallel-plate relation n = ε0 εr V_g/(e d) (no quantum capacitance;
+common practice), positive V_g adding electrons.
+"""
+from __future__ import annotations
+
+import jax
+import jax.numpy as jnp
+import numpy as np
+from scipy import constants as _c
+
+from crosswind.models.band_model import BandModel
+from crosswind.models.domain import Lattice
+from . import mesh as _mesh
+from .occupation import fermi, thermal_energy
+from .response import neutral_filling, _levels
+
+
+def gate_density(voltage, thickness_nm, permittivity=3.9, offset_voltage=0.0):
+    """Electron density (m⁻²) induced by a gate at ``voltage`` (V) across a dielectric of
+    ``thickness_nm`` (nm) and relative permittivity ``permittivity``: ε0εr(V−V0)/(e d).
+    Negative values are holes."""
+    if np.any(np.asarray(thickness_nm) <= 0):
+        raise ValueError("gate_density: the dielectric thickness must be positive (nm)")
+    if np.any(np.asarray(permittivity) <= 0):
+        raise ValueError("gate_density: the relative permittivity must be positive")
+    cap = _c.epsilon_0 * jnp.asarray(permittivity) / (jnp.asarray(thickness_nm) * 1e-9)  # F/m²
+    return cap * (jnp.asarray(voltage) - offset_voltage) / _c.e
+
+
+def _density_fn(model: BandModel, resolution: int):
+    """n(μ, k_BT) in m^-d on a fixed mesh (continuum meshes are placed for the given μ)."""
+    res = _levels(model)[resolution]
+    filled = neutral_filling(model)
+    from .mesh import energies_at
+
+    def n_of(params, mu, kt):
+        m = model.with_params(**params) if params is not model.params else model
+        if isinstance(model.domain, Lattice):
+            k, w = _mesh.lattice_rule(m, res)
+        else:
+            k, w = _mesh.ray_rule(m, res, mu, kt)
+        e = jax.vmap(lambda q: energies_at(m, q, m.params))(k)
+        occ = fermi(e, mu, kt) - (jnp.arange(e.shape[1]) < filled).astype(e.dtype)[None, :]
+        return model.degeneracy * jnp.sum(w[:, None] * occ) * 1e10 ** model.dim
+
+    return n_of
+
+
+def mu_from_density(model: BandModel, density, temperature, *, bracket=(-5.0, 5.0),
+                    resolution: int = 2, iterations: int = 60):
+    """μ (eV) with n(μ, T) = ``density`` (m^-d, relative to neutrality), for scalar or array
+    ``density``/``temperature`` (broadcast).  Differentiable in density, temperature and the model
+    parameters through the implicit function theorem."""
+    lo, hi = bracket
+    if not lo < hi:
+        raise ValueError("mu_from_density: bracket must be (low, high) in eV with low < high")
+    n_of = _density_fn(model, resolution)
+    dens = jnp.asarray(density, dtype=jnp.float64)
+    temp = jnp.asarray(temperature, dtype=jnp.float64)
+    shape = np.broadcast_shapes(dens.shape, temp.shape)
+    flat_n = jnp.broadcast_to(dens, shape).reshape(-1)
+    flat_t = jnp.broadcast_to(temp, shape).reshape(-1)
+
+    def solve_one(params, n_target, t):
+        kt = thermal_energy(t)
+
+        def residual(mu):
+            return n_of(params, mu, kt) - n_target
+
+        def solve(f, x0):
+            def body(_, ab):
+                a, b = ab
+                m = 0.5 * (a + b)
+                up = f(m) > 0
+                return jnp.where(up, a, m), jnp.where(up, m, b)
+            a, b = jax.lax.fori_loop(0, iterations, body, (jnp.asarray(lo), jnp.asarray(hi)))
+            return 0.5 * (a + b)
+
+        def tangent_solve(g, y):
+            return y / g(1.0)
+
+        return jax.lax.custom_root(residual, jnp.asarray(0.5 * (lo + hi)), solve, tangent_solve)
+
+    mus = jax.vmap(lambda n, t: solve_one(model.params, n, t))(flat_n, flat_t)
+    return mus.reshape(shape)

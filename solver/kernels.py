@@ -1,0 +1,138 @@
+"""Brillouin-zone sums of the relaxation-time Boltzmann kernels (natural units: eV, Å, fs).
+
+For nodes k with weights w (Σ w ≈ ∫[dk]) and P conditions (μ_p, T_p, τ_p), the function
+:func:`moments` returns, summed over bands (degeneracy not yet applied), with
+F = −∂f0/∂ε (1/eV), g_a = ∂_aε (eV Å), h_ab = ∂_a∂_bε (eV Å²), Ω (Å²), G (Å²/eV),
+τ̃_ν(ε) = τ(ε)/(1 + iντ(ε)) and τ̃' = dτ̃/dε:
+
+  density      Σ [f0 − θ(n below neutrality)]                          (Å^-d)
+  dos          Σ F                                                   (1/(eV Å^d))
+  drude        Σ F τ̃_ω g_a g_b                                       (fs eV Å^{2-d})
+  ahe          Σ f0 Ω                                                (Å^{2-d})
+  dipole       Σ F g_b Ω_c              (the Berry-curvature dipole D_bc, Å^{3-d})
+  dipole_tau   Σ F τ̃_ω g_b Ω_c         (τ-weighted dipole, fs Å^{3-d})
+  drude2_2w    Σ F τ̃_ω [τ̃_2ω h_ab + τ̃'_2ω g_a g_b] g_c          (fs² eV Å^{3-d})
+  drude2_0     Σ F τ̃_ω [τ h_ab + τ' g_a g_b] g_c                    (fs² eV Å^{3-d})
+  bcp          Σ F [g_a G_bc − ½(g_b G_ac + g_c G_ab)]               (Å^{3-d}/eV)
+  lorentz      Σ F τ² g_a ε_cd g_d h_cb    (2D, B ∥ z: ε_xy = 1)       (fs² eV² Å^{4-d})
+  thermo1/2    Σ F (ε−μ)^{1,2} τ g_a g_b                              (fs eV^{2,3} Å^{2-d})
+  nernst       Σ s(ε) Ω                                              (Å^{2-d})
+  drude0       Σ F τ g_a g_b   (dc, for the thermoelectric tensors)   (fs eV Å^{2-d})
+  dipole_sea   Σ [f0 − θ] ∂_bΩ_c  (Fermi-sea route to D, only when requested)
+
+The second-order kernels are the Fermi-surface forms obtained by integrating the Fermi-sea
+expressions of physics-reference.md §5.4–5.5 by parts (exact on a closed zone; for k·p windows
+they avoid boundary terms).  For constant τ they reduce to
+χ^ND ∝ τ̃_ω τ̃_2ω ∫ f0 ∂_a∂_b∂_c ε and χ^BCD ∝ τ̃_ω D.
+"""
+from __future__ import annotations
+
+import jax
+import jax.numpy as jnp
+
+from crosswind.models.geometry import geometry_at
+from .occupation import entropy_density, fermi, minus_dfermi
+
+FIELDS = ("density", "dos", "drude", "ahe", "dipole", "dipole_tau", "drude2_2w", "drude2_0",
+          "bcp", "lorentz", "thermo1", "thermo2", "nernst")
+
+
+def _tilde(tau, dtau, nu):
+    """τ̃ = τ/(1 + iντ) and dτ̃/dε = τ'/(1 + iντ)²  (ν in 1/fs)."""
+    den = 1.0 + 1j * nu * tau
+    return tau / den, dtau / (den * den)
+
+
+def _eps2(dim):
+    if dim == 2:
+        return jnp.array([[0.0, 1.0], [-1.0, 0.0]])
+    raise NotImplementedError
+
+
+def point_kernels(model, params, k, mu, kt, temp, tau_eval, tau_arr, omega, filled, sea=False):
+    """All kernels at one k for P conditions: returns dict of arrays with leading P."""
+    e, g, h, om, _mom, _met, G = geometry_at(model, k, params)
+    dim = model.dim
+    E = e[None, :]                                # (1, nb)
+    M, KT = mu[:, None], kt[:, None]              # (P, 1)
+    f0 = fermi(E, M, KT)                          # (P, nb)
+    F = minus_dfermi(E, M, KT)
+    below = (jnp.arange(e.shape[0]) < filled).astype(e.dtype)[None, :]
+    tau, dtau = tau_eval(tau_arr, E, temp[:, None])   # (P, nb)
+    t1, _ = _tilde(tau, dtau, omega)
+    t2, dt2 = _tilde(tau, dtau, 2.0 * omega)
+    out = {}
+    out["density"] = jnp.sum(f0 - below, axis=1)
+    out["dos"] = jnp.sum(F, axis=1)
+    gg = g[:, :, None] * g[:, None, :]            # (nb, d, d)
+    Fc = F.astype(jnp.complex128)
+    out["drude"] = jnp.einsum("pn,nab->pab", Fc * t1, gg.astype(jnp.complex128))
+    if dim == 2:
+        out["ahe"] = jnp.sum(f0 * om[None, :], axis=1)
+        out["dipole"] = jnp.einsum("pn,nb->pb", F, g * om[:, None])
+        out["dipole_tau"] = jnp.einsum("pn,nb->pb", Fc * t1, (g * om[:, None]).astype(jnp.complex128))
+        out["nernst"] = jnp.sum(entropy_density(E, M, KT) * om[None, :], axis=1)
+    else:
+        out["ahe"] = jnp.einsum("pn,nc->pc", f0, om)
+        out["dipole"] = jnp.einsum("pn,nb,nc->pbc", F, g, om)
+        out["dipole_tau"] = jnp.einsum("pn,nbc->pbc", Fc * t1, (g[:, :, None] * om[:, None, :]).astype(jnp.complex128))
+        out["nernst"] = jnp.einsum("pn,nc->pc", entropy_density(E, M, KT), om)
+    hg = (h[:, :, :, None] * g[:, None, None, :]).astype(jnp.complex128)      # h_ab g_c
+    ggg = (gg[:, :, :, None] * g[:, None, None, :]).astype(jnp.complex128)    # g_a g_b g_c
+    out["drude2_2w"] = (jnp.einsum("pn,nabc->pabc", Fc * t1 * t2, hg)
+                        + jnp.einsum("pn,nabc->pabc", Fc * t1 * dt2, ggg))
+    tauc, dtauc = tau.astype(jnp.complex128), dtau.astype(jnp.complex128)
+    out["drude2_0"] = (jnp.einsum("pn,nabc->pabc", Fc * t1 * tauc, hg)
+                       + jnp.einsum("pn,nabc->pabc", Fc * t1 * dtauc, ggg))
+    gG = g[:, :, None, None] * G[:, None, :, :]                                # g_a G_bc
+    kern = gG - 0.5 * (jnp.swapaxes(gG, 1, 2) + jnp.transpose(gG, (0, 3, 2, 1)))
+    out["bcp"] = jnp.einsum("pn,nabc->pabc", F, kern)
+    if dim == 2:
+        cross = jnp.einsum("cd,nd,ncb->nb", _eps2(2), g, h)                   # ε_cd g_d h_cb
+        out["lorentz"] = jnp.einsum("pn,na,nb->pab", F * tau * tau, g, cross)
+    else:
+        out["lorentz"] = jnp.zeros((mu.shape[0], dim, dim))
+    de = E - M
+    out["thermo1"] = jnp.einsum("pn,nab->pab", F * de * tau, gg)
+    out["thermo2"] = jnp.einsum("pn,nab->pab", F * de * de * tau, gg)
+    out["drude0"] = jnp.einsum("pn,nab->pab", F * tau, gg)
+    # magnitudes of the integrands (scales for the convergence test, not physics)
+    gn = jnp.sqrt(jnp.sum(g * g, axis=-1))
+    omn = jnp.abs(om) if dim == 2 else jnp.sqrt(jnp.sum(om * om, axis=-1))
+    out["scale_ahe"] = jnp.sum(f0 * omn[None, :], axis=1)
+    out["scale_dipole"] = jnp.sum(F * (gn * omn)[None, :], axis=1)
+    out["scale_drude2"] = jnp.sum(F * (jnp.sqrt(jnp.sum(h * h, axis=(-1, -2))) * gn)[None, :] * tau * tau, axis=1)
+    out["scale_bcp"] = jnp.sum(F * (gn * jnp.sqrt(jnp.sum(G * G, axis=(-1, -2))))[None, :], axis=1)
+    if sea:
+        dom = jax.jacfwd(lambda q: geometry_at(model, q, params)[3])(k)       # ∂_b Ω
+        if dim == 2:
+            out["dipole_sea"] = jnp.einsum("pn,nb->pb", f0 - below, dom)
+        else:
+            out["dipole_sea"] = jnp.einsum("pn,ncb->pbc", f0 - below, dom)
+    return out
+
+
+def moments(model, params, k, w, mu, kt, temp, tau_eval, tau_arr, omega, filled, sea=False, chunk=4096):
+    """Σ_k w(k)·kernels(k) with the k-points processed in chunks (bounded memory)."""
+    n = k.shape[0]
+    nchunks = -(-n // chunk)
+    pad = nchunks * chunk - n
+    kp = jnp.concatenate([k, jnp.broadcast_to(k[:1], (pad, k.shape[1]))], axis=0)
+    wp = jnp.concatenate([w, jnp.zeros((pad,))], axis=0)
+    kc = kp.reshape(nchunks, chunk, k.shape[1])
+    wc = wp.reshape(nchunks, chunk)
+
+    def one(kk):
+        return point_kernels(model, params, kk, mu, kt, temp, tau_eval, tau_arr, omega, filled, sea)
+
+    def body(acc, xs):
+        kk, ww = xs
+        vals = jax.vmap(one)(kk)
+        part = jax.tree_util.tree_map(lambda v: jnp.tensordot(ww.astype(v.dtype), v, axes=(0, 0)), vals)
+        return jax.tree_util.tree_map(jnp.add, acc, part), None
+
+    shapes = jax.eval_shape(one, k[0])
+    init = jax.tree_util.tree_map(lambda s: jnp.zeros(s.shape, s.dtype), shapes)
+    body_ck = jax.checkpoint(body)
+    acc, _ = jax.lax.scan(body_ck, init, (kc, wc))
+    return acc

@@ -1,0 +1,346 @@
+"""``response``: linear, anomalous Hall and second-order (2ω and rectified) currents of a band model.
+
+Conventions (physics-reference.md §0, design-notes §2): carrier charge q = −e; E(t) = Re[E e^{iωt}];
+j_a = σ_ab E_b; j(t) = Re[j⁽⁰⁾ + j⁽²ω⁾ e^{2iωt}] with j⁽²ω⁾_a = χ_abc E_b E_c and
+j⁽⁰⁾_a = χ^dc_abc E_b E_c* (Sodemann & Fu, PRL 115, 216806, 2015, phasor convention; a static
+field E gives j = 2χ^dc E E).  χ is symmetrised in its last two indices.  Results in SI: 2D sheet
+conductivity S, dipole m, χ A·m/V² (3D: S/m, dimensionless, A/V²).  ∫[dk] = ∫d^dk/(2π)^d, summed
+over bands and multiplied by the model's degeneracy.
+
+Response coefficients (τ̃_ν = τ/(1+iντ), F = −∂f0/∂ε, v = ∇_kε/ħ):
+
+* Drude  σ^D_ab(ω) = q² ∫[dk] F τ̃_ω v_a v_b                                  (∝ τ)
+* anomalous Hall (intrinsic)  σ^A_ab = −(q²/ħ) ε_abc ∫[dk] f0 Ω_c  (2D: σ_xy = −(e²/ħ)∫f0Ω = −σ_yx);
+  a filled Chern band gives σ_xy = −C e²/h (TKNN; Thouless et al., PRL 49, 405, 1982)  (τ⁰)
+* Berry-curvature dipole  D_bc = ∫[dk] F ħ v_b Ω_c = ∫[dk] f0 ∂_bΩ_c (2D: D_b, the z-curvature dipole)
+* dipole term  χ^BCD_abc = −(q³/2ħ²) ε_acd ∫[dk] F τ̃_ω ħv_b Ω_d   → −(q³τ̃_ω/2ħ²) ε_acd D_bd for
+  constant τ; 2D: χ_yxx = −e³τD_x/(2ħ²(1+iωτ))  (Sodemann & Fu 2015)                  (∝ τ)
+* nonlinear Drude  χ^ND,2ω_abc = (q³/2ħ³) ∫[dk] F τ̃_ω [τ̃_2ω ∂_a∂_bε + τ̃'_2ω ∂_aε∂_bε] ∂_cε
+  → q³τ²/(2ħ³(1+iωτ)(1+2iωτ)) ∫[dk] f0 ∂_a∂_b∂_c ε for constant τ; the rectified χ^ND,dc has
+  τ̃_2ω → τ                                                                          (∝ τ²)
+* intrinsic (Berry-connection polarizability; Gao, Yang, Niu, PRL 112, 166601, 2014)
+  χ^int_abc = ½ (q³/ħ) ∫[dk] f0 [∂_aG_bc − ½(∂_bG_ac + ∂_cG_ab)]  (½: phasor convention, ω ≪ gap).
+  This is one published form of a disputed τ⁰ sector (physics-reference §5.5c); switch it off with
+  ``intrinsic=False``.                                                                 (τ⁰)
+* Lorentz (ordinary) Hall to first order in B_z: σ_ab(B) = B (q³/ħ²) ∫[dk] τ² f0' ε_cd v_a v_d ∂_c v_b
+  (Jones–Zener iteration), ``sigma_lorentz`` = ∂σ/∂B_z in S/T and ``hall_coefficient``
+  R_H = −σ^B_yx/(σ_xx σ_yy) (→ 1/(nq) for a parabolic band)
+* thermoelectric (Mahan & Sofo, PNAS 93, 7436, 1996 transport function; dc Drude part):
+  L_α = q²∫[dk] F τ (ε−μ)^α v v; S = L_0⁻¹L_1/(qT); κ_e = [L_2 − L_1 L_0⁻¹ L_1]/(q²T);
+  ``lorenz`` = κ_xx/(σ_xx T).  Anomalous Nernst (Xiao, Yao, Fang, Niu, PRL 97, 026603, 2006):
+  α_ab = (e k_B/ħ) ε_abc ∫[dk] Ω_c s(ε), j = σE + α(−∇T).
+
+Integration (:mod:`crosswind.solver.mesh`) is repeated at two resolutions; ``error`` holds
+|fine − coarse| for every field (the fine value is returned).  With ``resolution=None`` the level is
+raised until every field passes ``rtol`` relative to its own size (or, for a field that vanishes by
+symmetry, to the size of its integrand).
+"""
+from __future__ import annotations
+
+from dataclasses import dataclass, field, fields
+from functools import partial
+from typing import Any
+
+import jax
+import jax.numpy as jnp
+import numpy as np
+
+from crosswind.models.band_model import BandModel
+from crosswind.models.domain import Lattice
+from crosswind.models.units import ANGSTROM, E_CHARGE, HBAR_JS, KB_EVK
+from . import mesh as _mesh
+from .kernels import moments
+from .occupation import T_FLOOR, thermal_energy
+from .scattering import as_scattering
+
+E = E_CHARGE
+HB = HBAR_JS
+FS = 1e-15
+
+ARRAY_FIELDS = ("density", "dos", "sigma", "sigma_drude", "sigma_anomalous", "dipole", "dipole_sea",
+                "chi", "chi_dc", "sigma_lorentz", "hall_coefficient", "seebeck",
+                "thermal_conductivity", "lorenz", "nernst")
+
+
+@dataclass(frozen=True)
+class Response:
+    """Transport coefficients on the broadcast shape of (mu, temperature, tau)."""
+
+    density: Any
+    dos: Any
+    sigma: Any
+    sigma_drude: Any
+    sigma_anomalous: Any
+    dipole: Any
+    dipole_sea: Any
+    chi: Any
+    chi_dc: Any
+    chi_parts: dict
+    chi_dc_parts: dict
+    sigma_lorentz: Any
+    hall_coefficient: Any
+    seebeck: Any
+    thermal_conductivity: Any
+    lorenz: Any
+    nernst: Any
+    error: dict
+    resolution: Any = None
+    units: dict = field(default_factory=dict)
+
+
+UNITS_2D = {"density": "m^-2", "dos": "J^-1 m^-2", "sigma": "S", "sigma_drude": "S",
+            "sigma_anomalous": "S", "dipole": "m", "dipole_sea": "m", "chi": "A m V^-2",
+            "chi_dc": "A m V^-2", "sigma_lorentz": "S T^-1", "hall_coefficient": "Ohm T^-1",
+            "seebeck": "V K^-1", "thermal_conductivity": "W K^-1", "lorenz": "W Ohm K^-2",
+            "nernst": "A K^-1"}
+UNITS_3D = {"density": "m^-3", "dos": "J^-1 m^-3", "sigma": "S m^-1", "sigma_drude": "S m^-1",
+            "sigma_anomalous": "S m^-1", "dipole": "1", "dipole_sea": "1", "chi": "A V^-2",
+            "chi_dc": "A V^-2", "sigma_lorentz": "S m^-1 T^-1", "hall_coefficient": "m^3 C^-1",
+            "seebeck": "V K^-1", "thermal_conductivity": "W K^-1 m^-1", "lorenz": "W Ohm K^-2",
+            "nernst": "A K^-1 m^-1"}
+
+
+def _resp_flatten(r: Response):
+    arrays = tuple(getattr(r, f) for f in ARRAY_FIELDS)
+    return (arrays, r.chi_parts, r.chi_dc_parts, r.error), (r.resolution, tuple(sorted(r.units.items())))
+
+
+def _resp_unflatten(aux, children):
+    arrays, cp, cdp, err = children
+    kw = dict(zip(ARRAY_FIELDS, arrays))
+    return Response(**kw, chi_parts=cp, chi_dc_parts=cdp, error=err, resolution=aux[0], units=dict(aux[1]))
+
+
+jax.tree_util.register_pytree_node(Response, _resp_flatten, _resp_unflatten)
+
+
+def _levels(model):
+    if isinstance(model.domain, Lattice):
+        return _mesh.lattice_levels(model.dim)
+    return _mesh.ray_levels()
+
+
+def neutral_filling(model: BandModel) -> int:
+    """Bands filled at charge neutrality (density is counted from there)."""
+    opts = model.static_options()
+    if "neutral_filling" in opts:
+        return int(opts["neutral_filling"])
+    if model.block_size == 1:
+        return 0
+    return model.blocks * (model.block_size // 2)
+
+
+@partial(jax.jit, static_argnames=("level", "tau_eval", "filled", "sea", "chunk"))
+def _moments_at(model, mu, kt, temp, tau_arr, omega, *, level, tau_eval, filled, sea, chunk):
+    res = _levels(model)[level]
+    p = model.params
+    tau_col = jax.tree_util.tree_map(lambda a: a[:, None], tau_arr)
+    if isinstance(model.domain, Lattice):
+        k, w = _mesh.lattice_rule(model, res)
+        return moments(model, p, k, w, mu, kt, temp, tau_eval, tau_col, omega, filled, sea, chunk)
+
+    def one(args):
+        m, t, tt, ta = args
+        k, w = _mesh.ray_rule(model, res, m, t)
+        ta1 = jax.tree_util.tree_map(lambda a: a[None], ta)
+        out = moments(model, p, k, w, m[None], t[None], tt[None], tau_eval, ta1, omega, filled, sea, chunk)
+        return jax.tree_util.tree_map(lambda a: a[0], out)
+
+    return jax.vmap(one)((mu, kt, temp, tau_col))
+
+
+def _eps(dim):
+    if dim == 2:
+        return jnp.array([[0.0, 1.0], [-1.0, 0.0]])
+    e = np.zeros((3, 3, 3))
+    for a, b, c in ((0, 1, 2), (1, 2, 0), (2, 0, 1)):
+        e[a, b, c], e[b, a, c] = 1.0, -1.0
+    return jnp.asarray(e)
+
+
+def _sym(chi):
+    return 0.5 * (chi + jnp.swapaxes(chi, -1, -2))
+
+
+def _to_si(mom, model, temp, intrinsic):
+    d = model.dim
+    L = ANGSTROM
+    g = model.degeneracy
+    m = {k: v * g for k, v in mom.items()}
+    eps = _eps(d)
+    out = {}
+    out["density"] = m["density"] * L ** (-d)
+    out["dos"] = m["dos"] / E * L ** (-d)
+    sd = m["drude"] * (E ** 3 * FS * L ** (2 - d) / HB ** 2)
+    if d == 2:
+        sxy = -(E ** 2 / HB) * m["ahe"]
+        z = jnp.zeros_like(sxy)
+        sa = jnp.stack([jnp.stack([z, sxy], -1), jnp.stack([-sxy, z], -1)], -2)
+        out["dipole"] = m["dipole"] * L
+        bcd = (E ** 3 * FS * L / (2 * HB ** 2)) * jnp.einsum("ac,pb->pabc", eps.astype(jnp.complex128), m["dipole_tau"])
+        out["nernst"] = jnp.einsum("ab,p->pab", eps, m["nernst"]) * (E * KB_EVK * E / HB)
+        if "dipole_sea" in m:
+            out["dipole_sea"] = m["dipole_sea"] * L
+    else:
+        sa = -(E ** 2 / HB) * jnp.einsum("abc,pc->pab", eps, m["ahe"]) / L
+        out["dipole"] = m["dipole"]
+        bcd = (E ** 3 * FS / (2 * HB ** 2)) * jnp.einsum("acd,pbd->pabc", eps.astype(jnp.complex128), m["dipole_tau"])
+        out["nernst"] = jnp.einsum("abc,pc->pab", eps, m["nernst"]) * (E * KB_EVK * E / HB) / L
+        if "dipole_sea" in m:
+            out["dipole_sea"] = m["dipole_sea"]
+    out["sigma_drude"] = sd
+    out["sigma_anomalous"] = sa.astype(jnp.complex128)
+    out["sigma"] = sd + sa.astype(jnp.complex128)
+    nd_fac = -(E ** 4 * FS ** 2 * L ** (3 - d) / (2 * HB ** 3))
+    nd2 = _sym(m["drude2_2w"] * nd_fac)
+    nd0 = _sym(m["drude2_0"] * nd_fac)
+    bcd = _sym(bcd)
+    if intrinsic:
+        cint = (-(E ** 2) * L ** (3 - d) / (2 * HB)) * m["bcp"]
+    else:
+        cint = jnp.zeros_like(m["bcp"])
+    cint = _sym(cint).astype(jnp.complex128)
+    out["chi_parts"] = {"dipole": bcd, "drude": nd2, "intrinsic": cint}
+    out["chi_dc_parts"] = {"dipole": bcd, "drude": nd0, "intrinsic": cint}
+    out["chi"] = bcd + nd2 + cint
+    out["chi_dc"] = bcd + nd0 + cint
+    # Lorentz Hall term and thermoelectric tensors (dc Drude part)
+    out["sigma_lorentz"] = m["lorentz"] * (E ** 5 * FS ** 2 * L ** (4 - d) / HB ** 4)
+    s0 = m["drude0"] * (E ** 3 * FS * L ** (2 - d) / HB ** 2)
+    l1 = m["thermo1"] * (E ** 4 * FS * L ** (2 - d) / HB ** 2)
+    l2 = m["thermo2"] * (E ** 5 * FS * L ** (2 - d) / HB ** 2)
+    T = jnp.maximum(temp, T_FLOOR)[:, None, None]
+    s0inv = jnp.linalg.inv(s0)
+    out["seebeck"] = -(s0inv @ l1) / (E * T)
+    kappa = (l2 - l1 @ s0inv @ l1) / (E ** 2 * T)
+    out["thermal_conductivity"] = kappa
+    out["lorenz"] = kappa[:, 0, 0] / (s0[:, 0, 0] * T[:, 0, 0])
+    if d == 2:
+        out["hall_coefficient"] = -out["sigma_lorentz"][:, 1, 0] / (s0[:, 0, 0] * s0[:, 1, 1])
+    else:
+        out["hall_coefficient"] = jnp.full(temp.shape, jnp.nan)
+    if "dipole_sea" not in out:
+        out["dipole_sea"] = jnp.full(out["dipole"].shape, jnp.nan)
+    return out
+
+
+def _is_traced(*xs):
+    leaves = jax.tree_util.tree_leaves(xs)
+    return any(isinstance(x, jax.core.Tracer) for x in leaves)
+
+
+def _floors(mom, model, tau_max):
+    """Integrand magnitudes in SI: the size a field would have without cancellations.  A field
+    that vanishes by symmetry is judged against 1e-2 of this instead of its own (zero) size."""
+    L, g, d = ANGSTROM, model.degeneracy, model.dim
+    mx = lambda key: float(np.max(np.asarray(mom[key]))) * g
+    dip = mx("scale_dipole")
+    chi = (dip * E ** 3 * FS * tau_max * L ** (3 - d) / (2 * HB ** 2)
+           + mx("scale_drude2") * E ** 4 * FS ** 2 * L ** (3 - d) / (2 * HB ** 3)
+           + mx("scale_bcp") * E ** 2 * L ** (3 - d) / (2 * HB))
+    return {"sigma_anomalous": mx("scale_ahe") * E ** 2 / HB * L ** (2 - d),
+            "dipole": dip * L ** (3 - d), "chi": chi, "chi_dc": chi}
+
+
+def _converged(fine, coarse, mom_fine, rtol, model, tau_max):
+    bad = []
+    floors = _floors(mom_fine, model, tau_max)
+    for name in ("density", "sigma", "sigma_anomalous", "dipole", "chi", "chi_dc"):
+        a, b = np.asarray(fine[name]), np.asarray(coarse[name])
+        size = float(np.max(np.abs(a))) if a.size else 0.0
+        floor = floors.get(name, 0.0) * 1e-2
+        diff = float(np.max(np.abs(a - b))) if a.size else 0.0
+        if diff > rtol * max(size, floor) and diff > 0:
+            bad.append((name, diff, size))
+    return bad
+
+
+def response(model: BandModel, mu, temperature, tau, frequency=0.0, *, rtol: float = 1e-3,
+             resolution: int | None = None, max_level: int | None = None, intrinsic: bool = True,
+             dipole_route: str = "surface", chunk: int = 4096) -> Response:
+    """Transport coefficients of ``model`` at chemical potential(s) ``mu`` (eV), ``temperature`` (K)
+    and relaxation time ``tau`` (fs, or a scattering object from :mod:`crosswind.solver.scattering`),
+    at drive ``frequency`` (Hz).  ``mu``, ``temperature`` and ``tau`` broadcast against each other;
+    every field carries that shape in front.  See the module docstring for formulas and units.
+
+    ``resolution`` fixes the refinement level (required under ``jax.grad``/``jit``); ``None``
+    chooses it automatically for ``rtol``.  ``dipole_route="both"`` also evaluates the Fermi-sea
+    integral ∫f0 ∂Ω (``dipole_sea``) and folds the disagreement of the two routes into
+    ``error["dipole"]``.
+    """
+    if not isinstance(model, BandModel):
+        raise TypeError("response: the first argument must be a BandModel from crosswind.models.build(...)")
+    if dipole_route not in ("surface", "both"):
+        raise ValueError("response: dipole_route must be 'surface' or 'both'")
+    if not (0 < rtol < 1):
+        raise ValueError("response: rtol must lie in (0, 1), e.g. 1e-3")
+    scat = as_scattering(tau)
+    tau_arr = scat.arrays()
+    mu = jnp.asarray(mu, dtype=jnp.float64)
+    temperature = jnp.asarray(temperature, dtype=jnp.float64)
+    shapes = [mu.shape, temperature.shape] + [a.shape for a in tau_arr.values()]
+    try:
+        shape = np.broadcast_shapes(*shapes)
+    except ValueError as exc:
+        raise ValueError(f"response: mu {mu.shape}, temperature {temperature.shape} and tau shapes "
+                         f"{[a.shape for a in tau_arr.values()]} do not broadcast; pass arrays of equal "
+                         "shape or scalars") from exc
+    if not _is_traced(temperature):
+        if np.any(np.asarray(temperature) < 0):
+            raise ValueError("response: temperature must be >= 0 K")
+    if not _is_traced(tau_arr) and isinstance(tau, (int, float, np.ndarray, list, tuple)) and np.any(np.asarray(tau) <= 0):
+        raise ValueError("response: tau must be positive (fs)")
+    P = int(np.prod(shape)) if shape else 1
+    flat = lambda x: jnp.broadcast_to(x, shape).reshape(P)
+    muf, Tf = flat(mu), flat(temperature)
+    tauf = jax.tree_util.tree_map(flat, tau_arr)
+    kt = thermal_energy(Tf)
+    omega = jnp.asarray(2 * jnp.pi * frequency * FS, dtype=jnp.float64)
+    levels = _levels(model)
+    top = len(levels) - 1 if max_level is None else min(max_level, len(levels) - 1)
+    kw = dict(tau_eval=type(scat).evaluate, filled=neutral_filling(model), sea=dipole_route == "both",
+              chunk=chunk)
+    run = lambda lev: _moments_at(model, muf, kt, Tf, tauf, omega, level=lev, **kw)
+    if resolution is None:
+        if _is_traced(model.params, muf, Tf, tauf, omega):
+            raise ValueError("response: pass a fixed mesh, e.g. resolution=2, when differentiating or "
+                             "tracing (automatic refinement compares concrete values)")
+        tau_max = float(np.max(np.abs(np.asarray(jax.vmap(lambda a: type(scat).evaluate(
+            a, jnp.zeros((1, 1)), jnp.zeros((1, 1)))[0])(jax.tree_util.tree_map(lambda x: x[:, None, None], tauf))))))
+        lev = 1
+        coarse_m = run(0)
+        fine_m = run(1)
+        while True:
+            fine = _to_si(fine_m, model, Tf, intrinsic)
+            coarse = _to_si(coarse_m, model, Tf, intrinsic)
+            bad = _converged(fine, coarse, fine_m, rtol, model, tau_max)
+            if not bad or lev >= top:
+                break
+            lev += 1
+            coarse_m, fine_m = fine_m, run(lev)
+    else:
+        if not (0 <= resolution <= len(levels) - 1):
+            raise ValueError(f"response: resolution must be a level 0..{len(levels) - 1}")
+        lev = resolution
+        fine_m = run(lev)
+        coarse_m = run(lev - 1) if lev > 0 else fine_m
+        fine = _to_si(fine_m, model, Tf, intrinsic)
+        coarse = _to_si(coarse_m, model, Tf, intrinsic)
+        bad = None
+    err = {}
+    for name in ARRAY_FIELDS:
+        err[name] = jnp.abs(fine[name] - coarse[name])
+    if dipole_route == "both":
+        err["dipole"] = jnp.maximum(err["dipole"], jnp.abs(fine["dipole"] - fine["dipole_sea"]))
+    for part in ("dipole", "drude", "intrinsic"):
+        err[f"chi_{part}"] = jnp.abs(fine["chi_parts"][part] - coarse["chi_parts"][part])
+    reshape = lambda x: x.reshape(shape + x.shape[1:])
+    fine = jax.tree_util.tree_map(reshape, fine)
+    err = jax.tree_util.tree_map(reshape, err)
+    info = {"level": lev, "nodes_per_condition": _mesh.node_count(model, levels[lev]),
+            "converged": (not bad) if bad is not None else None,
+            "unconverged_fields": tuple(b[0] for b in bad) if bad else ()}
+    units = UNITS_2D if model.dim == 2 else UNITS_3D
+    return Response(**{k: fine[k] for k in ARRAY_FIELDS}, chi_parts=fine["chi_parts"],
+                    chi_dc_parts=fine["chi_dc_parts"], error=err, resolution=tuple(sorted(info.items())),
+                    units=dict(units))
