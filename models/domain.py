@@ -7,7 +7,9 @@ periodic gauge needed by lattice Chern numbers is recovered by multiplying eigen
 ``exp(i k·τ_α)``.
 
 Continuum models are integrated over all of k-space around the listed ``centers``; ``scale``
-is a characteristic wavevector (1/Å) used only to place mesh points.
+is a characteristic wavevector (1/Å) used only to place mesh points: a number, or a
+module-level function of the parameter pytree (traced with them, so changing parameter values
+never recompiles).
 """
 from __future__ import annotations
 
@@ -68,8 +70,14 @@ class Continuum:
         for c in self.centers:
             if len(c) != self.dim:
                 raise ValueError(f"Continuum: each center needs {self.dim} components, got {c}.")
-        if not self.scale > 0:
-            raise ValueError("Continuum: scale must be a positive wavevector in 1/Å.")
+        if not callable(self.scale) and not self.scale > 0:
+            raise ValueError("Continuum: scale must be a positive wavevector in 1/Å, or a function "
+                             "params -> wavevector (module-level, so it can be traced).")
+
+    def scale_for(self, params):
+        """The mesh-placement wavevector (1/Å): ``scale(params)`` if callable (traceable, so new
+        parameter values do not recompile), else the fixed number."""
+        return self.scale(params) if callable(self.scale) else self.scale
 
     @property
     def periodic(self) -> bool:

@@ -95,13 +95,13 @@ def ray_rule(model: BandModel, res: Resolution, mu, kt, params=None):
     p = jax.lax.stop_gradient(p)
     mu = jax.lax.stop_gradient(mu)
     kt = jax.lax.stop_gradient(kt)
-    s = dom.scale
+    s = dom.scale_for(p)
     nth = res.n
-    theta = (jnp.arange(nth) + 0.5) * (2 * jnp.pi / nth)
+    theta = (jnp.arange(nth, dtype=jnp.float64) + 0.5) * (2 * jnp.pi / nth)
     dirs = jnp.stack([jnp.cos(theta), jnp.sin(theta)], axis=-1)          # (nth, 2)
     centers = jnp.asarray(np.asarray(dom.centers, dtype=float))           # (C, 2)
     # probe grid along a ray (compactified)
-    u = (jnp.arange(1, PROBE + 1) - 0.5) / PROBE
+    u = (jnp.arange(1, PROBE + 1, dtype=jnp.float64) - 0.5) / PROBE
     kr = jnp.concatenate([jnp.zeros(1), s * 4.0 * u / (1.0 - u)])        # (PROBE+1,)
 
     def per_ray(c, dvec):
@@ -161,12 +161,13 @@ def ray_rule(model: BandModel, res: Resolution, mu, kt, params=None):
     bps = jnp.sort(jnp.maximum(bps, 0.0), axis=-1)                        # (C, nth, B)
     x, wx = _gauss(res.nodes)
     a, b = bps[..., :-1], bps[..., 1:]
-    r = a[..., None] + (b - a)[..., None] * x                              # (C, nth, B-1, q)
-    wr = (b - a)[..., None] * wx
+    r = a[..., None] + (b - a)[..., None] * x[None, None, None, :]   # (C, nth, B-1, q)
+    wr = (b - a)[..., None] * wx[None, None, None, :]
     # tail [k_last, ∞): k = k_last + t u/(1-u)
     last = bps[..., -1:]
     t = jnp.maximum(last, s)
     ut, wut = _gauss(res.nodes)
+    ut, wut = ut[None, None, :], wut[None, None, :]
     rt = last + t * ut / (1.0 - ut)
     wrt = t * wut / (1.0 - ut) ** 2
     r = jnp.concatenate([r.reshape(r.shape[:2] + (-1,)), rt], axis=-1)   # (C, nth, R)

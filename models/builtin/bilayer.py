@@ -93,11 +93,8 @@ def hamiltonian_two(k, p):
 
 def _scale(p):
     """Characteristic wavevector (1/Å) for mesh placement: |U| (at least 10 meV) over ħv0."""
-    try:
-        hv = math.sqrt(3.0) * float(p["lattice_constant"]) * float(p["gamma0"]) / 2
-        return max(abs(float(p["asymmetry"])), 0.01) / max(hv, 1e-6)
-    except (TypeError, jax.errors.ConcretizationTypeError):  # traced values: generic hint
-        return 0.01
+    hv = jnp.sqrt(3.0) * p["lattice_constant"] * p["gamma0"] / 2
+    return jnp.maximum(jnp.abs(p["asymmetry"]), 0.01) / jnp.maximum(hv, 1e-6)
 
 
 @register("bilayer-graphene", SPEC,
@@ -109,7 +106,7 @@ def build_bilayer(p, s) -> BandModel:
     two = s["valleys"] == 2
     return BandModel(
         name="bilayer-graphene", dim=2, hamiltonian=hamiltonian_two if two else hamiltonian_one,
-        params=p, spec=SPEC, domain=Continuum(dim=2, centers=((0.0, 0.0),), scale=_scale(p)),
+        params=p, spec=SPEC, domain=Continuum(dim=2, centers=((0.0, 0.0),), scale=_scale),
         degeneracy=float(s["degeneracy"]), blocks=2 if two else 1, block_size=4,
         static=tuple(sorted(s.items())), description="Bernal bilayer graphene (continuum)",
         source=SPEC.owner)

@@ -48,12 +48,9 @@ H_ONE = hamiltonian_of(dvector_one)
 H_TWO = hamiltonian_of(dvector_two)
 
 
-def _scale(real_params):
-    try:
-        hv = float(real_params["velocity"]) * HBAR_EVS / ANGSTROM
-        return max(abs(float(real_params["mass"])) / hv, 1e-4)
-    except Exception:  # traced values: keep a generic hint
-        return 0.03
+def _scale(p):
+    """Curvature scale |Δ|/ħv (1/Å) for mesh placement (at least 1e-4)."""
+    return jnp.maximum(jnp.abs(p["mass"]) / _hv(p, "velocity"), 1e-4)
 
 
 @register("massive-dirac", SPEC,
@@ -64,7 +61,7 @@ def build_massive_dirac(p, s) -> BandModel:
     two = s["valleys"] == 2
     return BandModel(
         name="massive-dirac", dim=2, hamiltonian=H_TWO if two else H_ONE, params=p, spec=SPEC,
-        domain=Continuum(dim=2, centers=((0.0, 0.0),), scale=_scale(p)),
+        domain=Continuum(dim=2, centers=((0.0, 0.0),), scale=_scale),
         degeneracy=float(s["degeneracy"]), blocks=2 if two else 1, block_size=2,
         dvector=dvector_two if two else dvector_one, static=tuple(sorted(s.items())),
         description="massive Dirac cone", source=SPEC.owner)

@@ -147,11 +147,8 @@ HAMILTONIAN = hamiltonian_of(dvector)
 
 
 def _scale(p):
-    try:
-        hv = float(p["lattice_constant"]) * float(p["hopping"])
-        return max(abs(float(p["gap"])) / 2 / hv, 1e-4)
-    except (TypeError, jax.errors.ConcretizationTypeError):  # traced values: a generic hint
-        return 0.2
+    """Curvature scale (Δ/2)/(a t) (1/Å) for mesh placement (at least 1e-4)."""
+    return jnp.maximum(jnp.abs(p["gap"]) / 2 / (p["lattice_constant"] * p["hopping"]), 1e-4)
 
 
 @register("tmd", SPEC,
@@ -165,7 +162,7 @@ def _scale(p):
 def build_tmd(p, s) -> BandModel:
     return BandModel(
         name="tmd", dim=2, hamiltonian=HAMILTONIAN, params=p, spec=SPEC,
-        domain=Continuum(dim=2, centers=((0.0, 0.0),), scale=_scale(p)),
+        domain=Continuum(dim=2, centers=((0.0, 0.0),), scale=_scale),
         degeneracy=1.0, blocks=4, block_size=2, dvector=dvector,
         static=tuple(sorted(s.items())),
         description=f"{s['material']} monolayer, blocks (K,↑), (K,↓), (K',↑), (K',↓)",

@@ -1,0 +1,86 @@
+"""Interface properties of ``response``: shapes, broadcasting, no recompilation on new sweep
+values, differentiability at a fixed mesh, error messages."""
+import jax
+import jax.numpy as jnp
+import numpy as np
+import pytest
+
+from crosswind.models import build
+from crosswind.solver import response
+from crosswind.solver.response import _moments_at
+
+DIRAC = dict(velocity=5e5, mass=0.1, tilt=5e4)
+
+
+def test_shapes_follow_broadcast_of_conditions():
+    m = build("massive-dirac", **DIRAC)
+    r = response(m, mu=jnp.array([0.12, 0.15, 0.2]), temperature=jnp.array([[5.0], [20.0]]), tau=100.0,
+                 resolution=1)
+    assert r.density.shape == (2, 3)
+    assert r.sigma.shape == (2, 3, 2, 2)
+    assert r.dipole.shape == (2, 3, 2)
+    assert r.chi.shape == (2, 3, 2, 2, 2)
+    assert set(r.chi_parts) == {"dipole", "drude", "intrinsic"}
+    for k in ("sigma", "dipole", "chi", "density"):
+        assert r.error[k].shape == getattr(r, k).shape
+    np.testing.assert_allclose(sum(r.chi_parts.values()), r.chi, rtol=1e-14, atol=0)
+
+
+def test_new_sweep_values_do_not_recompile():
+    m = build("massive-dirac", **DIRAC)
+    response(m, mu=jnp.array([0.12, 0.15]), temperature=jnp.array([5.0, 10.0]), tau=jnp.array([50.0, 100.0]),
+             resolution=1)
+    size = _moments_at._cache_size()
+    response(m, mu=jnp.array([0.13, 0.25]), temperature=jnp.array([7.0, 30.0]), tau=jnp.array([80.0, 10.0]),
+             resolution=1)
+    m2 = build("massive-dirac", velocity=4e5, mass=0.12, tilt=3e4)   # new parameter values, same model
+    response(m2, mu=jnp.array([0.13, 0.25]), temperature=jnp.array([7.0, 30.0]), tau=jnp.array([80.0, 10.0]),
+             resolution=1)
+    assert _moments_at._cache_size() == size
+
+
+def _fd(f, x, h):
+    return (f(x + h) - f(x - h)) / (2 * h)
+
+
+@pytest.mark.parametrize("wrt", ["mu", "temperature", "tau", "mass"])
+def test_gradients_match_central_differences(wrt):
+    base = dict(mu=0.15, temperature=20.0, tau=100.0, mass=0.1)
+    steps = dict(mu=1e-5, temperature=1e-3, tau=1e-3, mass=1e-6)
+
+    def dipole(x):
+        v = dict(base, **{wrt: x})
+        m = build("massive-dirac", velocity=5e5, mass=v["mass"], tilt=5e4)
+        r = response(m, mu=v["mu"], temperature=v["temperature"], tau=v["tau"], resolution=2)
+        return r.chi[1, 0, 0].real
+
+    g = jax.grad(dipole)(base[wrt])
+    fd = _fd(dipole, base[wrt], steps[wrt])
+    assert np.isfinite(g)
+    np.testing.assert_allclose(g, fd, rtol=1e-5)
+
+
+def test_gradient_finite_at_low_temperature():
+    m = build("massive-dirac", **DIRAC)
+    g = jax.grad(lambda T: response(m, mu=0.15, temperature=T, tau=100.0, resolution=1).sigma[0, 0].real)(0.0)
+    assert np.isfinite(g)
+
+
+def test_automatic_resolution_needs_concrete_values():
+    m = build("massive-dirac", **DIRAC)
+    with pytest.raises(ValueError, match="resolution="):
+        jax.grad(lambda mu: response(m, mu=mu, temperature=5.0, tau=100.0).sigma[0, 0].real)(0.15)
+
+
+def test_bad_conditions_give_clear_errors():
+    m = build("massive-dirac", **DIRAC)
+    with pytest.raises(ValueError, match="temperature must be >= 0"):
+        response(m, mu=0.1, temperature=-1.0, tau=100.0)
+    with pytest.raises(ValueError, match="tau must be positive"):
+        response(m, mu=0.1, temperature=1.0, tau=0.0)
+    with pytest.raises(ValueError, match="do not broadcast"):
+        response(m, mu=jnp.zeros(3), temperature=jnp.ones(2), tau=100.0)
+    with pytest.raises(ValueError, match="resolution must be a level"):
+        response(m, mu=0.1, temperature=1.0, tau=100.0, resolution=99)
+    with pytest.raises(TypeError, match="BandModel"):
+        response("massive-dirac", mu=0.1, temperature=1.0, tau=100.0)

@@ -1,0 +1,82 @@
+"""Independent reference values: closed forms (scipy.constants CODATA) and scipy quadrature.
+
+Nothing here calls the Crosswind solver.
+"""
+from __future__ import annotations
+
+import numpy as np
+from scipy import constants as C
+from scipy import integrate
+
+HBAR_EVS = C.hbar / C.e
+KB = C.k / C.e
+
+
+def _hv(v):
+    return v * HBAR_EVS * 1e10  # eV Å
+
+
+def dirac_gap_hall(params, cond):
+    return -np.sign(params["mass"]) * C.e ** 2 / (2 * C.h)
+
+
+def dirac_density(params, cond):
+    mu, m = cond["mu"], params["mass"]
+    return (mu ** 2 - m ** 2) / (4 * np.pi * _hv(params["velocity"]) ** 2) * 1e20
+
+
+def tilted_dipole_first_order(params, cond):
+    ht = _hv(params["tilt"])
+    mu, d = cond["mu"], params["mass"]
+    return -3 * ht * d * (mu ** 2 - d ** 2) / (8 * np.pi * mu ** 4) * 1e-10
+
+
+def tilted_dipole_quadrature(params, cond):
+    """D_x = ∫ d²k/(2π)² (−f0'(ε_c)) ∂_xε_c Ω_c for H = ħt k_x + ħv k·σ + Δσ_z (one valley),
+    Ω_c = −(ħv)²Δ/(2E³); polar coordinates, scipy.integrate.quad in k and θ."""
+    hv, ht, d, mu = _hv(params["velocity"]), _hv(params["tilt"]), params["mass"], cond["mu"]
+    kt = KB * cond["temperature"]
+
+    def integrand_k(k, th):
+        kx = k * np.cos(th)
+        e = np.sqrt((hv * k) ** 2 + d * d)
+        ec = ht * kx + e
+        x = (ec - mu) / kt
+        mdf = 1.0 / (4 * kt * np.cosh(np.clip(x / 2, -300, 300)) ** 2)
+        gx = ht + hv * hv * kx / e
+        om = -(hv * hv) * d / (2 * e ** 3)
+        return mdf * gx * om * k
+
+    def radial(th):
+        # Fermi radius along θ: ħt k cosθ + sqrt((ħv k)² + Δ²) = μ
+        c = np.cos(th)
+        a = hv * hv - (ht * c) ** 2
+        b = 2 * mu * ht * c
+        kf = (-b + np.sqrt(b * b + 4 * a * (mu * mu - d * d))) / (2 * a)
+        w = 40 * kt / (hv)
+        lo, hi = max(kf - w, 0.0), kf + w
+        val, _ = integrate.quad(integrand_k, lo, hi, args=(th,), points=[kf], epsabs=0, epsrel=1e-11, limit=200)
+        return val
+
+    val, _ = integrate.quad(radial, 0, 2 * np.pi, epsabs=0, epsrel=1e-10, limit=200)
+    return val / (2 * np.pi) ** 2 * 1e-10
+
+
+def minus_e2_over_h(params, cond):
+    return -C.e ** 2 / C.h
+
+
+def sommerfeld_lorenz(params, cond):
+    """Lorenz number of a 2D parabolic band with constant τ, whose transport function Σ(ε) ∝ ε is
+    linear: the Sommerfeld moments are then exact, ∫(ε−μ)^α ε(−f0') = μ, (π²/3)(k_BT)², μ(π²/3)(k_BT)²
+    for α = 0, 1, 2, giving L = L0 [1 − (π²/3)(k_BT/μ)²] with L0 = π²k_B²/(3e²) (Wiedemann–Franz,
+    Ashcroft & Mermin 1976), up to terms of order e^{−μ/k_BT}."""
+    x = KB * cond["temperature"] / cond["mu"]
+    return np.pi ** 2 / 3 * (C.k / C.e) ** 2 * (1 - np.pi ** 2 / 3 * x * x)
+
+
+def parabolic_fermi_energy(params):
+    """E_F (eV) of a spin-degenerate 2D band with n = 1e12 cm⁻²: n = m E_F/(πħ²)."""
+    n = 1e16
+    m = params["effective_mass"] * C.m_e
+    return np.pi * C.hbar ** 2 * n / m / C.e
