@@ -39,8 +39,9 @@ FIELDS = ("density", "dos", "drude", "ahe", "dipole", "dipole_tau", "drude2_2w",
 
 def _tilde(tau, dtau, nu):
     """τ̃ = τ/(1 + iντ) and dτ̃/dε = τ'/(1 + iντ)²  (ν in 1/fs)."""
-    den = 1.0 + 1j * nu * tau
-    return tau / den, dtau / (den * den)
+    c = jnp.complex128
+    den = 1.0 + 1j * (nu * tau).astype(c)
+    return tau.astype(c) / den, dtau.astype(c) / (den * den)
 
 
 def _eps2(dim):
@@ -112,27 +113,39 @@ def point_kernels(model, params, k, mu, kt, temp, tau_eval, tau_arr, omega, fill
     return out
 
 
-def moments(model, params, k, w, mu, kt, temp, tau_eval, tau_arr, omega, filled, sea=False, chunk=4096):
-    """Σ_k w(k)·kernels(k) with the k-points processed in chunks (bounded memory)."""
-    n = k.shape[0]
+def moments_indexed(model, params, n, node_fn, mu, kt, temp, tau_eval, tau_arr, omega, filled,
+                    sea=False, chunk=4096):
+    """Σ_k w(k)·kernels(k) over ``n`` nodes produced chunk by chunk by ``node_fn(indices) -> (k, w)``
+    (indices ≥ n must get weight 0).  Only one chunk of nodes and geometry exists at a time, so
+    memory does not grow with the mesh; ``jax.checkpoint`` keeps reverse-mode memory bounded too."""
     nchunks = -(-n // chunk)
-    pad = nchunks * chunk - n
-    kp = jnp.concatenate([k, jnp.broadcast_to(k[:1], (pad, k.shape[1]))], axis=0)
-    wp = jnp.concatenate([w, jnp.zeros((pad,))], axis=0)
-    kc = kp.reshape(nchunks, chunk, k.shape[1])
-    wc = wp.reshape(nchunks, chunk)
 
     def one(kk):
         return point_kernels(model, params, kk, mu, kt, temp, tau_eval, tau_arr, omega, filled, sea)
 
-    def body(acc, xs):
-        kk, ww = xs
+    def body(acc, c):
+        idx = c * chunk + jnp.arange(chunk)
+        kk, ww = node_fn(idx)
+        ww = jnp.where(idx < n, ww, 0.0)
         vals = jax.vmap(one)(kk)
         part = jax.tree_util.tree_map(lambda v: jnp.tensordot(ww.astype(v.dtype), v, axes=(0, 0)), vals)
         return jax.tree_util.tree_map(jnp.add, acc, part), None
 
-    shapes = jax.eval_shape(one, k[0])
+    k0, _ = node_fn(jnp.zeros((1,), dtype=jnp.int64))
+    shapes = jax.eval_shape(one, k0[0])
     init = jax.tree_util.tree_map(lambda s: jnp.zeros(s.shape, s.dtype), shapes)
-    body_ck = jax.checkpoint(body)
-    acc, _ = jax.lax.scan(body_ck, init, (kc, wc))
+    acc, _ = jax.lax.scan(jax.checkpoint(body), init, jnp.arange(nchunks))
     return acc
+
+
+def moments(model, params, k, w, mu, kt, temp, tau_eval, tau_arr, omega, filled, sea=False, chunk=4096):
+    """Σ_k w(k)·kernels(k) for explicit node arrays ``k`` (n, d) and weights ``w`` (n,)."""
+    n = k.shape[0]
+    chunk = min(chunk, n)
+
+    def node_fn(idx):
+        safe = jnp.minimum(idx, n - 1)
+        return k[safe], w[safe]
+
+    return moments_indexed(model, params, n, node_fn, mu, kt, temp, tau_eval, tau_arr, omega, filled,
+                           sea, chunk)

@@ -50,18 +50,30 @@ def ray_levels():
     return tuple(Resolution(n, q) for n, q in ((24, 12), (48, 20), (96, 32), (192, 48), (384, 64)))
 
 
-def lattice_rule(model: BandModel, res: Resolution, params=None):
-    """Uniform offset grid over the (possibly strained) Brillouin zone."""
-    dim = model.dim
-    n = res.n
-    frac = (np.arange(n) + 0.5) / n
-    grids = np.meshgrid(*([frac] * dim), indexing="ij")
-    red = jnp.asarray(np.stack([g.ravel() for g in grids], axis=-1))
+def lattice_nodes(model: BandModel, res: Resolution, params=None):
+    """``(n, node_fn)`` for the uniform offset grid over the (possibly strained) zone; node_fn maps
+    flat indices to (k, w) on the fly, so the mesh never exists in memory as a whole."""
+    dim, n = model.dim, res.n
     b = jax.lax.stop_gradient(model.reciprocal_vectors(params))
-    k = red @ b
     vol = jnp.abs(jnp.linalg.det(b)) / (2 * jnp.pi) ** dim
-    w = jnp.full((red.shape[0],), 1.0) * (vol / red.shape[0])
-    return k, w
+    total = n ** dim
+
+    def node_fn(idx):
+        digits = []
+        rest = idx
+        for _ in range(dim):
+            digits.append(rest % n)
+            rest = rest // n
+        red = (jnp.stack(digits[::-1], axis=-1).astype(jnp.float64) + 0.5) / n
+        return red @ b, jnp.full(idx.shape, 1.0) * (vol / total)
+
+    return total, node_fn
+
+
+def lattice_rule(model: BandModel, res: Resolution, params=None):
+    """Uniform offset grid over the (possibly strained) Brillouin zone, as explicit arrays."""
+    total, node_fn = lattice_nodes(model, res, params)
+    return node_fn(jnp.arange(total))
 
 
 def _gauss(n):

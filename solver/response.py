@@ -49,7 +49,7 @@ from crosswind.models.band_model import BandModel
 from crosswind.models.domain import Lattice
 from crosswind.models.units import ANGSTROM, E_CHARGE, HBAR_JS, KB_EVK
 from . import mesh as _mesh
-from .kernels import moments
+from .kernels import moments, moments_indexed
 from .occupation import T_FLOOR, thermal_energy
 from .scattering import as_scattering
 
@@ -136,8 +136,9 @@ def _moments_at(model, mu, kt, temp, tau_arr, omega, *, level, tau_eval, filled,
     p = model.params
     tau_col = jax.tree_util.tree_map(lambda a: a[:, None], tau_arr)
     if isinstance(model.domain, Lattice):
-        k, w = _mesh.lattice_rule(model, res)
-        return moments(model, p, k, w, mu, kt, temp, tau_eval, tau_col, omega, filled, sea, chunk)
+        n, node_fn = _mesh.lattice_nodes(model, res)
+        return moments_indexed(model, p, n, node_fn, mu, kt, temp, tau_eval, tau_col, omega, filled,
+                               sea, min(chunk, n))
 
     def one(args):
         m, t, tt, ta = args

@@ -1,0 +1,38 @@
+"""Benchmark: a 4096² Brillouin-zone mesh of a multi-band lattice model in bounded memory.
+
+Target (transport issue): under 2 GiB peak resident memory for a 4-band model on 4096² k-points.
+Uses the six-band (two spin blocks of three) tmd-lattice model, which is heavier than the target.
+Run:  python benchmarks/bench_memory_4096.py [N]
+Prints wall time, peak RSS and the anomalous Hall conductivity as a sanity value.
+"""
+import resource
+import sys
+import time
+
+import jax.numpy as jnp
+
+from crosswind.models import build
+from crosswind.solver import mesh
+from crosswind.solver.kernels import moments_indexed
+from crosswind.solver.scattering import ConstantTau
+
+
+def main(n=4096):
+    m = build("tmd-lattice")
+    total, node_fn = mesh.lattice_nodes(m, mesh.Resolution(n))
+    import jax
+
+    f = jax.jit(lambda model: moments_indexed(model, model.params, total, node_fn, jnp.array([1.0]),
+                                              jnp.array([2.5e-3]), jnp.array([30.0]), ConstantTau.evaluate,
+                                              {"tau0": jnp.array([[100.0]])}, 0.0, 2, False, 16384))
+    t = time.time()
+    out = f(m)
+    jax.block_until_ready(out)
+    dt = time.time() - t
+    peak = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 2 ** 20  # KiB -> GiB
+    print(f"mesh {n}x{n} ({total} k-points), {m.n_bands} bands: {dt:.1f} s, peak RSS {peak:.2f} GiB, "
+          f"density {float(out['density'][0]):.4e} 1/Å², target < 2 GiB: {'met' if peak < 2 else 'MISSED'}")
+
+
+if __name__ == "__main__":
+    main(int(sys.argv[1]) if len(sys.argv) > 1 else 4096)
