@@ -145,10 +145,10 @@ def _blocks_dvector(model: BandModel, k, params, tol):
     hess = hd0[:, None] + signs[None, :, None, None] * hess_e[:, None]
     if dim == 2:
         omega = signs[None, :] * om_plus[:, None]
-        mom = jnp.broadcast_to((e * om_plus)[:, None], w.shape) * (1e-20 / HBAR_EVS)
+        mom = jnp.broadcast_to((e * om_plus)[:, None], w.shape) * _MOMENT_FACTOR
     else:
         omega = signs[None, :, None] * om_plus[:, None, :]
-        mom = jnp.broadcast_to((e[:, None] * om_plus)[:, None, :], w.shape + (3,)) * (1e-20 / HBAR_EVS)
+        mom = jnp.broadcast_to((e[:, None] * om_plus)[:, None, :], w.shape + (3,)) * _MOMENT_FACTOR
     metric2 = jnp.broadcast_to(metric[:, None], w.shape + metric.shape[-2:])
     bcp = signs[None, :, None, None] * (metric * inv_e[:, None, None])[:, None]
     return w, grad, hess, omega, mom, metric2, bcp

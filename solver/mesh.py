@@ -3,8 +3,10 @@
 Every rule returns nodes k (1/Å) and weights w (Å^-d) that already include the Brillouin-zone
 measure d^dk/(2π)^d, so Σ w·X ≈ ∫[dk] X.
 
-Periodic lattices — :func:`lattice_rule`: a uniform N^d grid in reduced coordinates (offset by
-half a step so that high-symmetry points such as K are not sampled exactly).  For an integrand
+Periodic lattices — :func:`refined_lattice_nodes`: a uniform N^d grid in reduced coordinates
+(offset by half a step so that high-symmetry points such as K are not sampled exactly), with a
+quarter of its cells — those crossed by a Fermi contour of any requested μ (within the thermal
+window) or holding a small gap (curvature hot spot) — split into 4×4 (3D: 2×2×2) sub-cells.  For an integrand
 periodic and smooth over the zone this trapezoid rule converges faster than any power of 1/N;
 Fermi-surface integrands converge once the spacing resolves k_BT/ħv.
 
@@ -70,9 +72,89 @@ def lattice_nodes(model: BandModel, res: Resolution, params=None):
     return total, node_fn
 
 
-def lattice_rule(model: BandModel, res: Resolution, params=None):
-    """Uniform offset grid over the (possibly strained) Brillouin zone, as explicit arrays."""
-    total, node_fn = lattice_nodes(model, res, params)
+REFINE_SUB = {2: 4, 3: 2}      # sub-cells per direction in a refined cell
+REFINE_SHARE = 0.25           # share of coarse cells that may be refined
+
+
+def _lattice_scores(model, res, mu, kt, params=None, chunk=4096):
+    """Refinement score of every coarse cell (negative: needs refinement), chunked.
+
+    A cell needs refinement when some band passes within the thermal window of some μ across the
+    cell (|ε−μ| < 36 k_BT + 2|∇ε|h, h the cell diameter) — the Fermi contour — or when two
+    adjacent bands come closer than their change across the cell — a small gap, where the Berry
+    curvature is concentrated."""
+    p = jax.lax.stop_gradient(model.params if params is None else params)
+    mu, kt = jax.lax.stop_gradient(mu), jax.lax.stop_gradient(kt)
+    total, node_fn = lattice_nodes(model, res, p)
+    b = jax.lax.stop_gradient(model.reciprocal_vectors(p))
+    h = jnp.sum(jnp.sqrt(jnp.sum(b * b, axis=-1))) / res.n
+    band_e = lambda q: energies_at(model, q, p)
+
+    def score(q):
+        e = band_e(q)
+        g = jnp.sqrt(jnp.sum(jax.jacfwd(band_e)(q) ** 2, axis=-1))                 # (nb,)
+        reach = WINDOW * kt[None, :] + 2 * g[:, None] * h
+        fermi = (jnp.abs(e[:, None] - mu[None, :]) - reach) / (reach + 1e-12)
+        if e.shape[0] > 1:
+            spread = 2 * (g[1:] + g[:-1]) * h
+            gap = ((e[1:] - e[:-1]) - spread) / (spread + 1e-12)
+            return jnp.minimum(jnp.min(fermi), jnp.min(gap))
+        return jnp.min(fermi)
+
+    chunk = min(chunk, total)
+    nchunks = -(-total // chunk)
+
+    def body(_, c):
+        idx = c * chunk + jnp.arange(chunk)
+        kk, _w = node_fn(jnp.minimum(idx, total - 1))
+        sc = jax.vmap(score)(kk)
+        return None, jnp.where(idx < total, sc, jnp.inf)
+
+    _, sc = jax.lax.scan(body, None, jnp.arange(nchunks))
+    return sc.reshape(-1)[:total]
+
+
+def refined_lattice_nodes(model: BandModel, res: Resolution, mu, kt, params=None):
+    """Uniform offset grid plus a fixed budget of refined cells (REFINE_SHARE of the coarse cells,
+    the most urgent by :func:`_lattice_scores`, each split into REFINE_SUB^d sub-cells) placed on the
+    Fermi contours of all requested μ and on small-gap hot spots.  Returns ``(n, node_fn)``."""
+    dim, n = model.dim, res.n
+    p = model.params if params is None else params
+    total, coarse = lattice_nodes(model, res, p)
+    m = REFINE_SUB[dim]
+    sub = m ** dim
+    budget = max(1, int(REFINE_SHARE * total))
+    scores = _lattice_scores(model, res, jnp.atleast_1d(mu), jnp.atleast_1d(kt), p)
+    _, chosen = jax.lax.top_k(-scores, budget)
+    chosen = jax.lax.stop_gradient(chosen)
+    refined = jnp.zeros((total,), dtype=bool).at[chosen].set(True)
+    b = jax.lax.stop_gradient(model.reciprocal_vectors(p))
+    grid = np.stack(np.meshgrid(*([(np.arange(m) + 0.5) / m - 0.5] * dim), indexing="ij"), -1).reshape(-1, dim)
+    offsets = jnp.asarray(grid) / n                                              # reduced, (sub, dim)
+
+    def node_fn(idx):
+        is_coarse = idx < total
+        safe = jnp.minimum(idx, total - 1)
+        kc, wc = coarse(safe)
+        wc = jnp.where(refined[safe], 0.0, wc)
+        j = jnp.maximum(idx - total, 0)
+        cell = chosen[jnp.minimum(j // sub, budget - 1)]
+        kcell, wcell = coarse(cell)
+        kf = kcell + offsets[j % sub] @ b
+        k = jnp.where(is_coarse[:, None], kc, kf)
+        w = jnp.where(is_coarse, wc, wcell / sub)
+        return k, w
+
+    return total + budget * sub, node_fn
+
+
+def lattice_rule(model: BandModel, res: Resolution, params=None, mu=None, kt=None):
+    """Explicit (k, w) arrays: the uniform grid, or with ``mu``/``kt`` the refined rule that
+    ``response`` uses."""
+    if mu is None:
+        total, node_fn = lattice_nodes(model, res, params)
+    else:
+        total, node_fn = refined_lattice_nodes(model, res, mu, kt, params)
     return node_fn(jnp.arange(total))
 
 
@@ -191,6 +273,7 @@ def ray_rule(model: BandModel, res: Resolution, mu, kt, params=None):
 
 def node_count(model: BandModel, res: Resolution) -> int:
     if isinstance(model.domain, Lattice):
-        return res.n ** model.dim
+        total = res.n ** model.dim
+        return total + max(1, int(REFINE_SHARE * total)) * REFINE_SUB[model.dim] ** model.dim
     panels = len(HOTSPOTS) + 3 * MAX_CROSSINGS
     return len(model.domain.centers) * res.n * (panels + 1) * res.nodes

@@ -136,7 +136,7 @@ def _moments_at(model, mu, kt, temp, tau_arr, omega, *, level, tau_eval, filled,
     p = model.params
     tau_col = jax.tree_util.tree_map(lambda a: a[:, None], tau_arr)
     if isinstance(model.domain, Lattice):
-        n, node_fn = _mesh.lattice_nodes(model, res)
+        n, node_fn = _mesh.refined_lattice_nodes(model, res, mu, kt)
         return moments_indexed(model, p, n, node_fn, mu, kt, temp, tau_eval, tau_col, omega, filled,
                                sea, min(chunk, n))
 
@@ -289,8 +289,13 @@ def response(model: BandModel, mu, temperature, tau, frequency=0.0, *, rtol: flo
     if not _is_traced(temperature):
         if np.any(np.asarray(temperature) < 0):
             raise ValueError("response: temperature must be >= 0 K")
-    if not _is_traced(tau_arr) and isinstance(tau, (int, float, np.ndarray, list, tuple)) and np.any(np.asarray(tau) <= 0):
-        raise ValueError("response: tau must be positive (fs)")
+    if not _is_traced(tau_arr):
+        # every relaxation time of the scattering model (tau0, tau_impurity, tau_phonon), also when
+        # given as a jax array or inside a ConstantTau/PowerLawTau/MatthiessenTau object
+        for key in ("tau0", "timp", "tph"):
+            if key in tau_arr and np.any(np.asarray(tau_arr[key]) <= 0):
+                raise ValueError(f"response: tau must be positive (fs); {type(scat).__name__} has "
+                                 "a relaxation time <= 0")
     P = int(np.prod(shape)) if shape else 1
     flat = lambda x: jnp.broadcast_to(x, shape).reshape(P)
     muf, Tf = flat(mu), flat(temperature)

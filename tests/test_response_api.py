@@ -87,8 +87,10 @@ def test_bad_conditions_give_clear_errors():
 
 
 def test_memory_does_not_grow_with_the_mesh():
-    """Chunked evaluation: the compiled working memory at 768² k-points equals that at 192²
-    (XLA's own memory analysis of the compiled program; the 4096² run is in benchmarks/)."""
+    """Chunked evaluation: from 192² to 768² coarse cells the compiled working memory (XLA's own
+    memory analysis) grows by less than 32 bytes per cell — one refinement score and flag per cell,
+    no per-k geometry (which would take hundreds of bytes per k-point).  The 4096² run is in
+    benchmarks/."""
     from crosswind.solver.scattering import ConstantTau
 
     m = build("haldane")
@@ -97,5 +99,5 @@ def test_memory_does_not_grow_with_the_mesh():
     kw = dict(tau_eval=ConstantTau.evaluate, filled=1, sea=False, chunk=4096)
     small = _moments_at.lower(*args, level=3, **kw).compile().memory_analysis().temp_size_in_bytes
     large = _moments_at.lower(*args, level=5, **kw).compile().memory_analysis().temp_size_in_bytes
-    assert large <= 1.01 * small
+    assert (large - small) / (768 ** 2 - 192 ** 2) < 32
     assert large < 64 * 2 ** 20

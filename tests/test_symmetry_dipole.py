@@ -7,7 +7,7 @@ import pytest
 from crosswind.models import build
 from crosswind.solver import response
 
-COND = dict(mu=0.7, temperature=300.0, tau=100.0, resolution=5)
+COND = dict(mu=0.7, temperature=300.0, tau=100.0, resolution=3)
 
 
 @pytest.fixture(scope="module")
