@@ -113,11 +113,16 @@ def point_kernels(model, params, k, mu, kt, temp, tau_eval, tau_arr, omega, fill
     return out
 
 
+SEA_KERNELS = ("density", "ahe", "scale_ahe", "dipole_sea")
+
+
 def moments_indexed(model, params, n, node_fn, mu, kt, temp, tau_eval, tau_arr, omega, filled,
                     sea=False, chunk=4096):
-    """Σ_k w(k)·kernels(k) over ``n`` nodes produced chunk by chunk by ``node_fn(indices) -> (k, w)``
-    (indices ≥ n must get weight 0).  Only one chunk of nodes and geometry exists at a time, so
-    memory does not grow with the mesh; ``jax.checkpoint`` keeps reverse-mode memory bounded too."""
+    """Σ_k w(k)·kernels(k) over ``n`` nodes produced chunk by chunk by ``node_fn(indices)``, which
+    returns ``(k, w)`` or ``(k, w_surface, w_sea)``: Fermi-sea kernels (``SEA_KERNELS``, integrands
+    spread over the whole zone) take ``w_sea``, the Fermi-window kernels ``w_surface`` (indices ≥ n
+    get weight 0).  Only one chunk of nodes and geometry exists at a time, so memory does not grow
+    with the mesh; ``jax.checkpoint`` keeps reverse-mode memory bounded too."""
     nchunks = -(-n // chunk)
 
     def one(kk):
@@ -125,13 +130,16 @@ def moments_indexed(model, params, n, node_fn, mu, kt, temp, tau_eval, tau_arr, 
 
     def body(acc, c):
         idx = c * chunk + jnp.arange(chunk)
-        kk, ww = node_fn(idx)
-        ww = jnp.where(idx < n, ww, 0.0)
+        out = node_fn(idx)
+        kk, ws = out[0], out[1]
+        wsea = out[2] if len(out) > 2 else ws
+        ws, wsea = jnp.where(idx < n, ws, 0.0), jnp.where(idx < n, wsea, 0.0)
         vals = jax.vmap(one)(kk)
-        part = jax.tree_util.tree_map(lambda v: jnp.tensordot(ww.astype(v.dtype), v, axes=(0, 0)), vals)
+        part = {key: jnp.tensordot((wsea if key in SEA_KERNELS else ws).astype(v.dtype), v, axes=(0, 0))
+                for key, v in vals.items()}
         return jax.tree_util.tree_map(jnp.add, acc, part), None
 
-    k0, _ = node_fn(jnp.zeros((1,), dtype=jnp.int64))
+    k0 = node_fn(jnp.zeros((1,), dtype=jnp.int64))[0]
     shapes = jax.eval_shape(one, k0[0])
     init = jax.tree_util.tree_map(lambda s: jnp.zeros(s.shape, s.dtype), shapes)
     acc, _ = jax.lax.scan(jax.checkpoint(body), init, jnp.arange(nchunks))

@@ -6,7 +6,10 @@ measure d^dk/(2π)^d, so Σ w·X ≈ ∫[dk] X.
 Periodic lattices — :func:`refined_lattice_nodes`: a uniform N^d grid in reduced coordinates
 (offset by half a step so that high-symmetry points such as K are not sampled exactly), with a
 quarter of its cells — those crossed by a Fermi contour of any requested μ (within the thermal
-window) or holding a small gap (curvature hot spot) — split into 4×4 (3D: 2×2×2) sub-cells.  For an integrand
+window) or holding a small gap (curvature hot spot) — split into 4×4 (3D: 2×2×2) sub-cells for the
+Fermi-window integrands.  Fermi-sea integrands (density, anomalous Hall) keep the uniform rule,
+whose periodic trapezoid accuracy a mixed-resolution rule would spoil, and refinement is skipped
+when the flagged cells exceed the budget (a window covering much of the zone is smooth on the grid).  For an integrand
 periodic and smooth over the zone this trapezoid rule converges faster than any power of 1/N;
 Fermi-surface integrands converge once the spacing resolves k_BT/ħv.
 
@@ -127,7 +130,11 @@ def refined_lattice_nodes(model: BandModel, res: Resolution, mu, kt, params=None
     scores = _lattice_scores(model, res, jnp.atleast_1d(mu), jnp.atleast_1d(kt), p)
     _, chosen = jax.lax.top_k(-scores, budget)
     chosen = jax.lax.stop_gradient(chosen)
-    refined = jnp.zeros((total,), dtype=bool).at[chosen].set(True)
+    # refine only when every flagged cell fits the budget: otherwise the thermal window covers much
+    # of the zone, the integrand is smooth on the grid scale and the uniform (spectrally accurate)
+    # rule is the better one
+    active = jnp.sum(scores < 0) <= budget
+    refined = jnp.zeros((total,), dtype=bool).at[chosen].set(active)
     b = jax.lax.stop_gradient(model.reciprocal_vectors(p))
     grid = np.stack(np.meshgrid(*([(np.arange(m) + 0.5) / m - 0.5] * dim), indexing="ij"), -1).reshape(-1, dim)
     offsets = jnp.asarray(grid) / n                                              # reduced, (sub, dim)
@@ -135,22 +142,24 @@ def refined_lattice_nodes(model: BandModel, res: Resolution, mu, kt, params=None
     def node_fn(idx):
         is_coarse = idx < total
         safe = jnp.minimum(idx, total - 1)
-        kc, wc = coarse(safe)
-        wc = jnp.where(refined[safe], 0.0, wc)
+        kc, wfull = coarse(safe)
+        wc = jnp.where(refined[safe], 0.0, wfull)
         j = jnp.maximum(idx - total, 0)
         cell = chosen[jnp.minimum(j // sub, budget - 1)]
         kcell, wcell = coarse(cell)
         kf = kcell + offsets[j % sub] @ b
         k = jnp.where(is_coarse[:, None], kc, kf)
-        w = jnp.where(is_coarse, wc, wcell / sub)
-        return k, w
+        w = jnp.where(is_coarse, wc, jnp.where(active, wcell / sub, 0.0))
+        # Fermi-sea integrands use the plain uniform rule (coarse nodes at full weight)
+        w_sea = jnp.where(is_coarse, wfull, 0.0)
+        return k, w, w_sea
 
     return total + budget * sub, node_fn
 
 
 def lattice_rule(model: BandModel, res: Resolution, params=None, mu=None, kt=None):
-    """Explicit (k, w) arrays: the uniform grid, or with ``mu``/``kt`` the refined rule that
-    ``response`` uses."""
+    """Explicit arrays: ``(k, w)`` of the uniform grid, or with ``mu``/``kt`` the rule that
+    ``response`` uses, ``(k, w_surface, w_sea)`` (Fermi-window and Fermi-sea weights)."""
     if mu is None:
         total, node_fn = lattice_nodes(model, res, params)
     else:
