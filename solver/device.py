@@ -1,0 +1,171 @@
+"""Hall-bar voltages from sheet response tensors: crystal angle, open-circuit fields, lock-in readings.
+
+Geometry (physics-reference.md §10).  A 2D Hall bar of width W carries a current I along its
+axis x', at angle θ (``angle_deg``) from the crystal x axis; y' = ẑ × x'.  Tensors are rotated
+from the crystal frame into the bar frame with R = [[cos θ, sin θ], [−sin θ, cos θ]]
+(v'_a = R_ai v_i):
+
+    σ'_ab = R_ai R_bj σ_ij,      χ'_abc = R_ai R_bj R_ck χ_ijk.
+
+First order.  The current is fixed, j = (I/W, 0) in the bar frame, and the edges carry no current
+(j_y = 0), so the uniform field is E = σ'⁻¹ j with the full inverse (a Hall σ'_xy gives a
+transverse E_y as well).  V_xx = L E_x is the voltage between probes a distance L apart (upstream
+minus downstream), V_y = W E_y (potential of the edge at y' = 0 minus that at y' = W).
+
+Second order.  An ideal current source supplies no current at 2ω or at zero frequency, so the
+second-order field E⁽²⁾ makes the total second-order current vanish in *both* directions:
+σ' E⁽²⁾ + j⁽²⁾ = 0 → E⁽²⁾ = −σ'⁻¹ j⁽²⁾, with j⁽²ω⁾_a = χ'_abc E_b E_c and
+j⁽⁰⁾_a = χ'^dc_abc E_b E_c* (Sodemann–Fu phasor convention, design-notes §2).  With σ'_xy ≪ σ'_xx
+this reduces to the leading-order form of §10, E_y⁽²ω⁾ = −χ'_yxx E_x²/σ'_yy and
+V_y⁽²ω⁾ = −χ'_yxx I²/(W σ'_xx² σ'_yy): ∝ I² and ∝ 1/W at fixed current.  The zero-frequency
+(rectified) field uses the same σ' as the drive (exact at lock-in frequencies, ωτ ~ 1e-10).
+
+Drive and lock-in (§10, check #35).  The drive is I(t) = I0 sin ωt = Re[−i I0 e^{iωt}].  Phasors
+below are quoted for a *cosine* drive of the same amplitude (current phasor I0, real); for the
+sine drive every 2ω phasor is multiplied by (−i)² = −1 and every ω phasor by −i.  A signal
+Re[Z e^{iνt}] reads on a lock-in referenced to sin νt (of the drive) as R sin(νt + φ) with
+R = |Z| (amplitude), rms = |Z|/√2 and φ = arg Z + 90°.  So for V = K I², K > 0, the 2ω part
+−(K I0²/2) cos 2ωt shows φ = −90° and the ω part of a resistor shows φ = 0°.  The quadrature sign
+depends on the instrument's phase convention; calibrate with a known quadratic element.
+
+Also returned: the Hall angle tan θ_H = Re σ'_xy / Re σ'_xx, the nonlinear Hall ratio
+E⊥/E∥² = Re χ'_yxx / Re σ'_yy (m/V; τ-independent for the dipole term, §5.7), the sheet current
+density I0/W and the time-averaged Joule power per area ½ Re(j·E*) (W/m²).
+
+Everything is written with ``jax.numpy`` (differentiable); shapes broadcast explicitly.
+"""
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import jax
+import jax.numpy as jnp
+import numpy as np
+
+UM = 1e-6
+UA = 1e-6
+
+FIELDS_UNITS = {
+    "field_x": "V m^-1", "field_y": "V m^-1", "v_xx": "V", "v_hall": "V",
+    "v2w_x": "V", "v2w_y": "V", "v2w_y_amplitude": "V", "v2w_y_rms": "V",
+    "v2w_y_phase_deg": "deg", "v2w_y_lockin_x_rms": "V", "v2w_y_lockin_y_rms": "V",
+    "v2w_x_amplitude": "V", "v2w_x_rms": "V", "vdc_x": "V", "vdc_y": "V",
+    "hall_angle": "1", "nonlinear_ratio": "m V^-1", "current_density": "A m^-1",
+    "power_density": "W m^-2",
+}
+
+
+@dataclass(frozen=True)
+class HallBar:
+    """A Hall bar: ``width_um`` W and probe spacing ``length_um`` L (μm), drive current amplitude
+    ``current_uA`` I0 (μA) of I(t) = I0 sin ωt at ``frequency_Hz``."""
+
+    width_um: float
+    length_um: float
+    current_uA: float
+    frequency_Hz: float = 17.0
+
+    def __post_init__(self):
+        for name in ("width_um", "length_um", "current_uA"):
+            v = getattr(self, name)
+            if not (isinstance(v, (int, float, np.floating)) and v > 0 and np.isfinite(v)):
+                raise ValueError(f"HallBar: {name} must be a positive number, got {v!r}")
+        if not (self.frequency_Hz >= 0):
+            raise ValueError(f"HallBar: frequency_Hz must be >= 0, got {self.frequency_Hz!r}")
+
+
+def rotation(angle_deg):
+    """R(θ) with rows x' = (cos θ, sin θ), y' = (−sin θ, cos θ); shape (..., 2, 2)."""
+    t = jnp.deg2rad(jnp.asarray(angle_deg, dtype=jnp.float64))
+    c, s = jnp.cos(t), jnp.sin(t)
+    return jnp.stack([jnp.stack([c, s], -1), jnp.stack([-s, c], -1)], -2)
+
+
+def _common(sigma, angle_deg, *others):
+    """Broadcast the leading shapes of sigma (..., 2, 2), angle (...) and other tensors explicitly."""
+    sigma = jnp.asarray(sigma)
+    angle = jnp.asarray(angle_deg, dtype=jnp.float64)
+    lead = [sigma.shape[:-2], angle.shape] + [jnp.shape(o)[:-3] for o in others]
+    shape = tuple(np.broadcast_shapes(*lead))
+    out = [jnp.broadcast_to(sigma, shape + sigma.shape[-2:]), jnp.broadcast_to(angle, shape)]
+    out += [jnp.broadcast_to(jnp.asarray(o), shape + jnp.shape(o)[-3:]) for o in others]
+    return shape, out
+
+
+def rotate_sigma(sigma, angle_deg):
+    """σ' = R σ Rᵀ (bar frame, x' along the current at ``angle_deg`` from crystal x)."""
+    _, (s, a) = _common(sigma, angle_deg)
+    R = rotation(a).astype(s.dtype)
+    return jnp.einsum("...ai,...bj,...ij->...ab", R, R, s)
+
+
+def rotate_chi(chi, angle_deg):
+    """χ'_abc = R_ai R_bj R_ck χ_ijk."""
+    chi = jnp.asarray(chi)
+    lead = tuple(np.broadcast_shapes(chi.shape[:-3], jnp.shape(angle_deg)))
+    c = jnp.broadcast_to(chi, lead + chi.shape[-3:])
+    R = rotation(jnp.broadcast_to(jnp.asarray(angle_deg, dtype=jnp.float64), lead)).astype(c.dtype)
+    return jnp.einsum("...ai,...bj,...ck,...ijk->...abc", R, R, R, c)
+
+
+def hall_bar(sigma, chi, chi_dc, bar: HallBar, angle_deg=0.0) -> dict:
+    """Voltages and ratios of ``bar`` for sheet tensors in the crystal frame: ``sigma`` (..., 2, 2) S,
+    ``chi``/``chi_dc`` (..., 2, 2, 2) A·m/V² (Sodemann–Fu phasor convention), current at
+    ``angle_deg`` (scalar or array broadcasting with the leading dims).  Returns a dict of arrays
+    (units in :data:`FIELDS_UNITS`); ω and 2ω phasors are for a cosine drive of amplitude I0
+    (see the module docstring), amplitudes, rms values and lock-in phases are for the sine drive.
+    Compiled once per shape (``jax.jit``; ``bar`` is static) and differentiable."""
+    if jnp.shape(sigma)[-2:] != (2, 2) or jnp.shape(chi)[-3:] != (2, 2, 2):
+        raise ValueError("hall_bar: sigma must be (..., 2, 2) and chi (..., 2, 2, 2): the device layer "
+                         "handles 2D sheets only")
+    return _hall_bar_jit(sigma, chi, chi_dc, bar, angle_deg)
+
+
+def _hall_bar(sigma, chi, chi_dc, bar: HallBar, angle_deg=0.0) -> dict:
+    shape, (s, a, c, cd) = _common(jnp.asarray(sigma).astype(jnp.complex128), angle_deg,
+                                   jnp.asarray(chi).astype(jnp.complex128),
+                                   jnp.asarray(chi_dc).astype(jnp.complex128))
+    sp = rotate_sigma(s, a)
+    cp = rotate_chi(c, a)
+    cdp = rotate_chi(cd, a)
+    W, L, I0 = bar.width_um * UM, bar.length_um * UM, bar.current_uA * UA
+    rho = jnp.linalg.inv(sp)
+    j = jnp.zeros(shape + (2,), dtype=jnp.complex128).at[..., 0].set(I0 / W)
+    E = jnp.einsum("...ab,...b->...a", rho, j)
+    j2 = jnp.einsum("...abc,...b,...c->...a", cp, E, E)
+    j0 = jnp.einsum("...abc,...b,...c->...a", cdp, E, jnp.conj(E)).real.astype(jnp.complex128)
+    E2 = -jnp.einsum("...ab,...b->...a", rho, j2)
+    E0 = -jnp.einsum("...ab,...b->...a", rho, j0)
+    v2y = W * E2[..., 1]
+    v2x = L * E2[..., 0]
+    amp_y = jnp.abs(v2y)
+    phase = lockin_reading(v2y, 2)[2]
+    rms_y = amp_y / jnp.sqrt(2.0)
+    sxx, syy, sxy = sp[..., 0, 0].real, sp[..., 1, 1].real, sp[..., 0, 1].real
+    return {
+        "field_x": E[..., 0], "field_y": E[..., 1],
+        "v_xx": L * E[..., 0], "v_hall": W * E[..., 1],
+        "v2w_x": v2x, "v2w_y": v2y,
+        "v2w_y_amplitude": amp_y, "v2w_y_rms": rms_y, "v2w_y_phase_deg": phase,
+        "v2w_y_lockin_x_rms": rms_y * jnp.cos(jnp.deg2rad(phase)),
+        "v2w_y_lockin_y_rms": rms_y * jnp.sin(jnp.deg2rad(phase)),
+        "v2w_x_amplitude": jnp.abs(v2x), "v2w_x_rms": jnp.abs(v2x) / jnp.sqrt(2.0),
+        # rectified part: the sine drive gives the same E E* as the cosine drive
+        "vdc_x": L * E0[..., 0].real, "vdc_y": W * E0[..., 1].real,
+        "hall_angle": sxy / sxx,
+        "nonlinear_ratio": cp[..., 1, 0, 0].real / syy,
+        "current_density": jnp.full(shape, I0 / W),
+        "power_density": 0.5 * jnp.einsum("...a,...a->...", j, jnp.conj(E)).real,
+    }
+
+
+_hall_bar_jit = jax.jit(_hall_bar, static_argnames=("bar",))
+
+
+def lockin_reading(amplitude_phasor, harmonic: int = 2) -> tuple:
+    """(amplitude, rms, phase in deg) that a lock-in referenced to the sine drive shows for a
+    harmonic phasor quoted for the cosine drive (harmonic 1: ×(−i); harmonic 2: ×(−1))."""
+    z = jnp.asarray(amplitude_phasor, dtype=jnp.complex128) * ((-1j) ** harmonic)
+    ph = jnp.rad2deg(jnp.angle(z)) + 90.0
+    ph = jnp.where(ph > 180.0, ph - 360.0, ph)
+    return jnp.abs(z), jnp.abs(z) / jnp.sqrt(2.0), ph

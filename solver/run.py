@@ -1,0 +1,403 @@
+"""Run a scenario's sweep: batches, checkpoints and resume, the labeled dataset.
+
+The grid is the outer product of the scenario axes (slowest first: strain, temperature,
+scattering, carrier; the current angle last).  The current angle costs no k-space work: the
+tensors are computed once per material/conditions point and rotated (:mod:`.device`).
+
+Batches.  The *inner* axis is the innermost non-angle axis with more than one value (else the
+last non-angle axis); one batch evaluates all its values in one call of ``response`` with arrays,
+so every batch has the same array shape and JAX compiles once for the whole sweep.  One batch is
+run for every combination of the other (outer) axes.  A carrier density or gate voltage goes
+through :func:`~crosswind.solver.density.mu_from_density` (gate via
+:func:`~crosswind.solver.density.gate_density`) at each point's temperature.
+
+Checkpoints and resume.  Each finished batch is written to ``<folder>/batches/batch_<i>.npz``
+atomically (a temporary file in the same folder, then ``os.replace``), so an interrupted run leaves
+only complete batches.  ``run.json`` records a fingerprint of the scenario and the package
+version; a rerun with the same fingerprint loads the finished batches and computes only the rest.
+A folder holding another scenario's checkpoints is refused.
+
+Results: ``results.nc`` (xarray Dataset, engine h5netcdf; every axis and field carries ``units``
+and ``long_name`` attributes; complex tensors are stored as real part ``X`` and imaginary part
+``X_imag``), ``results.csv`` (one row per grid point, tensor components as columns) and a copy of
+the scenario (``scenario.toml``).  Dataset attributes hold the provenance: package version,
+scenario text, numerics used (resolution levels, convergence) — the per-field error estimates
+are variables ``error_<field>``.
+"""
+from __future__ import annotations
+
+import functools
+import hashlib
+import itertools
+import json
+import os
+import sys
+import tempfile
+import time
+from importlib import metadata
+from pathlib import Path
+from typing import Callable
+
+import numpy as np
+
+from .scenario import Scenario
+
+DEVICE_KEYS = ("field_x", "field_y", "v_xx", "v_hall", "v2w_x", "v2w_y", "v2w_y_amplitude", "v2w_y_rms",
+               "v2w_y_phase_deg", "v2w_y_lockin_x_rms", "v2w_y_lockin_y_rms", "v2w_x_amplitude",
+               "v2w_x_rms", "vdc_x", "vdc_y", "hall_angle", "nonlinear_ratio", "current_density",
+               "power_density")
+ERROR_FIELDS = ("density", "sigma", "sigma_anomalous", "dipole", "chi", "chi_dc", "chi_dipole", "chi_drude",
+                "chi_intrinsic")
+LONG = {
+    "density": "carrier density relative to neutrality", "mu": "chemical potential",
+    "sigma": "sheet conductivity (crystal frame)", "sigma_drude": "Drude part of sigma",
+    "sigma_anomalous": "intrinsic anomalous (Berry-curvature) part of sigma",
+    "dipole": "Berry-curvature dipole (z curvature)", "chi": "second-harmonic coefficient (crystal frame)",
+    "chi_dc": "rectified coefficient (crystal frame)", "chi_dipole": "dipole part of chi",
+    "chi_drude": "nonlinear Drude part of chi", "chi_intrinsic": "intrinsic (connection polarizability) part of chi",
+    "sigma_bar": "sheet conductivity in the bar frame (x' along the current)",
+    "chi_bar": "second-harmonic coefficient in the bar frame",
+    "field_x": "longitudinal field phasor at omega (cosine drive)", "field_y": "transverse field phasor at omega",
+    "v_xx": "longitudinal voltage phasor at omega over length L", "v_hall": "transverse voltage phasor at omega",
+    "v2w_x": "longitudinal 2omega voltage phasor (cosine drive)", "v2w_y": "transverse 2omega voltage phasor (cosine drive)",
+    "v2w_y_amplitude": "transverse 2omega voltage amplitude", "v2w_y_rms": "transverse 2omega voltage, lock-in rms",
+    "v2w_y_phase_deg": "lock-in phase of the transverse 2omega voltage vs sin(2 omega t), sine drive",
+    "v2w_y_lockin_x_rms": "lock-in X (in phase with sin 2 omega t), rms",
+    "v2w_y_lockin_y_rms": "lock-in Y (quadrature), rms",
+    "v2w_x_amplitude": "longitudinal 2omega voltage amplitude", "v2w_x_rms": "longitudinal 2omega voltage rms",
+    "vdc_x": "rectified longitudinal voltage", "vdc_y": "rectified transverse voltage",
+    "hall_angle": "Hall angle tangent Re sigma'_xy / Re sigma'_xx",
+    "nonlinear_ratio": "E_perp / E_par^2 = Re chi'_yxx / Re sigma'_yy",
+    "current_density": "sheet current density amplitude I0/W", "power_density": "time-averaged Joule power per area",
+    "resolution_level": "k-mesh refinement level used", "converged": "automatic refinement reached rtol (1) or not (0)",
+}
+
+
+class RunError(RuntimeError):
+    """The run cannot proceed (e.g. the output folder holds another scenario)."""
+
+
+def package_version() -> str:
+    try:
+        return metadata.version("crosswind")
+    except metadata.PackageNotFoundError:
+        return "unknown"
+
+
+def fingerprint(scn: Scenario) -> str:
+    return hashlib.sha256((scn.text + "\n" + package_version()).encode()).hexdigest()[:16]
+
+
+def _atomic_write(path: Path, writer: Callable[[str], None]):
+    path.parent.mkdir(parents=True, exist_ok=True)
+    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
+    os.close(fd)
+    try:
+        writer(tmp)
+        os.replace(tmp, path)
+    finally:
+        if os.path.exists(tmp):
+            os.unlink(tmp)
+
+
+def _atomic_text(path: Path, text: str):
+    def w(tmp):
+        with open(tmp, "w", encoding="utf-8") as f:
+            f.write(text)
+    _atomic_write(path, w)
+
+
+def _savez(tmp: str, res: dict):
+    with open(tmp, "wb") as f:       # a file object: np.savez would append ".npz" to a name
+        np.savez(f, **res)
+
+
+def batch_plan(scn: Scenario):
+    """(inner axis index, list of outer index tuples).  Axes exclude the angle (last axis)."""
+    axes = scn.axes[:-1]
+    multi = [i for i, a in enumerate(axes) if len(a) > 1]
+    inner = multi[-1] if multi else len(axes) - 1
+    outer = [i for i in range(len(axes)) if i != inner]
+    combos = list(itertools.product(*[range(len(axes[i])) for i in outer]))
+    return inner, outer, combos
+
+
+class _Progress:
+    def __init__(self, total: int, enabled: bool):
+        self.total, self.done, self.enabled = total, 0, enabled
+        self.bar = None
+        if enabled:
+            try:
+                from tqdm import tqdm
+                self.bar = tqdm(total=total, unit="batch", desc="crosswind", file=sys.stderr)
+            except ImportError:
+                self.bar = None
+
+    def update(self, skipped=False):
+        self.done += 1
+        if not self.enabled:
+            return
+        if self.bar is not None:
+            self.bar.update(1)
+        else:
+            tag = " (from checkpoint)" if skipped else ""
+            print(f"crosswind: batch {self.done}/{self.total}{tag}", file=sys.stderr, flush=True)
+
+    def close(self):
+        if self.bar is not None:
+            self.bar.close()
+
+
+def _scattering(scn: Scenario, arrays: dict):
+    from .scattering import ConstantTau, MatthiessenTau, PowerLawTau
+    if scn.scattering == "constant":
+        return ConstantTau(arrays["tau"])
+    if scn.scattering == "power-law":
+        return PowerLawTau(arrays["tau0"], arrays["tau_exponent"], arrays["tau_reference_energy"],
+                           arrays["tau_energy_scale"])
+    return MatthiessenTau(arrays["tau_impurity"], arrays["tau_phonon"], arrays["tau_reference_temperature"])
+
+
+def gate_to_density(scn: Scenario, volts):
+    """Gate voltage (V) → density (m⁻²) with the scenario's parallel-plate gate."""
+    from .density import gate_density
+    d = scn.device
+    if d.capacitance_nF_cm2 is not None:
+        cap = d.capacitance_nF_cm2 * 1e-9 / 1e-4        # F/m²
+        from scipy import constants as c
+        return cap * (np.asarray(volts) - d.gate_offset_V) / c.e
+    return np.asarray(gate_density(np.asarray(volts), d.dielectric_nm, d.permittivity, d.gate_offset_V))
+
+
+MU_ITERATIONS = 44       # bisection steps on the (-5, 5) eV bracket: 10 eV / 2^44 ≈ 6e-13 eV
+
+
+@functools.lru_cache(maxsize=None)
+def _mu_solver():
+    """``mu_from_density`` jitted once per process, so every batch reuses the compiled solve."""
+    import jax
+    from .density import mu_from_density
+    return jax.jit(mu_from_density, static_argnames=("bracket", "resolution", "iterations"))
+
+
+def compute_batch(scn: Scenario, values: dict, model) -> dict:
+    """Evaluate one batch.  ``values`` maps axis name → 1-D array of the batch's P points."""
+    from .device import HallBar, hall_bar
+    import jax.numpy as jnp
+    from .response import response
+    P = len(next(iter(values.values())))
+    temp = np.asarray(values["temperature"], dtype=float)
+    if scn.carrier == "mu_eV":
+        mu = np.asarray(values["chemical_potential"], dtype=float)
+    else:
+        if scn.carrier == "gate_V":
+            dens = gate_to_density(scn, values["gate_voltage"])
+        else:
+            dens = np.asarray(values["density_target"]) * 1e4
+        mu = np.asarray(_mu_solver()(model, jnp.asarray(dens, dtype=jnp.float64), jnp.asarray(temp),
+                                     resolution=scn.numerics.density_resolution, iterations=MU_ITERATIONS))
+    scat = _scattering(scn, values)
+    r = response(model, mu=mu, temperature=temp, tau=scat, frequency=scn.device.frequency_Hz,
+                 rtol=scn.numerics.rtol, resolution=scn.numerics.resolution, intrinsic=scn.numerics.intrinsic)
+    out = {"mu": mu, "density": np.asarray(r.density)}
+    for k in ("sigma", "sigma_drude", "sigma_anomalous", "dipole", "chi", "chi_dc"):
+        out[k] = np.asarray(getattr(r, k))
+    for part, v in r.chi_parts.items():
+        out[f"chi_{part}"] = np.asarray(v)
+    for k in ERROR_FIELDS:
+        out[f"error_{k}"] = np.asarray(r.error[k])
+    info = dict(r.resolution)
+    out["resolution_level"] = np.full(P, int(info["level"]))
+    out["converged"] = np.full(P, -1 if info["converged"] is None else int(bool(info["converged"])))
+    out["nodes_per_condition"] = np.full(P, int(info["nodes_per_condition"]))
+    # device quantities for every current angle: (P, A)
+    angles = np.asarray(scn.axes[-1].values)
+    bar = HallBar(scn.device.width_um, scn.device.length_um, scn.device.current_uA, scn.device.frequency_Hz)
+    sig = np.repeat(out["sigma"][:, None], len(angles), axis=1)
+    chi = np.repeat(out["chi"][:, None], len(angles), axis=1)
+    chid = np.repeat(out["chi_dc"][:, None], len(angles), axis=1)
+    ang = np.broadcast_to(angles[None, :], (P, len(angles)))
+    dev = hall_bar(sig, chi, chid, bar, ang)
+    for k in DEVICE_KEYS:
+        out[f"dev_{k}"] = np.asarray(dev[k])
+    from .device import rotate_chi, rotate_sigma
+    out["dev_sigma_bar"] = np.asarray(rotate_sigma(sig, ang))
+    out["dev_chi_bar"] = np.asarray(rotate_chi(chi, ang))
+    return out
+
+
+def run_scenario(scn: Scenario, output: Path | str | None = None, *, progress: bool = True,
+                 after_batch: Callable[[int], None] | None = None):
+    """Run (or resume) the sweep of ``scn``; returns the xarray Dataset (also written to disk).
+    ``after_batch(i)`` is called after batch ``i`` is checkpointed (for tests and monitoring)."""
+    folder = Path(output) if output is not None else scn.output_folder
+    fp = fingerprint(scn)
+    manifest = folder / "run.json"
+    if manifest.exists():
+        try:
+            old = json.loads(manifest.read_text(encoding="utf-8"))
+        except (OSError, json.JSONDecodeError) as exc:
+            raise RunError(f"{manifest}: unreadable ({exc}); delete the folder or choose another --output") from exc
+        if old.get("fingerprint") != fp:
+            raise RunError(f"{folder} holds results of a different scenario or package version "
+                           f"(fingerprint {old.get('fingerprint')} vs {fp}); choose another --output "
+                           "folder or delete this one")
+    elif folder.exists() and any(folder.iterdir()):
+        raise RunError(f"{folder} exists and is not empty; choose another --output folder")
+    folder.mkdir(parents=True, exist_ok=True)
+    inner, outer, combos = batch_plan(scn)
+    _atomic_text(manifest, json.dumps({"fingerprint": fp, "version": package_version(),
+                                        "batches": len(combos), "started": time.strftime("%Y-%m-%dT%H:%M:%S")},
+                                       indent=1))
+    _atomic_text(folder / "scenario.toml", scn.text)
+    axes = scn.axes[:-1]
+    bdir = folder / "batches"
+    bdir.mkdir(exist_ok=True)
+    prog = _Progress(len(combos), progress)
+    results, computed, t0 = [], [], time.time()
+    models: dict = {}
+    try:
+        for b, combo in enumerate(combos):
+            path = bdir / f"batch_{b:05d}.npz"
+            if path.exists():
+                with np.load(path) as z:
+                    results.append({k: z[k] for k in z.files})
+                prog.update(skipped=True)
+                continue
+            idx = dict(zip(outer, combo))
+            P = len(axes[inner])
+            values = {}
+            for i, a in enumerate(axes):
+                if i == inner:
+                    values[a.name] = np.asarray(a.values, dtype=float)
+                else:
+                    values[a.name] = np.full(P, a.values[idx[i]], dtype=float)
+            strain = values["strain"][0] if "strain" in values and inner != 0 else None
+            if "strain" in values and inner == 0:
+                # strain is the only sweep: one model per point (no array form for model params)
+                parts = [compute_batch(scn, {k: v[j:j + 1] for k, v in values.items()},
+                                       scn.build_model(values["strain"][j])) for j in range(P)]
+                res = {k: np.concatenate([p[k] for p in parts]) for k in parts[0]}
+            else:
+                key = strain
+                if key not in models:
+                    models[key] = scn.build_model(strain)
+                res = compute_batch(scn, values, models[key])
+            _atomic_write(path, lambda tmp, res=res: _savez(tmp, res))
+            results.append(res)
+            computed.append(b)
+            prog.update()
+            if after_batch is not None:
+                after_batch(b)
+    finally:
+        prog.close()
+    ds = assemble(scn, results, inner, outer, combos)
+    ds.attrs["batches_computed_this_run"] = json.dumps(computed)
+    ds.attrs["wall_time_s_this_run"] = round(time.time() - t0, 3)
+    write_results(ds, folder)
+    return ds
+
+
+def assemble(scn: Scenario, results, inner, outer, combos):
+    """Place batch results on the full grid and label it."""
+    import xarray as xr
+    axes = scn.axes[:-1]
+    shape = tuple(len(a) for a in axes)
+    A = len(scn.axes[-1])
+    comp = ["x", "y"]
+    grid: dict = {}
+    for b, combo in enumerate(combos):
+        res = results[b]
+        for k, v in res.items():
+            if k not in grid:
+                grid[k] = np.zeros(shape + v.shape[1:], dtype=v.dtype)
+            sl = [0] * len(axes)
+            for i, c in zip(outer, combo):
+                sl[i] = c
+            sl[inner] = slice(None)
+            # batch axis (P) is the inner axis; move it into place
+            grid[k][tuple(sl)] = v
+    dims = [a.name for a in axes]
+    coords = {a.name: (a.name, np.asarray(a.values), {"units": a.unit, "long_name": a.long_name,
+                                                      "scenario_key": a.key}) for a in scn.axes}
+    coords.update({"i": comp, "j": comp, "k": comp})
+    units = _units()
+    data = {}
+    for k, v in grid.items():
+        name = k[4:] if k.startswith("dev_") else k
+        d = list(dims) + (["current_angle"] if k.startswith("dev_") else [])
+        extra = v.ndim - len(d)
+        d = d + ["i", "j", "k"][:extra]
+        attrs = {"units": units.get(name.replace("error_", ""), ""), "long_name": LONG.get(name, name)}
+        if name.startswith("error_"):
+            attrs["long_name"] = f"estimated absolute integration error of {name[6:]} (|fine - coarse| mesh)"
+        if name == "density":
+            attrs["long_name"] = LONG["density"]
+        if np.iscomplexobj(v):
+            data[name] = (d, v.real, attrs)
+            data[name + "_imag"] = (d, v.imag, dict(attrs, long_name="imaginary part of " + attrs["long_name"]))
+        else:
+            data[name] = (d, v, attrs)
+    ds = xr.Dataset(data, coords=coords)
+    assert ds.sizes["current_angle"] == A
+    numerics = {"rtol": scn.numerics.rtol, "resolution": scn.numerics.resolution or "auto",
+                "intrinsic": scn.numerics.intrinsic, "density_resolution": scn.numerics.density_resolution,
+                "levels_used": sorted({int(x) for x in np.unique(grid["resolution_level"])}),
+                "all_converged": (None if np.all(grid["converged"] < 0)
+                                  else bool(np.all(grid["converged"] == 1)))}
+    ds.attrs.update({
+        "title": "Crosswind sweep", "crosswind_version": package_version(),
+        "scenario_file": str(scn.path), "scenario_text": scn.text,
+        "numerics": json.dumps(numerics), "carrier_axis": scn.carrier, "scattering": scn.scattering,
+        "device": json.dumps(scn.device.__dict__),
+        "conventions": "q = -e; E(t) = Re[E exp(i omega t)]; j2w_a = chi_abc E_b E_c (Sodemann-Fu phasor); "
+                       "drive I(t) = I0 sin(omega t); omega/2omega phasors quoted for a cosine drive; "
+                       "bar frame x' along the current at current_angle from crystal x",
+        "model": "relaxation-time Boltzmann theory, band-independent tau, to second order in E",
+    })
+    return ds
+
+
+def _units():
+    from .device import FIELDS_UNITS
+    from .response import UNITS_2D
+    u = dict(UNITS_2D)
+    u.update({"mu": "eV", "chi_dipole": u["chi"], "chi_drude": u["chi"], "chi_intrinsic": u["chi"],
+              "sigma_bar": "S", "chi_bar": u["chi"], "resolution_level": "1", "converged": "1",
+              "nodes_per_condition": "1"})
+    u.update(FIELDS_UNITS)
+    return u
+
+
+def flat_table(ds):
+    """One row per grid point (all axes, angle included); tensor components become columns."""
+    import xarray as xr
+    grid_dims = [d for d in ds.dims if d not in ("i", "j", "k")]
+    template = xr.DataArray(np.zeros([ds.sizes[d] for d in grid_dims]), dims=grid_dims,
+                            coords={d: ds[d] for d in grid_dims})
+    cols, units = {}, {}
+    for name, var in ds.data_vars.items():
+        tdims = [d for d in var.dims if d in ("i", "j", "k")]
+        combos = itertools.product(*[ds[d].values for d in tdims]) if tdims else [()]
+        for combo in combos:
+            sub = var.sel(dict(zip(tdims, combo))).drop_vars(tdims) if tdims else var
+            col = f"{name}_{''.join(combo)}" if tdims else name
+            cols[col] = xr.broadcast(sub, template)[0].transpose(*grid_dims)
+            units[col] = var.attrs.get("units", "")
+    frame = xr.Dataset(cols).to_dataframe()[list(cols)]
+    frame.columns = [f"{c} [{units[c]}]" if units[c] else c for c in frame.columns]
+    frame.index.names = [f"{n} [{ds[n].attrs.get('units', '')}]" for n in frame.index.names]
+    return frame
+
+
+def write_results(ds, folder: Path):
+    _atomic_write(folder / "results.nc", lambda tmp: ds.to_netcdf(tmp, engine="h5netcdf"))
+    frame = flat_table(ds)
+    _atomic_write(folder / "results.csv", lambda tmp: frame.to_csv(tmp))
+
+
+def open_results(folder) -> "object":
+    """The dataset written by :func:`run_scenario` (loaded into memory)."""
+    import xarray as xr
+    with xr.open_dataset(Path(folder) / "results.nc", engine="h5netcdf") as ds:
+        return ds.load()

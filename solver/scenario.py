@@ -1,0 +1,454 @@
+"""Scenario files: one TOML file describing material, device, conditions, numerics and output.
+
+The schema is Crosswind's own; ``docs/scenario-files.md`` documents it with a commented example.
+Tables and keys (units in the key names):
+
+    [material]            model = "<catalogue name>"  OR  tight_binding = "<file.toml>" (relative
+                          to the scenario file); [material.parameters] model parameters;
+                          [material.strain] either xx, yy, xy (tensor components) or
+                          magnitude, angle_deg, poisson (uniaxial; ``magnitude`` may be a sweep)
+    [device]              width_um, length_um, current_uA (amplitude of I0 sin ωt), frequency_Hz,
+                          current_angle_deg, dielectric_nm, permittivity | capacitance_nF_cm2,
+                          gate_offset_V
+    [conditions]          exactly one of gate_V, density_cm2, mu_eV; temperature_K;
+                          tau_fs | [conditions.scattering]; current_angle_deg
+    [conditions.scattering]  kind = "constant" (tau_fs) | "power-law" (tau0_fs, exponent,
+                          reference_energy_eV, energy_scale_eV) | "matthiessen" (tau_impurity_fs,
+                          tau_phonon_fs, reference_temperature_K)
+    [numerics]            rtol, resolution ("auto" or a level 0..4), intrinsic, density_resolution
+    [output]              folder (relative to the scenario file), figures
+
+Every numeric condition is a value, a list of values, or a sweep {start, stop, num[, spacing =
+"linear" | "log"]}; the grid is the outer product of all axes.  Loading checks everything (keys,
+types, ranges, the model and its parameters) before anything is written; errors are
+:class:`ScenarioError` naming the file, the table and the key, and saying what is allowed.
+"""
+from __future__ import annotations
+
+import difflib
+import math
+import tomllib
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+
+class ScenarioError(ValueError):
+    """A scenario file is malformed; the message names the file, table and key."""
+
+
+@dataclass(frozen=True)
+class Axis:
+    """One sweep axis: dataset dimension ``name``, scenario ``key``, ``unit`` and its ``values``."""
+
+    name: str
+    key: str
+    unit: str
+    values: tuple
+    long_name: str = ""
+
+    def __len__(self):
+        return len(self.values)
+
+
+@dataclass(frozen=True)
+class Strain:
+    """Tensor components (``kind == "tensor"``) or uniaxial strain (``kind == "uniaxial"``; the
+    magnitude values live on the ``strain`` axis)."""
+
+    kind: str
+    xx: float = 0.0
+    yy: float = 0.0
+    xy: float = 0.0
+    angle_deg: float = 0.0
+    poisson: float = 0.165
+
+
+@dataclass(frozen=True)
+class Material:
+    model: str | None
+    tight_binding: Path | None
+    parameters: tuple            # ((name, value), ...)
+    strain: Strain | None
+
+
+@dataclass(frozen=True)
+class Device:
+    width_um: float
+    length_um: float
+    current_uA: float
+    frequency_Hz: float
+    dielectric_nm: float | None
+    permittivity: float | None
+    capacitance_nF_cm2: float | None
+    gate_offset_V: float
+
+
+@dataclass(frozen=True)
+class Numerics:
+    rtol: float = 1e-3
+    resolution: int | None = None    # None: automatic refinement to rtol
+    intrinsic: bool = True
+    density_resolution: int = 2
+
+
+@dataclass(frozen=True)
+class Scenario:
+    path: Path
+    text: str
+    material: Material
+    device: Device
+    carrier: str                 # "gate_V" | "density_cm2" | "mu_eV"
+    scattering: str              # "constant" | "power-law" | "matthiessen"
+    axes: tuple                  # Axis, slowest first; the current angle is always last
+    numerics: Numerics
+    output_folder: Path
+    figures: bool
+
+    def axis(self, name: str) -> Axis:
+        for a in self.axes:
+            if a.name == name:
+                return a
+        raise KeyError(name)
+
+    @property
+    def shape(self) -> tuple:
+        return tuple(len(a) for a in self.axes)
+
+    def build_model(self, strain_magnitude: float | None = None):
+        """The band model (at one value of the strain axis, if there is one)."""
+        return _build_model(self.material, strain_magnitude, self.path)
+
+
+# ----------------------------------------------------------------------------- schema ---------
+_TOP = ("material", "device", "conditions", "numerics", "output")
+_MATERIAL = ("model", "tight_binding", "parameters", "strain")
+_STRAIN_TENSOR = ("xx", "yy", "xy")
+_STRAIN_UNIAXIAL = ("magnitude", "angle_deg", "poisson")
+_DEVICE = ("width_um", "length_um", "current_uA", "frequency_Hz", "current_angle_deg", "dielectric_nm",
+           "permittivity", "capacitance_nF_cm2", "gate_offset_V")
+_CARRIERS = {"gate_V": ("gate_voltage", "V", "gate voltage"),
+             "density_cm2": ("density_target", "cm^-2", "carrier density (electrons > 0)"),
+             "mu_eV": ("chemical_potential", "eV", "chemical potential")}
+_SCATTERING = {
+    "constant": {"tau_fs": ("tau", "fs", "relaxation time", True)},
+    "power-law": {"tau0_fs": ("tau0", "fs", "relaxation time prefactor τ0", True),
+                  "exponent": ("tau_exponent", "1", "power r of τ = τ0(|ε−ε_ref|/ε_s)^r", None),
+                  "reference_energy_eV": ("tau_reference_energy", "eV", "reference energy ε_ref", None),
+                  "energy_scale_eV": ("tau_energy_scale", "eV", "energy scale ε_s", True)},
+    "matthiessen": {"tau_impurity_fs": ("tau_impurity", "fs", "impurity relaxation time", True),
+                    "tau_phonon_fs": ("tau_phonon", "fs", "phonon relaxation time at the reference T", True),
+                    "reference_temperature_K": ("tau_reference_temperature", "K",
+                                                "reference temperature of the phonon rate", True)},
+}
+_SCAT_DEFAULTS = {"power-law": {"exponent": 0.0, "reference_energy_eV": 0.0, "energy_scale_eV": 0.1},
+                  "matthiessen": {"reference_temperature_K": 300.0}}
+_CONDITIONS = tuple(_CARRIERS) + ("temperature_K", "tau_fs", "scattering", "current_angle_deg")
+_NUMERICS = ("rtol", "resolution", "intrinsic", "density_resolution")
+_OUTPUT = ("folder", "figures")
+_SWEEP = ("start", "stop", "num", "spacing")
+
+
+class _Ctx:
+    def __init__(self, source: str):
+        self.source = source
+
+    def fail(self, table: str, key: str | None, problem: str, allowed: str = ""):
+        where = f"[{table}]" + (f" key '{key}'" if key else "")
+        msg = f"{self.source}: {where}: {problem}"
+        if allowed:
+            msg += f" Allowed: {allowed}."
+        raise ScenarioError(msg)
+
+    def check_keys(self, table: str, data: dict, allowed: tuple):
+        for key in data:
+            if key not in allowed:
+                close = difflib.get_close_matches(key, allowed, n=1, cutoff=0.5)
+                hint = f" Did you mean '{close[0]}'?" if close else ""
+                self.fail(table, key, f"unknown key.{hint}", ", ".join(allowed))
+
+    def table(self, table: str, value) -> dict:
+        if not isinstance(value, dict):
+            self.fail(table, None, f"must be a table, got {type(value).__name__}.")
+        return value
+
+
+def _is_num(v) -> bool:
+    return isinstance(v, (int, float)) and not isinstance(v, bool) and math.isfinite(v)
+
+
+def _number(ctx, table, key, v, positive=False, nonneg=False) -> float:
+    if not _is_num(v):
+        ctx.fail(table, key, f"must be a number, got {v!r}.")
+    v = float(v)
+    if positive and not v > 0:
+        ctx.fail(table, key, f"must be positive, got {v:g}.")
+    if nonneg and v < 0:
+        ctx.fail(table, key, f"must be >= 0, got {v:g}.")
+    return v
+
+
+def _values(ctx, table, key, v, positive=False, nonneg=False) -> tuple:
+    """A value, a list of values or a sweep table → tuple of floats."""
+    if isinstance(v, dict):
+        ctx.check_keys(f"{table}.{key}", v, _SWEEP)
+        for need in ("start", "stop", "num"):
+            if need not in v:
+                ctx.fail(f"{table}.{key}", need, "missing in the sweep.", "a sweep {start, stop, num[, spacing]}")
+        a = _number(ctx, f"{table}.{key}", "start", v["start"])
+        b = _number(ctx, f"{table}.{key}", "stop", v["stop"])
+        n = v["num"]
+        if not (isinstance(n, int) and not isinstance(n, bool) and n >= 1):
+            ctx.fail(f"{table}.{key}", "num", f"must be an integer >= 1, got {n!r}.")
+        spacing = v.get("spacing", "linear")
+        if spacing == "linear":
+            vals = np.linspace(a, b, n)
+        elif spacing == "log":
+            if not (a > 0 and b > 0):
+                ctx.fail(f"{table}.{key}", "spacing", "a log sweep needs positive start and stop.")
+            vals = np.geomspace(a, b, n)
+        else:
+            ctx.fail(f"{table}.{key}", "spacing", f"unknown spacing {spacing!r}.", '"linear", "log"')
+        out = tuple(float(x) for x in vals)
+    elif isinstance(v, list):
+        if not v:
+            ctx.fail(table, key, "an empty list has no values.")
+        out = tuple(_number(ctx, table, key, x) for x in v)
+    else:
+        out = (_number(ctx, table, key, v),)
+    for x in out:
+        if positive and not x > 0:
+            ctx.fail(table, key, f"every value must be positive, got {x:g}.")
+        if nonneg and x < 0:
+            ctx.fail(table, key, f"every value must be >= 0, got {x:g}.")
+    if len(set(out)) != len(out):
+        ctx.fail(table, key, "repeated values in a sweep axis.")
+    return out
+
+
+def _build_model(material: Material, strain_magnitude, source_path):
+    from crosswind.models import build, load_tight_binding
+    params = dict(material.parameters)
+    if material.strain is not None:
+        st = material.strain
+        if st.kind == "tensor":
+            xx, yy, xy = st.xx, st.yy, st.xy
+        else:
+            from crosswind.models.strain import uniaxial
+            xx, yy, xy = (float(x) for x in uniaxial(float(strain_magnitude), math.radians(st.angle_deg), st.poisson))
+        params.update(strain_xx=xx, strain_yy=yy, strain_xy=xy)
+    if material.model is not None:
+        return build(material.model, **params)
+    return load_tight_binding(material.tight_binding, **params)
+
+
+def _material(ctx, data, base: Path):
+    t = ctx.table("material", data)
+    ctx.check_keys("material", t, _MATERIAL)
+    has_m, has_tb = "model" in t, "tight_binding" in t
+    if has_m == has_tb:
+        ctx.fail("material", None, "give exactly one of 'model' (a catalogue name) and 'tight_binding' "
+                 "(a definition file).", "model = \"massive-dirac\" (see `crosswind models`) or "
+                 "tight_binding = \"my_model.toml\"")
+    model = tb = None
+    if has_m:
+        model = t["model"]
+        if not isinstance(model, str):
+            ctx.fail("material", "model", f"must be a catalogue name (string), got {model!r}.")
+        from crosswind.models import catalogue
+        names = sorted(catalogue())
+        if model not in names:
+            close = difflib.get_close_matches(model, names, n=1)
+            hint = f" Did you mean '{close[0]}'?" if close else ""
+            ctx.fail("material", "model", f"unknown model '{model}'.{hint}", ", ".join(names))
+    else:
+        if not isinstance(t["tight_binding"], str):
+            ctx.fail("material", "tight_binding", "must be a file path (string), relative to the scenario.")
+        tb = (base / t["tight_binding"]).resolve()
+        if not tb.is_file():
+            ctx.fail("material", "tight_binding", f"file not found: {tb}.", "a path relative to the scenario file")
+    params = ctx.table("material.parameters", t.get("parameters", {}))
+    for k, v in params.items():
+        if not (isinstance(v, (str, int, float)) and not isinstance(v, bool)):
+            ctx.fail("material.parameters", k, f"must be a number or a name, got {v!r}.")
+    strain = None
+    axis = None
+    if "strain" in t:
+        s = ctx.table("material.strain", t["strain"])
+        ctx.check_keys("material.strain", s, _STRAIN_TENSOR + _STRAIN_UNIAXIAL)
+        tens = [k for k in s if k in _STRAIN_TENSOR]
+        uni = [k for k in s if k in _STRAIN_UNIAXIAL]
+        if tens and uni:
+            ctx.fail("material.strain", uni[0], "mixes tensor components with the uniaxial form.",
+                     "either xx, yy, xy or magnitude, angle_deg, poisson")
+        if uni:
+            if "magnitude" not in s:
+                ctx.fail("material.strain", "magnitude", "missing.", "magnitude (a value or a sweep)")
+            mags = _values(ctx, "material.strain", "magnitude", s["magnitude"])
+            strain = Strain("uniaxial", angle_deg=_number(ctx, "material.strain", "angle_deg", s.get("angle_deg", 0.0)),
+                            poisson=_number(ctx, "material.strain", "poisson", s.get("poisson", 0.165)))
+            axis = Axis("strain", "material.strain.magnitude", "1", mags, "uniaxial strain magnitude")
+        else:
+            strain = Strain("tensor", **{k: _number(ctx, "material.strain", k, s.get(k, 0.0)) for k in _STRAIN_TENSOR})
+            if any(k.startswith("strain_") for k in params):
+                ctx.fail("material.parameters", next(k for k in params if k.startswith("strain_")),
+                         "strain is given twice (here and in [material.strain]).", "one of the two")
+    mat = Material(model, tb, tuple(sorted(params.items())), strain)
+    # build once at a representative strain: checks parameters and strain support
+    try:
+        probe = _build_model(mat, axis.values[0] if axis else None, base)
+    except ScenarioError:
+        raise
+    except ValueError as exc:
+        if strain is not None and "strain_xx" in str(exc) and "unknown parameter" in str(exc):
+            ctx.fail("material.strain", None, "this model has no strain parameters.",
+                     "strain for models with strain_xx, strain_yy, strain_xy (tmd, tmd-lattice, honeycomb)")
+        ctx.fail("material.parameters", None, str(exc))
+    if probe.dim != 2:
+        ctx.fail("material", "model" if has_m else "tight_binding",
+                 f"the device layer handles 2D sheets; this model is {probe.dim}D.", "a 2D model")
+    return mat, axis
+
+
+def _device(ctx, data):
+    t = ctx.table("device", data)
+    ctx.check_keys("device", t, _DEVICE)
+    for need in ("width_um", "length_um", "current_uA"):
+        if need not in t:
+            ctx.fail("device", need, "missing.", "width_um, length_um, current_uA (all positive)")
+    if "permittivity" in t and "capacitance_nF_cm2" in t:
+        ctx.fail("device", "capacitance_nF_cm2", "give either permittivity (with dielectric_nm) or "
+                 "capacitance_nF_cm2, not both.")
+    g = lambda k, **kw: _number(ctx, "device", k, t[k], **kw) if k in t else None
+    dev = Device(width_um=g("width_um", positive=True), length_um=g("length_um", positive=True),
+                 current_uA=g("current_uA", positive=True),
+                 frequency_Hz=g("frequency_Hz", nonneg=True) if "frequency_Hz" in t else 17.0,
+                 dielectric_nm=g("dielectric_nm", positive=True), permittivity=g("permittivity", positive=True),
+                 capacitance_nF_cm2=g("capacitance_nF_cm2", positive=True),
+                 gate_offset_V=g("gate_offset_V") or 0.0)
+    angle = _values(ctx, "device", "current_angle_deg", t["current_angle_deg"]) if "current_angle_deg" in t else None
+    return dev, angle
+
+
+def _conditions(ctx, data, dev: Device, device_angle):
+    t = ctx.table("conditions", data)
+    ctx.check_keys("conditions", t, _CONDITIONS)
+    carriers = [k for k in _CARRIERS if k in t]
+    if len(carriers) != 1:
+        ctx.fail("conditions", carriers[1] if len(carriers) > 1 else None,
+                 "give exactly one of gate_V, density_cm2, mu_eV.", "gate_V (needs [device] dielectric_nm "
+                 "with permittivity, or capacitance_nF_cm2), density_cm2, mu_eV")
+    carrier = carriers[0]
+    if carrier == "gate_V":
+        if dev.capacitance_nF_cm2 is None and (dev.dielectric_nm is None or dev.permittivity is None):
+            ctx.fail("device", "dielectric_nm", "a gate_V sweep needs the gate capacitance.",
+                     "dielectric_nm with permittivity, or capacitance_nF_cm2")
+    if "temperature_K" not in t:
+        ctx.fail("conditions", "temperature_K", "missing.", "a value, list or sweep in K (>= 0)")
+    temps = _values(ctx, "conditions", "temperature_K", t["temperature_K"], nonneg=True)
+    axes_scat = []
+    if "tau_fs" in t and "scattering" in t:
+        ctx.fail("conditions", "tau_fs", "give either tau_fs or [conditions.scattering], not both.")
+    if "scattering" in t:
+        s = ctx.table("conditions.scattering", t["scattering"])
+        kind = s.get("kind")
+        if kind not in _SCATTERING:
+            ctx.fail("conditions.scattering", "kind", f"unknown or missing kind {kind!r}.",
+                     ", ".join(f'"{k}"' for k in _SCATTERING))
+        fields = _SCATTERING[kind]
+        ctx.check_keys("conditions.scattering", s, ("kind",) + tuple(fields))
+        defaults = _SCAT_DEFAULTS.get(kind, {})
+        for key, (name, unit, meaning, positive) in fields.items():
+            if key not in s and key not in defaults:
+                ctx.fail("conditions.scattering", key, f"missing for kind = \"{kind}\".", ", ".join(fields))
+            vals = _values(ctx, "conditions.scattering", key, s.get(key, defaults.get(key)), positive=bool(positive))
+            axes_scat.append(Axis(name, f"conditions.scattering.{key}", unit, vals, meaning))
+    else:
+        kind = "constant"
+        if "tau_fs" not in t:
+            ctx.fail("conditions", "tau_fs", "missing.", "tau_fs (fs) or a [conditions.scattering] table")
+        axes_scat.append(Axis("tau", "conditions.tau_fs", "fs", _values(ctx, "conditions", "tau_fs", t["tau_fs"],
+                                                                        positive=True), "relaxation time"))
+    if "current_angle_deg" in t and device_angle is not None:
+        ctx.fail("conditions", "current_angle_deg", "also given in [device]; give it in one place.")
+    angle = (_values(ctx, "conditions", "current_angle_deg", t["current_angle_deg"])
+             if "current_angle_deg" in t else (device_angle or (0.0,)))
+    name, unit, meaning = _CARRIERS[carrier]
+    cvals = _values(ctx, "conditions", carrier, t[carrier])
+    axes = ([Axis("temperature", "conditions.temperature_K", "K", temps, "temperature")] + axes_scat
+            + [Axis(name, f"conditions.{carrier}", unit, cvals, meaning)])
+    return carrier, kind, axes, Axis("current_angle", "current_angle_deg", "deg", angle,
+                                     "current direction from the crystal x axis")
+
+
+def _numerics(ctx, data):
+    t = ctx.table("numerics", data)
+    ctx.check_keys("numerics", t, _NUMERICS)
+    rtol = _number(ctx, "numerics", "rtol", t.get("rtol", 1e-3), positive=True)
+    if not rtol < 1:
+        ctx.fail("numerics", "rtol", f"must lie in (0, 1), got {rtol:g}.", "e.g. 1e-3")
+    res = t.get("resolution", "auto")
+    if res == "auto":
+        res = None
+    elif not (isinstance(res, int) and not isinstance(res, bool) and 0 <= res <= 4):
+        ctx.fail("numerics", "resolution", f"got {res!r}.", '"auto" or an integer level 0..4')
+    intr = t.get("intrinsic", True)
+    if not isinstance(intr, bool):
+        ctx.fail("numerics", "intrinsic", f"must be true or false, got {intr!r}.")
+    dres = t.get("density_resolution", 2)
+    if not (isinstance(dres, int) and not isinstance(dres, bool) and 0 <= dres <= 4):
+        ctx.fail("numerics", "density_resolution", f"got {dres!r}.", "an integer level 0..4")
+    return Numerics(rtol=rtol, resolution=res, intrinsic=intr, density_resolution=dres)
+
+
+def _output(ctx, data, base: Path):
+    t = ctx.table("output", data)
+    ctx.check_keys("output", t, _OUTPUT)
+    folder = t.get("folder", "results")
+    if not isinstance(folder, str) or not folder:
+        ctx.fail("output", "folder", f"must be a folder name (string), got {folder!r}.")
+    figs = t.get("figures", True)
+    if not isinstance(figs, bool):
+        ctx.fail("output", "figures", f"must be true or false, got {figs!r}.")
+    return (base / folder), figs
+
+
+def parse_scenario(text: str, source: str = "<string>", base: Path | str | None = None) -> Scenario:
+    """A :class:`Scenario` from TOML text; ``base`` is the folder relative paths refer to."""
+    ctx = _Ctx(source)
+    base = Path(base) if base is not None else Path.cwd()
+    try:
+        data = tomllib.loads(text)
+    except tomllib.TOMLDecodeError as exc:
+        raise ScenarioError(f"{source}: not valid TOML: {exc}.") from exc
+    for key in data:
+        if key not in _TOP:
+            close = difflib.get_close_matches(key, _TOP, n=1, cutoff=0.5)
+            hint = f" Did you mean '[{close[0]}]'?" if close else ""
+            ctx.fail(key, None, f"unknown table.{hint}", ", ".join(f"[{k}]" for k in _TOP))
+    for need in ("material", "device", "conditions"):
+        if need not in data:
+            ctx.fail(need, None, "missing table.", "[material], [device], [conditions], [numerics], [output]")
+    material, strain_axis = _material(ctx, data["material"], base)
+    device, dev_angle = _device(ctx, data["device"])
+    carrier, kind, axes, angle_axis = _conditions(ctx, data["conditions"], device, dev_angle)
+    numerics = _numerics(ctx, data.get("numerics", {}))
+    folder, figs = _output(ctx, data.get("output", {}), base)
+    all_axes = ([strain_axis] if strain_axis else []) + axes + [angle_axis]
+    return Scenario(path=Path(source), text=text, material=material, device=device, carrier=carrier,
+                    scattering=kind, axes=tuple(all_axes), numerics=numerics, output_folder=folder,
+                    figures=figs)
+
+
+def load_scenario(path) -> Scenario:
+    """Read and check a scenario file (nothing is written)."""
+    p = Path(path)
+    try:
+        text = p.read_text(encoding="utf-8")
+    except FileNotFoundError as exc:
+        raise ScenarioError(f"{p}: scenario file not found.") from exc
+    except IsADirectoryError as exc:
+        raise ScenarioError(f"{p}: is a folder, not a scenario file.") from exc
+    return parse_scenario(text, str(p), base=p.resolve().parent)
