@@ -11,6 +11,8 @@ common practice), positive V_g adding electrons.
 """
 from __future__ import annotations
 
+from functools import partial
+
 import jax
 import jax.numpy as jnp
 import numpy as np
@@ -58,16 +60,24 @@ def mu_from_density(model: BandModel, density, temperature, *, bracket=(-5.0, 5.
                     resolution: int = 2, iterations: int = 60):
     """μ (eV) with n(μ, T) = ``density`` (m^-d, relative to neutrality), for scalar or array
     ``density``/``temperature`` (broadcast).  Differentiable in density, temperature and the model
-    parameters through the implicit function theorem."""
+    parameters through the implicit function theorem.  Compiled once per model structure,
+    resolution and array shape: new densities, temperatures or parameter values do not recompile."""
     lo, hi = bracket
     if not lo < hi:
         raise ValueError("mu_from_density: bracket must be (low, high) in eV with low < high")
-    n_of = _density_fn(model, resolution)
     dens = jnp.asarray(density, dtype=jnp.float64)
     temp = jnp.asarray(temperature, dtype=jnp.float64)
     shape = np.broadcast_shapes(dens.shape, temp.shape)
     flat_n = jnp.broadcast_to(dens, shape).reshape(-1)
     flat_t = jnp.broadcast_to(temp, shape).reshape(-1)
+    mus = _solve(model, flat_n, flat_t, jnp.asarray(lo, dtype=jnp.float64), jnp.asarray(hi, dtype=jnp.float64),
+                 resolution=resolution, iterations=iterations)
+    return mus.reshape(shape)
+
+
+@partial(jax.jit, static_argnames=("resolution", "iterations"))
+def _solve(model, flat_n, flat_t, lo, hi, *, resolution, iterations):
+    n_of = _density_fn(model, resolution)
 
     def solve_one(params, n_target, t):
         kt = thermal_energy(t)
@@ -81,13 +91,12 @@ def mu_from_density(model: BandModel, density, temperature, *, bracket=(-5.0, 5.
                 m = 0.5 * (a + b)
                 up = f(m) > 0
                 return jnp.where(up, a, m), jnp.where(up, m, b)
-            a, b = jax.lax.fori_loop(0, iterations, body, (jnp.asarray(lo), jnp.asarray(hi)))
+            a, b = jax.lax.fori_loop(0, iterations, body, (lo, hi))
             return 0.5 * (a + b)
 
         def tangent_solve(g, y):
             return y / g(1.0)
 
-        return jax.lax.custom_root(residual, jnp.asarray(0.5 * (lo + hi)), solve, tangent_solve)
+        return jax.lax.custom_root(residual, 0.5 * (lo + hi), solve, tangent_solve)
 
-    mus = jax.vmap(lambda n, t: solve_one(model.params, n, t))(flat_n, flat_t)
-    return mus.reshape(shape)
+    return jax.vmap(lambda n, t: solve_one(model.params, n, t))(flat_n, flat_t)
