@@ -2,7 +2,8 @@
 
 With x = (ε − μ)/k_BT:
 
-* f0 = 1/(e^x + 1) = ½(1 − tanh(x/2))            (no overflow for any x)
+* f0 = 1/(e^x + 1), evaluated as the logistic function of −x (no overflow, relative precision
+  in both tails)
 * −∂f0/∂ε = sech²(x/2)/(4k_BT)                    (normalised to 1, 1/eV)
 * s(x) = −f ln f − (1−f) ln(1−f) = ln(1 + e^{−|x|}) + |x| f(|x|)   (entropy per state, k_B = 1)
 
@@ -27,8 +28,22 @@ def thermal_energy(temperature):
     return KB_EVK * jnp.maximum(jnp.asarray(temperature, dtype=jnp.float64), T_FLOOR)
 
 
+@jax.custom_jvp
+def _occupation(x):
+    return jax.nn.sigmoid(-x)
+
+
+@_occupation.defjvp
+def _occupation_jvp(primals, tangents):
+    (x,), (t,) = primals, tangents
+    # df/dx = −f(x)(1 − f(x)) = −σ(x)σ(−x): both factors from their own accurate tails
+    return jax.nn.sigmoid(-x), -t * jax.nn.sigmoid(x) * jax.nn.sigmoid(-x)
+
+
 def fermi(energy, mu, kt):
-    return 0.5 * (1.0 - jnp.tanh(0.5 * (energy - mu) / kt))
+    """f0 = 1/(e^x + 1) as the logistic function of −x: relative precision in both tails
+    (½(1 − tanh(x/2)) loses all digits of e^{−x} beyond x ≈ 37), also for ∂f0/∂x."""
+    return _occupation((energy - mu) / kt)
 
 
 def minus_dfermi(energy, mu, kt):

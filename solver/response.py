@@ -22,7 +22,7 @@ Response coefficients (τ̃_ν = τ/(1+iντ), F = −∂f0/∂ε, v = ∇_kε/�
   χ^int_abc = ½ (q³/ħ) ∫[dk] f0 [∂_aG_bc − ½(∂_bG_ac + ∂_cG_ab)]  (½: phasor convention, ω ≪ gap).
   This is one published form of a disputed τ⁰ sector (physics-reference §5.5c); switch it off with
   ``intrinsic=False``.                                                                 (τ⁰)
-* Lorentz (ordinary) Hall to first order in B_z: σ_ab(B) = B (q³/ħ²) ∫[dk] τ² f0' ε_cd v_a v_d ∂_c v_b
+* Lorentz (ordinary) Hall to first order in B_z: σ_ab(B) = B (q³/ħ) ∫[dk] τ² f0' ε_cd v_a v_d ∂v_b/∂k_c
   (Jones–Zener iteration), ``sigma_lorentz`` = ∂σ/∂B_z in S/T and ``hall_coefficient``
   R_H = −σ^B_yx/(σ_xx σ_yy) (→ 1/(nq) for a parabolic band)
 * thermoelectric (Mahan & Sofo, PNAS 93, 7436, 1996 transport function; dc Drude part):
