@@ -13,3 +13,8 @@ from .topology import chern_number  # noqa: E402
 
 __all__ = ["ConstantTau", "MatthiessenTau", "PowerLawTau", "Response", "chern_number",
            "gate_density", "mu_from_density", "response"]
+from .fit import FitResult, fit, scaling_fit  # noqa: E402
+from .measurements import load_measurements  # noqa: E402
+from .sensitivity import sensitivities, sensitivity_table  # noqa: E402
+
+__all__ += ["FitResult", "fit", "load_measurements", "scaling_fit", "sensitivities", "sensitivity_table"]
