@@ -19,12 +19,18 @@ from crosswind.solver.scattering import ConstantTau
 
 def main(n=4096):
     m = build("tmd-lattice")
-    total, node_fn = mesh.lattice_nodes(m, mesh.Resolution(n))
     import jax
 
-    f = jax.jit(lambda model: moments_indexed(model, model.params, total, node_fn, jnp.array([1.0]),
-                                              jnp.array([2.5e-3]), jnp.array([30.0]), ConstantTau.evaluate,
-                                              {"tau0": jnp.array([[100.0]])}, 0.0, 2, False, 16384))
+    mu, kt = jnp.array([1.0]), jnp.array([2.5e-3])
+
+    def run(model):
+        # the rule response() uses: uniform grid plus refined Fermi-contour cells
+        total, node_fn = mesh.refined_lattice_nodes(model, mesh.Resolution(n), mu, kt)
+        return moments_indexed(model, model.params, total, node_fn, mu, kt, jnp.array([30.0]),
+                               ConstantTau.evaluate, {"tau0": jnp.array([[100.0]])}, 0.0, 2, False, 16384)
+
+    total = mesh.node_count(m, mesh.Resolution(n))
+    f = jax.jit(run)
     t = time.time()
     out = f(m)
     jax.block_until_ready(out)
