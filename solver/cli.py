@@ -1,7 +1,8 @@
 """The ``crosswind`` command line.
 
     crosswind run SCENARIO [--output DIR] [--no-progress]   run (or resume) a scenario file
-    crosswind demo [--output DIR] [--no-progress]           run the built-in demonstration
+    crosswind fit SCENARIO --data FILE [--output DIR] [--starts N]   fit the [fit] parameters to data
+    crosswind demo [--output DIR] [--no-progress] [--no-fit] run the built-in demonstration
     crosswind models                                        list the model catalogue
     crosswind validate                                      run the validation cases
 
@@ -26,11 +27,21 @@ def _parser() -> argparse.ArgumentParser:
     r.add_argument("scenario", metavar="SCENARIO", help="scenario file (TOML)")
     r.add_argument("--output", "-o", metavar="DIR", help="output folder (default: [output] folder of the scenario)")
     r.add_argument("--no-progress", action="store_true", help="do not show progress on stderr")
+    f = sub.add_parser("fit", help="fit a scenario's [fit] parameters to measurements",
+                       description="Fit the free parameters of the scenario's [fit] table to a CSV file of "
+                                   "measurements (docs/fitting.md) and write fit_summary.md, fit.json, plots and "
+                                   "fitted_scenario.toml.")
+    f.add_argument("scenario", metavar="SCENARIO", help="scenario file (TOML) with a [fit] table")
+    f.add_argument("--data", "-d", metavar="FILE", help="measurements (CSV with 'name [unit]' columns); "
+                   "default: [fit] data")
+    f.add_argument("--output", "-o", metavar="DIR", help="output folder (default: fit-<scenario name> next to it)")
+    f.add_argument("--starts", type=int, metavar="N", help="number of starting points (default: [fit] starts)")
     d = sub.add_parser("demo", help="run the built-in demonstration scenario",
                        description="Run a small built-in scenario (strained MoS2 Hall bar, gate and "
                                    "temperature sweep) and write results, figures and a summary.")
     d.add_argument("--output", "-o", metavar="DIR", default="crosswind-demo", help="output folder (default: %(default)s)")
     d.add_argument("--no-progress", action="store_true", help="do not show progress on stderr")
+    d.add_argument("--no-fit", action="store_true", help="skip the fit to invented measurements")
     sub.add_parser("models", help="list the model catalogue", description="List every catalogue model with its "
                    "Hamiltonian, source and parameters.")
     sub.add_parser("validate", help="run the validation cases",
@@ -53,8 +64,43 @@ def _run(scn, output, progress: bool) -> int:
         _err(str(exc))
         return 2
     write_report(ds, scn, folder)
-    print(f"crosswind: wrote {folder}/results.nc, results.csv, summary.md"
+    extra = ""
+    if scn.sensitivities is not None:
+        from .peak_sensitivity import write_sensitivities
+        write_sensitivities(scn, ds, folder)
+        extra = ", sensitivities.csv"
+    print(f"crosswind: wrote {folder}/results.nc, results.csv, summary.md{extra}"
           + (" and figures" if scn.figures else "") + f" in {time.time() - t0:.1f} s")
+    return 0
+
+
+def cmd_fit(args) -> int:
+    from .scenario import ScenarioError, load_scenario
+    from .scenario_fit import FitInputError, run_fit
+    try:
+        scn = load_scenario(args.scenario)
+    except ScenarioError as exc:
+        _err(str(exc))
+        return 2
+    if scn.fit is None:
+        _err(f"{args.scenario}: no [fit] table; add one (docs/fitting.md)")
+        return 2
+    data = args.data or scn.fit.data
+    if data is None:
+        _err(f"{args.scenario}: no data file; pass --data FILE or set [fit] data")
+        return 2
+    if args.starts is not None and args.starts < 1:
+        _err("--starts must be >= 1")
+        return 2
+    folder = Path(args.output) if args.output else Path(args.scenario).resolve().parent / f"fit-{Path(args.scenario).stem}"
+    t0 = time.time()
+    try:
+        out = run_fit(scn, data, folder, starts=args.starts)
+    except FitInputError as exc:
+        _err(str(exc))
+        return 2
+    print(f"crosswind: wrote {folder}/fit_summary.md, fit.json, fit_curve.png, fit_residuals.png"
+          + ("" if out.get("scaling") else ", fitted_scenario.toml") + f" in {time.time() - t0:.1f} s")
     return 0
 
 
@@ -72,7 +118,14 @@ def cmd_demo(args) -> int:
     from .demo import SCENARIO
     from .scenario import parse_scenario
     scn = parse_scenario(SCENARIO, source="<built-in demo>", base=Path.cwd())
-    return _run(scn, args.output, not args.no_progress)
+    rc = _run(scn, args.output, not args.no_progress)
+    if rc != 0 or args.no_fit:
+        return rc
+    from .demo import run_demo_fit
+    t0 = time.time()
+    run_demo_fit(Path(args.output))
+    print(f"crosswind: demo fit to invented measurements written to {args.output}/fit in {time.time() - t0:.1f} s")
+    return 0
 
 
 def cmd_models(args) -> int:
@@ -111,7 +164,7 @@ def main(argv=None) -> int:
     if args.command is None:
         parser.print_help(sys.stderr)
         return 2
-    return {"run": cmd_run, "demo": cmd_demo, "models": cmd_models, "validate": cmd_validate}[args.command](args)
+    return {"run": cmd_run, "fit": cmd_fit, "demo": cmd_demo, "models": cmd_models, "validate": cmd_validate}[args.command](args)
 
 
 if __name__ == "__main__":

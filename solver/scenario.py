@@ -95,6 +95,26 @@ class Numerics:
 
 
 @dataclass(frozen=True)
+class SensitivitySpec:
+    """``[sensitivities]``: knob → step (in the knob's unit) and the fixed mesh level used."""
+    steps: tuple                 # ((knob, step), ...)
+    resolution: int
+
+
+@dataclass(frozen=True)
+class FitSpec:
+    """``[fit]``: free parameters with starting values and bounds, the measured quantity and its axis."""
+    quantity: str                # "V2w" | "Vxx" | "sigma_xx" | "ratio"
+    axis: str                    # "gate_V" | "density_cm2" | "mu_eV" | "temperature_K" | "current_uA" | "sigma_xx"
+    parameters: tuple            # ((name, initial, low, high), ...)
+    at: tuple                    # ((knob, value), ...) for swept axes held fixed
+    data: Path | None
+    starts: int
+    resolution: int
+    scaling: bool
+
+
+@dataclass(frozen=True)
 class Scenario:
     path: Path
     text: str
@@ -106,6 +126,8 @@ class Scenario:
     numerics: Numerics
     output_folder: Path
     figures: bool
+    sensitivities: "SensitivitySpec | None" = None
+    fit: "FitSpec | None" = None
 
     def axis(self, name: str) -> Axis:
         for a in self.axes:
@@ -123,7 +145,7 @@ class Scenario:
 
 
 # ----------------------------------------------------------------------------- schema ---------
-_TOP = ("material", "device", "conditions", "numerics", "output")
+_TOP = ("material", "device", "conditions", "numerics", "output", "sensitivities", "fit")
 _MATERIAL = ("model", "tight_binding", "parameters", "strain")
 _STRAIN_TENSOR = ("xx", "yy", "xy")
 _STRAIN_UNIAXIAL = ("magnitude", "angle_deg", "poisson")
@@ -149,6 +171,10 @@ _CONDITIONS = tuple(_CARRIERS) + ("temperature_K", "tau_fs", "scattering", "curr
 _NUMERICS = ("rtol", "resolution", "intrinsic", "density_resolution")
 _OUTPUT = ("folder", "figures")
 _SWEEP = ("start", "stop", "num", "spacing")
+_SENS = ("knobs", "resolution")
+_FIT = ("parameters", "quantity", "axis", "at", "data", "starts", "resolution", "scaling")
+_FIT_PARAM = ("initial", "bounds")
+_FIT_QUANTITIES = ("V2w", "Vxx", "sigma_xx", "ratio")
 
 
 class _Ctx:
@@ -437,9 +463,113 @@ def parse_scenario(text: str, source: str = "<string>", base: Path | str | None 
     numerics = _numerics(ctx, data.get("numerics", {}))
     folder, figs = _output(ctx, data.get("output", {}), base)
     all_axes = ([strain_axis] if strain_axis else []) + axes + [angle_axis]
-    return Scenario(path=Path(source), text=text, material=material, device=device, carrier=carrier,
-                    scattering=kind, axes=tuple(all_axes), numerics=numerics, output_folder=folder,
-                    figures=figs)
+    scn = Scenario(path=Path(source), text=text, material=material, device=device, carrier=carrier,
+                   scattering=kind, axes=tuple(all_axes), numerics=numerics, output_folder=folder,
+                   figures=figs)
+    from dataclasses import replace as _replace
+    sens = _sensitivities(ctx, data["sensitivities"], scn) if "sensitivities" in data else None
+    fit = _fit(ctx, data["fit"], scn, base) if "fit" in data else None
+    return _replace(scn, sensitivities=sens, fit=fit)
+
+
+def _level(ctx, table, key, v, default):
+    if v is None:
+        return default
+    if not (isinstance(v, int) and not isinstance(v, bool) and 0 <= v <= 4):
+        ctx.fail(table, key, f"got {v!r}.", "an integer k-mesh level 0..4 (2 or more for accurate derivatives)")
+    return v
+
+
+def _knob_check(ctx, table, scn, name, units):
+    from .pipeline import check_knob
+    model = scn.build_model(scn.axis("strain").values[0] if any(a.name == "strain" for a in scn.axes) else None)
+    kind = scn.material.strain.kind if scn.material.strain is not None else None
+    msg = check_knob(name, units, model, "knob", kind)
+    if msg:
+        ctx.fail(table, name, msg.split(": ", 1)[1], ", ".join(units))
+
+
+def _sensitivities(ctx, data, scn):
+    from .pipeline import scenario_knobs
+    t = ctx.table("sensitivities", data)
+    ctx.check_keys("sensitivities", t, _SENS)
+    knobs = ctx.table("sensitivities.knobs", t.get("knobs", {}))
+    units = scenario_knobs(scn)
+    if not knobs:
+        ctx.fail("sensitivities", "knobs", "missing or empty.", "knobs = {knob = step, ...} with knobs "
+                 + ", ".join(units))
+    steps = []
+    for k, v in knobs.items():
+        _knob_check(ctx, "sensitivities.knobs", scn, k, units)
+        st = _number(ctx, "sensitivities.knobs", k, v)
+        if st == 0:
+            ctx.fail("sensitivities.knobs", k, "the step must be non-zero.")
+        steps.append((k, st))
+    default = scn.numerics.resolution if scn.numerics.resolution is not None else 2
+    return SensitivitySpec(tuple(steps), _level(ctx, "sensitivities", "resolution", t.get("resolution"), default))
+
+
+def _fit(ctx, data, scn, base):
+    from .pipeline import scenario_knobs
+    t = ctx.table("fit", data)
+    ctx.check_keys("fit", t, _FIT)
+    scaling = t.get("scaling", False)
+    if not isinstance(scaling, bool):
+        ctx.fail("fit", "scaling", f"must be true or false, got {scaling!r}.")
+    q = t.get("quantity")
+    if q not in _FIT_QUANTITIES:
+        close = difflib.get_close_matches(str(q), _FIT_QUANTITIES, n=1)
+        hint = f" Did you mean '{close[0]}'?" if close else ""
+        ctx.fail("fit", "quantity", f"unknown or missing quantity {q!r}.{hint}", ", ".join(f'"{x}"' for x in _FIT_QUANTITIES))
+    axes_ok = (scn.carrier, "temperature_K", "current_uA") + (("sigma_xx",) if scaling else ())
+    ax = t.get("axis")
+    if ax not in axes_ok:
+        close = difflib.get_close_matches(str(ax), axes_ok, n=1)
+        hint = f" Did you mean '{close[0]}'?" if close else ""
+        ctx.fail("fit", "axis", f"unknown or missing axis {ax!r} for this scenario.{hint}",
+                 ", ".join(f'"{x}"' for x in axes_ok))
+    if scaling and (q != "ratio" or ax != "sigma_xx"):
+        ctx.fail("fit", "scaling", "the scaling analysis fits quantity = \"ratio\" against axis = \"sigma_xx\".",
+                 'quantity = "ratio", axis = "sigma_xx"')
+    if ax == "sigma_xx" and not scaling:
+        ctx.fail("fit", "axis", "sigma_xx as the axis is for the scaling analysis.", "scaling = true")
+    units = scenario_knobs(scn)
+    params = []
+    ptab = ctx.table("fit.parameters", t.get("parameters", {}))
+    if not ptab and not scaling:
+        ctx.fail("fit", "parameters", "missing or empty.", "parameters = {name = {initial = ..., bounds = [lo, hi]}}"
+                 " with names " + ", ".join(k for k in units if k != ax))
+    for name, spec in ptab.items():
+        _knob_check(ctx, "fit.parameters", scn, name, {k: u for k, u in units.items() if k != ax})
+        sp = ctx.table(f"fit.parameters.{name}", spec)
+        ctx.check_keys(f"fit.parameters.{name}", sp, _FIT_PARAM)
+        if "initial" not in sp:
+            ctx.fail(f"fit.parameters.{name}", "initial", "missing.", "initial = starting value")
+        init = _number(ctx, f"fit.parameters.{name}", "initial", sp["initial"])
+        lo, hi = -math.inf, math.inf
+        if "bounds" in sp:
+            b = sp["bounds"]
+            if not (isinstance(b, list) and len(b) == 2):
+                ctx.fail(f"fit.parameters.{name}", "bounds", f"must be [low, high], got {b!r}.")
+            lo = _number(ctx, f"fit.parameters.{name}", "bounds", b[0])
+            hi = _number(ctx, f"fit.parameters.{name}", "bounds", b[1])
+            if not lo < init < hi:
+                ctx.fail(f"fit.parameters.{name}", "bounds", f"need low < initial < high, got {lo:g} < {init:g} < {hi:g}.")
+        params.append((name, init, lo, hi))
+    at = []
+    for k, v in ctx.table("fit.at", t.get("at", {})).items():
+        _knob_check(ctx, "fit.at", scn, k, {kk: u for kk, u in units.items() if kk != ax})
+        at.append((k, _number(ctx, "fit.at", k, v)))
+    data_path = t.get("data")
+    if data_path is not None and not isinstance(data_path, str):
+        ctx.fail("fit", "data", "must be a file path (string), relative to the scenario.")
+    starts = t.get("starts", 1)
+    if not (isinstance(starts, int) and not isinstance(starts, bool) and starts >= 1):
+        ctx.fail("fit", "starts", f"must be an integer >= 1, got {starts!r}.")
+    default = scn.numerics.resolution if scn.numerics.resolution is not None else 1
+    return FitSpec(quantity=q, axis=ax, parameters=tuple(params), at=tuple(at),
+                   data=(base / data_path).resolve() if data_path else None, starts=starts,
+                   resolution=_level(ctx, "fit", "resolution", t.get("resolution"), default), scaling=scaling)
 
 
 def load_scenario(path) -> Scenario:

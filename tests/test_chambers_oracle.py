@@ -276,7 +276,7 @@ def comparison(level):
 
 def test_oracle_bands_match_the_model():
     """The oracle's numpy energies, velocities and curvature belong to the wrapped model (so the
-    comparison tests the transport solver, not a transcription slip in the toy): energies against
+    comparison tests the transport solver, not a typing slip in the toy): energies against
     the eigenvalues of the model's Hamiltonian, the velocity against a finite difference of them,
     and the curvature formula against the massive-Dirac check value Ω_c(0) = −541.554 Å² of
     physics-reference.md (check value 5, §3)."""
