@@ -258,7 +258,7 @@ def _converged(fine, coarse, mom_fine, rtol, model, tau_max):
 
 def response(model: BandModel, mu, temperature, tau, frequency=0.0, *, rtol: float = 1e-3,
              resolution: int | None = None, max_level: int | None = None, intrinsic: bool = True,
-             dipole_route: str = "surface", chunk: int = 4096) -> Response:
+             dipole_route: str = "surface", chunk: int = 4096, estimate_error: bool = True) -> Response:
     """Transport coefficients of ``model`` at chemical potential(s) ``mu`` (eV), ``temperature`` (K)
     and relaxation time ``tau`` (fs, or a scattering object from :mod:`crosswind.solver.scattering`),
     at drive ``frequency`` (Hz).  ``mu``, ``temperature`` and ``tau`` broadcast against each other;
@@ -267,7 +267,8 @@ def response(model: BandModel, mu, temperature, tau, frequency=0.0, *, rtol: flo
     ``resolution`` fixes the refinement level (required under ``jax.grad``/``jit``); ``None``
     chooses it automatically for ``rtol``.  ``dipole_route="both"`` also evaluates the Fermi-sea
     integral ∫f0 ∂Ω (``dipole_sea``) and folds the disagreement of the two routes into
-    ``error["dipole"]``.
+    ``error["dipole"]``.  With a fixed ``resolution``, ``estimate_error=False`` skips the coarser
+    pass (half the cost, e.g. inside fits); ``error`` is then NaN.
     """
     if not isinstance(model, BandModel):
         raise TypeError("response: the first argument must be a BandModel from crosswind.models.build(...)")
@@ -329,7 +330,7 @@ def response(model: BandModel, mu, temperature, tau, frequency=0.0, *, rtol: flo
             raise ValueError(f"response: resolution must be a level 0..{len(levels) - 1}")
         lev = resolution
         fine_m = run(lev)
-        coarse_m = run(lev - 1) if lev > 0 else fine_m
+        coarse_m = run(lev - 1) if lev > 0 and estimate_error else fine_m
         fine = _to_si(fine_m, model, Tf, intrinsic)
         coarse = _to_si(coarse_m, model, Tf, intrinsic)
         bad = None
@@ -340,6 +341,8 @@ def response(model: BandModel, mu, temperature, tau, frequency=0.0, *, rtol: flo
         err["dipole"] = jnp.maximum(err["dipole"], jnp.abs(fine["dipole"] - fine["dipole_sea"]))
     for part in ("dipole", "drude", "intrinsic"):
         err[f"chi_{part}"] = jnp.abs(fine["chi_parts"][part] - coarse["chi_parts"][part])
+    if resolution is not None and not estimate_error:
+        err = {key: jnp.full(v.shape, jnp.nan) for key, v in err.items()}
     reshape = lambda x: x.reshape(shape + x.shape[1:])
     fine = jax.tree_util.tree_map(reshape, fine)
     err = jax.tree_util.tree_map(reshape, err)

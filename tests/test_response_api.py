@@ -101,3 +101,12 @@ def test_memory_does_not_grow_with_the_mesh():
     large = _moments_at.lower(*args, level=5, **kw).compile().memory_analysis().temp_size_in_bytes
     assert (large - small) / (768 ** 2 - 192 ** 2) < 32
     assert large < 64 * 2 ** 20
+
+
+def test_skipping_the_error_estimate_keeps_values():
+    m = build("massive-dirac", **DIRAC)
+    a = response(m, mu=0.15, temperature=10.0, tau=100.0, resolution=1)
+    b = response(m, mu=0.15, temperature=10.0, tau=100.0, resolution=1, estimate_error=False)
+    np.testing.assert_array_equal(np.asarray(a.chi), np.asarray(b.chi))
+    assert np.all(np.isnan(np.asarray(b.error["chi"])))
+    assert np.all(np.isfinite(np.asarray(a.error["chi"])))
