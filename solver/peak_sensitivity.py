@@ -1,0 +1,98 @@
+"""Sensitivities of the 2ω signal at its peak to the scenario's knobs (the ``[sensitivities]`` table).
+
+After a sweep, the grid point where |V_y^2ω| is largest is taken (the peak of ``summary.md``) and
+the derivative of |V_y^2ω| with respect to every requested knob is computed by forward-mode
+automatic differentiation (``jax.jvp``) through the whole device pipeline of
+:mod:`crosswind.solver.pipeline` — strain magnitude → strain components → model, gate → density →
+μ (implicit derivative of the density solve), scattering → response → Hall bar.  The change per
+step is the linear estimate derivative × step.
+
+Accuracy: derivatives are taken on a fixed k-mesh (``[sensitivities] resolution``; default the
+run's fixed level, else 2).  Derivative integrands are sharper than the values, so level ≥ 2 is
+more accurate for derivatives than the level-1 mesh that is often enough for the values
+(:mod:`crosswind.solver.sensitivity`).  Knobs that move the k-mesh placement (μ, temperature for
+continuum models) are differentiated at fixed nodes.
+"""
+from __future__ import annotations
+
+import csv
+from pathlib import Path
+
+import jax
+import jax.numpy as jnp
+import numpy as np
+
+from .sensitivity import SensitivityRow
+
+
+def peak_values(scn, ds) -> dict:
+    """Concrete knob values at the grid point of the largest |V_y^2ω|."""
+    from .pipeline import _AXIS_OF, base_values
+    from .report import peak_index
+    idx = peak_index(ds)
+    at = {}
+    for knob, axis in _AXIS_OF.items():
+        if axis in idx and ds.sizes[axis] > 1:
+            at[knob] = float(ds[axis].values[idx[axis]])
+    return base_values(scn, at, who="[sensitivities]")
+
+
+def peak_sensitivities(scn, ds) -> list[SensitivityRow]:
+    """Rows (knob, step, change of |V_y^2ω| in V, unit, derivative, relative), largest |change| first."""
+    from .pipeline import evaluate, scenario_knobs
+    spec = scn.sensitivities
+    base = peak_values(scn, ds)
+    x = {k: jnp.asarray(v, dtype=jnp.float64) for k, v in base.items()}
+    f = lambda xx: evaluate(scn, xx, resolution=spec.resolution)["V2w"][0]
+    units = scenario_knobs(scn)
+    rows = []
+    for knob, step in spec.steps:
+        t = {k: jnp.zeros((), jnp.float64) for k in x}
+        t[knob] = jnp.ones((), jnp.float64)
+        value, d = jax.jvp(f, (x,), (t,))
+        value, d = float(value), float(d)
+        change = d * step
+        rows.append(SensitivityRow(knob, float(step), change, units[knob], d,
+                                   change / value if value != 0 else float("nan")))
+    rows.sort(key=lambda r: -abs(r.change) if np.isfinite(r.change) else 0.0)
+    return rows
+
+
+def write_csv(rows, path: Path):
+    with open(path, "w", newline="", encoding="utf-8") as fh:
+        w = csv.writer(fh)
+        w.writerow(["knob", "step", "knob unit", "change of V2w_y_amplitude [V]", "derivative [V per knob unit]",
+                    "relative change [1]"])
+        for r in rows:
+            w.writerow([r.knob, f"{r.step:.10g}", r.unit, f"{r.change:.10g}", f"{r.derivative:.10g}",
+                        f"{r.relative:.10g}"])
+
+
+def markdown(rows, resolution: int) -> str:
+    lines = ["## Which knobs move the 2ω signal most at its peak", "",
+             f"Change of |V_y^2ω| at the peak for the given step of each knob (linear estimate from the "
+             f"derivative by automatic differentiation through the whole device pipeline, fixed k-mesh level "
+             f"{resolution}{'; level ≥ 2 is more accurate for derivatives' if resolution < 2 else ''}); "
+             "largest first. Numbers also in `sensitivities.csv`.", "",
+             "| knob | step | change of V_y^2ω (nV) | relative change |", "|---|---|---|---|"]
+    for r in rows:
+        unit = "" if r.unit == "1" else f" {r.unit}"
+        lines.append(f"| `{r.knob}` | {r.step:g}{unit} | {r.change * 1e9:+.4g} | {r.relative:+.3g} |")
+    return "\n".join(lines) + "\n"
+
+
+def write_sensitivities(scn, ds, folder) -> list:
+    """Compute the table, write ``sensitivities.csv`` and insert the section into ``summary.md``."""
+    folder = Path(folder)
+    rows = peak_sensitivities(scn, ds)
+    write_csv(rows, folder / "sensitivities.csv")
+    summ = folder / "summary.md"
+    text = summ.read_text(encoding="utf-8") if summ.exists() else ""
+    sec = markdown(rows, scn.sensitivities.resolution)
+    marker = "## Conditions and units"
+    text = text.replace(marker, sec + "\n" + marker, 1) if marker in text else text + "\n" + sec
+    summ.write_text(text, encoding="utf-8")
+    return rows
+
+
+__all__ = ["peak_sensitivities", "write_sensitivities", "peak_values"]

@@ -1,0 +1,312 @@
+"""``crosswind fit``: fit a scenario's free parameters to measurements (the ``[fit]`` table).
+
+The model prediction at the measured axis values goes through the device pipeline of
+``crosswind run`` (:func:`crosswind.solver.pipeline.evaluate`: gate → density → μ → response →
+Hall bar), differentiable end to end, so :func:`crosswind.solver.fit.fit` gets its Jacobian by
+forward-mode automatic differentiation.  Free parameters are named as the knobs of
+:mod:`crosswind.solver.pipeline`; every other number keeps its scenario value.
+
+Data: a CSV file read by :func:`crosswind.solver.measurements.load_measurements` with the columns
+``<axis column> [unit]``, ``<quantity> [unit]`` and optionally ``<quantity>_err [unit]`` (standard
+errors; with them the covariance is absolute).  Axis columns: ``gate`` (gate_V), ``density``
+(density_cm2), ``mu`` (mu_eV), ``temperature`` (temperature_K), ``current`` (current_uA),
+``sigma_xx`` (scaling analysis).
+
+Outputs (folder): ``fit_summary.md``, ``fit.json``, ``fit_curve.png`` (fitted curve over the data),
+``fit_residuals.png``, ``fitted_scenario.toml`` (the scenario with the best-fit values written
+back; rerun it with ``crosswind run``).  With ``[fit] scaling = true`` (quantity "ratio" against
+"sigma_xx") the data are fitted by E⊥/E∥² = C0 + C1σ + C2σ² (:func:`~crosswind.solver.fit.scaling_fit`).
+"""
+from __future__ import annotations
+
+import json
+import math
+import tomllib
+from pathlib import Path
+
+import jax.numpy as jnp
+import numpy as np
+
+from .pipeline import OUTPUTS, base_values, evaluate, scenario_knobs
+
+AXIS_COLUMNS = {"gate_V": ("gate", "V", "V", 1.0), "density_cm2": ("density", "cm^-2", "cm^-2", 1.0),
+                "mu_eV": ("mu", "eV", "eV", 1.0), "temperature_K": ("temperature", "K", "K", 1.0),
+                "current_uA": ("current", "uA", "uA", 1.0), "sigma_xx": ("sigma_xx", "S", "S", 1.0)}
+QUANTITY_UNITS = {"V2w": "V", "Vxx": "V", "sigma_xx": "S", "ratio": "m/V"}
+SHOW = {"V2w": (1e9, "nV"), "Vxx": (1e3, "mV"), "sigma_xx": (1e3, "mS"), "ratio": (1.0, "m/V")}
+
+
+class FitInputError(ValueError):
+    """Bad data file or fit request; the message names the file, column or parameter and the fix."""
+
+
+def load_data(scn, path):
+    spec = scn.fit
+    col, unit, _, _ = AXIS_COLUMNS[spec.axis]
+    q = spec.quantity
+    cols = {col: unit, q: QUANTITY_UNITS[q]}
+    npar = max(len(spec.parameters), 3 if spec.scaling else 1)
+    try:
+        data = _load(path, cols, npar)
+    except (ValueError, FileNotFoundError) as exc:
+        raise FitInputError(str(exc)) from None
+    try:
+        err = _load(path, {f"{q}_err": QUANTITY_UNITS[q]}, None)[f"{q}_err"]
+    except ValueError as exc:
+        if "is missing" in str(exc):
+            err = None
+        else:
+            raise FitInputError(str(exc)) from None
+    if err is not None and (np.any(err <= 0)):
+        raise FitInputError(f"{path}: column '{q}_err' must hold positive standard errors")
+    if not spec.scaling and data[q].size <= len(spec.parameters) and err is None:
+        raise FitInputError(f"{path}: {data[q].size} data point(s) for {len(spec.parameters)} free parameter(s) "
+                            "leave no degrees of freedom for error estimates; add points, give a "
+                            f"'{q}_err [unit]' column, or free fewer parameters")
+    return data[col], data[q], err
+
+
+def _load(path, cols, min_points):
+    from .measurements import load_measurements
+    return load_measurements(path, cols, min_points=min_points)
+
+
+def _predictor(scn):
+    spec = scn.fit
+    at = dict(spec.at)
+    probe = {a.name: a for a in scn.axes}
+    base = base_values(scn, {k: v for k, v in at.items()}, who="[fit]")
+    base.pop(spec.axis, None)
+    missing = [k for k, v in base.items() if v is None]
+    if missing:
+        raise FitInputError(f"{scn.path}: [fit]: {', '.join(missing)} are swept in the scenario; fix them for "
+                            f"the fit with at = {{{missing[0]} = ...}}")
+    del probe
+
+    def predict(params, x):
+        vals = dict(base)
+        vals.update(params)
+        vals[spec.axis] = jnp.asarray(x, dtype=jnp.float64)
+        return evaluate(scn, vals, resolution=spec.resolution)[spec.quantity]
+
+    return predict, base
+
+
+def run_fit(scn, data_path, folder, *, starts=None) -> dict:
+    """Fit, write every output into ``folder``; returns the fit.json content."""
+    from .fit import fit
+    spec = scn.fit
+    x, y, err = load_data(scn, data_path)
+    folder = Path(folder)
+    if spec.scaling:
+        return _run_scaling(scn, x, y, err, data_path, folder)
+    predict, base = _predictor(scn)
+    initial = {n: i for n, i, _, _ in spec.parameters}
+    bounds = {n: (lo, hi) for n, _, lo, hi in spec.parameters}
+    yscale = float(np.max(np.abs(y))) or 1.0
+    sig = err if err is not None else None
+    resid = lambda p: (predict(p, x) - jnp.asarray(y)) / (1.0 if sig is not None else yscale)
+    res = fit(resid, initial, bounds=bounds, starts=starts or spec.starts, sigma=sig,
+              absolute_sigma=err is not None, jit=True)
+    best = {k: jnp.asarray(v) for k, v in res.values.items()}
+    xs = np.linspace(float(np.min(x)), float(np.max(x)), 25)
+    curve = np.asarray(predict(best, xs))
+    model_at = np.asarray(predict(best, x))
+    units = scenario_knobs(scn)
+    folder.mkdir(parents=True, exist_ok=True)
+    out = {"quantity": spec.quantity, "quantity_unit": QUANTITY_UNITS[spec.quantity], "axis": spec.axis,
+           "data_file": str(data_path), "points": int(y.size), "resolution": spec.resolution,
+           "values": {k: res.values[k] for k in res.free}, "stderr": {k: res.stderr[k] for k in res.free},
+           "units": {k: units[k] for k in res.free}, "initial": initial,
+           "correlation": np.asarray(res.correlation).tolist(), "free": list(res.free),
+           "chi2_reduced": res.chi2_reduced, "dof": res.dof, "converged": res.converged, "message": res.message,
+           "identifiability_warnings": list(res.identifiability_warnings), "starts": res.starts_tried,
+           "nfev": res.nfev, "absolute_errors": err is not None,
+           "data": {"x": x.tolist(), "y": y.tolist(), "err": None if err is None else err.tolist(),
+                    "model": model_at.tolist()}}
+    (folder / "fit.json").write_text(json.dumps(out, indent=1, default=float), encoding="utf-8")
+    _plots(scn, x, y, err, xs, curve, model_at, folder)
+    (folder / "fitted_scenario.toml").write_text(fitted_scenario_text(scn, res.values, res.free), encoding="utf-8")
+    (folder / "fit_summary.md").write_text(fit_markdown(scn, out), encoding="utf-8")
+    return out
+
+
+def _plots(scn, x, y, err, xs, curve, model_at, folder):
+    from .report import _plt
+    plt = _plt()
+    spec = scn.fit
+    f, u = SHOW[spec.quantity]
+    col, unit, _, _ = AXIS_COLUMNS[spec.axis]
+    fig, ax = plt.subplots(figsize=(5.5, 4.0))
+    ax.errorbar(x, y * f, yerr=None if err is None else err * f, fmt="o", label="data")
+    ax.plot(xs, curve * f, "-", label="best fit")
+    ax.set_xlabel(f"{col} ({unit})")
+    ax.set_ylabel(f"{spec.quantity} ({u})")
+    ax.legend()
+    fig.tight_layout()
+    fig.savefig(folder / "fit_curve.png", dpi=110)
+    plt.close(fig)
+    fig, ax = plt.subplots(figsize=(5.5, 3.2))
+    r = (y - model_at) / (err if err is not None else 1.0)
+    ax.axhline(0, color="k", lw=0.6)
+    ax.plot(x, r if err is not None else r * f, "o")
+    ax.set_xlabel(f"{col} ({unit})")
+    ax.set_ylabel("(data − model)/error" if err is not None else f"data − model ({u})")
+    fig.tight_layout()
+    fig.savefig(folder / "fit_residuals.png", dpi=110)
+    plt.close(fig)
+
+
+def fit_markdown(scn, out) -> str:
+    q, ax = out["quantity"], out["axis"]
+    lines = ["# Crosswind fit", "",
+             f"Scenario `{Path(str(scn.path)).name}`; data `{Path(out['data_file']).name}` ({out['points']} points): "
+             f"{OUTPUTS[q][1]} against `{ax}`, model through the `crosswind run` device pipeline at k-mesh "
+             f"level {out['resolution']}.", "",
+             "## Best-fit values", "", "| parameter | value | standard error | unit | start |", "|---|---|---|---|---|"]
+    for k in out["free"]:
+        lines.append(f"| `{k}` | {out['values'][k]:.6g} | {out['stderr'][k]:.3g} | {out['units'][k]} | "
+                     f"{out['initial'][k]:g} |")
+    lines += ["", "Standard errors from the local covariance (JᵀJ)⁻¹"
+              + (" with the data's standard errors (absolute)." if out["absolute_errors"]
+                 else " scaled by χ²_red (no error column in the data)."), ""]
+    if len(out["free"]) > 1:
+        lines += ["## Correlation matrix", "", "| | " + " | ".join(f"`{k}`" for k in out["free"]) + " |",
+                  "|---" * (len(out["free"]) + 1) + "|"]
+        for k, row in zip(out["free"], out["correlation"]):
+            lines.append(f"| `{k}` | " + " | ".join(f"{c:+.3f}" for c in row) + " |")
+        lines.append("")
+    lines += ["## Fit quality", "",
+              f"- {'converged' if out['converged'] else '**NOT converged**'}: {out['message']}",
+              f"- χ²_red = {out['chi2_reduced']:.4g} ({out['dof']} degrees of freedom), {out['nfev']} model evaluations, "
+              f"{out['starts']} start(s)"]
+    if out["identifiability_warnings"]:
+        lines += [f"- identifiability: {w}" for w in out["identifiability_warnings"]]
+    else:
+        lines.append("- identifiability: no warnings (all |correlations| ≤ 0.99, JᵀJ well conditioned)")
+    lines += ["", "Files: `fit_curve.png` (fitted curve over the data), `fit_residuals.png`, `fit.json`, "
+              "`fitted_scenario.toml` (rerun with `crosswind run`).", ""]
+    return "\n".join(lines)
+
+
+def _run_scaling(scn, s, y, err, data_path, folder):
+    from .fit import scaling_fit
+    try:
+        sf = scaling_fit(s, y, err)
+    except ValueError as exc:
+        raise FitInputError(f"{data_path}: {exc}") from None
+    folder.mkdir(parents=True, exist_ok=True)
+    out = {"scaling": True, "data_file": str(data_path), "points": int(s.size),
+           "coefficients": dict(zip(("c0", "c1", "c2"), sf.coefficients)),
+           "stderr": dict(zip(("c0", "c1", "c2"), sf.stderr)), "units": sf.units, "meaning": sf.meaning,
+           "correlation": np.asarray(sf.correlation).tolist(), "chi2_reduced": sf.chi2_reduced, "dof": sf.dof}
+    (folder / "fit.json").write_text(json.dumps(out, indent=1, default=float), encoding="utf-8")
+    from .report import _plt
+    plt = _plt()
+    xs = np.linspace(float(np.min(s)), float(np.max(s)), 50)
+    for name, (xv, yv, lab) in {"fit_curve.png": (xs, sf.predict(xs), "C0 + C1σ + C2σ²"),
+                                "fit_residuals.png": (s, sf.residuals, "residual")}.items():
+        fig, ax = plt.subplots(figsize=(5.5, 4.0))
+        if name == "fit_curve.png":
+            ax.errorbar(s, y, yerr=err, fmt="o", label="data")
+        ax.plot(xv, yv, "-" if name == "fit_curve.png" else "o", label=lab)
+        ax.set_xlabel("σ_xx (S)")
+        ax.set_ylabel("E⊥/E∥² (m/V)")
+        ax.legend()
+        fig.tight_layout()
+        fig.savefig(folder / name, dpi=110)
+        plt.close(fig)
+    lines = ["# Crosswind scaling fit", "",
+             f"Data `{Path(str(data_path)).name}` ({s.size} points): E⊥/E∥² = C0 + C1 σ_xx + C2 σ_xx² "
+             "(Du et al., Nat. Commun. 10, 3047, 2019; Kang et al., Nat. Mater. 18, 324, 2019).", "",
+             "| coefficient | value | standard error | unit | meaning |", "|---|---|---|---|---|"]
+    for k, v, e in zip(("c0", "c1", "c2"), sf.coefficients, sf.stderr):
+        lines.append(f"| {k.upper()} | {v:+.4e} | {e:.2e} | {sf.units[k]} | {sf.meaning[k]} |")
+    lines += ["", f"χ²_red = {sf.chi2_reduced:.4g} ({sf.dof} degrees of freedom).", ""]
+    (folder / "fit_summary.md").write_text("\n".join(lines), encoding="utf-8")
+    return out
+
+
+# ------------------------------------------------------------------ writing the scenario back -
+def _where(scn, knob, data):
+    """(table path, key) where a knob lives in the scenario TOML."""
+    if knob == "strain":
+        return ("material", "strain"), "magnitude"
+    if knob in ("temperature_K", "tau_fs", "gate_V", "density_cm2", "mu_eV"):
+        return ("conditions",), knob
+    if knob in ("tau0_fs", "exponent", "reference_energy_eV", "energy_scale_eV", "tau_impurity_fs",
+                "tau_phonon_fs", "reference_temperature_K"):
+        return ("conditions", "scattering"), knob
+    if knob == "gate_offset_V":
+        return ("device",), knob
+    if knob == "current_angle_deg":
+        return (("device",) if "current_angle_deg" in data.get("device", {}) else ("conditions",)), knob
+    return ("material", "parameters"), knob
+
+
+def fitted_scenario_text(scn, values, free) -> str:
+    data = tomllib.loads(scn.text)
+    for k in free:
+        path, key = _where(scn, k, data)
+        t = data
+        for p in path:
+            t = t.setdefault(p, {})
+        t[key] = float(values[k])
+    fitt = data.get("fit", {})
+    for k in free:
+        if k in fitt.get("parameters", {}):
+            sp = fitt["parameters"][k]
+            lo, hi = (sp.get("bounds") or [-math.inf, math.inf])
+            sp["initial"] = float(min(max(values[k], lo), hi))
+    if "data" in fitt:
+        fitt["data"] = str(scn.fit.data)
+    if scn.material.tight_binding is not None:
+        data["material"]["tight_binding"] = str(scn.material.tight_binding)
+    data.setdefault("output", {})["folder"] = "rerun"
+    head = (f"# Scenario with best-fit values written back by `crosswind fit` ({', '.join(free)}).\n"
+            f"# Rerun with: crosswind run fitted_scenario.toml\n")
+    return head + dumps_toml(data)
+
+
+def _val(v) -> str:
+    if isinstance(v, bool):
+        return "true" if v else "false"
+    if isinstance(v, (int,)):
+        return str(v)
+    if isinstance(v, float):
+        if math.isinf(v):
+            return "inf" if v > 0 else "-inf"
+        return repr(v)
+    if isinstance(v, str):
+        return json.dumps(v, ensure_ascii=False)
+    if isinstance(v, list):
+        return "[" + ", ".join(_val(x) for x in v) + "]"
+    if isinstance(v, dict):
+        return "{" + ", ".join(f"{k} = {_val(x)}" for k, x in v.items()) + "}"
+    raise TypeError(f"cannot write {v!r} to TOML")
+
+
+def dumps_toml(data: dict, prefix: str = "") -> str:
+    """A minimal TOML writer for scenario files (tables, scalars, lists, inline tables)."""
+    lines, subs = [], []
+    for k, v in data.items():
+        if isinstance(v, dict) and not (prefix == "fit" or prefix.startswith("fit.") or _is_sweep(v)
+                                        or prefix == "sensitivities"):
+            subs.append((k, v))
+        else:
+            lines.append(f"{k} = {_val(v)}")
+    out = ""
+    if prefix and (lines or not subs):
+        out += f"[{prefix}]\n"
+    if lines:
+        out += "\n".join(lines) + "\n\n"
+    for k, v in subs:
+        out += dumps_toml(v, f"{prefix}.{k}" if prefix else k)
+    return out
+
+
+def _is_sweep(v: dict) -> bool:
+    return "start" in v and "stop" in v
+
+
+__all__ = ["run_fit", "FitInputError", "fitted_scenario_text", "dumps_toml", "AXIS_COLUMNS"]
