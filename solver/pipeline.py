@@ -180,7 +180,7 @@ def evaluate(scn, values: dict, *, resolution: int, intrinsic: bool | None = Non
     else:
         scat = MatthiessenTau(flat(v["tau_impurity_fs"]), flat(v["tau_phonon_fs"]), flat(v["reference_temperature_K"]))
     r = response(model, mu=mu, temperature=T, tau=scat, frequency=scn.device.frequency_Hz, resolution=resolution,
-                 intrinsic=scn.numerics.intrinsic if intrinsic is None else intrinsic)
+                 intrinsic=scn.numerics.intrinsic if intrinsic is None else intrinsic, estimate_error=False)
     d = scn.device
     bar = HallBar(d.width_um, d.length_um, d.current_uA, d.frequency_Hz)
     ang = flat(v["current_angle_deg"])
