@@ -128,3 +128,15 @@ def choice(name, default, choices, meaning, unit="") -> Parameter:
     """Shorthand for a static (structural) parameter."""
     return Parameter(name=name, unit=unit, default=default, meaning=meaning, kind="choice",
                      choices=tuple(choices))
+
+
+def pop_lattice_length(params: dict, key: str, owner: str) -> float:
+    """Remove a lattice-setting length (Å) from the real parameters and return it as a float.
+    Lattice vectors are static metadata, so such a length cannot be traced; strain is the
+    differentiable way to deform the lattice."""
+    value = params.pop(key)
+    try:
+        return float(value)
+    except Exception as exc:
+        raise ValueError(f"{owner}: '{key}' sets the lattice and cannot be traced; pass a number in Å "
+                         "(differentiate with respect to strain instead).") from exc

@@ -16,7 +16,7 @@ import jax.numpy as jnp
 
 from ..band_model import BandModel
 from ..domain import Lattice
-from ..params import ParamSpec, real
+from ..params import ParamSpec, pop_lattice_length, real
 from ..registry import register
 from ..twoband import hamiltonian_of
 
@@ -64,11 +64,7 @@ SPEC_FULL = ParamSpec(SPEC.parameters + (
           hamiltonian="2t2 cosφ Σcos(k·b_i) + t1 Σ[cos(k·a_i)σx + sin(k·a_i)σy] + [M − 2t2 sinφ Σ sin(k·b_i)]σz",
           source="Haldane, PRL 61, 2015 (1988)")
 def build_haldane(p, s) -> BandModel:
-    acc = p.pop("bond_length")
-    try:
-        acc = float(acc)
-    except Exception as exc:
-        raise ValueError("haldane: 'bond_length' sets the lattice and cannot be traced; pass a number in Å.") from exc
+    acc = pop_lattice_length(p, "bond_length", "haldane")
     dv, h = _dvector_for(acc)
     a = _A * acc
     lattice = Lattice(vectors=(tuple(a[1] - a[2]), tuple(a[2] - a[0])),

@@ -47,7 +47,7 @@ import jax.numpy as jnp
 
 from ..band_model import BandModel
 from ..domain import Lattice
-from ..params import ParamSpec, choice, real
+from ..params import ParamSpec, pop_lattice_length, choice, real
 from ..registry import build, register
 from ..strain import deformation, deform, scaled_hopping, strain_tensor, uniaxial
 from ..twoband import hamiltonian_of
@@ -146,12 +146,7 @@ def _newton_dirac(model, valley, steps):
           source="common practice (Castro Neto et al., RMP 81, 109, 2009); strain: Pereira, Castro Neto, "
                  "Peres, PRB 80, 045401 (2009)")
 def build_honeycomb(p, s) -> BandModel:
-    a = p.pop("lattice_constant")
-    try:
-        a = float(a)
-    except Exception as exc:
-        raise ValueError("honeycomb: 'lattice_constant' sets the lattice and cannot be traced; "
-                         "pass a number in Å.") from exc
+    a = pop_lattice_length(p, "lattice_constant", "honeycomb")
     acc = a / S3
     dv, h = _functions_for(acc)
     bonds = BONDS * acc

@@ -38,7 +38,7 @@ import jax.numpy as jnp
 
 from ..band_model import BandModel
 from ..domain import Lattice
-from ..params import ParamSpec, real
+from ..params import ParamSpec, pop_lattice_length, real
 from ..registry import register
 from ..strain import deform, deformation, scaled_hopping, strain_tensor
 
@@ -143,12 +143,7 @@ def _hamiltonian_for(a: float):
           source="Liu, Shan, Yao, Yao, Xiao, PRB 88, 085433 (2013); strain: bond-length scaling as in "
                  "Pereira, Castro Neto, Peres, PRB 80, 045401 (2009)")
 def build_tmd_lattice(p, s) -> BandModel:
-    a = p.pop("lattice_constant")
-    try:
-        a = float(a)
-    except Exception as exc:
-        raise ValueError("tmd-lattice: 'lattice_constant' sets the lattice and cannot be traced; "
-                         "pass a number in Å (differentiate with respect to strain instead).") from exc
+    a = pop_lattice_length(p, "lattice_constant", "tmd-lattice")
     s3 = np.sqrt(3.0)
     lattice = Lattice(vectors=((a, 0.0), (a / 2, s3 * a / 2)),
                       positions=((0.0, 0.0), (0.0, 0.0), (0.0, 0.0)))

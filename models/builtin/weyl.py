@@ -29,7 +29,7 @@ import jax.numpy as jnp
 
 from ..band_model import BandModel
 from ..domain import Lattice
-from ..params import ParamSpec, real
+from ..params import ParamSpec, pop_lattice_length, real
 from ..registry import register
 from ..twoband import hamiltonian_of
 
@@ -73,12 +73,7 @@ def _dvector_for(a: float):
           source="common practice; AHE of a Weyl pair: Burkov & Balents, PRL 107, 127205 (2011); "
                  "Yang, Lu, Ran, PRB 84, 075129 (2011)")
 def build_weyl(p, s) -> BandModel:
-    a = p.pop("lattice_constant")
-    try:
-        a = float(a)
-    except Exception as exc:
-        raise ValueError("weyl: 'lattice_constant' sets the lattice and cannot be traced; "
-                         "pass a number in Å.") from exc
+    a = pop_lattice_length(p, "lattice_constant", "weyl")
     dv, h = _dvector_for(a)
     lattice = Lattice(vectors=((a, 0.0, 0.0), (0.0, a, 0.0), (0.0, 0.0, a)),
                       positions=((0.0, 0.0, 0.0), (0.0, 0.0, 0.0)))
