@@ -141,8 +141,14 @@ def plot_bands(model, mu, path: Path):
     ax.set_ylabel("energy (eV)")
     ax.set_title(f"{model.name}: bands coloured by Berry curvature")
     ax.legend(loc="best", fontsize=8)
-    fig.colorbar(sc, ax=ax, label="Ω (Å²)")
+    cb = fig.colorbar(sc, ax=ax, label="Ω (Å²)", ticks=[-vmax, -vmax * 1e-2, 0.0, vmax * 1e-2, vmax])
+    cb.ax.set_yticklabels([f"{t:.2g}" for t in (-vmax, -vmax * 1e-2, 0.0, vmax * 1e-2, vmax)])
+    from .response import neutral_filling
     lo, hi = mu - 0.5 * max(abs(mu), 0.2), mu + 0.5 * max(abs(mu), 0.2)
+    filled = neutral_filling(model)
+    if filled > 0:   # show the top of the filled bands too, so the gap is visible
+        top = float(np.max(e[:, :filled]))
+        lo = min(lo, top - 0.15 * (hi - min(lo, top)))
     if np.any((e > lo) & (e < hi)):
         ax.set_ylim(min(lo, float(np.min(e))) if model.domain.periodic else lo, hi)
     fig.tight_layout()
