@@ -1,5 +1,7 @@
-"""Helpers for two-band blocks H = d0·1 + d·σ."""
+"""Helpers for two-band blocks H = d0·1 + d·σ, and for binding static lattice lengths."""
 from __future__ import annotations
+
+from functools import lru_cache
 
 import jax.numpy as jnp
 
@@ -12,6 +14,19 @@ def from_dvector(d0, d):
     return d0.astype(jnp.complex128)[:, None, None] * EYE2[None] + jnp.einsum("sc,cij->sij", d.astype(jnp.complex128), PAULI)
 
 
+@lru_cache(maxsize=None)
+def bind_length(fn, length: float):
+    """``fn(k, p, length)`` as a function of (k, p), one object per (fn, length), so that models
+    built twice with the same lattice share JAX's compilation cache."""
+
+    def bound(k, p):
+        return fn(k, p, length)
+
+    bound.__name__ = f"{fn.__name__}_{length:g}"
+    return bound
+
+
+@lru_cache(maxsize=None)
 def hamiltonian_of(dvector):
     """A Hamiltonian function built from a d-vector function (kept as a module-level object by
     the caller so that its identity, and hence JAX's compilation cache, is stable)."""

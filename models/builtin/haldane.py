@@ -18,7 +18,7 @@ from ..band_model import BandModel
 from ..domain import Lattice
 from ..params import ParamSpec, pop_lattice_length, real
 from ..registry import register
-from ..twoband import hamiltonian_of
+from ..twoband import bind_length, hamiltonian_of
 
 SPEC = ParamSpec((
     real("t1", "eV", 1.0, "nearest-neighbour hopping", -20.0, 20.0),
@@ -42,18 +42,6 @@ def dvector(k, p, acc=1.42):
     return d0[None], d[None]
 
 
-_DV = {}
-
-
-def _dvector_for(acc: float):
-    if acc not in _DV:
-        def dv(k, p, _acc=acc):
-            return dvector(k, p, _acc)
-        dv.__name__ = f"haldane_dvector_{acc:g}"
-        _DV[acc] = (dv, hamiltonian_of(dv))
-    return _DV[acc]
-
-
 SPEC_FULL = ParamSpec(SPEC.parameters + (
     real("bond_length", "Å", 1.42, "carbon–carbon distance a_cc (sets the k scale)", 0.1, 100.0),
 ), owner="haldane")
@@ -65,7 +53,8 @@ SPEC_FULL = ParamSpec(SPEC.parameters + (
           source="Haldane, PRL 61, 2015 (1988)")
 def build_haldane(p, s) -> BandModel:
     acc = pop_lattice_length(p, "bond_length", "haldane")
-    dv, h = _dvector_for(acc)
+    dv = bind_length(dvector, acc)
+    h = hamiltonian_of(dv)
     a = _A * acc
     lattice = Lattice(vectors=(tuple(a[1] - a[2]), tuple(a[2] - a[0])),
                       positions=((0.0, 0.0), tuple(-a[0])))

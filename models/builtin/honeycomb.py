@@ -50,7 +50,7 @@ from ..domain import Lattice
 from ..params import ParamSpec, pop_lattice_length, choice, real
 from ..registry import build, register
 from ..strain import deformation, deform, scaled_hopping, strain_tensor, uniaxial
-from ..twoband import hamiltonian_of
+from ..twoband import bind_length, hamiltonian_of
 
 S3 = np.sqrt(3.0)
 #: bond vectors A -> B in units of a_cc (rows)
@@ -87,19 +87,6 @@ def dvector(k, p, acc):
     phase = new @ k
     d = jnp.stack([-jnp.sum(t * jnp.cos(phase)), jnp.sum(t * jnp.sin(phase)), p["staggered"]])
     return jnp.zeros((1,)), d[None]
-
-
-_FUNCS: dict = {}
-
-
-def _functions_for(acc: float):
-    """Module-cached (dvector, hamiltonian) per bond length so their identity is stable."""
-    if acc not in _FUNCS:
-        def dv(k, p, _acc=acc):
-            return dvector(k, p, _acc)
-        dv.__name__ = f"honeycomb_dvector_{acc:g}"
-        _FUNCS[acc] = (dv, hamiltonian_of(dv))
-    return _FUNCS[acc]
 
 
 def valley_point(lattice_constant: float = 2.46, valley: int = 1) -> np.ndarray:
@@ -148,7 +135,8 @@ def _newton_dirac(model, valley, steps):
 def build_honeycomb(p, s) -> BandModel:
     a = pop_lattice_length(p, "lattice_constant", "honeycomb")
     acc = a / S3
-    dv, h = _functions_for(acc)
+    dv = bind_length(dvector, acc)
+    h = hamiltonian_of(dv)
     bonds = BONDS * acc
     lattice = Lattice(vectors=(tuple(bonds[0] - bonds[1]), tuple(bonds[0] - bonds[2])),
                       positions=((0.0, 0.0), tuple(bonds[0])))

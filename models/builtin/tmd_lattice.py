@@ -40,6 +40,7 @@ from ..band_model import BandModel
 from ..domain import Lattice
 from ..params import ParamSpec, pop_lattice_length, real
 from ..registry import register
+from ..twoband import bind_length
 from ..strain import deform, deformation, scaled_hopping, strain_tensor
 
 SPEC = ParamSpec((
@@ -123,18 +124,6 @@ def closed_form(k, p, a=3.190):
                       jnp.stack([cj(h2), cj(h12), h22])])
 
 
-_H = {}
-
-
-def _hamiltonian_for(a: float):
-    if a not in _H:
-        def h(k, p, _a=a):
-            return hamiltonian(k, p, _a)
-        h.__name__ = f"tmd_lattice_hamiltonian_{a:g}"
-        _H[a] = h
-    return _H[a]
-
-
 @register("tmd-lattice", SPEC,
           summary="three-band (d_z², d_xy, d_x²−y²) nearest-neighbour TMD lattice with spin–orbit "
                   "coupling and bond-geometry strain (2D lattice)",
@@ -147,7 +136,7 @@ def build_tmd_lattice(p, s) -> BandModel:
     s3 = np.sqrt(3.0)
     lattice = Lattice(vectors=((a, 0.0), (a / 2, s3 * a / 2)),
                       positions=((0.0, 0.0), (0.0, 0.0), (0.0, 0.0)))
-    return BandModel(name="tmd-lattice", dim=2, hamiltonian=_hamiltonian_for(a), params=p, spec=SPEC,
+    return BandModel(name="tmd-lattice", dim=2, hamiltonian=bind_length(hamiltonian, a), params=p, spec=SPEC,
                      domain=lattice, degeneracy=1.0, blocks=2, block_size=3,
                      deformation=deformation_of, static=(("lattice_constant", a),),
                      description="three-band NN TMD model, blocks spin up, spin down",

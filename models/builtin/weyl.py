@@ -31,7 +31,7 @@ from ..band_model import BandModel
 from ..domain import Lattice
 from ..params import ParamSpec, pop_lattice_length, real
 from ..registry import register
-from ..twoband import hamiltonian_of
+from ..twoband import bind_length, hamiltonian_of
 
 SPEC = ParamSpec((
     real("hopping", "eV", 1.0, "hopping t (node dispersion along x and in the y–z plane)", -20.0, 20.0),
@@ -54,18 +54,6 @@ def dvector(k, p, a=3.0):
     return d0[None], d[None]
 
 
-_DV = {}
-
-
-def _dvector_for(a: float):
-    if a not in _DV:
-        def dv(k, p, _a=a):
-            return dvector(k, p, _a)
-        dv.__name__ = f"weyl_dvector_{a:g}"
-        _DV[a] = (dv, hamiltonian_of(dv))
-    return _DV[a]
-
-
 @register("weyl", SPEC,
           summary="magnetic Weyl semimetal, one pair of tilted nodes at (±k0, 0, 0) (3D cubic lattice)",
           hamiltonian="w sin k_xa + [t(cos k0a − cos k_xa) + m(2 − cos k_ya − cos k_za)]σx "
@@ -74,7 +62,8 @@ def _dvector_for(a: float):
                  "Yang, Lu, Ran, PRB 84, 075129 (2011)")
 def build_weyl(p, s) -> BandModel:
     a = pop_lattice_length(p, "lattice_constant", "weyl")
-    dv, h = _dvector_for(a)
+    dv = bind_length(dvector, a)
+    h = hamiltonian_of(dv)
     lattice = Lattice(vectors=((a, 0.0, 0.0), (0.0, a, 0.0), (0.0, 0.0, a)),
                       positions=((0.0, 0.0, 0.0), (0.0, 0.0, 0.0)))
     return BandModel(name="weyl", dim=3, hamiltonian=h, params=p, spec=SPEC, domain=lattice,
