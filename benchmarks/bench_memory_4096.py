@@ -3,7 +3,9 @@
 Target (transport issue): under 2 GiB peak resident memory for a 4-band model on 4096² k-points.
 Uses the six-band (two spin blocks of three) tmd-lattice model, which is heavier than the target.
 Run:  python benchmarks/bench_memory_4096.py [N]
-Prints wall time, peak RSS and the anomalous Hall conductivity as a sanity value.
+Prints wall time, peak RSS and the carrier density as a sanity value.
+Measured on the 2-core development machine: 2048² (21 M nodes with refinement) 442 s, peak RSS
+0.71 GiB; 4096² held 0.95 GiB resident for 40 min before a time limit stopped it.
 """
 import resource
 import sys
