@@ -16,8 +16,8 @@ The model is a pytree whose only leaves are the parameter values, so it can be p
 """
 from __future__ import annotations
 
-from dataclasses import dataclass, field, replace
-from typing import Any, Callable, Optional
+from dataclasses import dataclass, replace
+from typing import Callable, Optional
 
 import jax
 import jax.numpy as jnp

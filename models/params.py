@@ -8,7 +8,7 @@ from __future__ import annotations
 
 import difflib
 import math
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 from typing import Any, Mapping
 
 import jax

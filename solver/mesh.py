@@ -32,7 +32,7 @@ import jax.numpy as jnp
 import numpy as np
 
 from crosswind.models.band_model import BandModel
-from crosswind.models.domain import Continuum, Lattice
+from crosswind.models.domain import Lattice
 
 WINDOW = 36.0
 

@@ -68,7 +68,6 @@ def _model_at(scn, ds, idx):
 # ----------------------------------------------------------------------------- figures --------
 def _kpath(model, mu):
     from crosswind.models.domain import Lattice
-    from .response import neutral_filling  # noqa: F401
     if isinstance(model.domain, Lattice):
         b = np.asarray(model.reciprocal_vectors())
         b1, b2 = b[0], b[1]
@@ -317,7 +316,6 @@ def summary_markdown(ds, scn, idx, angle_info=None) -> str:
     amp, rms, phase = float(g("v2w_y_amplitude")), float(g("v2w_y_rms")), float(g("v2w_y_phase_deg"))
     mu = float(ds["mu"].isel(sel_pt).values)
     dens = float(ds["density"].isel(sel_pt).values) * 1e-4
-    T = float(ds["temperature"].values[idx["temperature"]])
     sbar = g("sigma_bar")
     parts = _bar_parts(ds, idx)
     total = sum(abs(v) for v in parts.values()) or 1.0

@@ -37,7 +37,7 @@ symmetry, to the size of its integrand).
 """
 from __future__ import annotations
 
-from dataclasses import dataclass, field, fields
+from dataclasses import dataclass, field
 from functools import partial
 from typing import Any
 

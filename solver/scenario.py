@@ -30,7 +30,6 @@ import math
 import tomllib
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Any
 
 import numpy as np
 

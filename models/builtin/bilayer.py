@@ -34,7 +34,6 @@ from __future__ import annotations
 
 import math
 
-import jax
 import jax.numpy as jnp
 
 from ..band_model import BandModel

@@ -55,7 +55,6 @@ from __future__ import annotations
 from dataclasses import dataclass
 from typing import Any, Mapping
 
-import jax
 import jax.numpy as jnp
 
 from ..band_model import BandModel
