@@ -16,7 +16,7 @@ The function is checked once, at build time, at one generic k-point with the res
 it must trace with ``jax.numpy`` (so ``band_geometry`` can differentiate it with respect to k),
 return a finite square ``(m, m)`` or ``(S, m, m)`` array, Hermitian to 1e-10 relative.  A lattice
 domain needs one orbital position per row of a block; the Hamiltonian must then use Bloch phases
-that include those positions (physics-reference.md §2.5, convention I).
+that include those positions (docs/theory.md §2.5, convention I).
 
 Two-band blocks may also pass ``dvector(k, params) -> (d0 (S,), d (S, 3))`` with H = d0 + d·σ:
 band geometry then uses closed forms (much faster).  It is checked against ``hamiltonian``.

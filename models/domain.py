@@ -1,7 +1,7 @@
 """Where a model lives in k-space: a periodic lattice or a continuum (k·p) window.
 
 Lattice models carry Bravais vectors and orbital positions (Å).  Their Hamiltonians use Bloch
-phases that include the orbital positions (physics-reference.md §2.5, "convention I"), the
+phases that include the orbital positions (docs/theory.md §2.5, "convention I"), the
 physical choice for anomalous velocity, curvature dipole and connection polarizability.  The
 periodic gauge needed by lattice Chern numbers is recovered by multiplying eigenvectors with
 ``exp(i k·τ_α)``.

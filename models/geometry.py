@@ -1,7 +1,7 @@
 """Band geometry at a batch of k-points by automatic differentiation.
 
 For each k the Hamiltonian blocks H(k) and their k-derivatives (``jax.jacfwd``) give, by the
-gauge-invariant sums over states of physics-reference.md §2 (never by differentiating
+gauge-invariant sums over states of docs/theory.md §2 (never by differentiating
 eigenvectors):
 
 * energies ε_n (eV), energy gradients ∂ε_n/∂k (eV Å) and velocities (1/ħ)∂ε_n/∂k (m/s);

@@ -8,7 +8,7 @@ The schema is documented with a commented example in ``docs/tight-binding-files.
     [[orbital]]     label, position (Å, Cartesian), onsite (optional, eV)
     [[hop]]         from, to (orbital labels), cell (integers), amplitude (eV)
 
-Hamiltonian (physics-reference.md §2.5, convention I: orbital positions in the Bloch phases):
+Hamiltonian (docs/theory.md §2.5, convention I: orbital positions in the Bloch phases):
 
     H_ab(k) = onsite_a δ_ab + Σ_hops [ A_h e^{i k·δ_h} δ_{a,from} δ_{b,to} + (h.c.) ],
     δ_h = Σ_i cell_i a_i + τ_to − τ_from,

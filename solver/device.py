@@ -1,6 +1,6 @@
 """Hall-bar voltages from sheet response tensors: crystal angle, open-circuit fields, lock-in readings.
 
-Geometry (physics-reference.md §10).  A 2D Hall bar of width W carries a current I along its
+Geometry (docs/theory.md §10).  A 2D Hall bar of width W carries a current I along its
 axis x', at angle θ (``angle_deg``) from the crystal x axis; y' = ẑ × x'.  Tensors are rotated
 from the crystal frame into the bar frame with R = [[cos θ, sin θ], [−sin θ, cos θ]]
 (v'_a = R_ai v_i):
@@ -15,7 +15,7 @@ minus downstream), V_y = W E_y (potential of the edge at y' = 0 minus that at y'
 Second order.  An ideal current source supplies no current at 2ω or at zero frequency, so the
 second-order field E⁽²⁾ makes the total second-order current vanish in *both* directions:
 σ' E⁽²⁾ + j⁽²⁾ = 0 → E⁽²⁾ = −σ'⁻¹ j⁽²⁾, with j⁽²ω⁾_a = χ'_abc E_b E_c and
-j⁽⁰⁾_a = χ'^dc_abc E_b E_c* (Sodemann–Fu phasor convention, design-notes §2).  With σ'_xy ≪ σ'_xx
+j⁽⁰⁾_a = χ'^dc_abc E_b E_c* (Sodemann–Fu phasor convention, docs/theory.md §A2).  With σ'_xy ≪ σ'_xx
 this reduces to the leading-order form of §10, E_y⁽²ω⁾ = −χ'_yxx E_x²/σ'_yy and
 V_y⁽²ω⁾ = −χ'_yxx I²/(W σ'_xx² σ'_yy): ∝ I² and ∝ 1/W at fixed current.  The zero-frequency
 (rectified) field uses the same σ' as the drive (exact at lock-in frequencies, ωτ ~ 1e-10).

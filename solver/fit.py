@@ -400,7 +400,7 @@ SCALING_MEANING = {
 @dataclass(frozen=True)
 class ScalingFit:
     """E⊥/E∥² = c0 + c1 σ_xx + c2 σ_xx² (units: m/V, m/(V·S), m/(V·S²) for 2D sheets).
-    Meaning of each coefficient: :data:`SCALING_MEANING` (physics-reference.md §12.2)."""
+    Meaning of each coefficient: :data:`SCALING_MEANING` (docs/theory.md §12.2)."""
 
     c0: float
     c1: float
@@ -435,7 +435,7 @@ def scaling_fit(sigma_xx, ratio, ratio_err=None, *, absolute_sigma: bool | None 
 
     The scaling form of Du, Wang, Li, Lu, Xie, Nat. Commun. 10, 3047 (2019) and Kang, Li, Sohn,
     Shan, Mak, Nat. Mater. 18, 324 (2019); its coefficients separate mechanisms by their power of
-    τ (physics-reference.md §12.2): C0 — τ-independent mechanisms (Berry-curvature dipole, side
+    τ (docs/theory.md §12.2): C0 — τ-independent mechanisms (Berry-curvature dipole, side
     jump, Gaussian skew scattering); C1, C2 — skew-scattering contributions scaling with σ and σ².
 
     ``sigma_xx`` (S, or S/m in 3D), ``ratio`` (m/V) and optional ``ratio_err`` (standard errors of

@@ -11,7 +11,7 @@ Figures, written next to the results:
 * ``angle.png`` — polar plot of |V_y^{2ω}| and |χ'_yxx| against the current angle, by rotating the
   peak point's tensors (no new k-space integration);
 * ``scaling.png`` (when temperature or a relaxation-time field is swept) — E⊥/E∥² against σ'_xx,
-  the scaling plot used to separate τ⁰, τ¹ and τ² mechanisms (physics-reference.md §12.2).
+  the scaling plot used to separate τ⁰, τ¹ and τ² mechanisms (docs/theory.md §12.2).
 
 ``summary.md`` states where the 2ω signal peaks and its size at the drive, the dominant mechanism
 (largest |χ'_yxx| part at the peak), conditions, units, assumptions, error estimates and cautions;

@@ -7,7 +7,7 @@ including ``chi_parts`` and ``chi_dc_parts``).  Names are real model parameters 
 ``"tilt"``, ``"strain_xx"``, … — see ``model.params``) or the conditions ``"mu"`` (eV),
 ``"temperature"`` (K) and ``"tau"`` (fs, constant relaxation time only).
 
-How it is computed (design-notes §3, §6):
+How it is computed (docs/theory.md §A3, §A6):
 
 * Forward mode, one Jacobian-vector product per name (``jax.jvp``): few inputs, many outputs.
   Every model parameter and every condition is always a differentiated input and only the

@@ -2,7 +2,7 @@
 
 Method: Fukui, Hatsugai, Suzuki, "Chern numbers in discretized Brillouin zone: efficient method
 of computing (spin) Hall conductances", J. Phys. Soc. Jpn. 74, 1674 (2005); recipe and sign in
-physics-reference.md §11.
+docs/theory.md §11.
 
 On an N×N mesh in reduced coordinates, k = (i/N) b1 + (j/N) b2 (so k + b_j is exactly a mesh
 point again), the chosen set of bands gives the link variables
@@ -14,12 +14,12 @@ Since U_μ ≈ exp(−i A_μ δ) for A = i<u|∇u>, Arg of the loop product is m
 
     C = −(1/2π) Σ_k F(k) · sgn det(b1, b2)
 
-in the convention Ω = ∇_k × i<u|∇_k u> (physics-reference.md §0.1; the Haldane lower band has
+in the convention Ω = ∇_k × i<u|∇_k u> (docs/theory.md §0.1; the Haldane lower band has
 C = +sgn(sin φ), §4).  The factor sgn det(b1, b2) makes the result independent of the
 handedness of the reciprocal vectors.
 
 Gauge: the Hamiltonians of Crosswind lattice models include the orbital positions in the Bloch
-phases (physics-reference.md §2.5, convention I), which are not periodic in k.  Eigenvectors are
+phases (docs/theory.md §2.5, convention I), which are not periodic in k.  Eigenvectors are
 multiplied by exp(i k·τ_α) (τ_α = ``model.orbital_positions()``, deformed by strain where the
 model says so), which makes them eigenvectors of the k-periodic Hamiltonian; the mesh then
 wraps around the Brillouin zone exactly.
@@ -146,7 +146,7 @@ def chern_number(model: BandModel, bands=None, mesh: int = 24, *, below: float |
             "closed Brillouin zone, which only lattice models have. For a valley Chern number "
             "integrate the Berry curvature instead: C_v = (1/2π) ∫ d²k Σ_occupied Ω_n(k) with "
             "band_geometry(model, k).berry_curvature over a window around each valley "
-            "(±1/2 per massive Dirac cone, physics-reference.md §3).")
+            "(±1/2 per massive Dirac cone, docs/theory.md §3).")
     if isinstance(mesh, bool) or not isinstance(mesh, numbers.Integral) or mesh < 2:
         raise ValueError(f"chern_number: mesh must be an integer >= 2 (points per reciprocal vector), got {mesh!r}.")
     n = int(mesh)

@@ -13,9 +13,9 @@ sampled over one period, and the orders in the field are separated exactly: odd 
 from ±E0, then Richardson extrapolation in the amplitude (E0 and 2E0) removes the E³ and E⁴
 terms.  Harmonics follow from the discrete Fourier sum over the period, with the phasor
 convention j(t) = Re[σE0 e^{iωt}] + Re[j⁽⁰⁾ + j⁽²ω⁾ e^{2iωt}], j⁽²ω⁾_a = χ_abc E_b E_c,
-j⁽⁰⁾_a = Re[χ^dc_abc E_b E_c*] (Sodemann & Fu, PRL 115, 216806, 2015; physics-reference.md §0.1,
+j⁽⁰⁾_a = Re[χ^dc_abc E_b E_c*] (Sodemann & Fu, PRL 115, 216806, 2015; docs/theory.md §0.1,
 §5, §11 "Independent oracle").  A static field gives j = σE + χ^static E E with
-χ^static = 2χ (physics-reference.md §0.1).
+χ^static = 2χ (docs/theory.md §0.1).
 
 The oracle never calls the solver or the band-geometry layer: energies come from the closed-form
 two-band d-vector in plain numpy, velocities and the two-band Berry curvature
@@ -100,7 +100,7 @@ def toy_velocities(k, p):
 
 def two_band_curvature(dvec, k):
     """Ω_∓ = ±d·(∂_x d × ∂_y d)/(2|d|³) (Å², lower band first) for H = d0 + d·σ, Ω = ∇×i<u|∇u>
-    (Berry, Proc. R. Soc. A 392, 45, 1984; physics-reference.md §2.1 and check value 5)."""
+    (Berry, Proc. R. Soc. A 392, 45, 1984; docs/theory.md §2.1 and check value 5)."""
     d = dvec(k)                                                           # (nk, 3)
     dd = _complex_step(dvec, k)                                           # (nk, 3, 2)
     triple = np.einsum("ka,ka->k", d, np.cross(dd[..., 0], dd[..., 1]))
@@ -279,7 +279,7 @@ def test_oracle_bands_match_the_model():
     comparison tests the transport solver, not a typing slip in the toy): energies against
     the eigenvalues of the model's Hamiltonian, the velocity against a finite difference of them,
     and the curvature formula against the massive-Dirac check value Ω_c(0) = −541.554 Å² of
-    physics-reference.md (check value 5, §3)."""
+    docs/theory.md (check value 5, §3)."""
     model = toy_model()
     p = {name: float(v) for name, v in model.params.items()}
     k = np.random.default_rng(3).uniform(-1.5, 1.5, size=(16, 2))
@@ -305,7 +305,7 @@ def _check(level, wt, key):
 def test_solver_matches_chambers_oracle(wt, key):
     """Drude σ (1/(1+iωτ)), anomalous Hall σ and Berry-curvature-dipole χ (2ω and dc) against the
     exact Chambers solution on the 24×24 mesh; static field: χ^static = 2χ.  Sodemann & Fu,
-    PRL 115, 216806 (2015) phasor convention; derived in physics-reference.md §0.1, §5 and §11."""
+    PRL 115, 216806 (2015) phasor convention; derived in docs/theory.md §0.1, §5 and §11."""
     _check(0, wt, key)
 
 
@@ -314,7 +314,7 @@ def test_solver_matches_chambers_oracle(wt, key):
 @pytest.mark.parametrize("key", list(SOLVER_FIELD))
 def test_solver_matches_chambers_oracle_fine_mesh(wt, key):
     """All six coefficients, including the nonlinear Drude χ at 2ω (1/((1+iωτ)(1+2iωτ))) and dc
-    (1/(1+iωτ)), against the Chambers solution on the 48×48 mesh (physics-reference.md §5.4–5.5)."""
+    (1/(1+iωτ)), against the Chambers solution on the 48×48 mesh (docs/theory.md §5.4–5.5)."""
     _check(1, wt, key)
 
 

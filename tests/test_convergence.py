@@ -9,7 +9,7 @@ from crosswind.solver import response
 
 
 def test_continuum_dipole_converges_spectrally():
-    """Tilted massive Dirac, 20 K (physics-reference.md §6 parameters): the level-to-level change
+    """Tilted massive Dirac, 20 K (docs/theory.md §6 parameters): the level-to-level change
     of D_x falls by more than two orders of magnitude per level."""
     m = build("massive-dirac", velocity=5e5, mass=0.1, tilt=5e4)
     d = [float(response(m, mu=0.15, temperature=20.0, tau=100.0, resolution=lev).dipole[0]) for lev in range(3)]

@@ -23,7 +23,7 @@ DIRAC_PARAMS = {
 
 
 def dirac_h(k, p):
-    """ħv(k_x σ_x + k_y σ_y) + Δ σ_z, one valley (physics-reference.md §3)."""
+    """ħv(k_x σ_x + k_y σ_y) + Δ σ_z, one valley (docs/theory.md §3)."""
     hv = (p["velocity"] * (HBAR_EVS / ANGSTROM)).astype(jnp.complex128)
     kx, ky = k.astype(jnp.complex128)
     return hv * (kx * PAULI_X + ky * PAULI_Y) + p["mass"].astype(jnp.complex128) * PAULI_Z
@@ -41,7 +41,7 @@ def random_k(n, scale, seed=0):
 # ----------------------------------------------------------------------- from_function ------
 def test_from_function_reproduces_catalogue_dirac():
     # common practice: the same Hamiltonian through the eigh path (no dvector) and through the
-    # catalogue's closed two-band forms must agree (physics-reference.md §2.1 vs §2.3)
+    # catalogue's closed two-band forms must agree (docs/theory.md §2.1 vs §2.3)
     user = dirac_model(mass=0.07, velocity=4e5)
     assert user.dvector is None
     ref = build("massive-dirac", mass=0.07, velocity=4e5)
@@ -54,7 +54,7 @@ def test_from_function_reproduces_catalogue_dirac():
 
 
 def test_from_function_dirac_curvature_closed_form_at_k0():
-    # Ω_c(0) = −τ(ħv)²/(2Δ²), τ = +1: Xiao, Yao, Niu, PRL 99, 236809 (2007); physics-reference.md §3
+    # Ω_c(0) = −τ(ħv)²/(2Δ²), τ = +1: Xiao, Yao, Niu, PRL 99, 236809 (2007); docs/theory.md §3
     # (check value 5: −541.554 Å² for v = 5e5 m/s, Δ = 0.1 eV)
     m = dirac_model()
     g = band_geometry(m, jnp.zeros((1, 2)))
@@ -149,7 +149,7 @@ def test_from_function_parameter_validation_like_build():
 
 def test_gradient_through_from_function_and_file_loading():
     # jax.grad through the model constructors themselves (values traced); the lowest Dirac
-    # energy at k is -sqrt((ħvk)² + Δ²), so d/dΔ = -Δ/E (physics-reference.md §3)
+    # energy at k is -sqrt((ħvk)² + Δ²), so d/dΔ = -Δ/E (docs/theory.md §3)
     k = jnp.array([0.004, 0.003])
 
     def lowest_dirac(mass):
@@ -187,7 +187,7 @@ def haldane_k(n=24, seed=1):
 
 @pytest.mark.parametrize("closed_form", [True, False])
 def test_toml_haldane_equals_catalogue(closed_form):
-    # Haldane, PRL 61, 2015 (1988), in the conventions of physics-reference.md §4; the file and
+    # Haldane, PRL 61, 2015 (1988), in the conventions of docs/theory.md §4; the file and
     # the catalogue must give the same convention-I Bloch Hamiltonian (§2.5) point by point.
     tb = load_tight_binding(data_file("haldane.toml"), **HALDANE_VALUES)
     if not closed_form:

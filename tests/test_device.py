@@ -1,4 +1,4 @@
-"""Hall-bar relations of crosswind.solver.device (physics-reference.md §10, derived there)."""
+"""Hall-bar relations of crosswind.solver.device (docs/theory.md §10, derived there)."""
 import numpy as np
 import pytest
 
@@ -10,7 +10,7 @@ EPS = np.array([[0.0, -1.0], [1.0, 0.0]])   # (ẑ × E)_a = EPS_ab E_b
 
 
 def bcd_chi(K, D):
-    """j = K (D·E) ẑ×E as a symmetrised χ_abc (the 2D dipole form, physics-reference §5.5a)."""
+    """j = K (D·E) ẑ×E as a symmetrised χ_abc (the 2D dipole form, docs/theory.md §5.5a)."""
     chi = K * np.einsum("ac,b->abc", EPS, np.asarray(D, dtype=float))
     return 0.5 * (chi + np.swapaxes(chi, -1, -2))
 
@@ -27,7 +27,7 @@ def tilted_pair():
 
 
 def test_check_36_hall_bar_voltage(tilted_pair):
-    # physics-reference.md check #36 (derived §10): W = 5 μm, I0 = 10 μA → 58.9 nV amplitude, 41.6 nV rms
+    # docs/theory.md check #36 (derived §10): W = 5 μm, I0 = 10 μA → 58.9 nV amplitude, 41.6 nV rms
     r = tilted_pair
     out = hall_bar(r.sigma, r.chi, r.chi_dc, HallBar(width_um=5.0, length_um=10.0, current_uA=10.0))
     assert float(out["v2w_y_amplitude"]) == pytest.approx(58.9e-9, rel=2e-3)
@@ -37,7 +37,7 @@ def test_check_36_hall_bar_voltage(tilted_pair):
 
 
 def test_second_harmonic_scales_as_current_squared_and_inverse_width():
-    # derived in physics-reference.md §10: V_y = −χ_yxx I²/(W σ_xx² σ_yy)
+    # derived in docs/theory.md §10: V_y = −χ_yxx I²/(W σ_xx² σ_yy)
     v = lambda I, W: complex(hall_bar(SIG, CHI, CHI, HallBar(W, 10.0, I))["v2w_y"])
     assert v(20.0, 5.0) / v(10.0, 5.0) == pytest.approx(4.0, rel=1e-12)
     assert v(10.0, 10.0) / v(10.0, 5.0) == pytest.approx(0.5, rel=1e-12)
@@ -62,7 +62,7 @@ def test_open_circuit_first_order_uses_the_full_inverse():
 
 
 def test_rotation_of_a_dipole_response_follows_cos_theta():
-    # 2D dipole current j ∝ (D·E) ẑ×E (physics-reference §5.5a): χ'_yxx(θ) = χ_yxx(0) cos θ,
+    # 2D dipole current j ∝ (D·E) ẑ×E (docs/theory.md §5.5a): χ'_yxx(θ) = χ_yxx(0) cos θ,
     # maximal for a current along D, zero across it
     th = np.linspace(0.0, 360.0, 13)
     chib = np.asarray(rotate_chi(np.broadcast_to(CHI, (13, 2, 2, 2)), th))
@@ -87,7 +87,7 @@ def test_device_angle_matches_rotated_tensors():
 
 
 def test_lockin_conventions_check_35():
-    # physics-reference check #35: V = K I², I = I0 sin ωt → 2ω amplitude K I0²/2, rms K I0²/(2√2),
+    # docs/theory.md check #35: V = K I², I = I0 sin ωt → 2ω amplitude K I0²/2, rms K I0²/(2√2),
     # −90° relative to sin 2ωt.  The cosine-drive 2ω phasor of K I² is +K I0²/2.
     K, I0 = 3.0, 0.5
     amp, rms, ph = lockin_reading(K * I0 ** 2 / 2, harmonic=2)

@@ -12,7 +12,7 @@ from crosswind.models.units import ANGSTROM, E_CHARGE, HBAR_EVS, HBAR_JS
 from crosswind.solver import FitResult, fit, load_measurements, response, scaling_fit
 
 # ---------------------------------------------------------------------------------------------
-# analytic dipole signal: physics-reference.md §5.5 and §6 (first order in the tilt, T = 0)
+# analytic dipole signal: docs/theory.md §5.5 and §6 (first order in the tilt, T = 0)
 #   χ_yxx = -e³τD_x/(2ħ²),  D_x = -3ħtΔ(μ²-Δ²)/(8πμ⁴)   (one valley, μ > Δ)
 # ---------------------------------------------------------------------------------------------
 MU = jnp.linspace(0.12, 0.3, 10)
@@ -154,7 +154,7 @@ def test_finite_difference_jacobian_option_for_plain_numpy_residuals():
 
 # ---------------------------------------------------------------------------------------------
 # scaling law E⊥/E∥² = C0 + C1σ + C2σ²  (Du et al., Nat. Commun. 10, 3047, 2019; Kang et al.,
-# Nat. Mater. 18, 324, 2019; physics-reference.md §12.2)
+# Nat. Mater. 18, 324, 2019; docs/theory.md §12.2)
 # ---------------------------------------------------------------------------------------------
 
 def test_scaling_fit_recovers_coefficients():
@@ -261,7 +261,7 @@ def _device_signals(p):
         mass=p["mass"], tilt=p["tilt"])
     r = response(model, GATE_MU, 20.0, p["tau"], resolution=2)   # derivative integrands converged
     sxx, syy = r.sigma[:, 0, 0].real, r.sigma[:, 1, 1].real
-    # Hall-bar voltages, physics-reference.md §10: V_xx = I L/(W σ_xx), V_y^{2ω} = χ_yxx I²/(W σ_xx² σ_yy)
+    # Hall-bar voltages, docs/theory.md §10: V_xx = I L/(W σ_xx), V_y^{2ω} = χ_yxx I²/(W σ_xx² σ_yy)
     vxx = CURRENT * LENGTH / (WIDTH * sxx)
     v2w = r.chi[:, 1, 0, 0].real * CURRENT ** 2 / (WIDTH * sxx ** 2 * syy)
     return vxx, v2w, r.chi_parts["dipole"][:, 1, 0, 0].real

@@ -2,7 +2,7 @@
 
 With E(t) = Re[E e^{iωt}] the first-order distribution carries 1/(1+iωτ) and the 2ω part of the
 second-order one 1/((1+iωτ)(1+2iωτ)), the rectified part 1/(1+iωτ) (derived in
-physics-reference.md §5.1–5.5 and §5.7; the phasor convention is that of Sodemann & Fu,
+docs/theory.md §5.1–5.5 and §5.7; the phasor convention is that of Sodemann & Fu,
 PRL 115, 216806, 2015).  Hence, at a fixed mesh, exactly:
 
 * Drude σ(ω) = σ(0)/(1+iωτ); the intrinsic anomalous Hall σ is frequency independent;
@@ -11,7 +11,7 @@ PRL 115, 216806, 2015).  Hence, at a fixed mesh, exactly:
 * the intrinsic (τ⁰) term does not depend on ω (ω ≪ gap/ħ).
 
 A single tilted massive Dirac valley breaks time reversal and inversion, so all four terms are
-nonzero (physics-reference.md §5.6, §6).  The exact time-domain oracle in
+nonzero (docs/theory.md §5.6, §6).  The exact time-domain oracle in
 tests/test_chambers_oracle.py checks the same factors independently of the solver's kernels.
 """
 from __future__ import annotations
@@ -60,7 +60,7 @@ EXPECTED = {
 @pytest.mark.parametrize("wt", [0.7, 2.5])
 @pytest.mark.parametrize("name", list(EXPECTED))
 def test_frequency_factor(name, wt):
-    """Ratio of the response at ωτ to the response at ω = 0 (physics-reference.md §5)."""
+    """Ratio of the response at ωτ to the response at ω = 0 (docs/theory.md §5)."""
     static, driven = solved(0.0)[name], solved(wt)[name]
     scale = np.max(np.abs(static))
     assert scale > 0, f"{name} vanishes; the test model must break T and P"

@@ -2,7 +2,7 @@
 
 Model-independent checks run on every entry of ``crosswind.models.catalogue()`` built with its
 defaults, so models added later are covered automatically.  Closed forms for the massive Dirac
-cone: physics-reference.md §2-§3 (derived and verified there); original model Xiao, Yao, Niu,
+cone: docs/theory.md §2-§3 (derived and verified there); original model Xiao, Yao, Niu,
 PRL 99, 236809 (2007).
 """
 import dataclasses
@@ -68,7 +68,7 @@ def test_hamiltonian_blocks_are_hermitian(name):
 
 @pytest.mark.parametrize("name", NAMES)
 def test_curvature_sums_to_zero_over_bands(name):
-    # Σ_n Ω_n = 0 at every k (physics-reference.md §2.1)
+    # Σ_n Ω_n = 0 at every k (docs/theory.md §2.1)
     m = build(name)
     g = as_np(band_geometry(m, generic_k(m)))
     omega = g["berry_curvature"]
@@ -125,7 +125,7 @@ DVECTOR_CASES = [(n, {}) for n in NAMES if build(n).dvector is not None] + [
 
 @pytest.mark.parametrize("name,kw", DVECTOR_CASES, ids=[f"{n}-{i}" for i, (n, _) in enumerate(DVECTOR_CASES)])
 def test_dvector_path_matches_eigh_path(name, kw):
-    # the closed two-band forms (models/geometry.py docstring, physics-reference.md §2.3) must
+    # the closed two-band forms (models/geometry.py docstring, docs/theory.md §2.3) must
     # agree with the general sums over states (§2.1-§2.4) for every field
     m = build(name, **kw)
     general = dataclasses.replace(m, dvector=None)
@@ -143,14 +143,14 @@ def test_dvector_path_matches_eigh_path(name, kw):
 
 
 # ---------------------------------------------------------------------------------------------
-# massive Dirac cone: closed forms and check values (physics-reference.md §2.3, §3)
+# massive Dirac cone: closed forms and check values (docs/theory.md §2.3, §3)
 # ---------------------------------------------------------------------------------------------
 HV = 5e5 * HBAR_EVS / ANGSTROM     # ħv in eV Å for v = 5e5 m/s (3.29106 eV Å)
 DELTA = 0.1
 
 
 def dirac_closed_forms(k, tau):
-    """Per band (lower, upper): Ω, g, G, m of H = ħv(τk_xσ_x + k_yσ_y) + Δσ_z (physics-reference §2-§3)."""
+    """Per band (lower, upper): Ω, g, G, m of H = ħv(τk_xσ_x + k_yσ_y) + Δσ_z (docs/theory.md §2-§3)."""
     e = np.sqrt(HV**2 * np.sum(k**2, axis=-1) + DELTA**2)
     om_up = -tau * HV**2 * DELTA / (2 * e**3)
     g = HV**2 * (np.eye(2)[None] * e[:, None, None] ** 2 - HV**2 * k[:, :, None] * k[:, None, :]) / (4 * e[:, None, None] ** 4)
@@ -170,7 +170,7 @@ def test_dirac_single_valley_closed_forms(dirac_k):
     np.testing.assert_allclose(g["energies"], np.stack([-e, e], -1), rtol=1e-12)
     np.testing.assert_allclose(g["berry_curvature"], np.stack([-om_up, om_up], -1), rtol=1e-10)
     np.testing.assert_allclose(g["quantum_metric"], np.stack([metric, metric], 1), rtol=1e-10, atol=1e-10 * metric.max())
-    # BCP G^c = g/E = -G^v (physics-reference.md §2.3)
+    # BCP G^c = g/E = -G^v (docs/theory.md §2.3)
     bcp = metric / e[:, None, None]
     np.testing.assert_allclose(g["polarizability"], np.stack([-bcp, bcp], 1), rtol=1e-10, atol=1e-10 * bcp.max())
     np.testing.assert_allclose(g["orbital_moment"], np.stack([mom, mom], -1), rtol=1e-10)
@@ -218,7 +218,7 @@ TWO_BAND_CASES = [
 @pytest.mark.parametrize("closed_form", [True, False], ids=["dvector", "eigh"])
 @pytest.mark.parametrize("name,kw", TWO_BAND_CASES, ids=[c[0] for c in TWO_BAND_CASES])
 def test_two_band_moment_identity(name, kw, closed_form):
-    # m_c = m_v = (e/ħ) E Ω_c with E = half the direct gap (physics-reference.md §2.4, derived)
+    # m_c = m_v = (e/ħ) E Ω_c with E = half the direct gap (docs/theory.md §2.4, derived)
     m = build(name, **kw)
     if not closed_form:
         m = dataclasses.replace(m, dvector=None)
@@ -230,7 +230,7 @@ def test_two_band_moment_identity(name, kw, closed_form):
 
 
 # ---------------------------------------------------------------------------------------------
-# symmetries (physics-reference.md §1)
+# symmetries (docs/theory.md §1)
 # ---------------------------------------------------------------------------------------------
 def test_time_reversal_pair_curvature_is_odd():
     # T-symmetric valley pair (tilt splits the valleys; ε_n(-k) = ε_n(k) band by band):
@@ -259,7 +259,7 @@ def test_inversion_symmetric_haldane_curvature_is_even():
 # ---------------------------------------------------------------------------------------------
 # exact band touchings: finite parameter gradients, documented values at the touching
 # ---------------------------------------------------------------------------------------------
-K_GRAPHENE = 4 * np.pi / (3 * np.sqrt(3) * 1.42)   # K point for a_cc = 1.42 Å (physics-reference §4)
+K_GRAPHENE = 4 * np.pi / (3 * np.sqrt(3) * 1.42)   # K point for a_cc = 1.42 Å (docs/theory.md §4)
 
 TOUCHINGS = [
     ("massive-dirac", dict(mass=0.0, tilt=2e4), np.array([[0.0, 0.0]])),

@@ -14,7 +14,7 @@ from crosswind.models.builtin.bilayer import gamma_velocity
 from crosswind.models.strain import uniaxial
 from crosswind.models.units import ANGSTROM, HBAR_EVS
 
-A = 2.46                   # Å, graphene lattice constant (physics-reference.md §9.1)
+A = 2.46                   # Å, graphene lattice constant (docs/theory.md §9.1)
 ACC = A / np.sqrt(3.0)
 T = 2.8                    # eV
 HV = np.sqrt(3.0) * A * T / 2   # ħv in eV Å (Xiao, Yao, Niu, PRL 99, 236809, 2007: ħv = √3at/2)
@@ -37,7 +37,7 @@ def test_honeycomb_hermitian_at_random_k():
 
 
 def test_honeycomb_lattice_geometry():
-    # common practice: |a_i| = a, B at distance a_cc from A, cell area (√3/2)a² (physics-reference §9.1)
+    # common practice: |a_i| = a, B at distance a_cc from A, cell area (√3/2)a² (docs/theory.md §9.1)
     m = build("honeycomb")
     a = np.asarray(m.lattice_vectors())
     np.testing.assert_allclose(np.linalg.norm(a, axis=1), [A, A], rtol=1e-14)
@@ -47,7 +47,7 @@ def test_honeycomb_lattice_geometry():
 
 
 def test_graphene_fermi_velocity_from_band_velocities():
-    # physics-reference.md check #32 (Castro Neto et al., RMP 81, 109, 2009):
+    # docs/theory.md check #32 (Castro Neto et al., RMP 81, 109, 2009):
     # v_F = √3 a t/(2ħ) = 9.0627e5 m/s for a = 2.46 Å, t = 2.8 eV
     m = build("honeycomb")
     ang = np.linspace(0.0, 2 * np.pi, 7)[:-1]
@@ -66,7 +66,7 @@ def test_graphene_fermi_velocity_from_band_velocities():
 @pytest.mark.parametrize("delta", [0.01, -0.03])
 def test_gap_and_berry_curvature_near_k_match_massive_dirac(delta):
     # Xiao, Yao, Niu, PRL 99, 236809 (2007): near K the model is ħv(q_xσ_x + q_yσ_y) + Δσ_z with
-    # ħv = √3at/2; closed form Ω_c = −τ(ħv)²Δ/(2E³), τ = +1 at K (physics-reference.md §3)
+    # ħv = √3at/2; closed form Ω_c = −τ(ħv)²Δ/(2E³), τ = +1 at K (docs/theory.md §3)
     m = build("honeycomb", staggered=delta)
     g0 = band_geometry(m, jnp.asarray(K[None]))
     np.testing.assert_allclose(np.asarray(g0.energies[0]), [-abs(delta), abs(delta)], atol=1e-12)
@@ -88,7 +88,7 @@ def test_gap_and_berry_curvature_near_k_match_massive_dirac(delta):
 
 
 def test_unstaggered_graphene_has_no_berry_curvature():
-    # physics-reference.md §1: P and T together (PT) force Ω = 0; inversion alone gives
+    # docs/theory.md §1: P and T together (PT) force Ω = 0; inversion alone gives
     # Ω(−k) = Ω(k).  Unstaggered graphene has both, so Ω vanishes away from K, K'.
     m = build("honeycomb")
     k = _random_k(32)
@@ -99,7 +99,7 @@ def test_unstaggered_graphene_has_no_berry_curvature():
 
 
 def test_staggered_graphene_time_reversal_odd_curvature():
-    # physics-reference.md §1 (Xiao, Chang, Niu, RMP 82, 1959, 2010): time reversal gives
+    # docs/theory.md §1 (Xiao, Chang, Niu, RMP 82, 1959, 2010): time reversal gives
     # ε(−k) = ε(k) and Ω(−k) = −Ω(k); points near K so that the curvature is large
     m = build("honeycomb", staggered=0.1, strain_xx=0.02, strain_xy=-0.01)
     k = jnp.asarray(K[None] + RNG.uniform(-0.1, 0.1, size=(16, 2)))
@@ -192,7 +192,7 @@ def test_velocity_tensor_with_shear_first_order():
 
 
 def test_build_strained_honeycomb_uses_uniaxial_components():
-    # Pereira et al. (2009) uniaxial tensor, physics-reference.md §9.1
+    # Pereira et al. (2009) uniaxial tensor, docs/theory.md §9.1
     m = hc.build_strained_honeycomb(0.1, np.pi / 6, poisson=0.2, staggered=0.02)
     xx, yy, xy = uniaxial(0.1, np.pi / 6, 0.2)
     ref = build("honeycomb", strain_xx=xx, strain_yy=yy, strain_xy=xy, staggered=0.02)
@@ -265,7 +265,7 @@ def test_bilayer_minimal_model_at_k0_and_monolayer_velocity():
     m = build("bilayer-graphene", valleys=1, gamma3=0.0, gamma4=0.0, dimer_shift=0.0, asymmetry=0.0)
     e = np.asarray(band_geometry(m, jnp.zeros((1, 2))).energies[0])
     np.testing.assert_allclose(e, [-0.381, 0.0, 0.0, 0.381], atol=1e-14)
-    # v = √3aγ0/(2ħ) (physics-reference.md §9.2): γ0 = 3.16 eV, a = 2.46 Å
+    # v = √3aγ0/(2ħ) (docs/theory.md §9.2): γ0 = 3.16 eV, a = 2.46 Å
     np.testing.assert_allclose(gamma_velocity(3.16, 2.46),
                                np.sqrt(3) * 2.46e-10 * 3.16 / (2 * HBAR_EVS), rtol=1e-14)
 
@@ -300,7 +300,7 @@ def test_bilayer_mexican_hat_gap(u):
 
 
 def test_bilayer_curvature_sum_rule_and_valley_pair():
-    # physics-reference.md §2.1: Σ_n Ω_n = 0 at every k; time reversal maps valley K to K':
+    # docs/theory.md §2.1: Σ_n Ω_n = 0 at every k; time reversal maps valley K to K':
     # Ω_K'(−k) = −Ω_K(k) (Xiao, Chang, Niu, RMP 82, 1959, 2010), full SWMcC parameter set
     m2 = build("bilayer-graphene", valleys=2, asymmetry=0.05)
     k = jnp.asarray(RNG.uniform(-0.05, 0.05, size=(16, 2)))
@@ -321,7 +321,7 @@ def test_bilayer_curvature_sum_rule_and_valley_pair():
 def test_bilayer_inversion_flips_curvature_with_asymmetry():
     # McCann & Koshino (2013): inversion exchanges the layers (A1↔B2, B1↔A2), k → −k and K ↔ K',
     # so U → −U; with time reversal Ω_K'(−k) = −Ω_K(k) this gives Ω_K(k; −U) = −Ω_K(k; U) and
-    # equal energies (physics-reference.md §1), for the full parameter set
+    # equal energies (docs/theory.md §1), for the full parameter set
     k = jnp.asarray(RNG.uniform(-0.05, 0.05, size=(8, 2)))
     g = band_geometry(build("bilayer-graphene", valleys=1, asymmetry=0.05), k)
     gm = band_geometry(build("bilayer-graphene", valleys=1, asymmetry=-0.05), k)

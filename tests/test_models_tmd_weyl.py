@@ -66,7 +66,7 @@ def test_hermitian_at_random_k(name):
 
 
 # ---------------------------------------------------------------------------------------------
-# tmd (Xiao, Liu, Feng, Xu, Yao, PRL 108, 196802, 2012; physics-reference.md §9.3)
+# tmd (Xiao, Liu, Feng, Xu, Yao, PRL 108, 196802, 2012; docs/theory.md §9.3)
 
 TAU = (1, 1, -1, -1)
 SPIN = (1, -1, 1, -1)
@@ -91,7 +91,7 @@ def test_tmd_band_edges_gap_and_valley_contrasting_spin_splitting():
 
 
 def test_tmd_conduction_curvature_at_K():
-    # physics-reference.md §9.3: |Ω_c(K)| = (at)²/(2 m²) = 8.954 Å² for MoS2 without SOC;
+    # docs/theory.md §9.3: |Ω_c(K)| = (at)²/(2 m²) = 8.954 Å² for MoS2 without SOC;
     # per spin block m = (Δ − λτs_z)/2 and sign −τ (§3, derived and verified there)
     m0 = build("tmd", soc=0.0)
     om = float(band_geometry(block(m0, 0), jnp.zeros((1, 2))).berry_curvature[0, 1])
@@ -106,7 +106,7 @@ def test_tmd_conduction_curvature_at_K():
 
 
 def test_tmd_time_reversal_with_strain():
-    # time reversal (physics-reference.md §1): H_{K',-s}(k) = H_{K,s}(-k)*, hence
+    # time reversal (docs/theory.md §1): H_{K',-s}(k) = H_{K,s}(-k)*, hence
     # Ω_{K',-s}(-k) = -Ω_{K,s}(k); must survive strain (derived in the tmd docstring)
     m = build("tmd", strain_xx=0.03, strain_yy=-0.01, strain_xy=0.02, tilt_conduction=2.0,
               tilt_valence=-0.7, velocity_anisotropy=1.5)
@@ -191,7 +191,7 @@ def test_tmd_curvature_dipole_needs_strain_tilt():
 
 
 def test_tmd_material_presets_and_overrides():
-    # Table I of Xiao et al. 2012 (physics-reference.md §9.3): a, t, Δ, 2λ
+    # Table I of Xiao et al. 2012 (docs/theory.md §9.3): a, t, Δ, 2λ
     table = {"MoS2": (3.193, 1.10, 1.66, 0.15), "WS2": (3.197, 1.37, 1.79, 0.43),
              "MoSe2": (3.313, 0.94, 1.47, 0.18), "WSe2": (3.310, 1.19, 1.60, 0.46)}
     for mat, vals in table.items():
@@ -210,14 +210,14 @@ def test_tmd_gradient_through_preset_parameter():
 
 
 # ---------------------------------------------------------------------------------------------
-# tmd-lattice (Liu, Shan, Yao, Yao, Xiao, PRB 88, 085433, 2013; physics-reference.md §9.4)
+# tmd-lattice (Liu, Shan, Yao, Yao, Xiao, PRB 88, 085433, 2013; docs/theory.md §9.4)
 
 A = 3.190
 K_POINT = np.array([4 * np.pi / (3 * A), 0.0])
 
 
 def test_tmd_lattice_bond_sum_equals_closed_form():
-    # physics-reference.md §9.4 matrix elements vs the bond-sum form used for strain
+    # docs/theory.md §9.4 matrix elements vs the bond-sum form used for strain
     m = build("tmd-lattice", soc=0.0)
     ks = RNG.normal(scale=1.5, size=(6, 2))
     h = _h_batch(m, ks)
@@ -227,7 +227,7 @@ def test_tmd_lattice_bond_sum_equals_closed_form():
 
 
 def test_tmd_lattice_K_point_gap_and_soc_splitting():
-    # physics-reference.md check #34 (Liu et al. 2013 GGA NN set): gap at K 1.6628 eV (without SOC,
+    # docs/theory.md check #34 (Liu et al. 2013 GGA NN set): gap at K 1.6628 eV (without SOC,
     # i.e. the spin-averaged gap), valence SOC splitting at K 0.1460 eV; tol 1e-4 abs
     m = build("tmd-lattice")
     b = np.asarray(m.reciprocal_vectors())
@@ -243,7 +243,7 @@ def test_tmd_lattice_K_point_gap_and_soc_splitting():
 
 
 def test_tmd_lattice_spin_blocks_are_time_reversed():
-    # time reversal (physics-reference.md §1): H_↓(k) = H_↑(−k)*, also under strain
+    # time reversal (docs/theory.md §1): H_↓(k) = H_↑(−k)*, also under strain
     m = build("tmd-lattice", strain_xx=0.02, strain_xy=-0.01)
     ks = RNG.normal(scale=1.0, size=(4, 2))
     assert np.abs(_h_batch(m, ks)[:, 1] - np.conj(_h_batch(m, -ks)[:, 0])).max() < 1e-13
@@ -324,7 +324,7 @@ def test_weyl_nodes_at_plus_minus_k0():
 
 
 def test_weyl_curvature_sum_rule():
-    # physics-reference.md §2.1: Σ_n Ω_n = 0 at every k
+    # docs/theory.md §2.1: Σ_n Ω_n = 0 at every k
     m = build("weyl", tilt=0.2)
     om = np.asarray(band_geometry(m, jnp.asarray(RNG.normal(size=(10, 3)))).berry_curvature)
     assert np.abs(om.sum(axis=1)).max() < 1e-12
@@ -350,7 +350,7 @@ def test_weyl_chern_slices():
 
 def test_weyl_anomalous_hall_conductivity():
     # Burkov & Balents 2011: |σ_yz| = (e²/h)·2k0/(2π) with μ at the nodes; sign from
-    # σ_ab = −(e²/ħ)∫[dk] f Ω_c (physics-reference.md §5.3) with C = −1 between the nodes.
+    # σ_ab = −(e²/ħ)∫[dk] f Ω_c (docs/theory.md §5.3) with C = −1 between the nodes.
     # k_x midpoints put the nodes halfway between slices, so the k_x sum of the step C(k_x) is exact.
     m = build("weyl")
     n, nx = 64, 16

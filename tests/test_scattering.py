@@ -5,8 +5,8 @@ Sources: Drude σ = ne²τ/m and Matthiessen's rule — Ashcroft & Mermin, *Soli
 (1976), ch. 1 and 16; energy-dependent τ in the transport distribution — Mahan & Sofo, PNAS 93,
 7436 (1996); Mott thermopower with τ ∝ ε^r — Cutler & Mott, Phys. Rev. 181, 1336 (1969);
 Berry-curvature-dipole nonlinear Hall effect and its τ-independent E⊥/E∥² — Sodemann & Fu,
-PRL 115, 216806 (2015) and physics-reference.md §5.5, §5.7, §6.  Check numbers (#n) refer to the
-check-value table of physics-reference.md.
+PRL 115, 216806 (2015) and docs/theory.md §5.5, §5.7, §6.  Check numbers (#n) refer to the
+check-value table of docs/theory.md.
 """
 import jax
 import jax.numpy as jnp
@@ -187,8 +187,8 @@ def tilted_pair():
 def test_dipole_chi_value_and_tau_scaling(tilted_pair):
     """χ_yxx = −e³τD_x/(2ħ²) = 3.5759e-13 A·m/V² for the T-related pair of tilted massive Dirac
     valleys at μ = 0.15 eV, Δ = 0.1 eV, τ = 100 fs (check #21; Sodemann & Fu 2015;
-    physics-reference.md §6).  χ^BCD ∝ τ; the nonlinear Drude and intrinsic parts vanish by
-    time reversal (physics-reference.md §5.6)."""
+    docs/theory.md §6).  χ^BCD ∝ τ; the nonlinear Drude and intrinsic parts vanish by
+    time reversal (docs/theory.md §5.6)."""
     r = tilted_pair
     dip = np.asarray(r.chi_parts["dipole"][:, 1, 0, 0])
     np.testing.assert_allclose(float(r.chi[1][1, 0, 0].real), 3.5759e-13, rtol=1e-3)
@@ -201,8 +201,8 @@ def test_dipole_chi_value_and_tau_scaling(tilted_pair):
 
 def test_transverse_field_ratio_is_tau_independent(tilted_pair):
     """E⊥/E∥² = χ_yxx/σ_yy = 7.186e-10 m/V, the same for τ = 50, 100, 200 fs: χ^BCD and σ are both
-    ∝ τ (check #22; Sodemann & Fu 2015; physics-reference.md §5.7).  σ_xx, σ_yy of the tilted pair:
-    2 × 2.46999e-4 S and 2 × 2.48794e-4 S at τ = 100 fs (physics-reference.md §6)."""
+    ∝ τ (check #22; Sodemann & Fu 2015; docs/theory.md §5.7).  σ_xx, σ_yy of the tilted pair:
+    2 × 2.46999e-4 S and 2 × 2.48794e-4 S at τ = 100 fs (docs/theory.md §6)."""
     r = tilted_pair
     ratio = np.asarray(r.chi_parts["dipole"][:, 1, 0, 0].real / r.sigma[:, 1, 1].real)
     np.testing.assert_allclose(ratio, np.full(3, 7.186e-10), rtol=2e-3)

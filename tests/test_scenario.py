@@ -82,7 +82,7 @@ def test_strain_forms_reach_the_model(tmp_path):
     s = load_scenario(write(tmp_path, text + "\n[material.strain]\nmagnitude = [0.01, 0.02]\nangle_deg = 90\npoisson = 0.25\n"))
     assert s.axes[0].name == "strain" and s.axes[0].values == (0.01, 0.02)
     m = s.build_model(0.02)
-    # uniaxial strain along y with Poisson ratio ν: ε_yy = s, ε_xx = −ν s (physics-reference §9.1 recipe)
+    # uniaxial strain along y with Poisson ratio ν: ε_yy = s, ε_xx = −ν s (docs/theory.md §9.1 recipe)
     assert float(m.params["strain_yy"]) == pytest.approx(0.02)
     assert float(m.params["strain_xx"]) == pytest.approx(-0.005)
     s2 = load_scenario(write(tmp_path, text + "\n[material.strain]\nxx = 0.01\nyy = 0.0\nxy = 0.002\n", "t.toml"))

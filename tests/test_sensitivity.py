@@ -16,7 +16,7 @@ from crosswind.solver.response import ARRAY_FIELDS
 from crosswind.solver.sensitivity import gradient, sensitivities, sensitivity_table
 
 LEVEL = 2            # converged for derivative integrands too (level 1 is not, for ∂/∂velocity)
-PARAMS = dict(velocity=5e5, mass=0.1, tilt=5e4)          # physics-reference.md §6 set
+PARAMS = dict(velocity=5e5, mass=0.1, tilt=5e4)          # docs/theory.md §6 set
 COND = dict(mu=0.15, temperature=20.0, tau=100.0)
 NAMES = ["mass", "tilt", "velocity", "mu", "temperature", "tau"]
 STEPS = dict(mass=2e-6, tilt=1.0, velocity=20.0, mu=2e-6, temperature=1e-3, tau=1e-3)
@@ -49,7 +49,7 @@ def base():
 
 
 def test_every_field_matches_central_differences(base):
-    # common practice (design-notes §4): forward-mode derivatives against central differences
+    # common practice (docs/theory.md §A4): forward-mode derivatives against central differences
     _, value, sens = base
     for name in NAMES:
         h = STEPS[name]
@@ -62,7 +62,7 @@ def test_every_field_matches_central_differences(base):
             fd = (up[field] - down[field]) / (2 * h)
             scale = np.max(np.abs(fd))
             if name == "tau" and field in ("hall_coefficient", "seebeck", "lorenz"):
-                # ratios of two ∝τ integrals: τ-independent for constant τ (derived, physics-reference §7–8)
+                # ratios of two ∝τ integrals: τ-independent for constant τ (derived, docs/theory.md §7–8)
                 v = np.max(np.abs(_leaves(value)[field]))
                 assert np.max(np.abs(a)) * COND["tau"] < 1e-10 * v, field
                 continue
@@ -87,7 +87,7 @@ def test_units_and_shapes(base):
 
 
 def test_drude_and_dipole_are_linear_in_tau(base):
-    # derived in physics-reference.md §5.2 and §5.5: at ω = 0 σ^Drude ∝ τ, χ^BCD ∝ τ, χ^ND ∝ τ², χ^int ∝ τ⁰
+    # derived in docs/theory.md §5.2 and §5.5: at ω = 0 σ^Drude ∝ τ, χ^BCD ∝ τ, χ^ND ∝ τ², χ^int ∝ τ⁰
     _, value, sens = base
     tau = COND["tau"]
     d = sens["tau"]
@@ -106,7 +106,7 @@ def test_drude_and_dipole_are_linear_in_tau(base):
 
 
 def test_tilted_dirac_dipole_linear_in_tilt_and_first_order_slope():
-    # physics-reference.md §6 (first order in t/v, T = 0): D_x = -3ħtΔ(μ²-Δ²)/(8πμ⁴); the neglected
+    # docs/theory.md §6 (first order in t/v, T = 0): D_x = -3ħtΔ(μ²-Δ²)/(8πμ⁴); the neglected
     # terms are O((t/v)²) relative (0.3 % at t/v = 0.1, §13.9), so at t/v = 0.01 D(2t) = 2D(t) to ~1e-4
     t = 5e3
     d1 = _resp({"tilt": t}, temperature=2.0).dipole[0]
@@ -127,7 +127,7 @@ def test_tilted_dirac_dipole_linear_in_tilt_and_first_order_slope():
 
 def test_derivatives_finite_at_band_touching():
     # mass = 0: the bands touch at k = 0 (a point the quadrature never samples).  Closed form,
-    # physics-reference.md §3: σ_xy = -(e²/2h)Δ/|μ| per valley for μ in the band, so ∂σ_xy/∂Δ = -(e²/2h)/μ
+    # docs/theory.md §3: σ_xy = -(e²/2h)Δ/|μ| per valley for μ in the band, so ∂σ_xy/∂Δ = -(e²/2h)/μ
     cond = dict(COND, temperature=2.0)
     model = build("massive-dirac", **dict(PARAMS, mass=0.0))
     s = sensitivities(model, ["mass", "mu", "tilt"], resolution=LEVEL, **cond)
@@ -194,7 +194,7 @@ def test_bad_names_and_options_are_explained():
 
 @pytest.mark.slow
 def test_forward_and_reverse_mode_agree(base):
-    # common practice (design-notes §4): reverse mode (jax.grad) against forward mode
+    # common practice (docs/theory.md §A4): reverse mode (jax.grad) against forward mode
     model, _, sens = base
     target = lambda r: r.chi[1, 0, 0].real + 1e9 * r.sigma[0, 0].real * r.dipole[0]
     rev = gradient(model, target, NAMES, resolution=LEVEL, **COND)
@@ -209,7 +209,7 @@ def test_forward_and_reverse_mode_agree(base):
 
 @pytest.mark.slow
 def test_vmap_over_mu_matches_pointwise(base):
-    # common practice (design-notes §4): derivatives under jax.vmap equal the pointwise ones
+    # common practice (docs/theory.md §A4): derivatives under jax.vmap equal the pointwise ones
     model, _, _ = base
     mus = jnp.array([0.12, 0.15, 0.2])
     target = lambda r: r.dipole[0]

@@ -1,5 +1,5 @@
 """Symmetry rules of the Berry-curvature dipole and its current (Sodemann & Fu, PRL 115, 216806,
-2015: a 2D dipole needs at most one mirror line and lies perpendicular to it; physics-reference.md
+2015: a 2D dipole needs at most one mirror line and lies perpendicular to it; docs/theory.md
 §5.6)."""
 import numpy as np
 import pytest

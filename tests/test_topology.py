@@ -1,7 +1,7 @@
 """Chern numbers by the lattice link method (Fukui, Hatsugai, Suzuki, J. Phys. Soc. Jpn. 74,
 1674, 2005) on the Haldane model (Haldane, PRL 61, 2015, 1988).
 
-Check values #12-#14 of physics-reference.md (phase diagram |M| < 3√3|t2 sin φ|, lower-band
+Check values #12-#14 of docs/theory.md (phase diagram |M| < 3√3|t2 sin φ|, lower-band
 C = +sgn(sin φ) in the convention Ω = ∇×i<u|∇u>, derived and verified there, §4 and §11).
 """
 import dataclasses
@@ -21,7 +21,7 @@ def haldane(phi, mass, t2=0.1):
     return build("haldane", t1=1.0, t2=t2, phi=phi, mass=mass)
 
 
-# physics-reference.md check values #12, #13, #14 (t1 = 1, t2 = 0.1); Haldane, PRL 61, 2015 (1988)
+# docs/theory.md check values #12, #13, #14 (t1 = 1, t2 = 0.1); Haldane, PRL 61, 2015 (1988)
 PHASE_DIAGRAM = [
     (np.pi / 2, 0.0, 1),     # #12
     (np.pi / 2, 0.5, 1),     # #13
@@ -40,7 +40,7 @@ def test_haldane_phase_diagram(phi, mass, expected):
     assert isinstance(c, int)
     assert c == expected
     # the upper band carries the opposite Chern number: the two add to zero
-    # (sum rule Σ_n Ω_n = 0, physics-reference.md §2.1)
+    # (sum rule Σ_n Ω_n = 0, docs/theory.md §2.1)
     assert chern_number(m, bands=1, mesh=24) == -expected
     # both bands together (determinant links over the full set): zero
     assert chern_number(m, bands=[0, 1], mesh=24) == 0
@@ -48,13 +48,13 @@ def test_haldane_phase_diagram(phi, mass, expected):
 
 @pytest.mark.parametrize("phi,mass,expected", PHASE_DIAGRAM)
 def test_coarse_mesh_gives_the_integer(phi, mass, expected):
-    # physics-reference.md §4: "FHS gives the integer already on a 6×6 grid here"
+    # docs/theory.md §4: "FHS gives the integer already on a 6×6 grid here"
     assert chern_number(haldane(phi, mass), bands=0, mesh=6) == expected
 
 
 @pytest.mark.parametrize("phi,mass", [(np.pi / 2, 0.2), (-np.pi / 2, 0.0), (np.pi / 3, 0.1), (np.pi / 4, 1.0)])
 def test_kubo_curvature_integrates_to_fhs_chern_number(phi, mass):
-    """Ties the sign convention of band_geometry's Kubo curvature (physics-reference.md §2.1) to
+    """Ties the sign convention of band_geometry's Kubo curvature (docs/theory.md §2.1) to
     the FHS orientation (§11): C = (1/2π) Σ_k Ω(k) A_BZ/N² on a reduced-coordinate mesh.  For a
     gapped model the integrand is smooth and periodic, so the rectangle sum converges
     exponentially (≈1e-7 at N = 40 for these parameters, derived here); N = 60 with 1e-6."""
@@ -112,7 +112,7 @@ def _layered_model():
 
 def test_3d_plane_chern_numbers():
     # Each k_z plane is a 2D Haldane model with mass M(k_z) = 0.6 + 0.6 cos(k_z c):
-    # f3 = 0 -> M = 1.2 (trivial), f3 = 1/2 -> M = 0 (C = +1) (derived in physics-reference.md §4);
+    # f3 = 0 -> M = 1.2 (trivial), f3 = 1/2 -> M = 0 (C = +1) (derived in docs/theory.md §4);
     # the plane (b1, b2) is oriented along b1 × b2 = +z, the orientation of the 2D model
     m = _layered_model()
     assert chern_number(m, bands=0, mesh=12) == 0
@@ -176,7 +176,7 @@ PERIODIC_CASES = [
 def test_periodic_gauge_wraps_exactly(name, kw):
     # The states used for the links must be k-periodic up to a phase: |<u(k)|u(k + b_j)>| = 1
     # for every non-degenerate band.  The Hamiltonians carry orbital positions in their Bloch
-    # phases (convention I, physics-reference.md §2.5), so this holds only after the
+    # phases (convention I, docs/theory.md §2.5), so this holds only after the
     # exp(i k·τ) gauge factor with the model's (strained) positions and reciprocal vectors.
     from crosswind.solver.topology import _periodic_states
 
@@ -197,7 +197,7 @@ def test_periodic_gauge_wraps_exactly(name, kw):
 
 def test_strained_gapped_honeycomb_is_trivial():
     # staggered honeycomb (T-symmetric, gap 2Δ): C = 0 for each band, with and without strain
-    # (common practice; physics-reference.md §4 with t2 = 0)
+    # (common practice; docs/theory.md §4 with t2 = 0)
     for strain in (0.0, 0.05):
         m = build("honeycomb", staggered=0.3, strain_xx=strain, strain_xy=strain / 2)
         assert [chern_number(m, bands=b, mesh=12) for b in (0, 1)] == [0, 0]

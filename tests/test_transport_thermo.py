@@ -4,11 +4,11 @@ independent scipy quadratures (never against solver output).
 Sources: Sommerfeld identities and Fermi–Dirac integrals — Ashcroft & Mermin, *Solid State
 Physics* (1976), ch. 2 and app. C; Drude conductivity and Hall coefficient R_H = 1/(nq) —
 Ashcroft & Mermin (1976), ch. 1; weak-field Hall coefficient by Jones–Zener iteration —
-physics-reference.md §7.2; transport-distribution form of σ, S, κ — Mahan & Sofo, PNAS 93, 7436
+docs/theory.md §7.2; transport-distribution form of σ, S, κ — Mahan & Sofo, PNAS 93, 7436
 (1996); Mott formula and Wiedemann–Franz law — Ashcroft & Mermin (1976), ch. 13, and Cutler &
 Mott, Phys. Rev. 181, 1336 (1969); anomalous Nernst effect and its Mott relation — Xiao, Yao,
 Fang, Niu, PRL 97, 026603 (2006).  Check numbers (#n) refer to the check-value table of
-physics-reference.md.
+docs/theory.md.
 """
 import jax
 import jax.numpy as jnp
@@ -67,7 +67,7 @@ _s = jax.jit(lambda x: entropy_density(x, 0.0, 1.0))
 @pytest.mark.parametrize("T", [1.0, 300.0])
 def test_sommerfeld_identities(T):
     """∫(−f0')dε = 1, ∫(ε−μ)²(−f0')dε = π²(k_BT)²/3, ∫s(x)dx = π²/3 (check #39;
-    Ashcroft & Mermin 1976, app. C; derived in physics-reference.md §8, §11)."""
+    Ashcroft & Mermin 1976, app. C; derived in docs/theory.md §8, §11)."""
     mu, kt = 0.1, KB * T
     F = lambda e: float(_F(e, mu, kt))
     opts = dict(epsabs=0.0, epsrel=1e-13, limit=400)
@@ -150,7 +150,7 @@ def test_drude_conductivity_and_mobility(parabolic):
 
 def test_hall_coefficient_parabolic(parabolic):
     """R_H = 1/(nq) = −1/(ne) = −624.151 Ω/T for electrons at n = 1e12 cm⁻² (check #26;
-    Ashcroft & Mermin 1976, ch. 1; Jones–Zener iteration, physics-reference.md §7.2).  For a
+    Ashcroft & Mermin 1976, ch. 1; Jones–Zener iteration, docs/theory.md §7.2).  For a
     parabolic band with constant τ the relation holds at any T with n = n(μ, T)."""
     r = parabolic
     np.testing.assert_allclose(float(r.hall_coefficient[0]), -624.151, rtol=1e-6)
@@ -203,7 +203,7 @@ def test_lorenz_degenerate_limit(parabolic):
 
 def test_lorenz_non_degenerate_2d(parabolic):
     """μ = −0.3 eV at 300 K (12 k_BT below the band bottom): L = 2(k_B/e)² = 1.4852e-8 W Ω K⁻²
-    for a 2D parabolic band with constant τ (check #40; derived in physics-reference.md §8)."""
+    for a 2D parabolic band with constant τ (check #40; derived in docs/theory.md §8)."""
     L = float(parabolic.lorenz[4])
     np.testing.assert_allclose(2 * KB ** 2, 1.4852e-8, rtol=1e-4)
     np.testing.assert_allclose(L, 1.4852e-8, rtol=1e-4)
@@ -219,7 +219,7 @@ def test_lorenz_non_degenerate_2d(parabolic):
 # --------------------------------------------------------------------------------------------
 
 def test_mu_from_density_2d_parabolic():
-    """At fixed n, μ(T) = k_BT ln(e^{E_F/k_BT} − 1) exactly in 2D (physics-reference.md §11);
+    """At fixed n, μ(T) = k_BT ln(e^{E_F/k_BT} − 1) exactly in 2D (docs/theory.md §11);
     E_F = 10 meV, T = 100 K → 6.76055 meV (check #28).  dμ/dT (implicit derivative) against the
     closed form k_B[ln(e^a − 1) − a e^a/(e^a − 1)], a = E_F/k_BT, and central differences."""
     m = build("parabolic", effective_mass=MSTAR)
@@ -286,7 +286,7 @@ def test_nernst_mott_relation_with_sigma_xy(dirac_ane):
 
 def test_nernst_vanishes_in_the_gap(dirac_ane):
     """μ in the gap at 10 K: s(ε) ≲ e^{−58} on both bands, so α_xy = 0 while σ_xy = −e²/2h
-    (Xiao et al. 2006; physics-reference.md §3)."""
+    (Xiao et al. 2006; docs/theory.md §3)."""
     r = dirac_ane
     ref = abs(float(r.nernst[1][0, 1]))
     for i in (3, 4):

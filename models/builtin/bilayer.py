@@ -1,7 +1,7 @@
 """Bernal (AB-stacked) bilayer graphene, four-band continuum (k·p) model around K and K'.
 
 McCann & Koshino, "The electronic properties of bilayer graphene", Rep. Prog. Phys. 76, 056503
-(2013), eq. (30) with the Slonczewski–Weiss–McClure parameters (physics-reference.md §9.2).
+(2013), eq. (30) with the Slonczewski–Weiss–McClure parameters (docs/theory.md §9.2).
 Basis (A1, B1, A2, B2); the dimer sites B1 and A2 sit on top of each other and are coupled by
 γ1.  With π = ξk_x + i k_y (k in 1/Å measured from the valley, ξ = +1 at K, −1 at K') and
 ħv_i = √3 a γ_i / 2 (eV Å):
@@ -17,10 +17,10 @@ U = ``asymmetry`` (interlayer potential difference; layer 1 at −U/2, layer 2 a
 perpendicular displacement field), Δ' = ``dimer_shift`` (energy of the dimer sites), δ =
 ``sublattice_asymmetry`` (intralayer A/B asymmetry δ_AB, e.g. an aligned substrate; default 0).
 Each layer alone is the graphene cone ħv0(ξk_xσ_x + k_yσ_y) of the 'honeycomb' model near K
-(physics-reference.md §3 sign conventions).  Parameter values: γ0 = 3.16, γ1 = 0.381,
+(docs/theory.md §3 sign conventions).  Parameter values: γ0 = 3.16, γ1 = 0.381,
 γ3 = 0.38, γ4 = 0.14, Δ' = 0.022 eV (the infrared fit of Kuzmenko et al., PRB 80, 165406, 2009,
 as tabulated in the review; the values are recalled, see
-physics-reference.md §9.2).
+docs/theory.md §9.2).
 
 ``valleys=2`` (default) adds K' as a second block, H_K'(k) = H_K(−k)* (time reversal); the two
 valleys do not mix.  ``degeneracy`` counts spin (default 2).  Minimal model (γ3 = γ4 = Δ' = 0):

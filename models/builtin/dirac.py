@@ -2,7 +2,7 @@
 
 One valley (τ = +1):  H = ħt k_x + ħv (k_x σ_x + k_y σ_y) + Δ σ_z,  Δ = ``mass`` (half the gap).
 ``valleys=2`` adds the time-reversed partner H'(k) = H(−k)* = −ħt k_x + ħv(−k_x σ_x + k_y σ_y) + Δσ_z
-as a second block.  Conventions and closed forms: physics-reference.md §3 and §6; original
+as a second block.  Conventions and closed forms: docs/theory.md §3 and §6; original
 model: Xiao, Yao, Niu, PRL 99, 236809 (2007) (they write the gap as Δ, here the mass is Δ).
 """
 from __future__ import annotations

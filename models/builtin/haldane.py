@@ -1,6 +1,6 @@
 """Haldane model on the honeycomb lattice (Haldane, PRL 61, 2015, 1988).
 
-Convention of physics-reference.md §4 (a_cc = ``bond_length``): NN vectors a1 = (0,1)a_cc,
+Convention of docs/theory.md §4 (a_cc = ``bond_length``): NN vectors a1 = (0,1)a_cc,
 a2 = (−√3/2, −1/2)a_cc, a3 = (√3/2, −1/2)a_cc; NNN vectors b1 = a2−a3, b2 = a3−a1, b3 = a1−a2.
 
     H(k) = 2 t2 cos φ Σ_i cos(k·b_i) + t1 Σ_i [cos(k·a_i) σ_x + sin(k·a_i) σ_y]

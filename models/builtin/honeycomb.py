@@ -1,7 +1,7 @@
 """Graphene-like honeycomb lattice, nearest-neighbour, spinless two-band block, with strain.
 
 Geometry (undeformed, a_cc = a/√3, a = ``lattice_constant``).  Nearest-neighbour bond vectors
-from an A site to its three B neighbours (the vectors of physics-reference.md §4)
+from an A site to its three B neighbours (the vectors of docs/theory.md §4)
 
     δ1 = a_cc (0, 1),   δ2 = a_cc (−√3/2, −1/2),   δ3 = a_cc (√3/2, −1/2);
 
@@ -9,7 +9,7 @@ lattice vectors a1 = δ1 − δ2, a2 = δ1 − δ3 (|a_i| = a), orbital position
 The x axis is the zigzag direction (a1 − a2 = a x̂), y the armchair direction.  The valleys sit
 at K = (4π/(3a), 0) and K' = −K.
 
-Hamiltonian (Bloch phases include the orbital positions, physics-reference.md §2.5
+Hamiltonian (Bloch phases include the orbital positions, docs/theory.md §2.5
 "convention I"; the sign of the hopping follows common practice, H_AB = −Σ t_i e^{ik·δ_i}):
 
     H(k) = [[ Δ,            −Σ_i t_i e^{ik·δ_i'} ],
@@ -18,7 +18,7 @@ Hamiltonian (Bloch phases include the orbital positions, physics-reference.md §
 
 with t = ``hopping`` > 0 and Δ = ``staggered`` (+Δ on A, −Δ on B: a substrate mass, gap 2|Δ|).
 Near K, H ≈ ħv(q_x σ_x + q_y σ_y) + Δσ_z with ħv = 3 a_cc t/2 = √3 a t/2, i.e. the τ = +1 cone
-of physics-reference.md §3 (K' gives τ = −1); Xiao, Yao, Niu, PRL 99, 236809 (2007).
+of docs/theory.md §3 (K' gives τ = −1); Xiao, Yao, Niu, PRL 99, 236809 (2007).
 
 Strain (Pereira, Castro Neto, Peres, PRB 80, 045401, 2009; ``crosswind.models.strain``): the
 homogeneous strain tensor ε = [[ε_xx, ε_xy], [ε_xy, ε_yy]] (tensor components; ε_xy is half the

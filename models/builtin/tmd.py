@@ -1,7 +1,7 @@
 """Group-VI dichalcogenide monolayer (MoS2, WS2, MoSe2, WSe2): massive Dirac model with
 spin–orbit coupling, continuum around K and K', with strain-induced tilt and warping.
 
-Unstrained model (Xiao, Liu, Feng, Xu, Yao, PRL 108, 196802, 2012; physics-reference.md §9.3)::
+Unstrained model (Xiao, Liu, Feng, Xu, Yao, PRL 108, 196802, 2012; docs/theory.md §9.3)::
 
     H_τs(k) = a t (τ k_x σ_x + k_y σ_y) + (Δ/2) σ_z − λ τ s_z (σ_z − 1)/2
 
@@ -46,7 +46,7 @@ continuum model) and the hydrostatic terms ∝ ε_xx + ε_yy (absorb them in ``g
 for quantitative work.  ``crosswind.models.strain.uniaxial`` converts a uniaxial strain and its
 angle into tensor components.
 
-Material presets (Table I of Xiao et al. 2012, physics-reference.md §9.3): ``material`` picks
+Material presets (Table I of Xiao et al. 2012, docs/theory.md §9.3): ``material`` picks
 the defaults of ``lattice_constant``, ``hopping``, ``gap`` and ``soc``; any of them given
 explicitly overrides the preset.
 """

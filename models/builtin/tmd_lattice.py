@@ -1,5 +1,5 @@
 """Three-band nearest-neighbour tight-binding model of a group-VI dichalcogenide monolayer
-(Liu, Shan, Yao, Yao, Xiao, PRB 88, 085433, 2013; physics-reference.md §9.4), with spin–orbit
+(Liu, Shan, Yao, Yao, Xiao, PRB 88, 085433, 2013; docs/theory.md §9.4), with spin–orbit
 coupling and homogeneous strain through the bond geometry.
 
 Basis (d_z², d_xy, d_{x²−y²}) of the metal atom; all three orbitals sit on the same site
@@ -20,7 +20,7 @@ L_z = [[0, 0, 0], [0, 0, 2i], [0, −2i, 0]]; s_z = ±1 gives the two 3×3 block
 up, block 1: spin down), each the time-reversed partner of the other, H_↓(k) = H_↑(−k)*.
 
 Strain (``strain_xx``, ``strain_yy``, ``strain_xy``: tensor components, ε_xy half the
-engineering shear; physics-reference.md §9.5 and models/strain.py): every bond is deformed,
+engineering shear; docs/theory.md §9.5 and models/strain.py): every bond is deformed,
 R_j' = (1+ε)R_j, the deformed bonds enter the phases, and each hopping matrix is scaled by its
 bond length, E(R_j') = E(R_j) exp[−β(|R_j'|/a − 1)].  This central-force rule ignores the change
 of the orbital overlaps with the bond *angle*; ``beta`` = −d ln t/d ln d is an assumed value
@@ -107,7 +107,7 @@ def hamiltonian(k, p, a=3.190):
 
 
 def closed_form(k, p, a=3.190):
-    """The unstrained, spinless 3×3 matrix of physics-reference.md §9.4 (for checks)."""
+    """The unstrained, spinless 3×3 matrix of docs/theory.md §9.4 (for checks)."""
     al, be = k[0] * a / 2, np.sqrt(3.0) * k[1] * a / 2
     c, s = jnp.cos, jnp.sin
     s3 = np.sqrt(3.0)
