@@ -21,7 +21,7 @@ F = −∂f0/∂ε (1/eV), g_a = ∂_aε (eV Å), h_ab = ∂_a∂_bε (eV Å²),
   dipole_sea   Σ [f0 − θ] ∂_bΩ_c  (Fermi-sea route to D, only when requested)
 
 The second-order kernels are the Fermi-surface forms obtained by integrating the Fermi-sea
-expressions of physics-reference.md §5.4–5.5 by parts (exact on a closed zone; for k·p windows
+expressions of docs/theory.md §5.4–5.5 by parts (exact on a closed zone; for k·p windows
 they avoid boundary terms).  For constant τ they reduce to
 χ^ND ∝ τ̃_ω τ̃_2ω ∫ f0 ∂_a∂_b∂_c ε and χ^BCD ∝ τ̃_ω D.
 """

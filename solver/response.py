@@ -1,6 +1,6 @@
 """``response``: linear, anomalous Hall and second-order (2ω and rectified) currents of a band model.
 
-Conventions (physics-reference.md §0, design-notes §2): carrier charge q = −e; E(t) = Re[E e^{iωt}];
+Conventions (docs/theory.md §0, docs/theory.md §A2): carrier charge q = −e; E(t) = Re[E e^{iωt}];
 j_a = σ_ab E_b; j(t) = Re[j⁽⁰⁾ + j⁽²ω⁾ e^{2iωt}] with j⁽²ω⁾_a = χ_abc E_b E_c and
 j⁽⁰⁾_a = χ^dc_abc E_b E_c* (Sodemann & Fu, PRL 115, 216806, 2015, phasor convention; a static
 field E gives j = 2χ^dc E E).  χ is symmetrised in its last two indices.  Results in SI: 2D sheet
@@ -20,7 +20,7 @@ Response coefficients (τ̃_ν = τ/(1+iντ), F = −∂f0/∂ε, v = ∇_kε/�
   τ̃_2ω → τ                                                                          (∝ τ²)
 * intrinsic (Berry-connection polarizability; Gao, Yang, Niu, PRL 112, 166601, 2014)
   χ^int_abc = ½ (q³/ħ) ∫[dk] f0 [∂_aG_bc − ½(∂_bG_ac + ∂_cG_ab)]  (½: phasor convention, ω ≪ gap).
-  This is one published form of a disputed τ⁰ sector (physics-reference §5.5c); switch it off with
+  This is one published form of a disputed τ⁰ sector (docs/theory.md §5.5c); switch it off with
   ``intrinsic=False``.                                                                 (τ⁰)
 * Lorentz (ordinary) Hall to first order in B_z: σ_ab(B) = B (q³/ħ) ∫[dk] τ² f0' ε_cd v_a v_d ∂v_b/∂k_c
   (Jones–Zener iteration), ``sigma_lorentz`` = ∂σ/∂B_z in S/T and ``hall_coefficient``
