@@ -42,7 +42,8 @@ import jax.numpy as jnp
 import numpy as np
 
 from crosswind.models.geometry import geometry_at
-from .occupation import minus_dfermi  # noqa: F401  (documented relation; σ(x) below is k_BT·(−f0'))
+from .kernels import _tilde
+from .mesh import energies_at
 
 WINDOW_X = 40.0          # Fermi window half-width in k_BT (neglected weight ~ e^-40)
 X_BREAKS = (-40.0, -24.0, -14.0, -8.0, -4.0, -1.5, 0.0, 1.5, 4.0, 8.0, 14.0, 24.0, 40.0)
@@ -120,7 +121,6 @@ def point_factors(model, params, k, sea):
 
 
 def _energies(model, params, k):
-    from .mesh import energies_at
     return energies_at(model, k, params)
 
 
@@ -406,7 +406,6 @@ def moments_from_tables(table, layout, vol, mu, kt, temp, tau_eval, tau_arr, ome
     E = mu[:, None] + x * kt[:, None]
     cE, sE = _hermite(C, S, e_lo, delta, E)                          # (P, Q, nc)
     tau, dtau = tau_eval(tau_arr, E, temp[:, None])                  # (P, Q)
-    from .kernels import _tilde
     t1, _ = _tilde(tau, dtau, omega)
     t2, dt2 = _tilde(tau, dtau, 2.0 * omega)
     tauc, dtauc = tau.astype(jnp.complex128), dtau.astype(jnp.complex128)
