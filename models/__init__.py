@@ -2,11 +2,13 @@
 
 Importing this package switches JAX to 64-bit floats (``jax_enable_x64``) once, for the whole
 process: every array Crosswind creates is float64/complex128, and a user's own JAX code in the
-same process also gets 64-bit defaults.
+same process also gets 64-bit defaults.  It also turns on JAX's persistent compilation cache
+(``models/runtime.py``: ``~/.cache/crosswind`` or ``$XDG_CACHE_HOME/crosswind``; switch off with
+``CROSSWIND_CACHE=off``).
 """
-import jax as _jax
+from .runtime import configure as _configure
 
-_jax.config.update("jax_enable_x64", True)
+_configure()
 
 from .band_model import BandModel  # noqa: E402
 from .domain import Continuum, Lattice  # noqa: E402

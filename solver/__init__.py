@@ -2,9 +2,7 @@
 
 Importing this package (like ``crosswind.models``) switches JAX to 64-bit floats process-wide.
 """
-import jax as _jax
-
-_jax.config.update("jax_enable_x64", True)
+import crosswind.models  # noqa: F401  (float64 and the compilation cache, models/runtime.py)
 
 from .density import gate_density, mu_from_density  # noqa: E402
 from .response import Response, response  # noqa: E402

@@ -66,7 +66,7 @@ class TriLevel:
     @property
     def k_points(self) -> int:
         """Distinct k-points at which the band geometry is evaluated."""
-        return self.n0 ** 2 + self.budget * ((self.m + 1) ** 2 - 4)
+        return self.n0 ** 2 + min(self.budget, self.n0 ** 2) * ((self.m + 1) ** 2 - 4)
 
 
 def tri_levels():
@@ -79,7 +79,7 @@ def tri_levels():
 # geometric factors: what multiplies each energy function in the kernels (2D)
 # --------------------------------------------------------------------------------------------
 
-#: name -> (shape, kind); kind "S": Fermi-surface factor (used through S_A), "C": Fermi-sea
+#: (name, shape) of every geometric factor; each gets both tables C_A and S_A
 FACTORS = (("one", ()), ("gg", (2, 2)), ("gom", (2,)), ("hg", (2, 2, 2)), ("ggg", (2, 2, 2)),
            ("bcp", (2, 2, 2)), ("lor", (2, 2)), ("om", ()), ("abs_om", ()), ("sc_dip", ()),
            ("sc_dr2", ()), ("sc_bcp", ()))
@@ -231,10 +231,14 @@ def _strip_rows(n0):
 
 def energy_tables(model, params, lev: TriLevel, window, sea=False):
     """Fine and coarse transport tables over the energy ``window`` = (lo, hi) (eV, concrete or
-    traced; it is not differentiated).  Returns ``(tables, info)`` with tables a dict
-    {"fine"/"coarse": (C, S) at knots, "lost": (nc,), "knots": (E_lo, δ) fine}."""
-    dim = model.dim
-    assert dim == 2
+    traced; it is not differentiated).  Returns ``(tables, info)``: ``tables["fine"]`` and
+    ``tables["coarse"]`` are ``(C, S, E_lo, δ)`` (C and S at knots E_lo + jδ, shape (M, nc)),
+    ``tables["lost"]`` (nc,) the weight no knot received, ``tables["layout"]`` the factor layout
+    and ``tables["vol"]`` the zone measure per band; ``info`` holds the flagged-cell count, the
+    refined-cell count and δ."""
+    if model.dim != 2:
+        raise ValueError(f"energy_tables: {model.name} is {model.dim}D; the triangle engine "
+                         "integrates 2D lattices only (use crosswind.solver.response for 3D models)")
     n0, m, B = lev.n0, lev.m, min(lev.budget, lev.n0 ** 2)
     layout, nc = _layout(sea)
     pfix = jax.lax.stop_gradient(params)

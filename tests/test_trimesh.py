@@ -15,7 +15,7 @@ from crosswind.solver.scattering import as_scattering
 
 
 def _tri_weights_np(E, e, area):
-    """Occupied area of one triangle below E by brute-force Monte Carlo-free subdivision."""
+    """Occupied area of one triangle below E by midpoint subdivision (independent of the closed form)."""
     n = 400
     a, b = np.meshgrid((np.arange(n) + 0.5) / n, (np.arange(n) + 0.5) / n, indexing="ij")
     keep = a + b < 1
@@ -63,3 +63,10 @@ def test_band_density_and_dos_of_a_lattice_model():
         assert float(jnp.max(tab["lost"])) == 0.0
     else:
         assert float(jnp.max(tab["lost"])) > 0.0
+
+
+def test_three_dimensional_model_is_refused_with_the_fix():
+    import pytest
+    model = build("weyl")
+    with pytest.raises(ValueError, match="2D lattices only"):
+        tm.energy_tables(model, model.params, tm.tri_levels()[0], (0.0, 0.1))
