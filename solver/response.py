@@ -48,6 +48,7 @@ import numpy as np
 from crosswind.models.band_model import BandModel
 from crosswind.models.domain import Lattice
 from crosswind.models.units import ANGSTROM, E_CHARGE, HBAR_JS, KB_EVK
+from . import ladder as _ladder
 from . import mesh as _mesh
 from .kernels import moments, moments_indexed
 from .occupation import T_FLOOR, thermal_energy
@@ -243,22 +244,149 @@ def _floors(mom, model, tau_max):
             "dipole": dip * L ** (3 - d), "chi": chi, "chi_dc": chi}
 
 
-def _converged(fine, coarse, mom_fine, rtol, model, tau_max):
+def _converged(fine, err, mom_fine, rtol, model, tau_max):
+    """Fields whose estimated error ``err`` exceeds ``rtol`` times their size (or, for a field
+    that vanishes by symmetry, 1e-2 of its integrand magnitude)."""
     bad = []
     floors = _floors(mom_fine, model, tau_max)
     for name in ("density", "sigma", "sigma_anomalous", "dipole", "chi", "chi_dc"):
-        a, b = np.asarray(fine[name]), np.asarray(coarse[name])
+        a, e = np.asarray(fine[name]), np.asarray(err[name])
         size = float(np.max(np.abs(a))) if a.size else 0.0
         floor = floors.get(name, 0.0) * 1e-2
-        diff = float(np.max(np.abs(a - b))) if a.size else 0.0
-        if diff > rtol * max(size, floor) and diff > 0:
+        diff = float(np.max(e)) if e.size else 0.0
+        if not diff <= rtol * max(size, floor) and diff > 0:
             bad.append((name, diff, size))
     return bad
 
 
+def _abs_diff(a, b):
+    return {name: jnp.abs(a[name] - b[name]) for name in ("density", "sigma", "sigma_anomalous",
+                                                          "dipole", "chi", "chi_dc")}
+
+
+@partial(jax.jit, static_argnames=("plan", "tau_eval", "filled", "sea"))
+def _ladder_at(model, mu, kt, temp, tau_arr, omega, *, plan, tau_eval, filled, sea):
+    tau_col = jax.tree_util.tree_map(lambda a: a[:, None], tau_arr)
+    f, c, ex, info = _ladder.ladder_moments(model, model.params, plan, mu, kt, temp, tau_eval, tau_col,
+                                            omega, filled, sea)
+    return f, c, ex, info["overflow"], info["flagged"]
+
+
+def _run_ladder(model, mu, kt, temp, tau_arr, omega, res, kw, plan, traced):
+    """One ladder evaluation; a run whose flagged cells overflowed a budget is repeated with
+    budgets raised from the counts it reports (concrete calls only)."""
+    if plan is None:
+        plan = _ladder.make_plan(model, model.params, mu, temp, res)
+    for _ in range(4):
+        f, c, ex, over, flagged = _ladder_at(model, mu, kt, temp, tau_arr, omega, plan=plan, **kw)
+        if traced or not bool(over):
+            break
+        new = _ladder.make_plan(model, model.params, mu, temp, res, flagged=np.asarray(flagged), old=plan)
+        if new == plan:
+            break
+        plan = new
+    return f, c, ex, over, plan
+
+
+def _ladder_errors(fine_m, coarse_m, ex_m, over, model, temp, intrinsic):
+    fine = _to_si(fine_m, model, temp, intrinsic)
+    coarse = _to_si(coarse_m, model, temp, intrinsic)
+    shifted = _to_si(jax.tree_util.tree_map(lambda a, b: a + b.astype(a.dtype), fine_m, ex_m), model, temp,
+                     intrinsic)
+    err = {}
+    for name in ARRAY_FIELDS:
+        e = jnp.abs(fine[name] - coarse[name]) + jnp.abs(shifted[name] - fine[name])
+        err[name] = jnp.where(over, jnp.inf, e)
+    for part in ("dipole", "drude", "intrinsic"):
+        e = (jnp.abs(fine["chi_parts"][part] - coarse["chi_parts"][part])
+             + jnp.abs(shifted["chi_parts"][part] - fine["chi_parts"][part]))
+        err[f"chi_{part}"] = jnp.where(over, jnp.inf, e)
+    return fine, err
+
+
+def _mesh_path(model, muf, kt, Tf, tauf, omega, kw, rtol, resolution, max_level, intrinsic,
+               estimate_error, tau_max, P):
+    """Node-based quadrature (:mod:`crosswind.solver.mesh`): one mesh pass per level."""
+    levels = _levels(model)
+    top = len(levels) - 1 if max_level is None else min(max_level, len(levels) - 1)
+    passes = []
+
+    def run(lev):
+        passes.append(lev)
+        return _moments_at(model, muf, kt, Tf, tauf, omega, level=lev, **kw)
+
+    bad = None
+    if resolution is None:
+        lev = 1
+        coarse_m = run(0)
+        fine_m = run(1)
+        while True:
+            fine = _to_si(fine_m, model, Tf, intrinsic)
+            coarse = _to_si(coarse_m, model, Tf, intrinsic)
+            bad = _converged(fine, _abs_diff(fine, coarse), fine_m, rtol, model, tau_max)
+            if not bad or lev >= top:
+                break
+            lev += 1
+            coarse_m, fine_m = fine_m, run(lev)
+    else:
+        if not (0 <= resolution <= len(levels) - 1):
+            raise ValueError(f"response: resolution must be a level 0..{len(levels) - 1}")
+        lev = resolution
+        fine_m = run(lev)
+        coarse_m = run(lev - 1) if lev > 0 and estimate_error else fine_m
+        fine = _to_si(fine_m, model, Tf, intrinsic)
+        coarse = _to_si(coarse_m, model, Tf, intrinsic)
+    err = {name: jnp.abs(fine[name] - coarse[name]) for name in ARRAY_FIELDS}
+    for part in ("dipole", "drude", "intrinsic"):
+        err[f"chi_{part}"] = jnp.abs(fine["chi_parts"][part] - coarse["chi_parts"][part])
+    # distinct k-points where the band geometry was evaluated: lattice meshes are shared by all
+    # conditions of a pass, continuum ray meshes are built per condition
+    per_pass = 1 if isinstance(model.domain, Lattice) else P
+    info = {"engine": "mesh", "level": lev, "nodes_per_condition": _mesh.node_count(model, levels[lev]),
+            "k_points": int(sum(_mesh.node_count(model, levels[q]) * per_pass for q in set(passes)))}
+    return fine, err, bad, info
+
+
+def _ladder_path(model, muf, kt, Tf, tauf, omega, kw, rtol, resolution, max_level, intrinsic, plan,
+                 traced, tau_max):
+    """Energy-resolved ladder (:mod:`crosswind.solver.ladder`): one program per resolution
+    computes the fine and the nested coarse sums for every condition."""
+    if not isinstance(model.domain, Lattice):
+        raise ValueError("response: engine='ladder' integrates lattice models; use engine='mesh' "
+                         "for continuum (k·p) models")
+    nres = len(_ladder.RESOLUTIONS)
+    if traced and plan is None:
+        raise ValueError("response: with engine='ladder' under jax.grad/jit pass plan=..., the plan of "
+                         "a concrete call: dict(response(...).resolution)['plan']")
+    bad = None
+    k_points = 0
+    if resolution is None:
+        top = nres - 1 if max_level is None else min(max_level, nres - 1)
+        lev = 1
+        while True:
+            f, c, ex, over, used = _run_ladder(model, muf, kt, Tf, tauf, omega, lev, kw, None, False)
+            k_points += used.k_points(model.dim)
+            fine, err = _ladder_errors(f, c, ex, over, model, Tf, intrinsic)
+            bad = _converged(fine, err, f, rtol, model, tau_max)
+            if not bad or lev >= top:
+                break
+            lev += 1
+    else:
+        if not (0 <= resolution <= nres - 1):
+            raise ValueError(f"response: resolution must be a level 0..{nres - 1}")
+        lev = resolution
+        f, c, ex, over, used = _run_ladder(model, muf, kt, Tf, tauf, omega, lev, kw, plan, traced)
+        k_points = used.k_points(model.dim)
+        fine, err = _ladder_errors(f, c, ex, over, model, Tf, intrinsic)
+    info = {"engine": "ladder", "level": lev, "plan": used, "levels": used.levels,
+            "k_points": int(k_points)}
+    return fine, err, bad, info
+
+
 def response(model: BandModel, mu, temperature, tau, frequency=0.0, *, rtol: float = 1e-3,
              resolution: int | None = None, max_level: int | None = None, intrinsic: bool = True,
-             dipole_route: str = "surface", chunk: int = 4096, estimate_error: bool = True) -> Response:
+             dipole_route: str = "surface", chunk: int = 4096, estimate_error: bool = True,
+             engine: str = "mesh", plan=None) -> Response:
     """Transport coefficients of ``model`` at chemical potential(s) ``mu`` (eV), ``temperature`` (K)
     and relaxation time ``tau`` (fs, or a scattering object from :mod:`crosswind.solver.scattering`),
     at drive ``frequency`` (Hz).  ``mu``, ``temperature`` and ``tau`` broadcast against each other;
@@ -269,7 +397,19 @@ def response(model: BandModel, mu, temperature, tau, frequency=0.0, *, rtol: flo
     integral ∫f0 ∂Ω (``dipole_sea``) and folds the disagreement of the two routes into
     ``error["dipole"]``.  With a fixed ``resolution``, ``estimate_error=False`` skips the coarser
     pass (half the cost, e.g. inside fits); ``error`` is then NaN.
+
+    ``engine="ladder"`` (lattice models) uses the energy-resolved ladder of
+    :mod:`crosswind.solver.ladder`: the band geometry is evaluated once per call for all
+    conditions (sweeps over μ, T, τ and ω cost energy sums, not k-points) on shells around the
+    Fermi contours that narrow with temperature, and T below its deepest level is reached by T²
+    extrapolation.  ``resolution`` then indexes ``ladder.RESOLUTIONS``; under ``jax.grad``/``jit``
+    also pass ``plan=dict(r.resolution)["plan"]`` from a concrete call.  ``resolution`` metadata
+    always includes ``k_points``, the distinct k-points where the band geometry was evaluated
+    (all passes and conditions).
     """
+    if engine not in ("mesh", "ladder"):
+        raise ValueError("response: engine must be 'mesh' (node quadrature, every model) or 'ladder' "
+                         "(energy-resolved, lattice models)")
     if not isinstance(model, BandModel):
         raise TypeError("response: the first argument must be a BandModel from crosswind.models.build(...)")
     if dipole_route not in ("surface", "both"):
@@ -303,52 +443,30 @@ def response(model: BandModel, mu, temperature, tau, frequency=0.0, *, rtol: flo
     tauf = jax.tree_util.tree_map(flat, tau_arr)
     kt = thermal_energy(Tf)
     omega = jnp.asarray(2 * jnp.pi * frequency * FS, dtype=jnp.float64)
-    levels = _levels(model)
-    top = len(levels) - 1 if max_level is None else min(max_level, len(levels) - 1)
-    kw = dict(tau_eval=type(scat).evaluate, filled=neutral_filling(model), sea=dipole_route == "both",
-              chunk=chunk)
-    run = lambda lev: _moments_at(model, muf, kt, Tf, tauf, omega, level=lev, **kw)
+    kw = dict(tau_eval=type(scat).evaluate, filled=neutral_filling(model), sea=dipole_route == "both")
+    traced = _is_traced(model.params, muf, Tf, tauf, omega)
+    if resolution is None and traced:
+        raise ValueError("response: pass a fixed mesh, e.g. resolution=2, when differentiating or "
+                         "tracing (automatic refinement compares concrete values)")
+    tau_max = None
     if resolution is None:
-        if _is_traced(model.params, muf, Tf, tauf, omega):
-            raise ValueError("response: pass a fixed mesh, e.g. resolution=2, when differentiating or "
-                             "tracing (automatic refinement compares concrete values)")
         tau_max = float(np.max(np.abs(np.asarray(jax.vmap(lambda a: type(scat).evaluate(
             a, jnp.zeros((1, 1)), jnp.zeros((1, 1)))[0])(jax.tree_util.tree_map(lambda x: x[:, None, None], tauf))))))
-        lev = 1
-        coarse_m = run(0)
-        fine_m = run(1)
-        while True:
-            fine = _to_si(fine_m, model, Tf, intrinsic)
-            coarse = _to_si(coarse_m, model, Tf, intrinsic)
-            bad = _converged(fine, coarse, fine_m, rtol, model, tau_max)
-            if not bad or lev >= top:
-                break
-            lev += 1
-            coarse_m, fine_m = fine_m, run(lev)
+    if engine == "ladder":
+        fine, err, bad, info = _ladder_path(model, muf, kt, Tf, tauf, omega, kw, rtol, resolution,
+                                            max_level, intrinsic, plan, traced, tau_max)
     else:
-        if not (0 <= resolution <= len(levels) - 1):
-            raise ValueError(f"response: resolution must be a level 0..{len(levels) - 1}")
-        lev = resolution
-        fine_m = run(lev)
-        coarse_m = run(lev - 1) if lev > 0 and estimate_error else fine_m
-        fine = _to_si(fine_m, model, Tf, intrinsic)
-        coarse = _to_si(coarse_m, model, Tf, intrinsic)
-        bad = None
-    err = {}
-    for name in ARRAY_FIELDS:
-        err[name] = jnp.abs(fine[name] - coarse[name])
+        fine, err, bad, info = _mesh_path(model, muf, kt, Tf, tauf, omega, dict(kw, chunk=chunk), rtol,
+                                          resolution, max_level, intrinsic, estimate_error, tau_max, P)
     if dipole_route == "both":
         err["dipole"] = jnp.maximum(err["dipole"], jnp.abs(fine["dipole"] - fine["dipole_sea"]))
-    for part in ("dipole", "drude", "intrinsic"):
-        err[f"chi_{part}"] = jnp.abs(fine["chi_parts"][part] - coarse["chi_parts"][part])
     if resolution is not None and not estimate_error:
         err = {key: jnp.full(v.shape, jnp.nan) for key, v in err.items()}
     reshape = lambda x: x.reshape(shape + x.shape[1:])
     fine = jax.tree_util.tree_map(reshape, fine)
     err = jax.tree_util.tree_map(reshape, err)
-    info = {"level": lev, "nodes_per_condition": _mesh.node_count(model, levels[lev]),
-            "converged": (not bad) if bad is not None else None,
-            "unconverged_fields": tuple(b[0] for b in bad) if bad else ()}
+    info.update({"converged": (not bad) if bad is not None else None,
+                 "unconverged_fields": tuple(b[0] for b in bad) if bad else ()})
     units = UNITS_2D if model.dim == 2 else UNITS_3D
     return Response(**{k: fine[k] for k in ARRAY_FIELDS}, chi_parts=fine["chi_parts"],
                     chi_dc_parts=fine["chi_dc_parts"], error=err, resolution=tuple(sorted(info.items())),

@@ -41,7 +41,7 @@ import jax
 import jax.numpy as jnp
 import numpy as np
 
-from crosswind.models.geometry import geometry_at
+from . import ladder as _ladder
 from .kernels import _tilde
 from .mesh import energies_at
 
@@ -79,45 +79,15 @@ def tri_levels():
 # geometric factors: what multiplies each energy function in the kernels (2D)
 # --------------------------------------------------------------------------------------------
 
-#: (name, shape) of every geometric factor; each gets both tables C_A and S_A
-FACTORS = (("one", ()), ("gg", (2, 2)), ("gom", (2,)), ("hg", (2, 2, 2)), ("ggg", (2, 2, 2)),
-           ("bcp", (2, 2, 2)), ("lor", (2, 2)), ("om", ()), ("abs_om", ()), ("sc_dip", ()),
-           ("sc_dr2", ()), ("sc_bcp", ()))
-SEA_FACTOR = ("dom", (2,))
-
-
 def _layout(sea):
-    items = FACTORS + ((SEA_FACTOR,) if sea else ())
-    out, start = {}, 0
-    for name, shape in items:
-        size = int(np.prod(shape)) if shape else 1
-        out[name] = (start, shape)
-        start += size
-    return out, start
+    return _ladder.factor_layout(2, sea)
 
 
 def point_factors(model, params, k, sea):
-    """Energies (nb,) and the flat factor vector (nb, ncomp) at one k."""
-    e, g, h, om, _mom, _met, G = geometry_at(model, k, params)
-    nb = e.shape[0]
-    gg = g[:, :, None] * g[:, None, :]
-    hg = h[:, :, :, None] * g[:, None, None, :]
-    ggg = gg[:, :, :, None] * g[:, None, None, :]
-    gG = g[:, :, None, None] * G[:, None, :, :]
-    bcp = gG - 0.5 * (jnp.swapaxes(gG, 1, 2) + jnp.transpose(gG, (0, 3, 2, 1)))
-    eps = jnp.array([[0.0, 1.0], [-1.0, 0.0]])
-    cross = jnp.einsum("cd,nd,ncb->nb", eps, g, h)
-    lor = g[:, :, None] * cross[:, None, :]
-    gn = jnp.sqrt(jnp.sum(g * g, axis=-1))
-    parts = [jnp.ones((nb, 1)), gg.reshape(nb, -1), g * om[:, None], hg.reshape(nb, -1),
-             ggg.reshape(nb, -1), bcp.reshape(nb, -1), lor.reshape(nb, -1), om[:, None],
-             jnp.abs(om)[:, None], (gn * jnp.abs(om))[:, None],
-             (jnp.sqrt(jnp.sum(h * h, axis=(-1, -2))) * gn)[:, None],
-             (gn * jnp.sqrt(jnp.sum(G * G, axis=(-1, -2))))[:, None]]
-    if sea:
-        dom = jax.jacfwd(lambda q: geometry_at(model, q, params)[3])(k)       # (nb, 2) ∂_bΩ
-        parts.append(dom)
-    return e, jnp.concatenate(parts, axis=-1)
+    """Energies (nb,) and the flat factor vector (nb, ncomp) at one k, in the layout of
+    :func:`crosswind.solver.ladder.factor_layout`."""
+    e, _speed, f = _ladder.point_factors(model, params, k, sea)
+    return e, f
 
 
 def _energies(model, params, k):

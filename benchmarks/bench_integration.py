@@ -1,0 +1,87 @@
+"""k-space integration benchmarks (issue goals as ratios measured in one process).
+
+Prints, for a lattice model:
+
+* sweep   — one ``response(..., engine="ladder")`` call over N_mu × N_T conditions against a call
+            with one condition (both warm, same resolution): the cost of a sweep in units of one
+            point; the same ratio for the node engine (``engine="mesh"``) for comparison;
+* eigh    — the ladder call (one condition, warm) against a bare batched ``jnp.linalg.eigh`` of
+            the model's Hamiltonian on as many k-points as the ladder evaluated;
+* memory  — peak resident memory of the process after the largest sweep (MiB).
+
+Usage: ``python benchmarks/bench_integration.py`` (full: 200 μ × 20 T; several minutes on 2
+cores, mostly compilation) or ``--quick`` (8 × 2 conditions; the smoke test runs this).
+"""
+from __future__ import annotations
+
+import argparse
+import resource
+import time
+
+import jax
+import jax.numpy as jnp
+import numpy as np
+
+from crosswind.models import build
+from crosswind.solver import response
+
+
+def _warm(fn, repeat=2):
+    fn()                                   # compile (and fill the budgets)
+    best = np.inf
+    for _ in range(repeat):
+        t0 = time.perf_counter()
+        fn()
+        best = min(best, time.perf_counter() - t0)
+    return best
+
+
+def _block(r):
+    jax.block_until_ready(r.sigma)
+    return r
+
+
+def run(n_mu=200, n_t=20, resolution=1, model_name="haldane", mu_range=(1.1, 1.4), t_range=(20.0, 300.0)):
+    model = build(model_name)
+    mus = np.linspace(*mu_range, n_mu)
+    temps = np.geomspace(*t_range, n_t)
+    mu_grid, t_grid = np.meshgrid(mus, temps, indexing="ij")
+    one = dict(mu=float(mus[n_mu // 2]), temperature=float(temps[0]), tau=50.0, resolution=resolution)
+    sweep = dict(mu=mu_grid, temperature=t_grid, tau=50.0, resolution=resolution)
+    rows = []
+    r1 = _block(response(model, engine="ladder", **one))
+    plan = dict(r1.resolution)["plan"]
+    t_one = _warm(lambda: _block(response(model, engine="ladder", plan=plan, **one)))
+    rs = _block(response(model, engine="ladder", **sweep))
+    t_sweep = _warm(lambda: _block(response(model, engine="ladder", plan=dict(rs.resolution)["plan"], **sweep)))
+    rows.append(("sweep ladder", f"{n_mu * n_t} conditions / 1", t_sweep / t_one, f"{t_sweep:.2f} s / {t_one:.2f} s"))
+    m_one = dict(one, resolution=min(resolution + 1, 5))
+    m_sweep = dict(mu=mus[:8], temperature=float(temps[0]), tau=50.0, resolution=m_one["resolution"])
+    tm1 = _warm(lambda: _block(response(model, **m_one)))
+    tm8 = _warm(lambda: _block(response(model, **m_sweep)))
+    rows.append(("sweep mesh", "8 conditions / 1", tm8 / tm1, f"{tm8:.2f} s / {tm1:.2f} s"))
+    # bare eigensolver on as many k-points as the ladder evaluated
+    nk = plan.k_points(model.dim)
+    b = np.asarray(model.reciprocal_vectors())
+    red = np.random.default_rng(0).random((nk, model.dim))
+    ks = jnp.asarray(red @ b)
+    eig = jax.jit(lambda k: jnp.linalg.eigh(jax.vmap(lambda q: model.hamiltonian(q, model.params))(k)))
+    t_eig = _warm(lambda: jax.block_until_ready(eig(ks)))
+    rows.append(("eigh", f"ladder 1 condition / eigh on {nk} k", t_one / t_eig, f"{t_one:.2f} s / {t_eig:.3f} s"))
+    peak = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
+    rows.append(("memory", "peak RSS (MiB)", peak, f"after {n_mu * n_t} conditions"))
+    print(f"model {model_name}, resolution {resolution}, plan of one condition {plan}")
+    print(f"{'benchmark':<14} {'ratio of':<42} {'value':>10}  detail")
+    for name, what, val, det in rows:
+        print(f"{name:<14} {what:<42} {val:>10.3g}  {det}")
+    return rows
+
+
+if __name__ == "__main__":
+    ap = argparse.ArgumentParser()
+    ap.add_argument("--quick", action="store_true")
+    a = ap.parse_args()
+    if a.quick:
+        run(n_mu=8, n_t=2, resolution=0, t_range=(150.0, 300.0))
+    else:
+        run()

@@ -1,0 +1,548 @@
+"""Energy-resolved k-space integration on lattices: a ladder of resolutions and temperatures.
+
+Every kernel of :mod:`crosswind.solver.kernels` is Σ_n ∫[dk] φ(ε_n(k); μ, T) A_n(k), with φ an
+occupation function (f0, −∂f0/∂ε or the entropy s) times a relaxation-time factor of ε and T, and
+A a geometric factor (1, g_a g_b, g_b Ω, ...).  A periodic trapezoid (uniform offset grid of spacing
+h) integrates such an integrand with spectral accuracy once h resolves its narrowest feature, the
+thermal width πk_BT/|∇ε| (error ≈ exp(−2π²k_BT/(|∇ε|h)); common practice).  At 2–20 K that
+needs ~10⁸ points on a whole-zone grid.  The ladder (docs/theory.md §14) writes instead, for the
+occupation part only,
+
+    φ(T) = φ(T*_0) + Σ_{l=1..L} [φ(T*_l) − φ(T*_{l−1})],      T*_l = max(T, T_l),
+
+with T_l = T_0/2^l and k_BT_0 = κ·v_max·h_0 (v_max the largest |∇ε| of the model, h_0 the level-0
+spacing).  Level 0 is the uniform n0^d grid over the whole zone, resolving φ(T*_0).  The l-th
+difference is resolved by a grid of spacing h_0/2^l and vanishes (to e^{−W}) farther than
+W·k_BT_{l−1} from every μ, so it is summed only over the cells of level l−1 that come that close
+(each split into 2^d children): a uniform grid wherever its integrand is not negligible, hence
+spectrally accurate, with no resolution seams.  Points therefore concentrate in shells around
+the Fermi contours of the requested μ whose width halves with every level.
+
+Energy axis.  Each point and band deposits w·A onto knots E_lo + jδ_l of its level with the four
+cubic Lagrange weights of its energy (the moments Σ (E_j − ε)^m, m ≤ 3, are preserved), so for
+any smooth φ, Σ_j table_j φ(E_j) = Σ_k w A φ(ε) + O(δ⁴φ'''').  With δ_l = k_BT_l/ρ the tables
+are built once per call, independently of μ, T, τ and ω; every condition is then a short sum
+over the knots within its window (conditions cost knots, not k-points).
+
+Below the deepest level (T < T_L) the partial sums X(T_L), X(T_{L−1}), X(T_{L−2}) — each the full
+result at that temperature — are extrapolated in T² (Sommerfeld expansion, valid when k_BT_L is
+small against the distance of μ to band edges and van Hove points); T = 0 is the same formula.
+
+Error estimate, nested in the same program: the sums repeated on the sub-grid of spacing 2h at
+every level (every other level-0 point; one child per refined cell) with knots 2δ, plus the
+spread of the T² extrapolation; cells flagged beyond a level's budget make the error infinite
+(``overflow``), never a silently truncated sum.  Cell selection and knot placement are wrapped
+in ``stop_gradient``: derivatives with respect to model parameters are those of the sums over the
+placed points; μ, T and τ enter only through φ, so their derivatives are exact derivatives of the
+energy sums.
+"""
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import jax
+import jax.numpy as jnp
+import numpy as np
+
+from crosswind.models.geometry import geometry_at
+from .kernels import _tilde
+from .occupation import T_FLOOR, entropy_density, fermi, minus_dfermi
+
+KB = 8.617333262e-5        # eV/K (CODATA 2018 via k_B/e)
+W = 24.0                   # window half-width in k_BT: neglected weight ~ e^-24 ≈ 4e-11
+SLACK = 1.5                # cell-size reach in units of |∇ε|·(half diagonal)
+PROBE = 24                 # points per direction of the v_max probe grid
+
+
+@dataclass(frozen=True)
+class Plan:
+    """Static shape of one ladder: ``n0`` level-0 points per reciprocal vector, ``budgets[l-1]``
+    cells of level l−1 refined at level l, ``knots[l]`` energy knots of level l (fine), ``kappa``
+    (k_BT_0 = κ v_max h_0) and ``rho`` (δ_l = k_BT_l/ρ)."""
+
+    n0: int
+    budgets: tuple
+    knots: tuple
+    kappa: float
+    rho: float
+
+    @property
+    def levels(self) -> int:
+        return len(self.budgets)
+
+    def k_points(self, dim: int) -> int:
+        """Distinct k-points at which the band geometry is evaluated (probe grid included)."""
+        return PROBE ** dim + self.n0 ** dim + sum(b * 2 ** dim for b in self.budgets)
+
+
+#: (n0, kappa, rho) per resolution index (2D; 3D uses n0 // 4, at least 12)
+RESOLUTIONS = ((32, 0.8, 4.0), (48, 1.0, 6.0), (64, 1.25, 8.0), (96, 1.5, 10.0), (128, 1.8, 12.0),
+               (192, 2.2, 16.0))
+
+
+def n0_of(resolution: int, dim: int) -> int:
+    n0 = RESOLUTIONS[resolution][0]
+    return n0 if dim == 2 else max(12, n0 // 4)
+
+
+# --------------------------------------------------------------------------------------------
+# geometric factors (dimension-generic)
+# --------------------------------------------------------------------------------------------
+
+def factor_layout(dim, sea):
+    om = () if dim == 2 else (3,)
+    items = [("one", ()), ("gg", (dim, dim)), ("gom", (dim,) + om), ("hg", (dim,) * 3),
+             ("ggg", (dim,) * 3), ("bcp", (dim,) * 3), ("lor", (dim, dim)), ("om", om),
+             ("abs_om", ()), ("sc_dip", ()), ("sc_dr2", ()), ("sc_bcp", ())]
+    if sea:
+        items.append(("dom", (dim,) + om))
+    out, start = {}, 0
+    for name, shape in items:
+        size = int(np.prod(shape)) if shape else 1
+        out[name] = (start, shape)
+        start += size
+    return out, start
+
+
+def point_factors(model, params, k, sea):
+    """Energies (nb,), |∇ε| (nb,) and the flat factor vector (nb, nc) at one k."""
+    e, g, h, om, _mom, _met, G = geometry_at(model, k, params)
+    nb, dim = e.shape[0], model.dim
+    gg = g[:, :, None] * g[:, None, :]
+    hg = h[:, :, :, None] * g[:, None, None, :]
+    ggg = gg[:, :, :, None] * g[:, None, None, :]
+    gG = g[:, :, None, None] * G[:, None, :, :]
+    bcp = gG - 0.5 * (jnp.swapaxes(gG, 1, 2) + jnp.transpose(gG, (0, 3, 2, 1)))
+    gn = jnp.sqrt(jnp.sum(g * g, axis=-1))
+    if dim == 2:
+        cross = jnp.einsum("cd,nd,ncb->nb", jnp.array([[0.0, 1.0], [-1.0, 0.0]]), g, h)
+        lor = g[:, :, None] * cross[:, None, :]
+        gom = g * om[:, None]
+        omv = om[:, None]
+        omn = jnp.abs(om)
+    else:
+        lor = jnp.zeros((nb, dim, dim))
+        gom = g[:, :, None] * om[:, None, :]
+        omv = om
+        omn = jnp.sqrt(jnp.sum(om * om, axis=-1))
+    parts = [jnp.ones((nb, 1)), gg.reshape(nb, -1), gom.reshape(nb, -1), hg.reshape(nb, -1),
+             ggg.reshape(nb, -1), bcp.reshape(nb, -1), lor.reshape(nb, -1), omv.reshape(nb, -1),
+             omn[:, None], (gn * omn)[:, None],
+             (jnp.sqrt(jnp.sum(h * h, axis=(-1, -2))) * gn)[:, None],
+             (gn * jnp.sqrt(jnp.sum(G * G, axis=(-1, -2))))[:, None]]
+    if sea:
+        dom = jax.jacfwd(lambda q: geometry_at(model, q, params)[3])(k)     # (nb, [3,] d) ∂_bΩ
+        if dim == 3:
+            dom = jnp.swapaxes(dom, 1, 2)                                    # (nb, b, c)
+        parts.append(dom.reshape(nb, -1))
+    return e, jax.lax.stop_gradient(gn), jnp.concatenate(parts, axis=-1)
+
+
+def _energy_and_speed(model, params, k):
+    e, g = geometry_at(model, k, params)[:2]
+    return e, jnp.sqrt(jnp.sum(g * g, axis=-1))
+
+
+# --------------------------------------------------------------------------------------------
+# deposition onto energy knots
+# --------------------------------------------------------------------------------------------
+
+def _lagrange(t):
+    """Cubic Lagrange weights of knots j−1, j, j+1, j+2 at fractional position t ∈ [0, 1)."""
+    return jnp.stack([-t * (t - 1) * (t - 2) / 6, (t + 1) * (t - 1) * (t - 2) / 2,
+                      -(t + 1) * t * (t - 2) / 2, (t + 1) * t * (t - 1) / 6], axis=-1)
+
+
+def _deposit(acc, e, f, w, e_lo, delta):
+    """Add points (energies ``e`` (N, nb), factors ``f`` (N, nb, nc), weights ``w`` (N,)) to
+    ``acc`` = (table (M, nc), below (nc,), dropped (nc,)).  States below the first knot go to
+    ``below`` (fully occupied for every condition), above the last are dropped (empty); a
+    state within the knot range but too close to its end is counted in ``dropped``."""
+    table, below, dropped = acc
+    M = table.shape[0]
+    pos = (jax.lax.stop_gradient(e) - e_lo) / delta
+    j = jnp.floor(pos)
+    t = (e - e_lo) / delta - j
+    lw = _lagrange(t)                                                    # (N, nb, 4)
+    ji = j.astype(jnp.int32)
+    idx = ji[..., None] + jnp.arange(-1, 3, dtype=jnp.int32)[None, None, :]
+    inside = (ji >= 1) & (ji <= M - 3)
+    wf = w[:, None, None] * f                                            # (N, nb, nc)
+    val = lw[..., None] * wf[:, :, None, :]                              # (N, nb, 4, nc)
+    idx = jnp.where(inside[..., None], idx, M)
+    table = table.at[idx.reshape(-1)].add(val.reshape(-1, f.shape[-1]), mode="drop")
+    is_below = pos < 1.0
+    below = below + jnp.sum(jnp.where(is_below[..., None], wf, 0.0), axis=(0, 1))
+    edge = (~inside) & (~is_below) & (pos < M + 2.0)
+    dropped = dropped + jnp.sum(jnp.where(edge[..., None], jnp.abs(wf), 0.0), axis=(0, 1))
+    return table, below, dropped
+
+
+def _new_acc(M, nc):
+    return (jnp.zeros((M, nc)), jnp.zeros((nc,)), jnp.zeros((nc,)))
+
+
+# --------------------------------------------------------------------------------------------
+# the ladder
+# --------------------------------------------------------------------------------------------
+
+def _chunks(n, chunk):
+    return -(-n // chunk)
+
+
+def _grid(n, dim):
+    """Reduced coordinates (n^dim, dim) of the offset grid (i + 1/2)/n."""
+    ax = (np.arange(n) + 0.5) / n
+    return np.stack(np.meshgrid(*([ax] * dim), indexing="ij"), -1).reshape(-1, dim)
+
+
+def probe_speed(model, params):
+    """Largest |∇ε| (eV Å) over all bands on a PROBE^d grid (sets the temperature ladder)."""
+    red = jnp.asarray(_grid(PROBE, model.dim))
+    b = model.reciprocal_vectors(params)
+    _, gn = jax.vmap(lambda q: _energy_and_speed(model, params, q))(red @ b)
+    return jnp.max(gn)
+
+
+def ladder_temperatures(model, params, plan: Plan):
+    """k_BT_l (eV) of levels 0..L and the level-0 spacing h_0 (1/Å), traced."""
+    p = jax.lax.stop_gradient(params)
+    b = model.reciprocal_vectors(p)
+    h0 = jnp.max(jnp.sqrt(jnp.sum(b * b, axis=-1))) / plan.n0
+    vmax = jnp.maximum(probe_speed(model, p), 1e-6)
+    kt0 = plan.kappa * vmax * h0
+    return kt0 / 2.0 ** jnp.arange(plan.levels + 1, dtype=jnp.float64), h0
+
+
+def build_tables(model, params, plan: Plan, mu, kt, sea, chunk=4096):
+    """Fine and coarse energy tables of every level for the conditions (mu, kt) (P,).  Returns
+    ``(levels, info)``: ``levels[l]`` = dict(fine=(table, below, dropped), coarse=(...),
+    e_lo, delta); ``info``: ``kt_ladder`` (L+1,), ``flagged`` and ``overflow`` per refined level."""
+    dim = model.dim
+    n0, L = plan.n0, plan.levels
+    layout, nc = factor_layout(dim, sea)
+    pfix = jax.lax.stop_gradient(params)
+    b = jax.lax.stop_gradient(model.reciprocal_vectors(params))
+    vol = jnp.abs(jnp.linalg.det(b)) / (2 * jnp.pi) ** dim
+    ktl, h0 = ladder_temperatures(model, params, plan)
+    mu_s, kt_s = jax.lax.stop_gradient(mu), jax.lax.stop_gradient(kt)
+    halfdiag = 0.5 * jnp.sqrt(jnp.sum(b * b)) / n0
+    nb = model.n_bands
+
+    def knots_for(level, kt_window, relevant):
+        mlo = jnp.min(jnp.where(relevant, mu_s, jnp.inf))
+        mhi = jnp.max(jnp.where(relevant, mu_s, -jnp.inf))
+        any_rel = jnp.any(relevant)
+        mlo, mhi = jnp.where(any_rel, mlo, 0.0), jnp.where(any_rel, mhi, 0.0)
+        delta = ktl[level] / plan.rho
+        if level == 0:
+            delta = jnp.maximum(delta, jnp.max(kt_s) / plan.rho)
+        M = plan.knots[level]
+        centre = 0.5 * (mlo + mhi)
+        e_lo = centre - 0.5 * (M - 1) * delta
+        # the window must fit: reported as overflow otherwise
+        fits = (mhi - mlo + 2 * W * kt_window + 12 * delta) <= (M - 1) * delta
+        return e_lo, delta, fits
+
+    def evaluate(red, w, e_lo, delta, coarse_mask, acc_f, acc_c):
+        """Geometry at reduced points ``red`` (n, d) in chunks; deposit fine (all points) and
+        coarse (``coarse_mask`` points at 2^d·w, knots 2δ).  Returns accs, energies, speeds."""
+        n = red.shape[0]
+        c = min(chunk, n)
+        nch = _chunks(n, c)
+        pad = nch * c - n
+        redp = jnp.concatenate([red, jnp.zeros((pad, dim))]) if pad else red
+        wp = jnp.concatenate([w, jnp.zeros((pad,))]) if pad else w
+        cm = jnp.concatenate([coarse_mask, jnp.zeros((pad,), bool)]) if pad else coarse_mask
+
+        def body(accs, i):
+            af, ac = accs
+            sl = lambda x: jax.lax.dynamic_slice_in_dim(x, i * c, c)
+            kk = sl(redp) @ b
+            ww = sl(wp)
+            e, gn, f = jax.vmap(lambda q: point_factors(model, params, q, sea))(kk)
+            af = _deposit(af, e, f, ww, e_lo, delta)
+            ac = _deposit(ac, e, f, jnp.where(sl(cm), ww * 2 ** dim, 0.0), e_lo, 2 * delta)
+            return (af, ac), (jax.lax.stop_gradient(e), gn)
+
+        (acc_f, acc_c), (e, gn) = jax.lax.scan(jax.checkpoint(body), (acc_f, acc_c), jnp.arange(nch))
+        return acc_f, acc_c, e.reshape(-1, nb)[:n], gn.reshape(-1, nb)[:n]
+
+    levels = []
+    # level 0: the whole zone
+    red0 = jnp.asarray(_grid(n0, dim))
+    idx0 = np.stack(np.meshgrid(*([np.arange(n0)] * dim), indexing="ij"), -1).reshape(-1, dim)
+    cmask0 = jnp.asarray(np.all(idx0 % 2 == 0, axis=-1))
+    kt0w = jnp.maximum(ktl[0], jnp.max(kt_s))
+    e_lo, delta, fits = knots_for(0, kt0w, jnp.ones_like(mu_s, dtype=bool))
+    M0 = plan.knots[0]
+    acc_f, acc_c, e_prev, g_prev = evaluate(red0, jnp.full((n0 ** dim,), vol / n0 ** dim), e_lo, delta,
+                                            cmask0, _new_acc(M0, nc), _new_acc((M0 + 1) // 2, nc))
+    levels.append(dict(fine=acc_f, coarse=acc_c, e_lo=e_lo, delta=delta))
+    red_prev, valid_prev = red0, jnp.ones((n0 ** dim,), bool)
+    flagged_all, overflow_all, fits_all = [], [], [fits]
+    sub = np.stack(np.meshgrid(*([np.array([-0.25, 0.25])] * dim), indexing="ij"), -1).reshape(-1, dim)
+    for lev in range(1, L + 1):
+        s_prev = 1.0 / (n0 * 2 ** (lev - 1))                          # reduced spacing of level lev-1
+        relevant = kt_s < ktl[lev - 1]
+        mu_rel = jnp.sort(jnp.where(relevant, mu_s, jnp.inf))
+        # distance of each state to the nearest relevant μ
+        pos = jnp.clip(jnp.searchsorted(mu_rel, e_prev), 1, mu_rel.shape[0] - 1)
+        if mu_rel.shape[0] == 1:
+            dist = jnp.abs(e_prev - mu_rel[0])
+        else:
+            dist = jnp.minimum(jnp.abs(e_prev - mu_rel[pos - 1]), jnp.abs(e_prev - mu_rel[pos]))
+        reach = W * ktl[lev - 1] + SLACK * g_prev * halfdiag / 2 ** (lev - 1)
+        score = jnp.min((dist - reach) / reach, axis=-1)
+        score = jnp.where(valid_prev, score, jnp.inf)
+        flag = score < 0
+        B = plan.budgets[lev - 1]
+        Bc = min(B, score.shape[0])
+        neg, chosen = jax.lax.top_k(-score, Bc)
+        chosen_ok = jnp.isfinite(neg) & (neg > 0)
+        nflag = jnp.sum(flag)
+        flagged_all.append(nflag)
+        overflow_all.append(nflag > Bc)
+        parents = red_prev[chosen]                                   # (Bc, d)
+        red = (parents[:, None, :] + jnp.asarray(sub)[None, :, :] * s_prev).reshape(-1, dim)
+        ok = jnp.repeat(chosen_ok, sub.shape[0])
+        w = jnp.where(ok, vol / (n0 ** dim * 2 ** (dim * lev)), 0.0)
+        cmask = jnp.tile(jnp.arange(sub.shape[0]) == 0, Bc) & ok
+        e_lo, delta, fits = knots_for(lev, ktl[lev - 1], relevant)
+        fits_all.append(fits)
+        M = plan.knots[lev]
+        acc_f, acc_c, e_prev, g_prev = evaluate(red, w, e_lo, delta, cmask, _new_acc(M, nc),
+                                                _new_acc((M + 1) // 2, nc))
+        levels.append(dict(fine=acc_f, coarse=acc_c, e_lo=e_lo, delta=delta))
+        red_prev, valid_prev = red, ok
+    info = {"kt_ladder": ktl, "flagged": jnp.stack(flagged_all) if flagged_all else jnp.zeros((0,), int),
+            "overflow": (jnp.any(jnp.stack(overflow_all)) if overflow_all else jnp.asarray(False))
+            | ~jnp.all(jnp.stack(fits_all)),
+            "vol": vol, "layout": layout}
+    return levels, info
+
+
+# --------------------------------------------------------------------------------------------
+# energy sums per condition
+# --------------------------------------------------------------------------------------------
+
+def _occupations(E, mu, kt):
+    """f0, −∂f0/∂ε and s at knot energies E (P, Q) for (mu, kt) (P,)."""
+    M, K = jnp.broadcast_to(mu[:, None], E.shape), jnp.broadcast_to(kt[:, None], E.shape)
+    return {"f0": fermi(E, M, K), "F": minus_dfermi(E, M, K), "s": entropy_density(E, M, K)}
+
+
+def _kernel_sums(vals, occ, E, mu, temp, tau_eval, tau_arr, omega, layout, sea):
+    """The kernel sums of :func:`crosswind.solver.kernels.point_kernels` (same keys, natural
+    units, degeneracy not applied) from knot values ``vals`` (P, Q, nc) and occupation weights
+    ``occ`` (each (P, Q)); ``E`` (P, Q) the knot energies."""
+    P = vals.shape[0]
+    tau, dtau = tau_eval(tau_arr, E, jnp.broadcast_to(temp[:, None], E.shape))
+    t1, _ = _tilde(tau, dtau, omega)
+    t2, dt2 = _tilde(tau, dtau, 2.0 * omega)
+    tauc, dtauc = tau.astype(jnp.complex128), dtau.astype(jnp.complex128)
+    F, f0 = occ["F"], occ["f0"]
+
+    def s(name, weight):
+        start, shape = layout[name]
+        size = int(np.prod(shape)) if shape else 1
+        v = vals[..., start:start + size]
+        if jnp.iscomplexobj(weight):
+            v = v.astype(weight.dtype)
+        return jnp.einsum("pq,pqc->pc", weight, v).reshape((P,) + shape)
+
+    Fc = F.astype(jnp.complex128)
+    de = E - jnp.broadcast_to(mu[:, None], E.shape)
+    out = {"density": s("one", f0), "dos": s("one", F), "drude": s("gg", Fc * t1),
+           "ahe": s("om", f0), "dipole": s("gom", F), "dipole_tau": s("gom", Fc * t1),
+           "drude2_2w": s("hg", Fc * t1 * t2) + s("ggg", Fc * t1 * dt2),
+           "drude2_0": s("hg", Fc * t1 * tauc) + s("ggg", Fc * t1 * dtauc),
+           "bcp": s("bcp", F), "lorentz": s("lor", F * tau * tau),
+           "thermo1": s("gg", F * de * tau), "thermo2": s("gg", F * de * de * tau),
+           "drude0": s("gg", F * tau), "nernst": s("om", occ["s"]),
+           "scale_ahe": s("abs_om", f0), "scale_dipole": s("sc_dip", F),
+           "scale_drude2": s("sc_dr2", F * tau * tau), "scale_bcp": s("sc_bcp", F)}
+    if sea:
+        out["dipole_sea"] = s("dom", f0)
+    return out
+
+
+def _window_values(acc, e_lo, delta, start, Q):
+    """Knot values (P, Q, nc) and energies (P, Q) from knot index ``start`` (P,); knots outside
+    the table read as zero."""
+    table = acc[0]
+    M = table.shape[0]
+    j = start[:, None] + jnp.arange(Q, dtype=jnp.int32)[None, :]
+    inside = (j >= 0) & (j < M)
+    v = jnp.where(inside[..., None], table[jnp.clip(j, 0, M - 1)], 0.0)
+    return v, e_lo + j.astype(jnp.float64) * delta
+
+
+def _level_sums(acc, e_lo, delta, mu, kt_hi, kt_lo, kt_win, temp, tau_eval, tau_arr, omega, layout,
+                sea, rho, first, filled_vol):
+    """Σ_j table_j [φ(E_j; kt_hi) − φ(E_j; kt_lo)] over the knots within W·kt_win of μ (for the
+    first level: φ(kt_hi) alone, plus the fully occupied states below the window)."""
+    Q = int(2 * (W + 1) * rho * (1 if first else 2)) + 8
+    start = jnp.floor(jax.lax.stop_gradient((mu - W * kt_win - e_lo) / delta)).astype(jnp.int32) - 2
+    vals, E = _window_values(acc, e_lo, delta, start, Q)
+    occ = _occupations(E, mu, kt_hi)
+    if not first:
+        lo = _occupations(E, mu, kt_lo)
+        occ = {k: occ[k] - lo[k] for k in occ}
+    out = _kernel_sums(vals, occ, E, mu, temp, tau_eval, tau_arr, omega, layout, sea)
+    if first:
+        table, below, _ = acc
+        csum = jnp.concatenate([jnp.zeros((1, table.shape[1])), jnp.cumsum(table, axis=0)])
+        pre = below[None, :] + csum[jnp.clip(start, 0, table.shape[0])]            # (P, nc)
+        for key, name in (("density", "one"), ("ahe", "om"), ("scale_ahe", "abs_om"),
+                          ("dipole_sea", "dom")):
+            if key in out:
+                st, shape = layout[name]
+                size = int(np.prod(shape)) if shape else 1
+                out[key] = out[key] + pre[:, st:st + size].reshape((mu.shape[0],) + shape)
+        out["density"] = out["density"] - filled_vol
+    return out
+
+
+def _tree_add(a, b):
+    return jax.tree_util.tree_map(jnp.add, a, b)
+
+
+def condition_sums(levels, info, plan: Plan, mu, kt, temp, tau_eval, tau_arr, omega, filled, sea,
+                   which="fine"):
+    """Kernel sums for conditions (P,) from the tables of :func:`build_tables`, with the T²
+    extrapolation below the deepest level.  Returns ``(sums, extrapolation_error)``."""
+    ktl = info["kt_ladder"]
+    L = plan.levels
+    layout, vol = info["layout"], info["vol"]
+    rho = plan.rho if which == "fine" else plan.rho / 2
+    kstar = [jnp.maximum(kt, ktl[l]) for l in range(L + 1)]
+    partial = []
+    total = None
+    for l in range(L + 1):
+        lev = levels[l]
+        delta = lev["delta"] if which == "fine" else 2 * lev["delta"]
+        acc = lev[which]
+        if l == 0:
+            part = _level_sums(acc, lev["e_lo"], delta, mu, kstar[0], None, kstar[0], temp, tau_eval,
+                               tau_arr, omega, layout, sea, rho, True, filled * vol)
+        else:
+            part = _level_sums(acc, lev["e_lo"], delta, mu, kstar[l], kstar[l - 1], ktl[l - 1], temp,
+                               tau_eval, tau_arr, omega, layout, sea, rho, False, 0.0)
+        total = part if total is None else _tree_add(total, part)
+        partial.append(total)
+    # below the deepest level: X(T) = X0 + a T² from the partial sums at T_L and T_{L-1}
+    below = kt < ktl[L]
+    tL, t1 = ktl[L], ktl[L - 1] if L >= 1 else ktl[L]
+
+    def extrap(x_lo, x_hi, k_lo, k_hi):
+        a = jax.tree_util.tree_map(lambda u, v: (u - v) / (k_hi ** 2 - k_lo ** 2).astype(u.dtype), x_hi, x_lo)
+        return jax.tree_util.tree_map(lambda x, aa: x + aa * _b((kt ** 2 - k_lo ** 2).astype(aa.dtype), aa),
+                                      x_lo, a)
+
+    if L >= 2:
+        ext1 = extrap(partial[L], partial[L - 1], tL, t1)
+        ext2 = extrap(partial[L - 1], partial[L - 2], t1, ktl[L - 2])
+        sel = lambda x, y: jnp.where(_b(below, x), x, y)
+        result = jax.tree_util.tree_map(sel, ext1, total)
+        err = jax.tree_util.tree_map(lambda x, y: jnp.where(_b(below, x), jnp.abs(x - y), 0.0), ext1, ext2)
+    else:
+        result = total
+        err = jax.tree_util.tree_map(lambda x: jnp.where(_b(below, x), jnp.inf, 0.0), total)
+    return result, err
+
+
+def _b(v, like):
+    """Broadcast a (P,) array against ``like`` (P, ...)."""
+    return v.reshape(v.shape + (1,) * (like.ndim - 1))
+
+
+def ladder_moments(model, params, plan: Plan, mu, kt, temp, tau_eval, tau_arr, omega, filled, sea,
+                   chunk=4096, condition_chunk=256):
+    """Fine and coarse kernel sums for P conditions from one ladder.  Returns
+    ``(fine, coarse, extrapolation_error, info)``; conditions are processed in chunks of
+    ``condition_chunk`` (memory bounded for any number of conditions)."""
+    levels, info = build_tables(model, params, plan, mu, kt, sea, chunk)
+    P = mu.shape[0]
+    cc = min(condition_chunk, P)
+    nch = _chunks(P, cc)
+    pad = nch * cc - P
+    padv = lambda x: jnp.concatenate([x, jnp.broadcast_to(x[-1:], (pad,) + x.shape[1:])]) if pad else x
+    args = (padv(mu), padv(kt), padv(temp), jax.tree_util.tree_map(padv, tau_arr))
+
+    def one(a):
+        m, k, t, ta = a
+        f, ef = condition_sums(levels, info, plan, m, k, t, tau_eval, ta, omega, filled, sea, "fine")
+        c, ec = condition_sums(levels, info, plan, m, k, t, tau_eval, ta, omega, filled, sea, "coarse")
+        ex = jax.tree_util.tree_map(jnp.maximum, ef, ec)
+        return f, c, ex
+
+    split = lambda x: x.reshape((nch, cc) + x.shape[1:])
+    out = jax.lax.map(one, jax.tree_util.tree_map(split, args))
+    out = jax.tree_util.tree_map(lambda x: x.reshape((nch * cc,) + x.shape[2:])[:P], out)
+    return out[0], out[1], out[2], info
+
+
+# --------------------------------------------------------------------------------------------
+# planning (concrete values): levels, budgets and knot counts
+# --------------------------------------------------------------------------------------------
+
+T_DEEP = 2.0     # K: conditions colder than this are extrapolated in T² from the deepest levels
+
+
+def _pow2(x, floor=64):
+    return int(max(floor, 2 ** int(np.ceil(np.log2(max(x, 1.0))))))
+
+
+def make_plan(model, params, mu, temperature, resolution: int, flagged=None, old=None) -> Plan:
+    """The ladder for concrete conditions: enough levels to reach min(T) (or T_DEEP), budgets
+    from the cells of level 0 that the deepest window touches (doubling per level in 2D,
+    quadrupling in 3D, plus margin) and knot counts that fit the μ range.  ``flagged`` (counts
+    returned by a previous run that overflowed) raises the budgets of ``old``."""
+    n0 = n0_of(resolution, model.dim)
+    _, kappa, rho = RESOLUTIONS[resolution]
+    mu = np.atleast_1d(np.asarray(mu, dtype=float)).ravel()
+    kt = KB * np.maximum(np.atleast_1d(np.asarray(temperature, dtype=float)).ravel(), T_FLOOR)
+    dim = model.dim
+    probe = Plan(n0, (), (64,), kappa, rho)
+    ktl0 = float(ladder_temperatures(model, params, probe)[0][0])
+    target = KB * max(float(np.min(kt)) / KB, T_DEEP)
+    L = max(2, int(np.ceil(np.log2(ktl0 / target)))) if ktl0 > target else 2
+    ktl = ktl0 / 2.0 ** np.arange(L + 1)
+    span = float(np.ptp(mu)) if mu.size else 0.0
+    knots = [_pow2((span + 2 * W * max(ktl0, kt.max()) + 16 * max(ktl0, kt.max()) / rho)
+                   / (max(ktl0, kt.max()) / rho) + 16)]
+    for lev in range(1, L + 1):
+        knots.append(_pow2((span + 2 * W * ktl[lev - 1]) / (ktl[lev] / rho) + 32))
+    if old is not None and flagged is not None and len(old.budgets) == L:
+        budgets = tuple(_pow2(max(b, 1.5 * f)) if f > b else b for b, f in zip(old.budgets, flagged))
+        # a level that overflowed also starves the next: scale those below it too
+        grow = 1
+        out = []
+        for b, f in zip(old.budgets, flagged):
+            grow = max(grow, int(np.ceil(f / b)) if f > b else 1)
+            out.append(_pow2(b * grow) if grow > 1 else b)
+        budgets = tuple(max(x, y) for x, y in zip(budgets, out))
+    else:
+        count1 = _level1_count(model, params, n0, jnp.asarray(mu), float(ktl[0]))
+        budgets = tuple(_pow2(1.5 * count1 * (2 ** (dim - 1)) ** (lev - 1) + 16) for lev in range(1, L + 1))
+    return Plan(n0, budgets, tuple(knots), kappa, rho)
+
+
+def _level1_count(model, params, n0, mu, kt0):
+    dim = model.dim
+    b = model.reciprocal_vectors(params)
+    halfdiag = 0.5 * float(jnp.sqrt(jnp.sum(b * b))) / n0
+    red = jnp.asarray(_grid(n0, dim))
+    e, gn = _speeds_jit(model, params, red @ b)
+    e, gn = np.asarray(e), np.asarray(gn)
+    m = np.sort(np.asarray(mu))
+    d = np.min(np.abs(e[..., None] - m[None, None, :]), axis=-1) if m.size < 64 else \
+        np.abs(e - m[np.clip(np.searchsorted(m, e), 0, m.size - 1)])
+    reach = W * kt0 + SLACK * gn * halfdiag
+    return int(np.sum(np.any(d < reach, axis=-1)))
+
+
+@jax.jit
+def _speeds_jit(model, params, k):
+    return jax.vmap(lambda q: _energy_and_speed(model, params, q))(k)

@@ -1,0 +1,18 @@
+"""Benchmarks must not rot: the quick integration benchmark runs end to end (slow: it compiles
+several ladder and mesh programs)."""
+import importlib.util
+import pathlib
+
+import pytest
+
+
+@pytest.mark.slow
+def test_integration_benchmark_quick_run():
+    path = pathlib.Path(__file__).resolve().parents[1] / "benchmarks" / "bench_integration.py"
+    spec = importlib.util.spec_from_file_location("bench_integration", path)
+    mod = importlib.util.module_from_spec(spec)
+    spec.loader.exec_module(mod)
+    rows = mod.run(n_mu=4, n_t=2, resolution=0, t_range=(150.0, 300.0))
+    names = [r[0] for r in rows]
+    assert names == ["sweep ladder", "sweep mesh", "eigh", "memory"]
+    assert all(r[2] > 0 for r in rows)

@@ -1,0 +1,106 @@
+"""The energy-resolved temperature ladder (solver/ladder.py, docs/theory.md §14.2).
+
+References the project did not write: a plain numpy uniform-grid quadrature
+(validation/fermi_contour.uniform_grid_reference, converged to ~1e-14 at n = 600 for these
+conditions) and the moment conditions of cubic Lagrange interpolation (common practice).
+"""
+from functools import partial
+
+import jax
+import jax.numpy as jnp
+import numpy as np
+import pytest
+
+from crosswind.models import build
+from crosswind.solver import ladder as ld
+from crosswind.solver import response
+from crosswind.solver.occupation import thermal_energy
+from crosswind.solver.scattering import as_scattering
+from crosswind.validation.fermi_contour import uniform_grid_reference
+
+MU = np.array([1.2, 1.3])
+T = np.array([300.0, 100.0])
+TAU = 50.0
+
+
+def test_lagrange_deposition_preserves_moments_up_to_third_order():
+    delta = 0.37
+    for t in (0.0, 0.13, 0.5, 0.91):
+        w = np.asarray(ld._lagrange(jnp.asarray(t)))
+        knots = np.arange(-1, 3) * delta
+        eps = t * delta
+        for m in range(4):
+            np.testing.assert_allclose(np.sum(w * (knots - eps) ** m), 0.0 ** m if m else 1.0,
+                                       atol=1e-14)
+
+
+@pytest.fixture(scope="module")
+def haldane_ladder():
+    model = build("haldane")
+    mu, temp = jnp.asarray(MU), jnp.asarray(T)
+    scat = as_scattering(TAU)
+    tau = jax.tree_util.tree_map(lambda a: jnp.broadcast_to(a, (2,))[:, None], scat.arrays())
+    plan = ld.make_plan(model, model.params, mu, temp, 0)
+
+    @partial(jax.jit, static_argnames=("plan",))
+    def run(model, mu, temp, plan):
+        return ld.ladder_moments(model, model.params, plan, mu, thermal_energy(temp), temp,
+                                 type(scat).evaluate, tau, 0.0, 1, False)
+
+    f, c, ex, info = run(model, mu, temp, plan)
+    if bool(info["overflow"]):     # budgets from the reported counts, as response() does
+        plan = ld.make_plan(model, model.params, mu, temp, 0, flagged=np.asarray(info["flagged"]), old=plan)
+        f, c, ex, info = run(model, mu, temp, plan)
+    assert not bool(info["overflow"])
+    return model, plan, run, f, c
+
+
+def test_ladder_matches_an_independent_uniform_grid(haldane_ladder):
+    """Haldane model (t2 = 0.1, φ = π/2) in the upper band: density of states, Drude weight,
+    Fermi-sea Berry curvature and density against the plain numpy grid, within the nested
+    error estimate, which must itself be small."""
+    model, plan, _, f, c = haldane_ladder
+    vol = float(jnp.abs(jnp.linalg.det(model.reciprocal_vectors())) / (2 * np.pi) ** 2)
+    for p in range(2):
+        ref = uniform_grid_reference(model, float(MU[p]), float(T[p]), 600)
+        pairs = (("dos", ref["dos"], lambda m: m["dos"][p]),
+                 ("drude_xx", ref["drude"][0, 0], lambda m: m["drude0"][p, 0, 0] / TAU),
+                 ("drude_yy", ref["drude"][1, 1], lambda m: m["drude0"][p, 1, 1] / TAU),
+                 ("ahe", ref["ahe"], lambda m: m["ahe"][p]),
+                 ("density", ref["density"] - vol, lambda m: m["density"][p]))
+        for name, want, get in pairs:
+            got, est = float(get(f)), abs(float(get(f)) - float(get(c)))
+            assert est < 1e-3 * abs(want), (name, p, est)
+            assert abs(got - want) <= max(est, 1e-9 * abs(want)), (name, p, got, want, est)
+
+
+def test_new_conditions_reuse_the_compiled_ladder(haldane_ladder):
+    model, plan, run, f, _ = haldane_ladder
+    before = run._cache_size()
+    f2, *_ = run(model, jnp.asarray([1.25, 1.35]), jnp.asarray([200.0, 150.0]), plan)
+    assert run._cache_size() == before
+    assert np.all(np.isfinite(np.asarray(f2["dos"])))
+
+
+def test_response_engine_option_and_k_point_count():
+    model = build("haldane")
+    r = response(model, mu=1.2, temperature=300.0, tau=TAU, engine="ladder", resolution=0)
+    info = dict(r.resolution)
+    assert info["engine"] == "ladder" and info["k_points"] == info["plan"].k_points(2)
+    m = response(model, mu=1.2, temperature=300.0, tau=TAU, resolution=3)
+    minfo = dict(m.resolution)
+    assert minfo["k_points"] == minfo["nodes_per_condition"] + dict(
+        response(model, mu=1.2, temperature=300.0, tau=TAU, resolution=2).resolution)["nodes_per_condition"]
+    for name in ("dos", "density"):
+        a, b = float(r.__dict__[name]), float(m.__dict__[name])
+        assert abs(a - b) <= 2 * (float(r.error[name]) + float(m.error[name])) + 1e-9 * abs(b), name
+    s1, s2 = float(r.sigma[0, 0].real), float(m.sigma[0, 0].real)
+    assert abs(s1 - s2) <= 2 * (float(r.error["sigma"][0, 0]) + float(m.error["sigma"][0, 0])) + 1e-9 * abs(s2)
+
+
+def test_ladder_refuses_continuum_models_and_unknown_engines():
+    dirac = build("massive-dirac")
+    with pytest.raises(ValueError, match="engine='mesh' for continuum"):
+        response(dirac, mu=0.15, temperature=10.0, tau=100.0, engine="ladder")
+    with pytest.raises(ValueError, match="engine must be 'mesh'"):
+        response(dirac, mu=0.15, temperature=10.0, tau=100.0, engine="fast")
