@@ -238,8 +238,9 @@ def build_tables(model, params, plan: Plan, mu, kt, sea, chunk=4096):
         if level == 0:
             delta = jnp.maximum(delta, jnp.max(kt_s) / plan.rho)
         M = plan.knots[level]
-        centre = 0.5 * (mlo + mhi)
-        e_lo = centre - 0.5 * (M - 1) * delta
+        # knots on a fixed lattice of spacing δ (a small change of μ never moves them)
+        centre = jnp.floor(0.5 * (mlo + mhi) / delta) * delta
+        e_lo = centre - (M // 2) * delta
         # the window must fit: reported as overflow otherwise
         fits = (mhi - mlo + 2 * W * kt_window + 12 * delta) <= (M - 1) * delta
         return e_lo, delta, fits
