@@ -45,10 +45,10 @@ import jax.numpy as jnp
 import numpy as np
 
 from crosswind.models.geometry import geometry_at
+from crosswind.models.units import KB_EVK as KB
 from .kernels import _tilde
 from .occupation import T_FLOOR, entropy_density, fermi, minus_dfermi
 
-KB = 8.617333262e-5        # eV/K (CODATA 2018 via k_B/e)
 W = 24.0                   # window half-width in k_BT: neglected weight ~ e^-24 ≈ 4e-11
 SLACK = 1.5                # cell-size reach in units of |∇ε|·(half diagonal)
 PROBE = 24                 # points per direction of the v_max probe grid
@@ -155,10 +155,11 @@ def _lagrange(t):
 
 def _deposit(acc, e, f, w, e_lo, delta):
     """Add points (energies ``e`` (N, nb), factors ``f`` (N, nb, nc), weights ``w`` (N,)) to
-    ``acc`` = (table (M, nc), below (nc,), dropped (nc,)).  States below the first knot go to
-    ``below`` (fully occupied for every condition), above the last are dropped (empty); a
-    state within the knot range but too close to its end is counted in ``dropped``."""
-    table, below, dropped = acc
+    ``acc`` = (table (M, nc), below (nc,)).  States below the first knot go to ``below`` (fully
+    occupied for every condition), states above the last knots are left out (empty for every
+    condition: the plan places every window inside the table, and a window that does not fit is
+    reported as overflow)."""
+    table, below = acc
     M = table.shape[0]
     pos = (jax.lax.stop_gradient(e) - e_lo) / delta
     j = jnp.floor(pos)
@@ -173,13 +174,11 @@ def _deposit(acc, e, f, w, e_lo, delta):
     table = table.at[idx.reshape(-1)].add(val.reshape(-1, f.shape[-1]), mode="drop")
     is_below = pos < 1.0
     below = below + jnp.sum(jnp.where(is_below[..., None], wf, 0.0), axis=(0, 1))
-    edge = (~inside) & (~is_below) & (pos < M + 2.0)
-    dropped = dropped + jnp.sum(jnp.where(edge[..., None], jnp.abs(wf), 0.0), axis=(0, 1))
-    return table, below, dropped
+    return table, below
 
 
 def _new_acc(M, nc):
-    return (jnp.zeros((M, nc)), jnp.zeros((nc,)), jnp.zeros((nc,)))
+    return (jnp.zeros((M, nc)), jnp.zeros((nc,)))
 
 
 # --------------------------------------------------------------------------------------------
@@ -216,7 +215,7 @@ def ladder_temperatures(model, params, plan: Plan):
 
 def build_tables(model, params, plan: Plan, mu, kt, sea, chunk=4096):
     """Fine and coarse energy tables of every level for the conditions (mu, kt) (P,).  Returns
-    ``(levels, info)``: ``levels[l]`` = dict(fine=(table, below, dropped), coarse=(...),
+    ``(levels, info)``: ``levels[l]`` = dict(fine=(table, below), coarse=(...),
     e_lo, delta); ``info``: ``kt_ladder`` (L+1,), ``flagged`` and ``overflow`` per refined level."""
     dim = model.dim
     n0, L = plan.n0, plan.levels
@@ -392,7 +391,7 @@ def _level_sums(acc, e_lo, delta, mu, kt_hi, kt_lo, kt_win, temp, tau_eval, tau_
         occ = {k: occ[k] - lo[k] for k in occ}
     out = _kernel_sums(vals, occ, E, mu, temp, tau_eval, tau_arr, omega, layout, sea)
     if first:
-        table, below, _ = acc
+        table, below = acc
         csum = jnp.concatenate([jnp.zeros((1, table.shape[1])), jnp.cumsum(table, axis=0)])
         pre = below[None, :] + csum[jnp.clip(start, 0, table.shape[0])]            # (P, nc)
         for key, name in (("density", "one"), ("ahe", "om"), ("scale_ahe", "abs_om"),
