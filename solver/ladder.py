@@ -49,7 +49,7 @@ from crosswind.models.units import KB_EVK as KB
 from .kernels import _tilde
 from .occupation import T_FLOOR, entropy_density, fermi, minus_dfermi
 
-W = 24.0                   # window half-width in k_BT: neglected weight ~ e^-24 ≈ 4e-11
+W = 20.0                   # window half-width in k_BT: neglected weight ~ e^-20 ≈ 2e-9
 SLACK = 1.5                # cell-size reach in units of |∇ε|·(half diagonal)
 PROBE = 24                 # points per direction of the v_max probe grid
 
@@ -487,60 +487,127 @@ def ladder_moments(model, params, plan: Plan, mu, kt, temp, tau_eval, tau_arr, o
 # planning (concrete values): levels, budgets and knot counts
 # --------------------------------------------------------------------------------------------
 
-T_DEEP = 2.0     # K: conditions colder than this are extrapolated in T² from the deepest levels
+#: per resolution index (K): conditions colder than this are extrapolated in T² from the deepest
+#: levels (the extrapolation's own error estimate tells when k_BT is not small against the
+#: distance of μ to a band edge; a higher resolution then goes colder)
+T_DEEP = (16.0, 8.0, 4.0, 2.0, 1.0, 0.5)
 
 
 def _pow2(x, floor=64):
     return int(max(floor, 2 ** int(np.ceil(np.log2(max(x, 1.0))))))
 
 
+#: level-0 resolution of the narrowest Berry-curvature hot spot per resolution index: the strip
+#: half-width a of the band-gap zero must satisfy 2πa/h0 ≥ HOT (aliasing error ~ e^{-HOT})
+HOT = (24.0, 30.0, 36.0, 42.0, 48.0, 54.0)
+N0_MAX = {2: 768, 3: 96}
+
+
+def _round(x, q):
+    return int(q * np.ceil(max(x, 1.0) / q))
+
+
 def make_plan(model, params, mu, temperature, resolution: int, flagged=None, old=None) -> Plan:
-    """The ladder for concrete conditions: enough levels to reach min(T) (or T_DEEP), budgets
-    from the cells of level 0 that the deepest window touches (doubling per level in 2D,
-    quadrupling in 3D, plus margin) and knot counts that fit the μ range.  ``flagged`` (counts
-    returned by a previous run that overflowed) raises the budgets of ``old``."""
-    n0 = n0_of(resolution, model.dim)
+    """The ladder for concrete conditions.  n0 resolves the narrowest Berry-curvature hot spot
+    (half-width a = gap/(2 v_max) of the smallest gap between adjacent bands of a block, so that
+    2πa/h0 ≥ HOT[resolution]); enough levels to reach min(T) (or T_DEEP[resolution]); budgets from the
+    fraction of every level-0 cell that each level's window covers; knot counts that fit the μ
+    range.  ``flagged`` (counts returned by a run that overflowed) raises the budgets of ``old``."""
+    dim = model.dim
     _, kappa, rho = RESOLUTIONS[resolution]
     mu = np.atleast_1d(np.asarray(mu, dtype=float)).ravel()
     kt = KB * np.maximum(np.atleast_1d(np.asarray(temperature, dtype=float)).ravel(), T_FLOOR)
-    dim = model.dim
+    b = np.asarray(model.reciprocal_vectors(params))
+    bmax = float(np.max(np.linalg.norm(b, axis=-1)))
+    a_hot = hotspot_width(model, params)
+    n0 = n0_of(resolution, dim)
+    if np.isfinite(a_hot):
+        n0 = max(n0, _round(bmax * HOT[resolution] / (2 * np.pi * a_hot), 8))
+    n0 = min(n0, N0_MAX[dim])
     probe = Plan(n0, (), (64,), kappa, rho)
     ktl0 = float(ladder_temperatures(model, params, probe)[0][0])
-    target = KB * max(float(np.min(kt)) / KB, T_DEEP)
+    target = KB * max(float(np.min(kt)) / KB, T_DEEP[resolution])
+    if ktl0 > target and n0 < N0_MAX[dim]:
+        # refine level 0 by a factor in [1, 2) so that a level resolves exactly the coldest
+        # condition: the deepest (most populous) level is then no finer than it must be
+        lf = int(np.floor(np.log2(ktl0 / target)))
+        n0 = min(_round(n0 * (ktl0 / 2.0 ** lf) / target, 8), N0_MAX[dim])
+        probe = Plan(n0, (), (64,), kappa, rho)
+        ktl0 = float(ladder_temperatures(model, params, probe)[0][0])
     L = max(2, int(np.ceil(np.log2(ktl0 / target)))) if ktl0 > target else 2
     ktl = ktl0 / 2.0 ** np.arange(L + 1)
     span = float(np.ptp(mu)) if mu.size else 0.0
-    knots = [_pow2((span + 2 * W * max(ktl0, kt.max()) + 16 * max(ktl0, kt.max()) / rho)
-                   / (max(ktl0, kt.max()) / rho) + 16)]
+    k0 = max(ktl0, float(kt.max()))
+    knots = [_pow2((span + 2 * W * k0 + 16 * k0 / rho) / (k0 / rho) + 16)]
     for lev in range(1, L + 1):
         knots.append(_pow2((span + 2 * W * ktl[lev - 1]) / (ktl[lev] / rho) + 32))
-    if old is not None and flagged is not None and len(old.budgets) == L:
-        budgets = tuple(_pow2(max(b, 1.5 * f)) if f > b else b for b, f in zip(old.budgets, flagged))
-        # a level that overflowed also starves the next: scale those below it too
-        grow = 1
-        out = []
-        for b, f in zip(old.budgets, flagged):
-            grow = max(grow, int(np.ceil(f / b)) if f > b else 1)
-            out.append(_pow2(b * grow) if grow > 1 else b)
-        budgets = tuple(max(x, y) for x, y in zip(budgets, out))
+    if old is not None and flagged is not None and len(old.budgets) == L and old.n0 == n0:
+        grow, budgets = 1.0, []
+        for bud, f in zip(old.budgets, flagged):
+            # a level that overflowed also starves the levels below it: scale those too
+            grow = max(grow, 1.3 * f / bud if f > bud else 1.0)
+            budgets.append(_round(bud * grow, 256) if grow > 1 else bud)
+        budgets = tuple(budgets)
     else:
-        count1 = _level1_count(model, params, n0, jnp.asarray(mu), float(ktl[0]))
-        budgets = tuple(_pow2(1.5 * count1 * (2 ** (dim - 1)) ** (lev - 1) + 16) for lev in range(1, L + 1))
+        counts = _level_counts(model, params, n0, mu, kt, ktl)
+        budgets = tuple(_round(1.3 * c + 64, 256) for c in counts)
     return Plan(n0, budgets, tuple(knots), kappa, rho)
 
 
-def _level1_count(model, params, n0, mu, kt0):
+def hotspot_width(model, params, probe=96):
+    """Half-width a (1/Å) of the analytic strip of the Berry curvature at the smallest gap Δ
+    between adjacent bands of any Hamiltonian block: a = Δ/(2 v_max) (a Dirac gap 2m closes at
+    k = ±i m/ħv; common practice).  The gap minimum is located on a probe grid and polished by a
+    Nelder–Mead search; inf for blocks with a single band."""
+    from scipy.optimize import minimize
+    if model.block_size < 2:
+        return np.inf
+    b = np.asarray(model.reciprocal_vectors(params))
+    red = _grid(probe, model.dim)
+    gaps = np.asarray(_block_gaps_jit(model, params, jnp.asarray(red @ b)))
+    i = int(np.argmin(gaps))
+    f = lambda r: float(_block_gaps_jit(model, params, jnp.asarray((r[None, :] % 1.0) @ b))[0])
+    res = minimize(f, red[i], method="Nelder-Mead",
+                   options=dict(xatol=1e-7, fatol=1e-10, initial_simplex=None, maxiter=400))
+    gap = min(float(res.fun), float(gaps[i]))
+    vmax = float(probe_speed(model, params))
+    return max(gap, 0.0) / (2 * max(vmax, 1e-6))
+
+
+@jax.jit
+def _block_gaps_jit(model, params, k):
+    def one(q):
+        w = jnp.linalg.eigvalsh(model.hamiltonian(q, params))          # (S, m) per block
+        return jnp.min(w[:, 1:] - w[:, :-1])
+    return jax.vmap(one)(k)
+
+
+def _level_counts(model, params, n0, mu, kt, ktl):
+    """Expected number of flagged level-(l−1) cells for l = 1..L, from the level-0 grid: the
+    fraction of each level-0 cell's energy range [ε − |∇ε|h, ε + |∇ε|h] inside the window of
+    level l, times the 2^{d(l−1)} cells of level l−1 in it."""
     dim = model.dim
     b = model.reciprocal_vectors(params)
-    halfdiag = 0.5 * float(jnp.sqrt(jnp.sum(b * b))) / n0
+    hd0 = 0.5 * float(jnp.sqrt(jnp.sum(b * b))) / n0
     red = jnp.asarray(_grid(n0, dim))
     e, gn = _speeds_jit(model, params, red @ b)
     e, gn = np.asarray(e), np.asarray(gn)
-    m = np.sort(np.asarray(mu))
-    d = np.min(np.abs(e[..., None] - m[None, None, :]), axis=-1) if m.size < 64 else \
-        np.abs(e - m[np.clip(np.searchsorted(m, e), 0, m.size - 1)])
-    reach = W * kt0 + SLACK * gn * halfdiag
-    return int(np.sum(np.any(d < reach, axis=-1)))
+    out = []
+    for lev in range(1, len(ktl)):
+        rel = np.sort(mu[kt < ktl[lev - 1]])
+        if rel.size == 0:
+            out.append(0)
+            continue
+        j = np.clip(np.searchsorted(rel, e), 1, max(rel.size - 1, 1))
+        d = np.abs(e - rel[np.minimum(j, rel.size - 1)])
+        if rel.size > 1:
+            d = np.minimum(d, np.abs(e - rel[j - 1]))
+        R = W * ktl[lev - 1] + SLACK * gn * hd0 / 2 ** (lev - 1)
+        s = np.maximum(gn * hd0, 1e-12)
+        overlap = np.clip(np.minimum(d + s, R) - np.maximum(d - s, -R), 0.0, 2 * s)
+        frac = np.max(overlap / (2 * s), axis=-1)
+        out.append(float(np.sum(frac)) * 2 ** (dim * (lev - 1)))
+    return out
 
 
 @jax.jit
