@@ -9,8 +9,10 @@ Prints, for a lattice model:
             the model's Hamiltonian on as many k-points as the ladder evaluated;
 * memory  — peak resident memory of the process after the largest sweep (MiB).
 
+Default case: honeycomb (staggered 0.2, strain_xx 0.01), μ in [0.28, 0.32] eV, T in [10, 40] K.
+
 Usage: ``python benchmarks/bench_integration.py`` (full: 200 μ × 20 T; several minutes on 2
-cores, mostly compilation) or ``--quick`` (8 × 2 conditions; the smoke test runs this).
+cores) or ``--quick`` (Haldane model, 8 × 2 conditions).
 """
 from __future__ import annotations
 
@@ -41,8 +43,12 @@ def _block(r):
     return r
 
 
-def run(n_mu=200, n_t=20, resolution=1, model_name="haldane", mu_range=(1.1, 1.4), t_range=(20.0, 300.0)):
-    model = build(model_name)
+HARD = dict(name="honeycomb", params=dict(staggered=0.2, strain_xx=0.01))
+
+
+def run(n_mu=200, n_t=20, resolution=1, model=HARD, mu_range=(0.28, 0.32), t_range=(10.0, 40.0)):
+    model_name = model["name"]
+    model = build(model_name, **model.get("params", {}))
     mus = np.linspace(*mu_range, n_mu)
     temps = np.geomspace(*t_range, n_t)
     mu_grid, t_grid = np.meshgrid(mus, temps, indexing="ij")
@@ -82,6 +88,7 @@ if __name__ == "__main__":
     ap.add_argument("--quick", action="store_true")
     a = ap.parse_args()
     if a.quick:
-        run(n_mu=8, n_t=2, resolution=0, t_range=(150.0, 300.0))
+        run(n_mu=8, n_t=2, resolution=0, model=dict(name="haldane"), mu_range=(1.1, 1.4),
+            t_range=(150.0, 300.0))
     else:
         run()

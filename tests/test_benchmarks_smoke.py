@@ -12,7 +12,8 @@ def test_integration_benchmark_quick_run():
     spec = importlib.util.spec_from_file_location("bench_integration", path)
     mod = importlib.util.module_from_spec(spec)
     spec.loader.exec_module(mod)
-    rows = mod.run(n_mu=4, n_t=2, resolution=0, t_range=(150.0, 300.0))
+    rows = mod.run(n_mu=4, n_t=2, resolution=0, model=dict(name="haldane"), mu_range=(1.1, 1.4),
+                   t_range=(150.0, 300.0))
     names = [r[0] for r in rows]
     assert names == ["sweep ladder", "sweep mesh", "eigh", "memory"]
     assert all(r[2] > 0 for r in rows)
