@@ -347,9 +347,12 @@ def _kernel_sums(vals, occ, E, mu, temp, tau_eval, tau_arr, omega, layout, sea):
         start, shape = layout[name]
         size = int(np.prod(shape)) if shape else 1
         v = vals[..., start:start + size]
-        if jnp.iscomplexobj(weight):
-            v = v.astype(weight.dtype)
-        return jnp.einsum("pq,pqc->pc", weight, v).reshape((P,) + shape)
+        if jnp.iscomplexobj(weight):          # real tables: two real sums, no complex copy
+            out = jax.lax.complex(jnp.einsum("pq,pqc->pc", weight.real, v),
+                                  jnp.einsum("pq,pqc->pc", weight.imag, v))
+        else:
+            out = jnp.einsum("pq,pqc->pc", weight, v)
+        return out.reshape((P,) + shape)
 
     Fc = F.astype(jnp.complex128)
     de = E - jnp.broadcast_to(mu[:, None], E.shape)
@@ -458,7 +461,7 @@ def _b(v, like):
 
 
 def ladder_moments(model, params, plan: Plan, mu, kt, temp, tau_eval, tau_arr, omega, filled, sea,
-                   chunk=4096, condition_chunk=256):
+                   chunk=4096, condition_chunk=128):
     """Fine and coarse kernel sums for P conditions from one ladder.  Returns
     ``(fine, coarse, extrapolation_error, info)``; conditions are processed in chunks of
     ``condition_chunk`` (memory bounded for any number of conditions)."""

@@ -386,7 +386,7 @@ def _ladder_path(model, muf, kt, Tf, tauf, omega, kw, rtol, resolution, max_leve
 def response(model: BandModel, mu, temperature, tau, frequency=0.0, *, rtol: float = 1e-3,
              resolution: int | None = None, max_level: int | None = None, intrinsic: bool = True,
              dipole_route: str = "surface", chunk: int = 4096, estimate_error: bool = True,
-             engine: str = "mesh", plan=None) -> Response:
+             engine: str = "auto", plan=None) -> Response:
     """Transport coefficients of ``model`` at chemical potential(s) ``mu`` (eV), ``temperature`` (K)
     and relaxation time ``tau`` (fs, or a scattering object from :mod:`crosswind.solver.scattering`),
     at drive ``frequency`` (Hz).  ``mu``, ``temperature`` and ``tau`` broadcast against each other;
@@ -398,6 +398,8 @@ def response(model: BandModel, mu, temperature, tau, frequency=0.0, *, rtol: flo
     ``error["dipole"]``.  With a fixed ``resolution``, ``estimate_error=False`` skips the coarser
     pass (half the cost, e.g. inside fits); ``error`` is then NaN.
 
+    ``engine="auto"`` (default) takes the ladder for lattice models with automatic resolution
+    (``resolution=None``) and the node quadrature ("mesh") otherwise.
     ``engine="ladder"`` (lattice models) uses the energy-resolved ladder of
     :mod:`crosswind.solver.ladder`: the band geometry is evaluated once per call for all
     conditions (sweeps over μ, T, τ and ω cost energy sums, not k-points) on shells around the
@@ -407,11 +409,13 @@ def response(model: BandModel, mu, temperature, tau, frequency=0.0, *, rtol: flo
     always includes ``k_points``, the distinct k-points where the band geometry was evaluated
     (all passes and conditions).
     """
-    if engine not in ("mesh", "ladder"):
-        raise ValueError("response: engine must be 'mesh' (node quadrature, every model) or 'ladder' "
-                         "(energy-resolved, lattice models)")
+    if engine not in ("auto", "mesh", "ladder"):
+        raise ValueError("response: engine must be 'auto', 'mesh' (node quadrature, every model) or "
+                         "'ladder' (energy-resolved, lattice models)")
     if not isinstance(model, BandModel):
         raise TypeError("response: the first argument must be a BandModel from crosswind.models.build(...)")
+    if engine == "auto":
+        engine = "ladder" if isinstance(model.domain, Lattice) and resolution is None else "mesh"
     if dipole_route not in ("surface", "both"):
         raise ValueError("response: dipole_route must be 'surface' or 'both'")
     if not (0 < rtol < 1):

@@ -84,6 +84,7 @@ def test_new_conditions_reuse_the_compiled_ladder(haldane_ladder):
 
 def test_response_engine_option_and_k_point_count():
     model = build("haldane")
+    assert dict(response(build("massive-dirac"), mu=0.15, temperature=10.0, tau=100.0).resolution)["engine"] == "mesh"
     r = response(model, mu=1.2, temperature=300.0, tau=TAU, engine="ladder", resolution=0)
     info = dict(r.resolution)
     assert info["engine"] == "ladder" and info["k_points"] == info["plan"].k_points(2)
@@ -102,7 +103,7 @@ def test_ladder_refuses_continuum_models_and_unknown_engines():
     dirac = build("massive-dirac")
     with pytest.raises(ValueError, match="engine='mesh' for continuum"):
         response(dirac, mu=0.15, temperature=10.0, tau=100.0, engine="ladder")
-    with pytest.raises(ValueError, match="engine must be 'mesh'"):
+    with pytest.raises(ValueError, match="engine must be 'auto', 'mesh'"):
         response(dirac, mu=0.15, temperature=10.0, tau=100.0, engine="fast")
 
 
