@@ -65,6 +65,7 @@ class Plan:
     knots: tuple
     kappa: float
     rho: float
+    kt0: float | None = None      # k_BT_0 in eV, fixed by make_plan (None: from the probe, traced)
 
     @property
     def levels(self) -> int:
@@ -125,11 +126,14 @@ def point_factors(model, params, k, sea):
         gom = g[:, :, None] * om[:, None, :]
         omv = om
         omn = jnp.sqrt(jnp.sum(om * om, axis=-1))
+    # magnitudes for the convergence floors (not physics): no derivative, and none of the
+    # infinite slopes of sqrt at a band extremum
+    sg = jax.lax.stop_gradient
+    scales = [sg(omn)[:, None], sg(gn * omn)[:, None],
+              sg(jnp.sqrt(jnp.sum(h * h, axis=(-1, -2))) * gn)[:, None],
+              sg(gn * jnp.sqrt(jnp.sum(G * G, axis=(-1, -2))))[:, None]]
     parts = [jnp.ones((nb, 1)), gg.reshape(nb, -1), gom.reshape(nb, -1), hg.reshape(nb, -1),
-             ggg.reshape(nb, -1), bcp.reshape(nb, -1), lor.reshape(nb, -1), omv.reshape(nb, -1),
-             omn[:, None], (gn * omn)[:, None],
-             (jnp.sqrt(jnp.sum(h * h, axis=(-1, -2))) * gn)[:, None],
-             (gn * jnp.sqrt(jnp.sum(G * G, axis=(-1, -2))))[:, None]]
+             ggg.reshape(nb, -1), bcp.reshape(nb, -1), lor.reshape(nb, -1), omv.reshape(nb, -1)] + scales
     if sea:
         dom = jax.jacfwd(lambda q: geometry_at(model, q, params)[3])(k)     # (nb, [3,] d) ∂_bΩ
         if dim == 3:
@@ -208,8 +212,11 @@ def ladder_temperatures(model, params, plan: Plan):
     p = jax.lax.stop_gradient(params)
     b = model.reciprocal_vectors(p)
     h0 = jnp.max(jnp.sqrt(jnp.sum(b * b, axis=-1))) / plan.n0
-    vmax = jnp.maximum(probe_speed(model, p), 1e-6)
-    kt0 = plan.kappa * vmax * h0
+    if plan.kt0 is not None:
+        # a fixed ladder: derivatives and fits see the same temperatures at every parameter value
+        kt0 = jnp.asarray(plan.kt0)
+    else:
+        kt0 = plan.kappa * jnp.maximum(probe_speed(model, p), 1e-6) * h0
     return kt0 / 2.0 ** jnp.arange(plan.levels + 1, dtype=jnp.float64), h0
 
 
@@ -251,7 +258,9 @@ def build_tables(model, params, plan: Plan, mu, kt, sea, chunk=4096):
         c = min(chunk, n)
         nch = _chunks(n, c)
         pad = nch * c - n
-        redp = jnp.concatenate([red, jnp.zeros((pad, dim))]) if pad else red
+        # padding repeats the first point (weight 0): never a special point such as Γ, where a
+        # band extremum would put an infinite slope into a zero-weight derivative
+        redp = jnp.concatenate([red, jnp.broadcast_to(red[:1], (pad, dim))]) if pad else red
         wp = jnp.concatenate([w, jnp.zeros((pad,))]) if pad else w
         cm = jnp.concatenate([coarse_mask, jnp.zeros((pad,), bool)]) if pad else coarse_mask
 
@@ -544,7 +553,8 @@ def make_plan(model, params, mu, temperature, resolution: int, flagged=None, old
     knots = [_pow2((span + 2 * W * k0 + 16 * k0 / rho) / (k0 / rho) + 16)]
     for lev in range(1, L + 1):
         knots.append(_pow2((span + 2 * W * ktl[lev - 1]) / (ktl[lev] / rho) + 32))
-    if old is not None and flagged is not None and len(old.budgets) == L and old.n0 == n0:
+    if old is not None and flagged is not None and len(old.budgets) == L and old.n0 == n0 \
+            and old.kt0 == float(ktl0):
         grow, budgets = 1.0, []
         for bud, f in zip(old.budgets, flagged):
             # a level that overflowed also starves the levels below it: scale those too
@@ -554,7 +564,7 @@ def make_plan(model, params, mu, temperature, resolution: int, flagged=None, old
     else:
         counts = _level_counts(model, params, n0, mu, kt, ktl)
         budgets = tuple(_round(1.3 * c + 64, 256) for c in counts)
-    return Plan(n0, budgets, tuple(knots), kappa, rho)
+    return Plan(n0, budgets, tuple(knots), kappa, rho, float(ktl0))
 
 
 def hotspot_width(model, params, probe=96):
