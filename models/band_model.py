@@ -43,6 +43,10 @@ class BandModel:
     static: tuple = ()
     description: str = ""
     source: str = ""
+    #: optional ``jet(k, params) -> (H, ∂H, ∂²H)`` with shapes (S, m, m), (S, m, m, d),
+    #: (S, m, m, d, d): explicit Bloch sums where the hoppings are known (lattice models); without
+    #: it the k-derivatives come from nested ``jax.jacfwd`` of ``hamiltonian``
+    jet: Optional[Callable] = None
 
     @property
     def n_bands(self) -> int:
@@ -95,16 +99,16 @@ def _flatten(m: BandModel):
     keys = tuple(sorted(m.params))
     children = (tuple(m.params[k] for k in keys),)
     aux = (keys, m.name, m.dim, m.hamiltonian, m.spec, m.domain, m.degeneracy, m.blocks,
-           m.block_size, m.dvector, m.deformation, m.static, m.description, m.source)
+           m.block_size, m.dvector, m.deformation, m.static, m.description, m.source, m.jet)
     return children, aux
 
 
 def _unflatten(aux, children):
-    (keys, name, dim, ham, spec, domain, deg, blocks, bsize, dvec, deform, static, desc, src) = aux
+    (keys, name, dim, ham, spec, domain, deg, blocks, bsize, dvec, deform, static, desc, src, jet) = aux
     params = dict(zip(keys, children[0]))
     return BandModel(name=name, dim=dim, hamiltonian=ham, params=params, spec=spec, domain=domain,
                      degeneracy=deg, blocks=blocks, block_size=bsize, dvector=dvec,
-                     deformation=deform, static=static, description=desc, source=src)
+                     deformation=deform, static=static, description=desc, source=src, jet=jet)
 
 
 jax.tree_util.register_pytree_node(BandModel, _flatten, _unflatten)

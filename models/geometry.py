@@ -94,9 +94,12 @@ def _group_mean(w, x, tol):
 def _blocks_eigh(model: BandModel, k, params, tol):
     """Per-block geometry at one k via eigh and the sums over states."""
     d = model.dim
-    h = model.hamiltonian(k, params)                                  # (S, m, m)
-    dh = jax.jacfwd(model.hamiltonian, argnums=0)(k, params)           # (S, m, m, d)
-    d2h = jax.jacfwd(jax.jacfwd(model.hamiltonian, argnums=0), argnums=0)(k, params)
+    if model.jet is not None:                                         # explicit Bloch sums
+        h, dh, d2h = model.jet(k, params)
+    else:
+        h = model.hamiltonian(k, params)                              # (S, m, m)
+        dh = jax.jacfwd(model.hamiltonian, argnums=0)(k, params)       # (S, m, m, d)
+        d2h = jax.jacfwd(jax.jacfwd(model.hamiltonian, argnums=0), argnums=0)(k, params)
     w, u = safe_eigh(h, tol)                                         # (S, m), (S, m, m)
     ud = jnp.conj(jnp.swapaxes(u, -1, -2))
     v = jnp.einsum("sni,sijA,sjm->sAnm", ud, dh, u)                  # (S, d, m, m)

@@ -254,9 +254,30 @@ def _make_hamiltonian(defn: _Definition):
         d = jnp.stack([jnp.real(h[0, 1]), -jnp.imag(h[0, 1]), 0.5 * jnp.real(h[0, 0] - h[1, 1])])
         return d0[None], d[None]
 
+    def jet(k, params):
+        """H, ∂H, ∂²H as explicit Bloch sums over the hoppings (phase e^{ik·δ} → iδ_A, −δ_Aδ_B)."""
+        vals = values(params)
+        d = k.shape[0]
+        h = jnp.zeros((m, m), dtype=jnp.complex128)
+        dh = jnp.zeros((m, m, d), dtype=jnp.complex128)
+        d2h = jnp.zeros((m, m, d, d), dtype=jnp.complex128)
+        if nh:
+            dl = jnp.asarray(delta)
+            t = _evaluate(hop_c, vals) * jnp.exp(1j * (dl @ k).astype(jnp.complex128))   # (nh,)
+            dc = dl.astype(jnp.complex128)
+            h = h.at[fi, ti].add(t)
+            dh = dh.at[fi, ti].add(t[:, None] * 1j * dc)
+            d2h = d2h.at[fi, ti].add(-t[:, None, None] * dc[:, :, None] * dc[:, None, :])
+            h = h + jnp.conj(h.T)
+            dh = dh + jnp.conj(jnp.swapaxes(dh, 0, 1))
+            d2h = d2h + jnp.conj(jnp.swapaxes(d2h, 0, 1))
+        h = h.at[diag, diag].add(jnp.real(_evaluate(on_c, vals)).astype(jnp.complex128))
+        return h[None], dh[None], d2h[None]
+
     hamiltonian.__name__ = "tight_binding_hamiltonian"
     dvector.__name__ = "tight_binding_dvector"
-    return hamiltonian, (dvector if m == 2 else None)
+    jet.__name__ = "tight_binding_jet"
+    return hamiltonian, (dvector if m == 2 else None), jet
 
 
 _FUNCTIONS: dict[_Definition, tuple] = {}
@@ -417,10 +438,10 @@ def parse_tight_binding(text: str, source: str = "<string>", **values: Any) -> B
         raise TightBindingFileError(f"{source}: not valid TOML: {exc}.") from exc
     defn, spec, lattice, meta = _parse(data, ctx)
     real, _ = spec.resolve(values)
-    h, dv = _functions_for(defn)
+    h, dv, jet = _functions_for(defn)
     return BandModel(name=meta["name"], dim=meta["dim"], hamiltonian=h, params=real, spec=spec,
                      domain=lattice, degeneracy=meta["degeneracy"], blocks=1, block_size=defn.n_orb,
-                     dvector=dv, description=meta["description"] or f"tight-binding model from {source}",
+                     dvector=dv, jet=jet, description=meta["description"] or f"tight-binding model from {source}",
                      source=meta["source"] or source)
 
 

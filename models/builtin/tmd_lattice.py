@@ -106,6 +106,25 @@ def hamiltonian(k, p, a=3.190):
     return jnp.stack([h0 + s * soc for s in SPINS])
 
 
+def hamiltonian_jet(k, p, a=3.190):
+    """``hamiltonian`` and its first and second k-derivatives as explicit Bloch sums:
+    ∂_A H = Σ_j E_j (iR'_jA) e^{ik·R'_j}, ∂_A∂_B H = −Σ_j E_j R'_jA R'_jB e^{ik·R'_j}."""
+    eps = strain_of(p)
+    bonds = jnp.asarray(_UNIT_BONDS * a)
+    new = deform(bonds, eps)                                             # (6, 2) Å
+    scale = scaled_hopping(1.0, bonds, eps, p["beta"])                   # (6,)
+    phase = jnp.exp(1j * (new @ k).astype(jnp.complex128))                # (6,)
+    e = (hopping_matrices(p) * scale[:, None, None]).astype(jnp.complex128) * phase[:, None, None]
+    onsite = jnp.stack([p["e1"], p["e2"], p["e2"]])
+    h0 = jnp.diag(onsite).astype(jnp.complex128) + jnp.sum(e, axis=0)
+    r = new.astype(jnp.complex128)
+    dh0 = jnp.einsum("jmn,jA->mnA", e, 1j * r)
+    d2h0 = -jnp.einsum("jmn,jA,jB->mnAB", e, r, r)
+    soc = (p["soc"] / 2).astype(jnp.complex128) * jnp.asarray(_LZ)
+    return (jnp.stack([h0 + s * soc for s in SPINS]), jnp.stack([dh0] * len(SPINS)),
+            jnp.stack([d2h0] * len(SPINS)))
+
+
 def closed_form(k, p, a=3.190):
     """The unstrained, spinless 3×3 matrix of docs/theory.md §9.4 (for checks)."""
     al, be = k[0] * a / 2, np.sqrt(3.0) * k[1] * a / 2
@@ -137,6 +156,7 @@ def build_tmd_lattice(p, s) -> BandModel:
     lattice = Lattice(vectors=((a, 0.0), (a / 2, s3 * a / 2)),
                       positions=((0.0, 0.0), (0.0, 0.0), (0.0, 0.0)))
     return BandModel(name="tmd-lattice", dim=2, hamiltonian=bind_length(hamiltonian, a), params=p, spec=SPEC,
+                     jet=bind_length(hamiltonian_jet, a),
                      domain=lattice, degeneracy=1.0, blocks=2, block_size=3,
                      deformation=deformation_of, static=(("lattice_constant", a),),
                      description="three-band NN TMD model, blocks spin up, spin down",

@@ -1,0 +1,39 @@
+"""Explicit Bloch-sum derivatives of lattice Hamiltonians (BandModel.jet) against automatic
+differentiation of the same Hamiltonian (jax.jacfwd), and band geometry through either route."""
+import importlib.resources as ir
+
+import jax
+import jax.numpy as jnp
+import numpy as np
+
+from crosswind.models import build, load_tight_binding
+from crosswind.models.geometry import geometry_at
+
+K = jnp.asarray([[0.31, -0.17], [1.12, 0.44], [-0.73, 0.95]])
+
+
+def _check_jet(model):
+    for k in K:
+        h, dh, d2h = model.jet(k, model.params)
+        np.testing.assert_allclose(h, model.hamiltonian(k, model.params), atol=1e-13)
+        np.testing.assert_allclose(dh, jax.jacfwd(model.hamiltonian)(k, model.params), atol=1e-12)
+        np.testing.assert_allclose(d2h, jax.jacfwd(jax.jacfwd(model.hamiltonian))(k, model.params),
+                                   atol=1e-11)
+
+
+def test_strained_tmd_lattice_jet_equals_autodiff():
+    _check_jet(build("tmd-lattice", strain_xx=0.01, strain_xy=0.004))
+
+
+def test_tight_binding_file_jet_equals_autodiff():
+    path = ir.files("crosswind.models").joinpath("data/haldane.toml")
+    _check_jet(load_tight_binding(str(path)))
+
+
+def test_geometry_is_the_same_through_either_route():
+    from dataclasses import replace
+    model = build("tmd-lattice", strain_xx=0.01)
+    plain = replace(model, jet=None)
+    for k in K:
+        for a, b in zip(geometry_at(model, k), geometry_at(plain, k)):
+            np.testing.assert_allclose(a, b, rtol=1e-9, atol=1e-9)
