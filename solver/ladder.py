@@ -227,7 +227,6 @@ def build_tables(model, params, plan: Plan, mu, kt, sea, chunk=4096):
     dim = model.dim
     n0, L = plan.n0, plan.levels
     layout, nc = factor_layout(dim, sea)
-    pfix = jax.lax.stop_gradient(params)
     b = jax.lax.stop_gradient(model.reciprocal_vectors(params))
     vol = jnp.abs(jnp.linalg.det(b)) / (2 * jnp.pi) ** dim
     ktl, h0 = ladder_temperatures(model, params, plan)
