@@ -398,7 +398,7 @@ def response(model: BandModel, mu, temperature, tau, frequency=0.0, *, rtol: flo
     ``error["dipole"]``.  With a fixed ``resolution``, ``estimate_error=False`` skips the coarser
     pass (half the cost, e.g. inside fits); ``error`` is then NaN.
 
-    ``engine="auto"`` (default) takes the ladder for lattice models with automatic resolution
+    ``engine="auto"`` (default) takes the ladder for 2D lattice models with automatic resolution
     (``resolution=None``) and the node quadrature ("mesh") otherwise.
     ``engine="ladder"`` (lattice models) uses the energy-resolved ladder of
     :mod:`crosswind.solver.ladder`: the band geometry is evaluated once per call for all
@@ -415,7 +415,10 @@ def response(model: BandModel, mu, temperature, tau, frequency=0.0, *, rtol: flo
     if not isinstance(model, BandModel):
         raise TypeError("response: the first argument must be a BandModel from crosswind.models.build(...)")
     if engine == "auto":
-        engine = "ladder" if isinstance(model.domain, Lattice) and resolution is None else "mesh"
+        # the ladder's shells are surfaces in 3D (budgets grow 4× per level): measured far too
+        # costly for the Weyl model, so 3D lattices keep the node quadrature unless asked for
+        engine = ("ladder" if isinstance(model.domain, Lattice) and model.dim == 2 and resolution is None
+                  else "mesh")
     if dipole_route not in ("surface", "both"):
         raise ValueError("response: dipole_route must be 'surface' or 'both'")
     if not (0 < rtol < 1):
