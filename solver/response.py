@@ -259,9 +259,12 @@ def _converged(fine, err, mom_fine, rtol, model, tau_max):
     return bad
 
 
-def _abs_diff(a, b):
-    return {name: jnp.abs(a[name] - b[name]) for name in ("density", "sigma", "sigma_anomalous",
-                                                          "dipole", "chi", "chi_dc")}
+def _field_errors(a, b):
+    """|a − b| for every response field and every χ part (SI dicts of :func:`_to_si`)."""
+    err = {name: jnp.abs(a[name] - b[name]) for name in ARRAY_FIELDS}
+    for part in ("dipole", "drude", "intrinsic"):
+        err[f"chi_{part}"] = jnp.abs(a["chi_parts"][part] - b["chi_parts"][part])
+    return err
 
 
 @partial(jax.jit, static_argnames=("plan", "tau_eval", "filled", "sea"))
@@ -277,7 +280,9 @@ def _run_ladder(model, mu, kt, temp, tau_arr, omega, res, kw, plan, traced):
     budgets raised from the counts it reports (concrete calls only)."""
     if plan is None:
         plan = _ladder.make_plan(model, model.params, mu, temp, res)
+    tried = []
     for _ in range(4):
+        tried.append(plan)
         f, c, ex, over, flagged = _ladder_at(model, mu, kt, temp, tau_arr, omega, plan=plan, **kw)
         if traced or not bool(over):
             break
@@ -285,7 +290,7 @@ def _run_ladder(model, mu, kt, temp, tau_arr, omega, res, kw, plan, traced):
         if new == plan:
             break
         plan = new
-    return f, c, ex, over, plan
+    return f, c, ex, over, tried
 
 
 def _ladder_errors(fine_m, coarse_m, ex_m, over, model, temp, intrinsic):
@@ -293,14 +298,9 @@ def _ladder_errors(fine_m, coarse_m, ex_m, over, model, temp, intrinsic):
     coarse = _to_si(coarse_m, model, temp, intrinsic)
     shifted = _to_si(jax.tree_util.tree_map(lambda a, b: a + b.astype(a.dtype), fine_m, ex_m), model, temp,
                      intrinsic)
-    err = {}
-    for name in ARRAY_FIELDS:
-        e = jnp.abs(fine[name] - coarse[name]) + jnp.abs(shifted[name] - fine[name])
-        err[name] = jnp.where(over, jnp.inf, e)
-    for part in ("dipole", "drude", "intrinsic"):
-        e = (jnp.abs(fine["chi_parts"][part] - coarse["chi_parts"][part])
-             + jnp.abs(shifted["chi_parts"][part] - fine["chi_parts"][part]))
-        err[f"chi_{part}"] = jnp.where(over, jnp.inf, e)
+    # nested-grid difference + the T² extrapolation's own spread; a budget overflow is no estimate
+    err = jax.tree_util.tree_map(lambda u, v: jnp.where(over, jnp.inf, u + v),
+                                 _field_errors(fine, coarse), _field_errors(shifted, fine))
     return fine, err
 
 
@@ -323,7 +323,7 @@ def _mesh_path(model, muf, kt, Tf, tauf, omega, kw, rtol, resolution, max_level,
         while True:
             fine = _to_si(fine_m, model, Tf, intrinsic)
             coarse = _to_si(coarse_m, model, Tf, intrinsic)
-            bad = _converged(fine, _abs_diff(fine, coarse), fine_m, rtol, model, tau_max)
+            bad = _converged(fine, _field_errors(fine, coarse), fine_m, rtol, model, tau_max)
             if not bad or lev >= top:
                 break
             lev += 1
@@ -336,9 +336,7 @@ def _mesh_path(model, muf, kt, Tf, tauf, omega, kw, rtol, resolution, max_level,
         coarse_m = run(lev - 1) if lev > 0 and estimate_error else fine_m
         fine = _to_si(fine_m, model, Tf, intrinsic)
         coarse = _to_si(coarse_m, model, Tf, intrinsic)
-    err = {name: jnp.abs(fine[name] - coarse[name]) for name in ARRAY_FIELDS}
-    for part in ("dipole", "drude", "intrinsic"):
-        err[f"chi_{part}"] = jnp.abs(fine["chi_parts"][part] - coarse["chi_parts"][part])
+    err = _field_errors(fine, coarse)
     # distinct k-points where the band geometry was evaluated: lattice meshes are shared by all
     # conditions of a pass, continuum ray meshes are built per condition
     per_pass = 1 if isinstance(model.domain, Lattice) else P
@@ -364,8 +362,8 @@ def _ladder_path(model, muf, kt, Tf, tauf, omega, kw, rtol, resolution, max_leve
         top = nres - 1 if max_level is None else min(max_level, nres - 1)
         lev = 1
         while True:
-            f, c, ex, over, used = _run_ladder(model, muf, kt, Tf, tauf, omega, lev, kw, None, False)
-            k_points += used.k_points(model.dim)
+            f, c, ex, over, tried = _run_ladder(model, muf, kt, Tf, tauf, omega, lev, kw, None, False)
+            k_points += sum(p.k_points(model.dim) for p in tried)
             fine, err = _ladder_errors(f, c, ex, over, model, Tf, intrinsic)
             bad = _converged(fine, err, f, rtol, model, tau_max)
             if not bad or lev >= top:
@@ -375,10 +373,12 @@ def _ladder_path(model, muf, kt, Tf, tauf, omega, kw, rtol, resolution, max_leve
         if not (0 <= resolution <= nres - 1):
             raise ValueError(f"response: resolution must be a level 0..{nres - 1}")
         lev = resolution
-        f, c, ex, over, used = _run_ladder(model, muf, kt, Tf, tauf, omega, lev, kw, plan, traced)
-        k_points = used.k_points(model.dim)
+        f, c, ex, over, tried = _run_ladder(model, muf, kt, Tf, tauf, omega, lev, kw, plan, traced)
+        k_points = sum(p.k_points(model.dim) for p in tried)
         fine, err = _ladder_errors(f, c, ex, over, model, Tf, intrinsic)
-    info = {"engine": "ladder", "level": lev, "plan": used, "levels": used.levels,
+    # every attempt counts: a run that overflowed a budget evaluated its points too
+    info = {"engine": "ladder", "level": lev, "plan": tried[-1], "levels": tried[-1].levels,
+            "attempts": len(tried),
             "k_points": int(k_points)}
     return fine, err, bad, info
 
