@@ -30,11 +30,15 @@ class Lattice:
         a = np.asarray(self.vectors, dtype=float)
         if a.ndim != 2 or a.shape[0] != a.shape[1] or a.shape[0] not in (2, 3):
             raise ValueError(f"Lattice: vectors must be a 2x2 or 3x3 table of rows in Å, got shape {a.shape}.")
+        if not np.all(np.isfinite(a)):
+            raise ValueError(f"Lattice: vectors must be finite numbers in Å, got {self.vectors!r}.")
         if abs(np.linalg.det(a)) < 1e-12:
             raise ValueError("Lattice: the Bravais vectors are linearly dependent (zero cell volume).")
         pos = np.asarray(self.positions, dtype=float)
         if pos.ndim != 2 or pos.shape[1] != a.shape[0]:
             raise ValueError(f"Lattice: positions must have one {a.shape[0]}-component row per orbital.")
+        if not np.all(np.isfinite(pos)):
+            raise ValueError(f"Lattice: orbital positions must be finite numbers in Å, got {self.positions!r}.")
 
     @property
     def dim(self) -> int:
@@ -70,8 +74,10 @@ class Continuum:
         for c in self.centers:
             if len(c) != self.dim:
                 raise ValueError(f"Continuum: each center needs {self.dim} components, got {c}.")
-        if not callable(self.scale) and not self.scale > 0:
-            raise ValueError("Continuum: scale must be a positive wavevector in 1/Å, or a function "
+            if not np.all(np.isfinite(np.asarray(c, dtype=float))):
+                raise ValueError(f"Continuum: centers must be finite wavevectors in 1/Å, got {c}.")
+        if not callable(self.scale) and not 0 < self.scale < np.inf:
+            raise ValueError("Continuum: scale must be a positive finite wavevector in 1/Å, or a function "
                              "params -> wavevector (module-level, so it can be traced).")
 
     def scale_for(self, params):

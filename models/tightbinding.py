@@ -126,9 +126,15 @@ def _number(ctx, table, key, v) -> float:
     return float(v)
 
 
+def _is_finite(v) -> bool:
+    return _is_num(v) and math.isfinite(float(v))
+
+
 def _vector(ctx, table, key, v, dim, what="numbers in Å") -> tuple[float, ...]:
     if not isinstance(v, list) or len(v) != dim or not all(_is_num(x) for x in v):
         ctx.fail(table, key, f"must be an array of {dim} {what} (the model's dimension is {dim}), got {v!r}.")
+    if not all(_is_finite(x) for x in v):
+        ctx.fail(table, key, f"must hold finite numbers, got {v!r}.", "Replace nan/inf by the value in Å.")
     return tuple(float(x) for x in v)
 
 
@@ -159,11 +165,13 @@ _ONSITE_FORMS = ("Allowed: a real number, a parameter name, or a table {scale = 
 
 
 def _scale(ctx, table, key, v, real_only) -> complex:
-    if _is_num(v):
-        return complex(float(v), 0.0)
-    if (not real_only and isinstance(v, list) and len(v) == 2 and all(_is_num(x) for x in v)):
-        return complex(float(v[0]), float(v[1]))
-    ctx.fail(table, key, f"invalid value {v!r}.", _ONSITE_FORMS if real_only else _AMP_FORMS)
+    pair = not real_only and isinstance(v, list) and len(v) == 2 and all(_is_num(x) for x in v)
+    if not (_is_num(v) or pair):
+        ctx.fail(table, key, f"invalid value {v!r}.", _ONSITE_FORMS if real_only else _AMP_FORMS)
+    re_im = v if pair else [v, 0.0]
+    if not all(_is_finite(x) for x in re_im):
+        ctx.fail(table, key, f"must be finite, got {v!r}.", "Replace nan/inf by the energy in eV.")
+    return complex(float(re_im[0]), float(re_im[1]))
 
 
 def _amplitude(ctx, table, key, v, declared, real_only=False) -> _Amp:
@@ -343,7 +351,7 @@ def _parse(data: dict, ctx: _Ctx):
         bounds = (-math.inf, math.inf)
         if "range" in entry:
             rng = entry["range"]
-            if not isinstance(rng, list) or len(rng) != 2 or not all(_is_num(x) for x in rng) or rng[0] > rng[1]:
+            if not isinstance(rng, list) or len(rng) != 2 or not all(_is_num(x) for x in rng) or not rng[0] <= rng[1]:
                 ctx.fail(tname, "range", f"must be [lo, hi] with lo <= hi, got {rng!r}.",
                          "Use -inf/inf (TOML floats) for an open end.")
             bounds = (float(rng[0]), float(rng[1]))

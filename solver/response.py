@@ -50,6 +50,7 @@ from crosswind.models.domain import Lattice
 from crosswind.models.units import ANGSTROM, E_CHARGE, HBAR_JS, KB_EVK
 from . import ladder as _ladder
 from . import mesh as _mesh
+from .inputs import check_arguments
 from .kernels import moments, moments_indexed
 from .occupation import T_FLOOR, thermal_energy
 from .scattering import as_scattering
@@ -434,16 +435,8 @@ def response(model: BandModel, mu, temperature, tau, frequency=0.0, *, rtol: flo
         raise ValueError(f"response: mu {mu.shape}, temperature {temperature.shape} and tau shapes "
                          f"{[a.shape for a in tau_arr.values()]} do not broadcast; pass arrays of equal "
                          "shape or scalars") from exc
-    if not _is_traced(temperature):
-        if np.any(np.asarray(temperature) < 0):
-            raise ValueError("response: temperature must be >= 0 K")
-    if not _is_traced(tau_arr):
-        # every relaxation time of the scattering model (tau0, tau_impurity, tau_phonon), also when
-        # given as a jax array or inside a ConstantTau/PowerLawTau/MatthiessenTau object
-        for key in ("tau0", "timp", "tph"):
-            if key in tau_arr and np.any(np.asarray(tau_arr[key]) <= 0):
-                raise ValueError(f"response: tau must be positive (fs); {type(scat).__name__} has "
-                                 "a relaxation time <= 0")
+    # concrete NaN/inf/negative values and non-integer levels: a clear error (solver/inputs.py)
+    check_arguments(mu, temperature, tau_arr, type(scat).__name__, frequency, resolution, max_level)
     P = int(np.prod(shape)) if shape else 1
     flat = lambda x: jnp.broadcast_to(x, shape).reshape(P)
     muf, Tf = flat(mu), flat(temperature)

@@ -226,6 +226,28 @@ def compute_batch(scn: Scenario, values: dict, model) -> dict:
     return out
 
 
+FINITE_FIELDS = ("mu", "density", "sigma", "sigma_drude", "sigma_anomalous", "dipole", "chi", "chi_dc",
+                 "chi_dipole", "chi_drude", "chi_intrinsic")
+
+
+def check_finite_batch(scn: Scenario, b: int, values: dict, res: dict) -> None:
+    """Refuse a batch whose response fields hold NaN/inf (a non-finite input traced past the
+    API checks, an overflow in a scattering model, a model that is NaN somewhere): the error names
+    the first bad point by its axis values, and nothing of the batch is checkpointed."""
+    for name in FINITE_FIELDS:
+        if name not in res:
+            continue
+        v = np.asarray(res[name])
+        bad = ~np.isfinite(v).reshape(len(v), -1).all(axis=1)
+        if bad.any():
+            j = int(np.argmax(bad))
+            units = {a.name: a.unit for a in scn.axes}
+            point = ", ".join(f"{k} = {float(x[j]):g} {units.get(k, '')}".rstrip() for k, x in values.items())
+            raise RunError(f"batch {b}, point {point}: {name} is not finite ({int(bad.sum())} of {len(v)} "
+                           "points); nothing was written for this batch. Check the model and the scattering "
+                           "parameters at that point (e.g. a power-law exponent that overflows tau).")
+
+
 def run_scenario(scn: Scenario, output: Path | str | None = None, *, progress: bool = True,
                  after_batch: Callable[[int], None] | None = None):
     """Run (or resume) the sweep of ``scn``; returns the xarray Dataset (also written to disk).
@@ -283,6 +305,7 @@ def run_scenario(scn: Scenario, output: Path | str | None = None, *, progress: b
                 if key not in models:
                     models[key] = scn.build_model(strain)
                 res = compute_batch(scn, values, models[key])
+            check_finite_batch(scn, b, values, res)
             _atomic_write(path, lambda tmp, res=res: _savez(tmp, res))
             results.append(res)
             computed.append(b)

@@ -16,12 +16,33 @@ When τ depends on energy the closed forms change: σ is no longer τ × (a τ-f
 Berry-curvature dipole term uses the τ-weighted dipole ∫(−f0')τ(ε)ħv_bΩ_d, and the nonlinear Drude
 term gains ∂τ/∂ε (see :mod:`crosswind.solver.kernels`).  E⊥/E∥² is then τ-independent only on
 average.
+
+The shape parameters (exponent, reference and scale energies, smoothing, reference temperature)
+are checked when an object is built, for concrete values: NaN/inf, a scale or reference
+temperature <= 0, a smoothing <= 0 and an exponent beyond ±``MAX_EXPONENT`` are refused with a
+``ValueError`` naming the field.  The relaxation times themselves are checked by ``response``.
 """
 from __future__ import annotations
 
 from dataclasses import dataclass
 
 import jax.numpy as jnp
+import numpy as np
+
+from .inputs import first_bad, is_traced
+
+MAX_EXPONENT = 10.0   # |r| beyond this overflows τ over a band width (0.1 eV scale: 100^r) to inf/0
+
+
+def _require(owner: str, name: str, value, ok, rule: str, fix: str) -> None:
+    """Refuse a concrete ``value`` with an entry where ``ok`` fails (NaN fails every rule)."""
+    if is_traced(value):
+        return
+    hit = first_bad(value, lambda a: np.isfinite(a) & ok(a))
+    if hit is not None:
+        idx, v = hit
+        where = f" at index {idx}" if idx else ""
+        raise ValueError(f"{owner}: {name} must be {rule}; got {v!r}{where}. {fix}")
 
 
 @dataclass(frozen=True)
@@ -45,6 +66,18 @@ class PowerLawTau:
     energy_scale: float = 0.1      # eV
     smoothing: float = 1e-4        # eV
 
+    def __post_init__(self):
+        own = "PowerLawTau"
+        _require(own, "exponent", self.exponent, lambda a: np.abs(a) <= MAX_EXPONENT,
+                 f"finite with |exponent| <= {MAX_EXPONENT:g}",
+                 "Physical exponents are of order 1 (e.g. -0.5 acoustic phonons, +1 charged impurities).")
+        _require(own, "reference_energy", self.reference_energy, np.isfinite, "finite (eV)",
+                 "Pass the reference energy in eV, e.g. 0.0.")
+        _require(own, "energy_scale", self.energy_scale, lambda a: a > 0, "positive and finite (eV)",
+                 "Pass the energy scale in eV, e.g. energy_scale=0.1.")
+        _require(own, "smoothing", self.smoothing, lambda a: a > 0, "positive and finite (eV)",
+                 "Keep the default 1e-4 eV (it regularises |eps - eps_ref|^r at eps_ref).")
+
     def arrays(self):
         f = lambda x: jnp.asarray(x, dtype=jnp.float64)
         return {"tau0": f(self.tau0), "exponent": f(self.exponent), "eref": f(self.reference_energy),
@@ -65,6 +98,11 @@ class MatthiessenTau:
     tau_impurity: object            # fs
     tau_phonon: object              # fs, phonon-limited τ at T_ref
     reference_temperature: float = 300.0  # K
+
+    def __post_init__(self):
+        _require("MatthiessenTau", "reference_temperature", self.reference_temperature, lambda a: a > 0,
+                 "positive and finite (K)", "Pass the temperature at which tau_phonon is quoted, "
+                 "e.g. reference_temperature=300.0.")
 
     def arrays(self):
         f = lambda x: jnp.asarray(x, dtype=jnp.float64)

@@ -33,6 +33,8 @@ from pathlib import Path
 
 import numpy as np
 
+from .scattering import MAX_EXPONENT
+
 
 class ScenarioError(ValueError):
     """A scenario file is malformed; the message names the file, table and key."""
@@ -389,6 +391,10 @@ def _conditions(ctx, data, dev: Device, device_angle):
             if key not in s and key not in defaults:
                 ctx.fail("conditions.scattering", key, f"missing for kind = \"{kind}\".", ", ".join(fields))
             vals = _values(ctx, "conditions.scattering", key, s.get(key, defaults.get(key)), positive=bool(positive))
+            if key == "exponent" and max(abs(x) for x in vals) > MAX_EXPONENT:
+                ctx.fail("conditions.scattering", key, f"|exponent| must be <= {MAX_EXPONENT:g}, got "
+                         f"{max(vals, key=abs):g} (tau would overflow across the band).",
+                         "exponents of order 1, e.g. -0.5 (acoustic phonons) or 1 (charged impurities)")
             axes_scat.append(Axis(name, f"conditions.scattering.{key}", unit, vals, meaning))
     else:
         kind = "constant"

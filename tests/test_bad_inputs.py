@@ -1,0 +1,182 @@
+"""Bad inputs must never give a silent wrong answer (issue 10): every probe below once returned
+NaN/zero results without complaint or ended in a raw traceback; each now gives a clear error
+naming the argument (or file entry) and the fix.  Error paths only: nothing here integrates."""
+import math
+
+import numpy as np
+import pytest
+
+from crosswind.models import build
+from crosswind.models.domain import Continuum, Lattice
+from crosswind.models.tightbinding import TightBindingFileError, parse_tight_binding
+from crosswind.solver import ConstantTau, MatthiessenTau, PowerLawTau, response
+from crosswind.solver import run as run_mod
+from crosswind.solver.run import RunError, run_scenario
+from crosswind.solver.scenario import ScenarioError, parse_scenario
+
+DIRAC = {"velocity": 5e5, "mass": 0.1, "tilt": 5e4}
+NAN, INF = math.nan, math.inf
+
+
+@pytest.fixture(scope="module")
+def dirac():
+    return build("massive-dirac", **DIRAC)
+
+
+# ------------------------------------------------------------------ response arguments -------
+@pytest.mark.parametrize("kw, match", [
+    ({"mu": NAN}, r"response: mu must be finite \(eV\); got nan\. Pass chemical potentials in eV"),
+    ({"mu": [0.1, INF]}, r"response: mu must be finite \(eV\); got inf at index \(1,\)"),
+    ({"temperature": NAN}, r"response: temperature must be finite \(K\); got nan\. Pass temperatures in K"),
+    ({"temperature": INF}, r"response: temperature must be finite \(K\); got inf"),
+    ({"temperature": [5.0, -1.0]}, r"response: temperature must be >= 0 K; got -1 at index \(1,\)"),
+    ({"tau": NAN}, (r"response: tau must be positive \(fs\) and finite; ConstantTau has tau = nan\. "
+                    r"Pass relaxation times in fs")),
+    ({"tau": [100.0, INF]}, r"ConstantTau has tau = inf at index \(1,\)"),
+    ({"tau": MatthiessenTau(tau_impurity=100.0, tau_phonon=NAN)}, r"MatthiessenTau has tau_phonon = nan"),
+    ({"tau": PowerLawTau(tau0=INF)}, r"PowerLawTau has tau0 = inf"),
+    ({"frequency": NAN}, r"response: frequency must be finite \(Hz\); got nan\. Pass the drive frequency in Hz"),
+    ({"frequency": INF}, r"response: frequency must be finite \(Hz\); got inf"),
+    ({"frequency": -5.0}, r"response: frequency must be >= 0 Hz"),
+])
+def test_non_finite_or_invalid_conditions_are_refused(dirac, kw, match):
+    args = {"mu": 0.15, "temperature": 10.0, "tau": 100.0}
+    args.update(kw)
+    with pytest.raises(ValueError, match=match):
+        response(dirac, **args)
+
+
+@pytest.mark.parametrize("kw, match", [
+    ({"resolution": 1.5}, r"response: resolution must be None or an integer level, e.g\. resolution=2; got 1\.5"),
+    ({"resolution": True}, r"response: resolution must be None or an integer level"),
+    ({"max_level": 2.5}, r"response: max_level must be None or an integer level, e.g\. max_level=3"),
+])
+def test_non_integer_levels_are_refused(dirac, kw, match):
+    """resolution=1.5 used to end in a bare TypeError from indexing the level table."""
+    with pytest.raises(TypeError, match=match):
+        response(dirac, mu=0.15, temperature=10.0, tau=100.0, **kw)
+
+
+def test_integer_levels_of_numpy_type_are_accepted(dirac):
+    """The level check accepts any integer type (a sweep may hand over numpy integers)."""
+    from crosswind.solver.inputs import check_arguments
+    check_arguments(0.1, 1.0, ConstantTau(1.0).arrays(), "ConstantTau", 0.0, np.int64(1), np.int32(2))
+    with pytest.raises(TypeError, match="resolution must be None or an integer"):
+        check_arguments(0.1, 1.0, ConstantTau(1.0).arrays(), "ConstantTau", 0.0, np.float64(1.0), None)
+
+
+# ------------------------------------------------------------------ scattering objects -------
+@pytest.mark.parametrize("make, match", [
+    (lambda: MatthiessenTau(100.0, 100.0, reference_temperature=0.0),
+     r"MatthiessenTau: reference_temperature must be positive and finite \(K\); got 0\.0\. Pass the temperature"),
+    (lambda: MatthiessenTau(100.0, 100.0, reference_temperature=-300.0), r"reference_temperature.*got -300"),
+    (lambda: MatthiessenTau(100.0, 100.0, reference_temperature=NAN), r"reference_temperature.*got nan"),
+    (lambda: PowerLawTau(100.0, energy_scale=0.0),
+     r"PowerLawTau: energy_scale must be positive and finite \(eV\); got 0\.0\. Pass the energy scale"),
+    (lambda: PowerLawTau(100.0, energy_scale=np.array([0.1, -0.1])), r"energy_scale.*got -0\.1 at index \(1,\)"),
+    (lambda: PowerLawTau(100.0, energy_scale=INF), r"energy_scale.*got inf"),
+    (lambda: PowerLawTau(100.0, exponent=500.0),
+     r"PowerLawTau: exponent must be finite with \|exponent\| <= 10; got 500\.0\. Physical exponents"),
+    (lambda: PowerLawTau(100.0, exponent=NAN), r"exponent must be finite"),
+    (lambda: PowerLawTau(100.0, reference_energy=INF), r"reference_energy must be finite \(eV\); got inf"),
+    (lambda: PowerLawTau(100.0, smoothing=0.0), r"smoothing must be positive and finite \(eV\); got 0\.0"),
+])
+def test_scattering_shape_parameters_are_checked_at_construction(make, match):
+    with pytest.raises(ValueError, match=match):
+        make()
+
+
+def test_reasonable_scattering_objects_still_build():
+    PowerLawTau(100.0, exponent=-10.0, energy_scale=0.05, smoothing=1e-6)
+    MatthiessenTau(np.array([100.0, 200.0]), 50.0, reference_temperature=np.array([77.0, 300.0]))
+
+
+# ------------------------------------------------------------------ tight-binding files ------
+TB = """
+model = { name = "chain", dimension = 2 }
+lattice = { vectors = [[2.0, 0.0], [0.0, 3.0]] }
+orbital = [{ label = "s", position = [0.0, 0.0], onsite = 0.1 }]
+hop = [{ from = "s", to = "s", cell = [1, 0], amplitude = -1.0 }]
+"""
+
+
+@pytest.mark.parametrize("old, new, match", [
+    ("amplitude = -1.0", "amplitude = nan", (r"\[\[hop\]\] #1, key 'amplitude': must be finite, got nan\. "
+                                             r"Replace nan/inf by the energy in eV")),
+    ("amplitude = -1.0", "amplitude = [-1.0, inf]", r"\[\[hop\]\] #1, key 'amplitude': must be finite"),
+    ("amplitude = -1.0", "amplitude = { scale = -inf }", r"\[\[hop\]\] #1, key 'amplitude\.scale': must be finite, got -inf"),
+    ("onsite = 0.1", "onsite = inf", r"\[\[orbital\]\] #1, key 'onsite': must be finite, got inf"),
+    ("position = [0.0, 0.0]", "position = [nan, 0.0]",
+     r"\[\[orbital\]\] #1, key 'position': must hold finite numbers, got \[nan, 0\.0\]\. Replace nan/inf"),
+    ("vectors = [[2.0, 0.0], [0.0, 3.0]]", "vectors = [[2.0, 0.0], [0.0, inf]]",
+     r"\[lattice\], key 'vectors\[1\]': must hold finite numbers"),
+])
+def test_tight_binding_file_with_non_finite_entry_is_refused(old, new, match):
+    assert old in TB
+    with pytest.raises(TightBindingFileError, match=r"^t\.toml: table " + match):
+        parse_tight_binding(TB.replace(old, new, 1), source="t.toml")
+
+
+def test_domains_refuse_non_finite_geometry():
+    with pytest.raises(ValueError, match=r"Lattice: vectors must be finite numbers in Å"):
+        Lattice(vectors=((1.0, 0.0), (0.0, NAN)), positions=((0.0, 0.0),))
+    with pytest.raises(ValueError, match=r"Lattice: orbital positions must be finite numbers in Å"):
+        Lattice(vectors=((1.0, 0.0), (0.0, 1.0)), positions=((INF, 0.0),))
+    with pytest.raises(ValueError, match=r"Continuum: centers must be finite wavevectors"):
+        Continuum(dim=2, centers=((NAN, 0.0),))
+    with pytest.raises(ValueError, match=r"Continuum: scale must be a positive finite wavevector"):
+        Continuum(dim=2, scale=INF)
+
+
+# ------------------------------------------------------------------ scenarios and sweeps ----
+SCN = """
+[material]
+model = "massive-dirac"
+[material.parameters]
+velocity = 5e5
+mass = 0.1
+
+[device]
+width_um = 4
+length_um = 8
+current_uA = 1
+
+[conditions]
+mu_eV = [0.13, 0.15]
+temperature_K = 5
+[conditions.scattering]
+kind = "power-law"
+tau0_fs = 100
+exponent = 1.0
+
+[numerics]
+resolution = 0
+
+[output]
+figures = false
+"""
+
+
+def test_scenario_refuses_an_absurd_power_law_exponent():
+    with pytest.raises(ScenarioError, match=r"\[conditions\.scattering\] key 'exponent': \|exponent\| must be "
+                                            r"<= 10, got 500"):
+        parse_scenario(SCN.replace("exponent = 1.0", "exponent = 500.0"), source="s.toml")
+
+
+def test_sweep_refuses_to_write_a_non_finite_batch(tmp_path, monkeypatch):
+    """A result that is NaN at one point (e.g. a traced NaN, an overflow) stops the run with the
+    point named; no checkpoint and no dataset is written for it."""
+    scn = parse_scenario(SCN, source="s.toml", base=tmp_path)
+
+    def fake(scn, values, model):
+        P = len(values["chemical_potential"])
+        sigma = np.ones((P, 2, 2), dtype=complex)
+        sigma[1, 0, 0] = np.nan
+        return {"mu": values["chemical_potential"], "sigma": sigma}
+
+    monkeypatch.setattr(run_mod, "compute_batch", fake)
+    with pytest.raises(RunError, match=r"batch 0, point temperature = 5 K, .*chemical_potential = 0\.15 eV: "
+                                       r"sigma is not finite \(1 of 2 points\); nothing was written"):
+        run_scenario(scn, tmp_path / "out", progress=False)
+    assert not list((tmp_path / "out" / "batches").iterdir())
+    assert not (tmp_path / "out" / "results.nc").exists()
