@@ -12,9 +12,12 @@ objects or as a mapping ``name -> (default, unit, meaning[, (lo, hi)])``; every 
 differentiable real number.  ``values`` overrides defaults with the same checks as ``build``:
 an unknown name is refused with the valid names, a value out of range is refused with its range.
 
-The function is checked once, at build time, at one generic k-point with the resolved values:
-it must trace with ``jax.numpy`` (so ``band_geometry`` can differentiate it with respect to k),
-return a finite square ``(m, m)`` or ``(S, m, m)`` array, Hermitian to 1e-10 relative.  A lattice
+The function is checked at build time with the resolved values: at one generic k-point it must
+trace with ``jax.numpy`` (so ``band_geometry`` can differentiate it with respect to k) and return
+a square ``(m, m)`` or ``(S, m, m)`` array; then, on a small set of points spread over the domain
+(:func:`sample_points`: a 3^d grid of generic points of the Brillouin zone, or rays from every
+continuum centre out to 10× its scale), H and ∂H/∂k must be finite and H Hermitian to 1e-10
+relative, so a function that is wrong away from one point is refused with the k-point named.  A lattice
 domain needs one orbital position per row of a block; the Hamiltonian must then use Bloch phases
 that include those positions (docs/theory.md §2.5, convention I).
 
@@ -134,7 +137,25 @@ def sample_k(domain) -> np.ndarray:
     return centers[0] + domain.scale * np.array([0.731, -0.412, 0.287])[: domain.dim]
 
 
-def _check_blocks(h, owner: str, what: str = "hamiltonian") -> np.ndarray:
+def sample_points(domain, params) -> np.ndarray:
+    """Build-time check points (n, d) in 1/Å, :func:`sample_k` first.  Lattice: a 3^d grid of
+    generic fractional coordinates (none on a high-symmetry point) over the Brillouin zone.
+    Continuum: around every centre, radii 0.03 to 10 × ``scale`` along ± a generic frame."""
+    d = domain.dim
+    first = sample_k(domain)[None]
+    if isinstance(domain, Lattice):
+        steps = np.stack(np.meshgrid(*[np.arange(3)] * d, indexing="ij"), -1).reshape(-1, d)
+        frac = (np.array([0.1234, 0.2711, 0.0917])[:d] + steps / 3.0 + 0.5) % 1.0 - 0.5
+        return np.concatenate([first, frac @ domain.reciprocal()])
+    q = np.linalg.qr(np.array([[0.83, -0.29, 0.47], [0.31, 0.91, -0.22], [-0.45, 0.18, 0.88]])[:d, :d])[0]
+    dirs = np.concatenate([q, -q])      # ± a generic orthonormal frame: both signs of every axis
+    radii = float(domain.scale_for(params)) * np.array([0.03, 0.3, 1.0, 3.0, 10.0])
+    shifts = (radii[:, None, None] * dirs[None]).reshape(-1, d)
+    centers = np.asarray(domain.centers, dtype=float)
+    return np.concatenate([first] + [c + shifts for c in centers])
+
+
+def _check_blocks(h, owner: str, what: str = "hamiltonian", where: str = "at the test point") -> np.ndarray:
     arr = np.asarray(h)
     if arr.ndim not in (2, 3) or arr.shape[-1] != arr.shape[-2] or arr.shape[-1] == 0:
         raise ValueError(
@@ -144,15 +165,15 @@ def _check_blocks(h, owner: str, what: str = "hamiltonian") -> np.ndarray:
         raise ValueError(f"{owner}: {what}(k, params) returned non-numeric dtype {arr.dtype}.")
     if not np.all(np.isfinite(arr)):
         raise ValueError(
-            f"{owner}: {what}(k, params) returned non-finite entries (nan/inf) at the test point; "
+            f"{owner}: {what}(k, params) returned non-finite entries (nan/inf) {where}; "
             f"check divisions and parameter values.")
     blocks = arr if arr.ndim == 3 else arr[None]
     dev = np.max(np.abs(blocks - np.conj(np.swapaxes(blocks, -1, -2))))
     scale = max(1.0, float(np.max(np.abs(blocks))))
     if dev > HERMITIAN_RTOL * scale:
         raise ValueError(
-            f"{owner}: {what}(k, params) is not Hermitian: max |H - H^†| = {dev:.3g} eV at the test "
-            f"point (tolerance {HERMITIAN_RTOL:g} x max(1, max|H|)). Give H[j, i] = conj(H[i, j]); "
+            f"{owner}: {what}(k, params) is not Hermitian: max |H - H^†| = {dev:.3g} eV {where} "
+            f"(tolerance {HERMITIAN_RTOL:g} x max(1, max|H|)). Give H[j, i] = conj(H[i, j]); "
             f"for a hopping list add the Hermitian-conjugate terms.")
     return arr
 
@@ -172,6 +193,21 @@ def _call_checked(fn, k, params, owner: str, what: str):
         raise ValueError(
             f"{owner}: {what}(k, params) uses a traced value in Python control flow (if/float()); "
             f"use jnp.where instead: {exc}") from exc
+
+
+def _check_across_domain(wrapped, hamiltonian, domain, probe, owner: str) -> None:
+    """H finite and Hermitian and ∂H/∂k finite at every :func:`sample_points` point (one
+    vectorised call each); the message names the first bad k-point."""
+    ks = jnp.asarray(sample_points(domain, probe), dtype=jnp.float64)
+    hs = np.asarray(_call_checked(jax.vmap(hamiltonian, in_axes=(0, None)), ks, probe, owner, "hamiltonian"))
+    dhs = np.asarray(jax.vmap(jax.jacfwd(wrapped), in_axes=(0, None))(ks, probe))
+    for k, h, dh in zip(np.asarray(ks), hs, dhs):
+        where = (f"at k = ({', '.join(f'{x:.4g}' for x in k)}) 1/Å (one of {len(ks)} check points "
+                 "spread over the domain)")
+        _check_blocks(h, owner, where=where)
+        if not np.all(np.isfinite(dh)):
+            raise ValueError(f"{owner}: the k-derivative of hamiltonian(k, params) is not finite {where}; "
+                             "check divisions (e.g. by |k|) and square roots.")
 
 
 def from_function(hamiltonian: Callable, *, parameters, domain: Lattice | Continuum,
@@ -209,6 +245,7 @@ def from_function(hamiltonian: Callable, *, parameters, domain: Lattice | Contin
     dh = _call_checked(jax.jacfwd(wrapped, argnums=0), k0, probe, owner, "hamiltonian")
     if not np.all(np.isfinite(np.asarray(dh))):
         raise ValueError(f"{owner}: the k-derivative of hamiltonian(k, params) is not finite at the test point.")
+    _check_across_domain(wrapped, hamiltonian, domain, probe, owner)
     blocks, m = (1, h0.shape[0]) if h0.ndim == 2 else (h0.shape[0], h0.shape[1])
 
     if isinstance(domain, Lattice) and len(domain.positions) != m:

@@ -3,10 +3,12 @@ NaN/zero results without complaint or ended in a raw traceback; each now gives a
 naming the argument (or file entry) and the fix.  Error paths only: nothing here integrates."""
 import math
 
+import jax.numpy as jnp
 import numpy as np
 import pytest
 
 from crosswind.models import build
+from crosswind.models.custom import from_function, sample_k, sample_points
 from crosswind.models.domain import Continuum, Lattice
 from crosswind.models.tightbinding import TightBindingFileError, parse_tight_binding
 from crosswind.solver import ConstantTau, MatthiessenTau, PowerLawTau, response
@@ -180,3 +182,57 @@ def test_sweep_refuses_to_write_a_non_finite_batch(tmp_path, monkeypatch):
         run_scenario(scn, tmp_path / "out", progress=False)
     assert not list((tmp_path / "out" / "batches").iterdir())
     assert not (tmp_path / "out" / "results.nc").exists()
+
+
+# ------------------------------------------------------------------ user Hamiltonians --------
+SX = jnp.array([[0, 1], [1, 0]], dtype=jnp.complex128)
+SY = jnp.array([[0, -1j], [1j, 0]], dtype=jnp.complex128)
+SZ = jnp.array([[1, 0], [0, -1]], dtype=jnp.complex128)
+GAPPED = {"m": (0.1, "eV", "half gap")}
+
+
+def gapped_dirac(k, p):
+    """H = ħv(k_x σ_x + k_y σ_y) + m σ_z with ħv = 3 eV·Å (common practice, massive Dirac)."""
+    kx, ky, m = (jnp.asarray(x).astype(jnp.complex128) for x in (k[0], k[1], p["m"]))
+    return 3.0 * (kx * SX + ky * SY) + m * SZ
+
+
+def _wrong_away_from(k0, kind):
+    """A Dirac Hamiltonian that is correct at ``k0`` (the old single check point) only: a
+    non-Hermitian term, or NaN, proportional to / beyond k_x − k0_x."""
+    x0 = float(k0[0])
+
+    def h(k, p):
+        off = (k[0] - x0).astype(jnp.complex128)
+        if kind == "hermitian":
+            return gapped_dirac(k, p) + 0.5 * off * jnp.array([[0, 1], [0, 0]], dtype=jnp.complex128)
+        return gapped_dirac(k, p) + jnp.where(k[0] > x0 + 1e-9, jnp.nan, 0.0).astype(jnp.complex128) * SZ
+    return h
+
+
+@pytest.mark.parametrize("domain", [Continuum(dim=2, scale=0.05),
+                                    Lattice(vectors=((3.0, 0.0), (0.0, 3.0)), positions=((0.0, 0.0),) * 2)],
+                         ids=["continuum", "lattice"])
+@pytest.mark.parametrize("kind, match", [
+    ("hermitian", (r"hamiltonian\(k, params\) is not Hermitian: max \|H - H\^†\| = .* eV at k = \(.*\) 1/Å "
+                   r"\(one of \d+ check points spread over the domain\).*Give H\[j, i\] = conj\(H\[i, j\]\)")),
+    ("nan", r"returned non-finite entries \(nan/inf\) at k = \(.*\) 1/Å \(one of \d+ check points.*check divisions"),
+])
+def test_user_hamiltonian_wrong_away_from_one_point_is_refused(domain, kind, match):
+    h = _wrong_away_from(sample_k(domain), kind)
+    np.testing.assert_allclose(np.asarray(h(jnp.asarray(sample_k(domain)), {"m": 0.1})),
+                               np.asarray(gapped_dirac(jnp.asarray(sample_k(domain)), {"m": 0.1})))
+    with pytest.raises(ValueError, match=match):
+        from_function(h, parameters=GAPPED, domain=domain)
+
+
+def test_check_points_cover_the_domain():
+    """The points span the zone (lattice) or reach 10 × scale around every centre (continuum)."""
+    lat = Lattice(vectors=((3.0, 0.0), (0.0, 3.0)), positions=((0.0, 0.0),))
+    frac = sample_points(lat, {}) @ lat.vectors_array().T / (2 * np.pi)
+    assert len(frac) == 10 and frac.min() < -0.3 and frac.max() > 0.3
+    cont = Continuum(dim=2, centers=((0.0, 0.0), (1.0, 0.0)), scale=0.05)
+    pts = sample_points(cont, {})
+    dist = np.linalg.norm(pts[1:, None] - np.asarray(cont.centers)[None], axis=-1).min(axis=1)
+    assert len(pts) == 41 and dist.max() == pytest.approx(0.5) and dist.min() == pytest.approx(0.0015)
+    from_function(gapped_dirac, parameters=GAPPED, domain=cont)    # a correct model still builds
