@@ -461,6 +461,9 @@ def load_tight_binding(path, /, **values: Any) -> BandModel:
         text = p.read_text(encoding="utf-8")
     except FileNotFoundError as exc:
         raise TightBindingFileError(f"{p}: tight-binding file not found.") from exc
+    except UnicodeDecodeError as exc:
+        raise TightBindingFileError(f"{p}: not UTF-8 text (byte 0x{exc.object[exc.start]:02x} at position "
+                                    f"{exc.start}); save the tight-binding file as UTF-8.") from exc
     return parse_tight_binding(text, str(p), **values)
 
 

@@ -6,8 +6,8 @@
     crosswind models                                        list the model catalogue
     crosswind validate                                      run the validation cases
 
-``main(argv=None)`` returns the exit status (0 success, 1 failed validation or run, 2 bad input);
-errors go to stderr.
+``main(argv=None)`` returns the exit status (0 success, 1 failed validation or run, 2 bad input,
+130 interrupted by Ctrl-C: ``run`` says how to resume); errors go to stderr, one line each.
 """
 from __future__ import annotations
 
@@ -64,6 +64,10 @@ def _run(scn, output, progress: bool) -> int:
     except RunError as exc:
         _err(str(exc))
         return 2
+    except KeyboardInterrupt:
+        print(f"\ncrosswind: interrupted; finished batches are checkpointed in {folder}: run the same "
+              "command again to resume", file=sys.stderr)
+        return 130
     write_report(ds, scn, folder)
     extra = ""
     if scn.sensitivities is not None:
@@ -165,7 +169,12 @@ def main(argv=None) -> int:
     if args.command is None:
         parser.print_help(sys.stderr)
         return 2
-    return {"run": cmd_run, "fit": cmd_fit, "demo": cmd_demo, "models": cmd_models, "validate": cmd_validate}[args.command](args)
+    commands = {"run": cmd_run, "fit": cmd_fit, "demo": cmd_demo, "models": cmd_models, "validate": cmd_validate}
+    try:
+        return commands[args.command](args)
+    except KeyboardInterrupt:
+        print("\ncrosswind: interrupted (exit 130)", file=sys.stderr)
+        return 130
 
 
 if __name__ == "__main__":

@@ -13,7 +13,8 @@ through :func:`~crosswind.solver.density.mu_from_density` (gate via
 
 Checkpoints and resume.  Each finished batch is written to ``<folder>/batches/batch_<i>.npz``
 atomically (a temporary file in the same folder, then ``os.replace``), so an interrupted run leaves
-only complete batches.  ``run.json`` records a fingerprint of the scenario and the package
+only complete batches; a checkpoint that cannot be read (empty, truncated, garbage) is recomputed
+with a warning naming the file.  ``run.json`` records a fingerprint of the scenario and the package
 version; a rerun with the same fingerprint loads the finished batches and computes only the rest.
 A folder holding another scenario's checkpoints is refused.
 
@@ -34,6 +35,8 @@ import os
 import sys
 import tempfile
 import time
+import zipfile
+import zlib
 from importlib import metadata
 from pathlib import Path
 from typing import Callable
@@ -120,6 +123,38 @@ def batch_plan(scn: Scenario):
     outer = [i for i in range(len(axes)) if i != inner]
     combos = list(itertools.product(*[range(len(axes[i])) for i in outer]))
     return inner, outer, combos
+
+
+def prepare_folder(folder: Path) -> None:
+    """Create ``folder`` (with its parents) and check that a file can be written in it; an
+    ``OSError`` (a parent that is a file, no permission, read-only disk) becomes a
+    :class:`RunError` naming the folder and the fix."""
+    try:
+        folder.mkdir(parents=True, exist_ok=True)
+        fd, probe = tempfile.mkstemp(prefix=".write-test.", dir=folder)
+        os.close(fd)
+        os.unlink(probe)
+    except OSError as exc:
+        raise RunError(f"cannot create or write the output folder {folder} ({exc.strerror or exc}); choose "
+                       "another --output folder or fix its permissions") from exc
+
+
+CHECKPOINT_ERRORS = (OSError, ValueError, EOFError, KeyError, zipfile.BadZipFile, zlib.error)
+
+
+def load_checkpoint(path: Path) -> dict | None:
+    """The arrays of a finished batch, or ``None`` with a warning on stderr naming the file when it
+    is empty, truncated or not a checkpoint (the batch is then simply recomputed)."""
+    try:
+        with np.load(path) as z:
+            res = {k: z[k] for k in z.files}
+        if not {"mu", "sigma"} <= set(res):
+            raise ValueError("not a Crosswind batch checkpoint")
+        return res
+    except CHECKPOINT_ERRORS as exc:
+        print(f"crosswind: warning: checkpoint {path} is unreadable ({type(exc).__name__}: {exc}); "
+              "recomputing that batch", file=sys.stderr, flush=True)
+        return None
 
 
 class _Progress:
@@ -253,6 +288,7 @@ def run_scenario(scn: Scenario, output: Path | str | None = None, *, progress: b
     """Run (or resume) the sweep of ``scn``; returns the xarray Dataset (also written to disk).
     ``after_batch(i)`` is called after batch ``i`` is checkpointed (for tests and monitoring)."""
     folder = Path(output) if output is not None else scn.output_folder
+    prepare_folder(folder)
     fp = fingerprint(scn)
     manifest = folder / "run.json"
     if manifest.exists():
@@ -281,9 +317,9 @@ def run_scenario(scn: Scenario, output: Path | str | None = None, *, progress: b
     try:
         for b, combo in enumerate(combos):
             path = bdir / f"batch_{b:05d}.npz"
-            if path.exists():
-                with np.load(path) as z:
-                    results.append({k: z[k] for k in z.files})
+            done = load_checkpoint(path) if path.exists() else None
+            if done is not None:
+                results.append(done)
                 prog.update(skipped=True)
                 continue
             idx = dict(zip(outer, combo))

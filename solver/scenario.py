@@ -586,4 +586,7 @@ def load_scenario(path) -> Scenario:
         raise ScenarioError(f"{p}: scenario file not found.") from exc
     except IsADirectoryError as exc:
         raise ScenarioError(f"{p}: is a folder, not a scenario file.") from exc
+    except UnicodeDecodeError as exc:
+        raise ScenarioError(f"{p}: not UTF-8 text (byte 0x{exc.object[exc.start]:02x} at position {exc.start}); "
+                            "save the scenario file as UTF-8.") from exc
     return parse_scenario(text, str(p), base=p.resolve().parent)

@@ -236,3 +236,81 @@ def test_check_points_cover_the_domain():
     dist = np.linalg.norm(pts[1:, None] - np.asarray(cont.centers)[None], axis=-1).min(axis=1)
     assert len(pts) == 41 and dist.max() == pytest.approx(0.5) and dist.min() == pytest.approx(0.0015)
     from_function(gapped_dirac, parameters=GAPPED, domain=cont)    # a correct model still builds
+
+
+# ------------------------------------------------------------------ command-line crashes -----
+def _fake_batch(calls):
+    """A stand-in for ``compute_batch`` (no k-space work): the arrays ``assemble`` needs."""
+    def fake(scn, values, model):
+        calls.append(float(values["temperature"][0]))
+        P, A = len(values["chemical_potential"]), len(scn.axes[-1])
+        return {"mu": values["chemical_potential"], "sigma": np.ones((P, 2, 2), dtype=complex),
+                "resolution_level": np.zeros(P, dtype=int), "converged": np.full(P, -1),
+                "dev_v_xx": np.ones((P, A), dtype=complex)}
+    return fake
+
+
+def _scenario_file(tmp_path):
+    p = tmp_path / "s.toml"
+    p.write_text(SCN.replace("temperature_K = 5", "temperature_K = [5, 20]"), encoding="utf-8")
+    return p
+
+
+@pytest.mark.parametrize("damage", ["empty", "truncated", "garbage"])
+def test_corrupt_checkpoint_is_recomputed_with_a_warning(tmp_path, monkeypatch, capsys, damage):
+    calls = []
+    monkeypatch.setattr(run_mod, "compute_batch", _fake_batch(calls))
+    scn = parse_scenario(_scenario_file(tmp_path).read_text(encoding="utf-8"), source="s.toml", base=tmp_path)
+    run_scenario(scn, tmp_path / "out", progress=False)
+    assert calls == [5.0, 20.0]
+    ck = tmp_path / "out" / "batches" / "batch_00001.npz"
+    data = ck.read_bytes()
+    ck.write_bytes({"empty": b"", "truncated": data[: len(data) // 2], "garbage": b"\x00not a checkpoint" * 9}[damage])
+    ds = run_scenario(scn, tmp_path / "out", progress=False)
+    assert calls == [5.0, 20.0, 20.0]                       # only the damaged batch again
+    err = capsys.readouterr().err
+    assert f"crosswind: warning: checkpoint {ck} is unreadable" in err and "recomputing that batch" in err
+    assert np.all(ds["sigma"].values == 1.0)
+    with np.load(ck) as z:                                   # rewritten whole
+        assert set(z.files) >= {"mu", "sigma"}
+
+
+def test_ctrl_c_says_how_to_resume_and_exits_130(tmp_path, monkeypatch, capsys):
+    from crosswind.solver.cli import main
+
+    def interrupted(*args, **kwargs):
+        raise KeyboardInterrupt
+    monkeypatch.setattr(run_mod, "run_scenario", interrupted)
+    assert main(["run", str(_scenario_file(tmp_path)), "--output", str(tmp_path / "o"), "--no-progress"]) == 130
+    lines = [ln for ln in capsys.readouterr().err.splitlines() if ln.strip()]
+    expect = (f"crosswind: interrupted; finished batches are checkpointed in {tmp_path / 'o'}: run the "
+              "same command again to resume")
+    assert lines == [expect]
+
+
+@pytest.mark.parametrize("where", ["under_a_file", "is_a_file"])
+def test_output_folder_that_cannot_be_created_exits_2_with_one_line(tmp_path, capsys, where):
+    from crosswind.solver.cli import main
+    blocker = tmp_path / "blocker"
+    blocker.write_text("x", encoding="utf-8")
+    out = blocker / "out" if where == "under_a_file" else blocker
+    assert main(["run", str(_scenario_file(tmp_path)), "--output", str(out), "--no-progress"]) == 2
+    lines = capsys.readouterr().err.strip().splitlines()
+    assert len(lines) == 1 and lines[0].startswith(f"crosswind: error: cannot create or write the output folder {out} (")
+    assert lines[0].endswith("choose another --output folder or fix its permissions")
+
+
+def test_non_utf8_files_are_refused_with_the_fix(tmp_path, capsys):
+    from crosswind.models import load_tight_binding
+    from crosswind.solver.cli import main
+    p = tmp_path / "latin1.toml"
+    p.write_bytes(SCN.replace('model = "massive-dirac"', 'model = "massive-dirac"  # \xb5m').encode("latin-1"))
+    assert main(["run", str(p)]) == 2
+    err = capsys.readouterr().err.strip()
+    assert err == (f"crosswind: error: {p}: not UTF-8 text (byte 0xb5 at position "
+                   f"{SCN.index('massive-dirac') + 18}); save the scenario file as UTF-8.")
+    t = tmp_path / "tb.toml"
+    t.write_bytes(b"\xff\xfe" + TB.encode("utf-16-le"))
+    with pytest.raises(TightBindingFileError, match=r"tb\.toml: not UTF-8 text \(byte 0xff at position 0\); save "
+                                                    r"the tight-binding file as UTF-8"):
+        load_tight_binding(t)
