@@ -309,6 +309,16 @@ def _fmt_point(ds, idx):
     return ", ".join(parts)
 
 
+def _error_line(err_chi, chi_size, err_sig, sig_size) -> str:
+    """The error-estimate bullet; NaN (no coarser level was compared) is reported as unavailable,
+    never as 0."""
+    if not (np.isfinite(err_chi) and np.isfinite(err_sig)):
+        return ("- Estimated integration error at the peak: **unavailable** — no coarser k-mesh level was "
+                "compared (level 0 has none); use resolution >= 1 or \"auto\" for an error estimate.")
+    return (f"- Estimated integration error at the peak (|fine − coarse| mesh): χ {err_chi:.2g} A·m/V² "
+            f"({err_chi / chi_size:.2g} relative), σ {err_sig:.2g} S ({err_sig / sig_size:.2g} relative).")
+
+
 def summary_markdown(ds, scn, idx, angle_info=None) -> str:
     num = json.loads(ds.attrs["numerics"])
     sel_pt = {d: i for d, i in idx.items() if d != "current_angle"}
@@ -401,9 +411,8 @@ def summary_markdown(ds, scn, idx, angle_info=None) -> str:
         + ("automatic refinement converged everywhere." if num["all_converged"] is True else
            "automatic refinement did NOT reach rtol everywhere (see the `converged` variable)."
            if num["all_converged"] is False else "fixed level: the error estimate below compares it with "
-           "the next coarser level."),
-        f"- Estimated integration error at the peak (|fine − coarse| mesh): χ {err_chi:.2g} A·m/V² "
-        f"({err_chi / chi_size:.2g} relative), σ {err_sig:.2g} S ({err_sig / sig_size:.2g} relative).",
+           "the next coarser level." if num["levels_used"] != [0] else "fixed level 0: nothing coarser to compare."),
+        _error_line(err_chi, chi_size, err_sig, sig_size),
         "",
         "## Cautions",
         "",

@@ -73,6 +73,7 @@ LONG = {
     "nonlinear_ratio": "E_perp / E_par^2 = Re chi'_yxx / Re sigma'_yy",
     "current_density": "sheet current density amplitude I0/W", "power_density": "time-averaged Joule power per area",
     "resolution_level": "k-mesh refinement level used", "converged": "automatic refinement reached rtol (1) or not (0)",
+    "has_error_estimate": "error_* holds a comparison of two levels (1) or is unavailable, NaN (0)",
 }
 
 
@@ -215,6 +216,12 @@ def _mu_solver():
     return jax.jit(mu_from_density, static_argnames=("bracket", "resolution", "iterations"))
 
 
+def error_available(info: dict) -> bool:
+    """False when ``response`` made no comparison: the node quadrature at level 0 has no coarser
+    level, so its |fine − coarse| is 0 by construction; the dataset then holds NaN ("unavailable")."""
+    return not (info.get("engine") == "mesh" and int(info["level"]) == 0)
+
+
 def compute_batch(scn: Scenario, values: dict, model) -> dict:
     """Evaluate one batch.  ``values`` maps axis name → 1-D array of the batch's P points."""
     from .device import HallBar, hall_bar
@@ -239,12 +246,15 @@ def compute_batch(scn: Scenario, values: dict, model) -> dict:
         out[k] = np.asarray(getattr(r, k))
     for part, v in r.chi_parts.items():
         out[f"chi_{part}"] = np.asarray(v)
-    for k in ERROR_FIELDS:
-        out[f"error_{k}"] = np.asarray(r.error[k])
     info = dict(r.resolution)
+    compared = error_available(info)
+    for k in ERROR_FIELDS:
+        e = np.asarray(r.error[k])
+        out[f"error_{k}"] = e if compared else np.full(e.shape, np.nan)
+    out["has_error_estimate"] = np.full(P, int(compared))
     out["resolution_level"] = np.full(P, int(info["level"]))
     out["converged"] = np.full(P, -1 if info["converged"] is None else int(bool(info["converged"])))
-    out["nodes_per_condition"] = np.full(P, int(info["nodes_per_condition"]))
+    out["nodes_per_condition"] = np.full(P, int(info.get("nodes_per_condition", -1)))   # -1: energy engines
     # device quantities for every current angle: (P, A)
     angles = np.asarray(scn.axes[-1].values)
     bar = HallBar(scn.device.width_um, scn.device.length_um, scn.device.current_uA, scn.device.frequency_Hz)
@@ -399,7 +409,10 @@ def assemble(scn: Scenario, results, inner, outer, combos):
             data[name] = (d, v, attrs)
     ds = xr.Dataset(data, coords=coords)
     assert ds.sizes["current_angle"] == A
-    numerics = {"rtol": scn.numerics.rtol, "resolution": scn.numerics.resolution or "auto",
+    numerics = {"rtol": scn.numerics.rtol,
+                "resolution": "auto" if scn.numerics.resolution is None else scn.numerics.resolution,
+                "error_estimate": ("|fine - coarse|" if np.all(grid.get("has_error_estimate", 1) == 1) else
+                                   "unavailable (NaN) where has_error_estimate = 0: level 0 has no coarser level"),
                 "intrinsic": scn.numerics.intrinsic, "density_resolution": scn.numerics.density_resolution,
                 "levels_used": sorted({int(x) for x in np.unique(grid["resolution_level"])}),
                 "all_converged": (None if np.all(grid["converged"] < 0)
@@ -422,7 +435,7 @@ def _units():
     from .response import UNITS_2D
     u = dict(UNITS_2D)
     u.update({"mu": "eV", "chi_dipole": u["chi"], "chi_drude": u["chi"], "chi_intrinsic": u["chi"],
-              "sigma_bar": "S", "chi_bar": u["chi"], "resolution_level": "1", "converged": "1",
+              "sigma_bar": "S", "chi_bar": u["chi"], "resolution_level": "1", "converged": "1", "has_error_estimate": "1",
               "nodes_per_condition": "1"})
     u.update(FIELDS_UNITS)
     return u

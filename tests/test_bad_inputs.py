@@ -314,3 +314,27 @@ def test_non_utf8_files_are_refused_with_the_fix(tmp_path, capsys):
     with pytest.raises(TightBindingFileError, match=r"tb\.toml: not UTF-8 text \(byte 0xff at position 0\); save "
                                                     r"the tight-binding file as UTF-8"):
         load_tight_binding(t)
+
+
+# ------------------------------------------------------------------ error estimates ----------
+def test_level_0_reports_the_error_as_unavailable_not_zero(tmp_path, capsys):
+    """At resolution 0 nothing coarser is compared: error_* used to be exactly 0, the summary said
+    "0 (0 relative)" and the numerics attribute said "auto".  Now NaN, flagged, and recorded as 0."""
+    import json
+
+    from crosswind.solver.cli import main
+    from crosswind.solver.run import open_results
+    p = tmp_path / "s.toml"
+    p.write_text(SCN, encoding="utf-8")
+    assert main(["run", str(p), "--no-progress"]) == 0
+    ds = open_results(tmp_path / "results")
+    num = json.loads(ds.attrs["numerics"])
+    assert num["resolution"] == 0 and num["levels_used"] == [0]
+    assert num["error_estimate"].startswith("unavailable (NaN)")
+    assert np.all(ds["has_error_estimate"].values == 0)
+    for name in ("error_sigma", "error_chi", "error_density"):
+        assert np.all(np.isnan(ds[name].values)), name
+    assert np.all(np.isfinite(ds["sigma"].values)) and np.all(ds["sigma"].values[..., 0, 0] > 0)
+    summary = (tmp_path / "results" / "summary.md").read_text(encoding="utf-8")
+    assert "Estimated integration error at the peak: **unavailable**" in summary
+    assert "fixed level 0: nothing coarser to compare." in summary and "0 relative" not in summary
