@@ -14,9 +14,11 @@ through :func:`~crosswind.solver.density.mu_from_density` (gate via
 Checkpoints and resume.  Each finished batch is written to ``<folder>/batches/batch_<i>.npz``
 atomically (a temporary file in the same folder, then ``os.replace``), so an interrupted run leaves
 only complete batches; a checkpoint that cannot be read (empty, truncated, garbage) is recomputed
-with a warning naming the file.  ``run.json`` records a fingerprint of the scenario and the package
-version; a rerun with the same fingerprint loads the finished batches and computes only the rest.
-A folder holding another scenario's checkpoints is refused.
+with a warning naming the file.  ``run.json`` and every checkpoint record a fingerprint of all
+inputs (:func:`fingerprint_parts`: the parsed scenario, the tight-binding file's content, the
+package version); a rerun with the same fingerprint loads the finished batches and computes only
+the rest.  A folder holding results of other inputs is refused with the inputs that changed; a
+checkpoint with another fingerprint is recomputed with a warning.
 
 Results: ``results.nc`` (xarray Dataset, engine h5netcdf; every axis and field carries ``units``
 and ``long_name`` attributes; complex tensors are stored as real part ``X`` and imaginary part
@@ -88,8 +90,55 @@ def package_version() -> str:
         return "unknown"
 
 
+def _sha(data: bytes) -> str:
+    return hashlib.sha256(data).hexdigest()[:16]
+
+
+# tables that do not change the sweep's numbers: where results go, figures, later analyses
+_NOT_IN_RESULTS = ("output", "sensitivities", "fit")
+
+
+def fingerprint_parts(scn: Scenario) -> dict:
+    """A hash per input the sweep's numbers depend on: the parsed scenario (so a comment-only edit
+    changes nothing; [output], [sensitivities] and [fit] are left out), the content of every file
+    it reads (the tight-binding definition) and the package version."""
+    import tomllib
+    data = {k: v for k, v in tomllib.loads(scn.text).items() if k not in _NOT_IN_RESULTS}
+    parts = {"scenario": _sha(json.dumps(data, sort_keys=True, default=str).encode()),
+             "package version": package_version()}
+    tb = scn.material.tight_binding
+    if tb is not None:
+        try:
+            parts[f"tight-binding file {tb}"] = _sha(Path(tb).read_bytes())
+        except OSError as exc:
+            raise RunError(f"{tb}: cannot read the tight-binding file ({exc.strerror or exc})") from exc
+    return parts
+
+
 def fingerprint(scn: Scenario) -> str:
-    return hashlib.sha256((scn.text + "\n" + package_version()).encode()).hexdigest()[:16]
+    """One hash of :func:`fingerprint_parts` (stored in ``run.json`` and in every checkpoint)."""
+    return _sha(json.dumps(fingerprint_parts(scn), sort_keys=True).encode())
+
+
+def check_manifest(folder: Path, fp: str, parts: dict) -> None:
+    """Refuse a folder whose ``run.json`` was written from other inputs, naming what changed;
+    refuse a non-empty folder without one."""
+    manifest = folder / "run.json"
+    if not manifest.exists():
+        if any(folder.iterdir()):
+            raise RunError(f"{folder} exists and is not empty; choose another --output folder")
+        return
+    try:
+        old = json.loads(manifest.read_text(encoding="utf-8"))
+    except (OSError, json.JSONDecodeError, UnicodeDecodeError) as exc:
+        raise RunError(f"{manifest}: unreadable ({exc}); delete the folder or choose another --output") from exc
+    if old.get("fingerprint") == fp:
+        return
+    before = old.get("inputs") if isinstance(old.get("inputs"), dict) else {}
+    changed = sorted(k for k in set(before) | set(parts) if before.get(k) != parts.get(k))
+    what = (", ".join(changed) if before else "the inputs") + " changed since these results were computed"
+    raise RunError(f"{folder} holds results of a different scenario, model file or package version ({what}); "
+                   "rerun into another --output folder or delete this one")
 
 
 def _atomic_write(path: Path, writer: Callable[[str], None]):
@@ -143,19 +192,24 @@ def prepare_folder(folder: Path) -> None:
 CHECKPOINT_ERRORS = (OSError, ValueError, EOFError, KeyError, zipfile.BadZipFile, zlib.error)
 
 
-def load_checkpoint(path: Path) -> dict | None:
+def load_checkpoint(path: Path, fp: str) -> dict | None:
     """The arrays of a finished batch, or ``None`` with a warning on stderr naming the file when it
-    is empty, truncated or not a checkpoint (the batch is then simply recomputed)."""
+    is empty, truncated, not a checkpoint or written from other inputs (fingerprint ``fp``): the
+    batch is then simply recomputed."""
     try:
         with np.load(path) as z:
             res = {k: z[k] for k in z.files}
         if not {"mu", "sigma"} <= set(res):
             raise ValueError("not a Crosswind batch checkpoint")
-        return res
     except CHECKPOINT_ERRORS as exc:
         print(f"crosswind: warning: checkpoint {path} is unreadable ({type(exc).__name__}: {exc}); "
               "recomputing that batch", file=sys.stderr, flush=True)
         return None
+    if str(res.pop("_fingerprint", "")) != fp:
+        print(f"crosswind: warning: checkpoint {path} was computed from other inputs (fingerprint differs); "
+              "recomputing that batch", file=sys.stderr, flush=True)
+        return None
+    return res
 
 
 class _Progress:
@@ -299,24 +353,13 @@ def run_scenario(scn: Scenario, output: Path | str | None = None, *, progress: b
     ``after_batch(i)`` is called after batch ``i`` is checkpointed (for tests and monitoring)."""
     folder = Path(output) if output is not None else scn.output_folder
     prepare_folder(folder)
-    fp = fingerprint(scn)
-    manifest = folder / "run.json"
-    if manifest.exists():
-        try:
-            old = json.loads(manifest.read_text(encoding="utf-8"))
-        except (OSError, json.JSONDecodeError) as exc:
-            raise RunError(f"{manifest}: unreadable ({exc}); delete the folder or choose another --output") from exc
-        if old.get("fingerprint") != fp:
-            raise RunError(f"{folder} holds results of a different scenario or package version "
-                           f"(fingerprint {old.get('fingerprint')} vs {fp}); choose another --output "
-                           "folder or delete this one")
-    elif folder.exists() and any(folder.iterdir()):
-        raise RunError(f"{folder} exists and is not empty; choose another --output folder")
-    folder.mkdir(parents=True, exist_ok=True)
+    parts = fingerprint_parts(scn)
+    fp = _sha(json.dumps(parts, sort_keys=True).encode())
+    check_manifest(folder, fp, parts)
     inner, outer, combos = batch_plan(scn)
-    _atomic_text(manifest, json.dumps({"fingerprint": fp, "version": package_version(),
-                                        "batches": len(combos), "started": time.strftime("%Y-%m-%dT%H:%M:%S")},
-                                       indent=1))
+    _atomic_text(folder / "run.json", json.dumps({"fingerprint": fp, "inputs": parts, "version": package_version(),
+                                                  "batches": len(combos),
+                                                  "started": time.strftime("%Y-%m-%dT%H:%M:%S")}, indent=1))
     _atomic_text(folder / "scenario.toml", scn.text)
     axes = scn.axes[:-1]
     bdir = folder / "batches"
@@ -327,7 +370,7 @@ def run_scenario(scn: Scenario, output: Path | str | None = None, *, progress: b
     try:
         for b, combo in enumerate(combos):
             path = bdir / f"batch_{b:05d}.npz"
-            done = load_checkpoint(path) if path.exists() else None
+            done = load_checkpoint(path, fp) if path.exists() else None
             if done is not None:
                 results.append(done)
                 prog.update(skipped=True)
@@ -352,7 +395,7 @@ def run_scenario(scn: Scenario, output: Path | str | None = None, *, progress: b
                     models[key] = scn.build_model(strain)
                 res = compute_batch(scn, values, models[key])
             check_finite_batch(scn, b, values, res)
-            _atomic_write(path, lambda tmp, res=res: _savez(tmp, res))
+            _atomic_write(path, lambda tmp, res=res: _savez(tmp, dict(res, _fingerprint=np.array(fp))))
             results.append(res)
             computed.append(b)
             prog.update()

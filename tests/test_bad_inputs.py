@@ -338,3 +338,61 @@ def test_level_0_reports_the_error_as_unavailable_not_zero(tmp_path, capsys):
     summary = (tmp_path / "results" / "summary.md").read_text(encoding="utf-8")
     assert "Estimated integration error at the peak: **unavailable**" in summary
     assert "fixed level 0: nothing coarser to compare." in summary and "0 relative" not in summary
+
+
+# ------------------------------------------------------------------ fingerprints -------------
+def _tb_scenario(tmp_path):
+    (tmp_path / "tb.toml").write_text(TB, encoding="utf-8")
+    text = SCN.replace('model = "massive-dirac"', 'tight_binding = "tb.toml"').replace(
+        "[material.parameters]\nvelocity = 5e5\nmass = 0.1\n", "").replace("temperature_K = 5", "temperature_K = [5, 20]")
+    p = tmp_path / "s.toml"
+    p.write_text(text, encoding="utf-8")
+    return p
+
+
+def test_resume_refuses_checkpoints_of_an_edited_tight_binding_file(tmp_path, monkeypatch):
+    """Editing the tight-binding file, deleting one checkpoint and rerunning used to mix two
+    models in one dataset; the run now names the file that changed."""
+    from crosswind.solver.scenario import load_scenario
+    calls = []
+    monkeypatch.setattr(run_mod, "compute_batch", _fake_batch(calls))
+    p = _tb_scenario(tmp_path)
+    run_scenario(load_scenario(p), tmp_path / "out", progress=False)
+    (tmp_path / "tb.toml").write_text(TB.replace("amplitude = -1.0", "amplitude = -1.2"), encoding="utf-8")
+    (tmp_path / "out" / "batches" / "batch_00001.npz").unlink()
+    expect = (r"holds results of a different scenario, model file or package version \(tight-binding file "
+              r".*tb\.toml changed since these results were computed\); rerun into another --output folder")
+    with pytest.raises(RunError, match=expect):
+        run_scenario(load_scenario(p), tmp_path / "out", progress=False)
+    assert calls == [5.0, 20.0]
+
+
+def test_comment_or_output_edits_do_not_block_a_resume(tmp_path, monkeypatch):
+    from crosswind.solver.scenario import load_scenario
+    calls = []
+    monkeypatch.setattr(run_mod, "compute_batch", _fake_batch(calls))
+    p = _tb_scenario(tmp_path)
+    run_scenario(load_scenario(p), tmp_path / "out", progress=False)
+    p.write_text("# a note\n" + p.read_text(encoding="utf-8").replace("figures = false", "figures = false  # later"),
+                 encoding="utf-8")
+    run_scenario(load_scenario(p), tmp_path / "out", progress=False)
+    assert calls == [5.0, 20.0]                              # nothing recomputed
+    p.write_text(p.read_text(encoding="utf-8").replace("tau0_fs = 100", "tau0_fs = 120"), encoding="utf-8")
+    with pytest.raises(RunError, match=r"version \(scenario changed since these results were computed\)"):
+        run_scenario(load_scenario(p), tmp_path / "out", progress=False)
+
+
+def test_checkpoint_of_other_inputs_is_recomputed(tmp_path, monkeypatch, capsys):
+    from crosswind.solver.scenario import load_scenario
+    calls = []
+    monkeypatch.setattr(run_mod, "compute_batch", _fake_batch(calls))
+    p = _tb_scenario(tmp_path)
+    run_scenario(load_scenario(p), tmp_path / "a", progress=False)
+    other = p.read_text(encoding="utf-8").replace("tau0_fs = 100", "tau0_fs = 120")
+    (tmp_path / "t.toml").write_text(other, encoding="utf-8")
+    run_scenario(load_scenario(tmp_path / "t.toml"), tmp_path / "b", progress=False)
+    stray = tmp_path / "a" / "batches" / "batch_00001.npz"
+    stray.write_bytes((tmp_path / "b" / "batches" / "batch_00001.npz").read_bytes())
+    run_scenario(load_scenario(p), tmp_path / "a", progress=False)
+    assert calls == [5.0, 20.0, 5.0, 20.0, 20.0]
+    assert f"checkpoint {stray} was computed from other inputs" in capsys.readouterr().err
