@@ -106,6 +106,12 @@ def cmd_fit(args) -> int:
         return 2
     print(f"crosswind: wrote {folder}/fit_summary.md, fit.json, fit_curve.png, fit_residuals.png"
           + ("" if out.get("scaling") else ", fitted_scenario.toml") + f" in {time.time() - t0:.1f} s")
+    status = out.get("status", "ok")
+    if status != "ok":
+        why = out["message"] if status == "failed" else "; ".join(out["problems"])
+        verdict = {"failed": "the fit failed", "unreliable": "the fit is unreliable"}[status]
+        _err(f"{verdict}: {why} (details in {folder}/fit_summary.md)")
+        return 1
     return 0
 
 

@@ -19,6 +19,16 @@ At the optimum (common practice; e.g. Press et al., Numerical Recipes, §15.5):
 * a Jacobian column that vanishes, or a rank-deficient J, makes the fit *not converged* (that
   parameter is not determined by the data).
 
+A converged fit can still be *unreliable* (``FitResult.status``, with the reasons in ``problems``):
+it ended where it started (no parameter moved by ``AT_BOUND_TOLERANCE`` of its scale, and no other
+start reached the same cost); a parameter
+ends at a bound (its standard error is then NaN: the optimum lies beyond the bound and the local
+covariance means nothing); moving a parameter by its whole scale changes the residuals by less than
+``SENSITIVITY_FLOOR`` of their size (the data cannot see it: e.g. data the model cannot produce); a
+standard error exceeds ``RELATIVE_STDERR_LIMIT`` × |value|; or, with known errors
+(``absolute_sigma=True``), χ² has a two-sided probability below ``CHI2_P_LIMIT`` for its degrees
+of freedom (the model does not describe the data, or the errors are misstated).
+
 Several starts (``starts > 1``) draw further starting points uniformly within the bounds (within
 ±50 % of the initial value for a parameter without two finite bounds) from ``seed``; the best
 (lowest cost) is reported.  A fit that does not converge says why: the evaluation limit, a
@@ -39,6 +49,10 @@ from scipy.optimize import least_squares
 
 CORRELATION_LIMIT = 0.99
 CONDITION_LIMIT = 1e12
+RELATIVE_STDERR_LIMIT = 1.0     # a standard error above 100 % of the value: the value is not determined
+SENSITIVITY_FLOOR = 1e-6        # |∂r/∂p|·scale below this fraction of |r|: the data do not see p
+CHI2_P_LIMIT = 1e-3             # two-sided χ² probability below this (known errors): model or errors wrong
+AT_BOUND_TOLERANCE = 1e-6       # within this fraction of the scale from a bound: "at the bound"
 
 
 @dataclass(frozen=True)
@@ -70,6 +84,13 @@ class FitResult:
     residuals: np.ndarray = field(default=None, repr=False)
     condition_number: float = math.nan
     start_costs: tuple = ()
+    problems: tuple = ()
+    at_bound: tuple = ()
+
+    @property
+    def status(self) -> str:
+        """"failed" (not converged), "unreliable" (converged with ``problems``) or "ok"."""
+        return "failed" if not self.converged else "unreliable" if self.problems else "ok"
 
     def summary(self) -> str:
         """Plain-text table: value ± standard error per parameter, then the fit quality."""
@@ -82,6 +103,9 @@ class FitResult:
         lines.append(f"cost {self.cost:.6g}, reduced chi^2 {self.chi2_reduced:.4g} ({self.dof} dof), "
                      f"{'converged' if self.converged else 'NOT converged'}: {self.message}")
         lines.extend(f"warning: {w}" for w in self.identifiability_warnings)
+        if self.converged and self.problems:
+            lines.append("UNRELIABLE fit:")
+        lines.extend(f"problem: {w}" for w in self.problems)
         return "\n".join(lines)
 
 
@@ -292,6 +316,7 @@ def fit(residual_fn: Callable[[dict], object], initial: Mapping[str, float], *, 
                          identifiability_warnings=(), free=tuple(free), fixed=tuple(sorted(fixed)),
                          start_costs=start_costs)
     (res, p_best, base), _, nfev = min(good, key=lambda o: (o[0][0].cost, o[0][0].status <= 0))
+    start = {k: base[k] for k in free}
     values = dict(init)
     values.update({k: float(v) for k, v in zip(free, p_best)})
     r = np.asarray(res.fun)
@@ -315,11 +340,65 @@ def fit(residual_fn: Callable[[dict], object], initial: Mapping[str, float], *, 
         message += f" (best of {len(starts_list)} starts)"
     dof = m - n
     chi2 = float(np.sum(r * r))
+    bounds_hit = _at_bounds(values, free, lo, hi, scale)
+    for k, _ in bounds_hit:
+        stderr[k] = math.nan
+    others = [c for o, c in zip(outcomes, start_costs) if o[0] is not None and o[0][2] is not base]
+    confirmed = any(abs(c - res.cost) <= 1e-8 * max(res.cost, 1e-300) for c in others)
+    problems = _problems(values, None if confirmed else start, stderr, free, scale, Jz, r, dof, absolute_sigma,
+                         bounds_hit)
     return FitResult(values=values, stderr=stderr, covariance=cov, correlation=corr, cost=float(res.cost),
                      chi2_reduced=chi2 / dof if dof > 0 else math.nan, converged=bool(converged),
                      message=message, nfev=int(res.nfev), starts_tried=len(starts_list),
                      identifiability_warnings=tuple(warnings), free=tuple(free), fixed=tuple(sorted(fixed)),
-                     dof=dof, residuals=r, condition_number=cond, start_costs=start_costs)
+                     dof=dof, residuals=r, condition_number=cond, start_costs=start_costs,
+                     problems=tuple(problems), at_bound=tuple(k for k, _ in bounds_hit))
+
+
+def _at_bounds(values, free, lo, hi, scale) -> list:
+    """``(name, "lower"/"upper")`` for every free parameter within ``AT_BOUND_TOLERANCE`` of its
+    scale from a finite bound."""
+    out = []
+    for k in free:
+        tol = AT_BOUND_TOLERANCE * scale[k]
+        if math.isfinite(lo[k]) and values[k] - lo[k] <= tol:
+            out.append((k, f"lower bound {lo[k]:g}"))
+        elif math.isfinite(hi[k]) and hi[k] - values[k] <= tol:
+            out.append((k, f"upper bound {hi[k]:g}"))
+    return out
+
+
+def _problems(values, start, stderr, free, scale, Jz, r, dof, absolute_sigma, bounds_hit) -> list:
+    """Plain-language reasons why a converged fit is not to be trusted (module docstring);
+    ``start`` is None when another start reached the same cost (ending at the start is then fine)."""
+    from scipy.stats import chi2 as chi2_dist
+    out = [f"{k} ended at its {where}: the best fit lies beyond it, so its standard error is not "
+           "meaningful (reported as NaN); widen the bound if that is physical, else the model or the data "
+           "are inconsistent" for k, where in bounds_hit]
+    if start is not None and all(abs(values[k] - start[k]) <= AT_BOUND_TOLERANCE * scale[k] for k in free):
+        out.append("the fit ended at its starting point " + _fmt(start) + ": the optimiser found no "
+                   "direction that lowers the cost (a flat or unreachable misfit); check the data units, or "
+                   "confirm with starts > 1 if the start was already the optimum")
+    rnorm = float(np.linalg.norm(r))
+    for j, k in enumerate(free):
+        sens = float(np.linalg.norm(Jz[:, j]))
+        if rnorm > 0 and sens < SENSITIVITY_FLOOR * rnorm:
+            out.append(f"the residuals hardly depend on {k}: changing it by its scale {scale[k]:g} changes them "
+                       f"by {sens / rnorm:.1e} of their size; the model cannot produce these data (units, "
+                       "offsets, wrong quantity?)")
+    for k in free:
+        e, v = stderr[k], values[k]
+        if math.isfinite(e) and e > RELATIVE_STDERR_LIMIT * abs(v):
+            out.append(f"the standard error of {k} ({e:.3g}) exceeds {RELATIVE_STDERR_LIMIT:.0%} of its value "
+                       f"({v:.6g}): the data do not determine it")
+    if absolute_sigma and dof > 0:
+        chi2 = float(np.sum(r * r))
+        p = 2.0 * min(chi2_dist.sf(chi2, dof), chi2_dist.cdf(chi2, dof))
+        if p < CHI2_P_LIMIT:
+            out.append(f"χ²_red = {chi2 / dof:.3g} with {dof} degrees of freedom is improbable for the stated "
+                       f"errors (two-sided p = {p:.1e} < {CHI2_P_LIMIT:g}): the model does not describe the "
+                       "data or the errors are misstated")
+    return out
 
 
 def _fmt(d):

@@ -63,7 +63,20 @@ def load_data(scn, path):
         raise FitInputError(f"{path}: {data[q].size} data point(s) for {len(spec.parameters)} free parameter(s) "
                             "leave no degrees of freedom for error estimates; add points, give a "
                             f"'{q}_err [unit]' column, or free fewer parameters")
+    _refuse_duplicates(path, col, unit, data[col])
     return data[col], data[q], err
+
+
+def _refuse_duplicates(path, col, unit, x):
+    """Repeated abscissae are refused: listed twice, every row would count as independent data and
+    shrink the standard errors; conflicting repeats would pull the fit apart."""
+    values, counts = np.unique(np.asarray(x), return_counts=True)
+    rep = values[counts > 1]
+    if rep.size:
+        shown = ", ".join(f"{v:g}" for v in rep[:5]) + (" …" if rep.size > 5 else "")
+        raise FitInputError(f"{path}: column '{col} [{unit}]' repeats the value(s) {shown}; merge repeated "
+                            "measurements into one row (their mean, with the standard error of the mean in the "
+                            "error column) or remove the extra rows")
 
 
 def _load(path, cols, min_points):
@@ -120,6 +133,7 @@ def run_fit(scn, data_path, folder, *, starts=None) -> dict:
            "units": {k: units[k] for k in res.free}, "initial": initial,
            "correlation": np.asarray(res.correlation).tolist(), "free": list(res.free),
            "chi2_reduced": res.chi2_reduced, "dof": res.dof, "converged": res.converged, "message": res.message,
+           "status": res.status, "problems": list(res.problems), "at_bound": list(res.at_bound),
            "identifiability_warnings": list(res.identifiability_warnings), "starts": res.starts_tried,
            "nfev": res.nfev, "absolute_errors": err is not None,
            "data": {"x": x.tolist(), "y": y.tolist(), "err": None if err is None else err.tolist(),
@@ -165,8 +179,8 @@ def fit_markdown(scn, out) -> str:
              f"level {out['resolution']}.", "",
              "## Best-fit values", "", "| parameter | value | standard error | unit | start |", "|---|---|---|---|---|"]
     for k in out["free"]:
-        lines.append(f"| `{k}` | {out['values'][k]:.6g} | {out['stderr'][k]:.3g} | {out['units'][k]} | "
-                     f"{out['initial'][k]:g} |")
+        err = "not meaningful (at a bound)" if k in out["at_bound"] else f"{out['stderr'][k]:.3g}"
+        lines.append(f"| `{k}` | {out['values'][k]:.6g} | {err} | {out['units'][k]} | {out['initial'][k]:g} |")
     lines += ["", "Standard errors from the local covariance (JᵀJ)⁻¹"
               + (" with the data's standard errors (absolute)." if out["absolute_errors"]
                  else " scaled by χ²_red (no error column in the data)."), ""]
@@ -176,10 +190,13 @@ def fit_markdown(scn, out) -> str:
         for k, row in zip(out["free"], out["correlation"]):
             lines.append(f"| `{k}` | " + " | ".join(f"{c:+.3f}" for c in row) + " |")
         lines.append("")
-    lines += ["## Fit quality", "",
+    verdict = {"ok": "", "failed": "**FIT FAILED** (not converged); the values above are not a result.",
+               "unreliable": "**FIT UNRELIABLE**: do not quote these values; reasons below."}[out["status"]]
+    lines += ["## Fit quality", ""] + ([verdict, ""] if verdict else []) + [
               f"- {'converged' if out['converged'] else '**NOT converged**'}: {out['message']}",
               f"- χ²_red = {out['chi2_reduced']:.4g} ({out['dof']} degrees of freedom), {out['nfev']} model evaluations, "
               f"{out['starts']} start(s)"]
+    lines += [f"- **problem**: {w}" for w in out["problems"]]
     if out["identifiability_warnings"]:
         lines += [f"- identifiability: {w}" for w in out["identifiability_warnings"]]
     else:

@@ -396,3 +396,101 @@ def test_checkpoint_of_other_inputs_is_recomputed(tmp_path, monkeypatch, capsys)
     run_scenario(load_scenario(p), tmp_path / "a", progress=False)
     assert calls == [5.0, 20.0, 5.0, 20.0, 20.0]
     assert f"checkpoint {stray} was computed from other inputs" in capsys.readouterr().err
+
+
+# ------------------------------------------------------------------ failed fits --------------
+FX = jnp.linspace(0.1, 1.0, 8)
+FY = 2.0 * np.asarray(FX) + 0.01 * np.random.default_rng(0).normal(size=8)   # slope 2, noise 0.01
+
+
+def test_fit_to_data_the_model_cannot_produce_is_unreliable():
+    """Model ~1e-17 against data 1e-7 (all data shifted): this used to report "converged: gradient
+    below tolerance" with a standard error of 1e9 relative and no warning."""
+    from crosswind.solver.fit import fit
+    r = fit(lambda p: (p["a"] * 1e-17 * FX - 1e-7) / 1e-7, {"a": 1.0})
+    assert r.converged and r.status == "unreliable"
+    assert any(p.startswith("the residuals hardly depend on a: changing it by its scale 1 changes them by 1.3e-10")
+               for p in r.problems), r.problems
+    assert "UNRELIABLE fit:" in r.summary()
+
+
+def test_fit_pinned_at_a_bound_is_flagged_and_its_stderr_not_meaningful():
+    from crosswind.solver.fit import fit
+    r = fit(lambda p: p["a"] * FX - FY, {"a": 1.0}, bounds={"a": (0.0, 1.5)})
+    assert r.values["a"] == pytest.approx(1.5) and r.at_bound == ("a",) and math.isnan(r.stderr["a"])
+    assert r.status == "unreliable"
+    assert r.problems[0].startswith("a ended at its upper bound 1.5: the best fit lies beyond it, so its standard "
+                                    "error is not meaningful (reported as NaN)")
+
+
+def test_fit_with_improbable_chi2_for_known_errors_is_unreliable():
+    from crosswind.solver.fit import fit
+    good = fit(lambda p: p["a"] * FX - FY, {"a": 1.0}, sigma=0.01, absolute_sigma=True)
+    assert good.status == "ok" and good.problems == ()
+    bad = fit(lambda p: p["a"] * FX - FY, {"a": 1.0}, sigma=0.0005, absolute_sigma=True)   # errors 20× too small
+    assert bad.status == "unreliable"
+    expect = (f"χ²_red = {bad.chi2_reduced:.3g} with 7 degrees of freedom is improbable for the stated errors "
+              "(two-sided p = 2.8e-150 < 0.001): the model does not describe the data or the errors are misstated")
+    assert bad.problems == (expect,)
+
+
+def test_fit_ending_at_its_start_is_flagged_unless_another_start_confirms_it():
+    from crosswind.solver.fit import fit
+    best = fit(lambda p: p["a"] * FX - FY, {"a": 1.0}).values["a"]
+    again = fit(lambda p: p["a"] * FX - FY, {"a": best})
+    assert again.status == "unreliable" and again.problems[0].startswith("the fit ended at its starting point")
+    confirmed = fit(lambda p: p["a"] * FX - FY, {"a": best}, bounds={"a": (0.0, 5.0)}, starts=3)
+    assert confirmed.status == "ok"
+
+
+def test_fit_with_a_huge_relative_standard_error_is_unreliable():
+    from crosswind.solver.fit import fit
+    r = fit(lambda p: p["a"] * FX + p["b"] - FY, {"a": 1.0, "b": 0.5})
+    assert r.status == "unreliable" and abs(r.values["b"]) < r.stderr["b"]
+    assert any(p.startswith("the standard error of b (") and "exceeds 100% of its value" in p for p in r.problems)
+
+
+FIT_TABLE = """
+[fit]
+quantity = "V2w"
+axis = "mu_eV"
+parameters = {mass = {initial = 0.1, bounds = [0.01, 1.0]}}
+"""
+
+
+def test_fit_with_repeated_abscissae_is_refused(tmp_path, capsys):
+    """Listing every row twice used to shrink the standard error by √2 without a word."""
+    from crosswind.solver.cli import main
+    sp = tmp_path / "s.toml"
+    sp.write_text(SCN + FIT_TABLE, encoding="utf-8")
+    data = tmp_path / "d.csv"
+    data.write_text("mu [eV], V2w [nV]\n0.12, 1\n0.13, 2\n0.12, 1\n0.14, 3\n", encoding="utf-8")
+    assert main(["fit", str(sp), "--data", str(data), "--output", str(tmp_path / "f")]) == 2
+    assert capsys.readouterr().err.strip() == (
+        f"crosswind: error: {data}: column 'mu [eV]' repeats the value(s) 0.12; merge repeated measurements into one "
+        "row (their mean, with the standard error of the mean in the error column) or remove the extra rows")
+    assert not (tmp_path / "f").exists()
+
+
+def test_unreliable_fit_sets_exit_status_summary_and_json(tmp_path, monkeypatch, capsys):
+    """A model that cannot produce the data (here ~1e-20 V against ~100 nV) exits 1 and says why
+    in the summary and fit.json (the model is a stand-in: no k-space work)."""
+    import json
+
+    from crosswind.solver import scenario_fit
+    from crosswind.solver.cli import main
+    monkeypatch.setattr(scenario_fit, "_predictor",
+                        lambda scn: ((lambda params, x: params["mass"] * 1e-20 * jnp.asarray(x)), {}))
+    sp = tmp_path / "s.toml"
+    sp.write_text(SCN + FIT_TABLE, encoding="utf-8")
+    data = tmp_path / "d.csv"
+    data.write_text("mu [eV], V2w [nV]\n0.12, 100\n0.13, 110\n0.14, 120\n0.15, 125\n", encoding="utf-8")
+    out = tmp_path / "f"
+    assert main(["fit", str(sp), "--data", str(data), "--output", str(out)]) == 1
+    err = capsys.readouterr().err
+    assert err.startswith("crosswind: error: the fit is unreliable: ") and "residuals hardly depend on mass" in err
+    res = json.loads((out / "fit.json").read_text(encoding="utf-8"))
+    assert res["converged"] and res["status"] == "unreliable"
+    assert any("residuals hardly depend on mass" in p for p in res["problems"])
+    summary = (out / "fit_summary.md").read_text(encoding="utf-8")
+    assert "**FIT UNRELIABLE**: do not quote these values" in summary and "- **problem**: " in summary
