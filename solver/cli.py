@@ -55,31 +55,33 @@ def _err(msg: str) -> None:
 
 
 def _run(scn, output, progress: bool) -> int:
+    from .files import OutputError
     from .report import write_report
     from .run import RunError, run_scenario
     folder = Path(output) if output else scn.output_folder
     t0 = time.time()
     try:
         ds = run_scenario(scn, folder, progress=progress)
-    except RunError as exc:
+        write_report(ds, scn, folder)
+        extra = ""
+        if scn.sensitivities is not None:
+            from .peak_sensitivity import write_sensitivities
+            write_sensitivities(scn, ds, folder)
+            extra = ", sensitivities.csv"
+    except (RunError, OutputError) as exc:
         _err(str(exc))
         return 2
     except KeyboardInterrupt:
         print(f"\ncrosswind: interrupted; finished batches are checkpointed in {folder}: run the same "
               "command again to resume", file=sys.stderr)
         return 130
-    write_report(ds, scn, folder)
-    extra = ""
-    if scn.sensitivities is not None:
-        from .peak_sensitivity import write_sensitivities
-        write_sensitivities(scn, ds, folder)
-        extra = ", sensitivities.csv"
     print(f"crosswind: wrote {folder}/results.nc, results.csv, summary.md{extra}"
           + (" and figures" if scn.figures else "") + f" in {time.time() - t0:.1f} s")
     return 0
 
 
 def cmd_fit(args) -> int:
+    from .files import OutputError
     from .scenario import ScenarioError, load_scenario
     from .scenario_fit import FitInputError, run_fit
     try:
@@ -101,7 +103,7 @@ def cmd_fit(args) -> int:
     t0 = time.time()
     try:
         out = run_fit(scn, data, folder, starts=args.starts)
-    except FitInputError as exc:
+    except (FitInputError, OutputError) as exc:
         _err(str(exc))
         return 2
     print(f"crosswind: wrote {folder}/fit_summary.md, fit.json, fit_curve.png, fit_residuals.png"
@@ -133,8 +135,13 @@ def cmd_demo(args) -> int:
     if rc != 0 or not args.fit:
         return rc
     from .demo import run_demo_fit
+    from .files import OutputError
     t0 = time.time()
-    run_demo_fit(Path(args.output))
+    try:
+        run_demo_fit(Path(args.output))
+    except OutputError as exc:
+        _err(str(exc))
+        return 2
     print(f"crosswind: demo fit to invented measurements written to {args.output}/fit in {time.time() - t0:.1f} s")
     return 0
 

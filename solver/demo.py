@@ -9,6 +9,7 @@ along x, where the nonlinear Hall voltage is largest.  Scattering: impurities pl
 sweep (12 gate voltages × 3 temperatures) and the fixed mesh level 1 keep the run to about a
 minute on two cores.
 """
+from .files import atomic_text, make_folder
 
 SCENARIO = """\
 # Crosswind demo: strained MoS2 monolayer Hall bar (illustrative device)
@@ -103,7 +104,7 @@ def invented_measurements(scn, path):
              f"# plus Gaussian noise of {FIT_NOISE:.0%} (numpy default_rng seed {FIT_SEED}).",
              "gate [V], V2w [nV], V2w_err [nV]"]
     lines += [f"{g:g}, {a * 1e9:.6g}, {e * 1e9:.6g}" for g, a, e in zip(FIT_GATES, y, err)]
-    path.write_text("\n".join(lines) + "\n", encoding="utf-8")
+    atomic_text(path, "\n".join(lines) + "\n")
     return np.asarray(FIT_GATES), y, err
 
 
@@ -114,12 +115,12 @@ def run_demo_fit(folder):
     from .scenario_fit import run_fit
     folder = Path(folder)
     fdir = folder / "fit"
-    fdir.mkdir(parents=True, exist_ok=True)
+    make_folder(fdir)
     scn = parse_scenario(FIT_SCENARIO, source="<built-in demo fit>", base=fdir)
     data = fdir / "invented_measurements.csv"
     invented_measurements(scn, data)
     out = run_fit(scn, data, fdir)
-    (fdir / "fit_scenario.toml").write_text(FIT_SCENARIO, encoding="utf-8")
+    atomic_text(fdir / "fit_scenario.toml", FIT_SCENARIO)
     lines = ["", "## Demo fit to invented measurements", "",
              "**The measurements are invented**: V_y^2ω against gate voltage at 10 K generated from this demo's own "
              f"model at known true values plus {FIT_NOISE:.0%} Gaussian noise (seed {FIT_SEED}); "
@@ -132,5 +133,5 @@ def run_demo_fit(folder):
               "`fit/fitted_scenario.toml`.", ""]
     summ = folder / "summary.md"
     text = summ.read_text(encoding="utf-8") if summ.exists() else ""
-    summ.write_text(text + "\n".join(lines), encoding="utf-8")
+    atomic_text(summ, text + "\n".join(lines))
     return out

@@ -22,6 +22,7 @@ import jax
 import jax.numpy as jnp
 import numpy as np
 
+from .files import atomic_text, atomic_write
 from .sensitivity import SensitivityRow
 
 
@@ -59,13 +60,16 @@ def peak_sensitivities(scn, ds) -> list[SensitivityRow]:
 
 
 def write_csv(rows, path: Path):
-    with open(path, "w", newline="", encoding="utf-8") as fh:
-        w = csv.writer(fh)
-        w.writerow(["knob", "step", "knob unit", "change of V2w_y_amplitude [V]", "derivative [V per knob unit]",
-                    "relative change [1]"])
-        for r in rows:
-            w.writerow([r.knob, f"{r.step:.10g}", r.unit, f"{r.change:.10g}", f"{r.derivative:.10g}",
-                        f"{r.relative:.10g}"])
+    """``sensitivities.csv``, written atomically."""
+    def write(tmp):
+        with open(tmp, "w", newline="", encoding="utf-8") as fh:
+            w = csv.writer(fh)
+            w.writerow(["knob", "step", "knob unit", "change of V2w_y_amplitude [V]",
+                        "derivative [V per knob unit]", "relative change [1]"])
+            for r in rows:
+                w.writerow([r.knob, f"{r.step:.10g}", r.unit, f"{r.change:.10g}", f"{r.derivative:.10g}",
+                            f"{r.relative:.10g}"])
+    atomic_write(path, write)
 
 
 def markdown(rows, resolution: int) -> str:
@@ -91,7 +95,7 @@ def write_sensitivities(scn, ds, folder) -> list:
     sec = markdown(rows, scn.sensitivities.resolution)
     marker = "## Conditions and units"
     text = text.replace(marker, sec + "\n" + marker, 1) if marker in text else text + "\n" + sec
-    summ.write_text(text, encoding="utf-8")
+    atomic_text(summ, text)
     return rows
 
 

@@ -25,6 +25,7 @@ from pathlib import Path
 import numpy as np
 
 from crosswind.models.units import E_CHARGE
+from .files import atomic_figure, atomic_text
 
 E2H = E_CHARGE ** 2 / 6.62607015e-34  # e²/h in S
 PARTS = ("dipole", "drude", "intrinsic")
@@ -151,7 +152,7 @@ def plot_bands(model, mu, path: Path):
     if np.any((e > lo) & (e < hi)):
         ax.set_ylim(min(lo, float(np.min(e))) if model.domain.periodic else lo, hi)
     fig.tight_layout()
-    fig.savefig(path, dpi=120)
+    atomic_figure(fig, path, dpi=120)
     plt.close(fig)
 
 
@@ -189,7 +190,7 @@ def plot_curvature_map(model, mu, temperature, path: Path, n=161):
     ax.set_title(f"curvature of added carriers, μ = {mu:.4g} eV, T = {temperature:g} K", fontsize=9)
     fig.colorbar(im, ax=ax, label="Σ_n (f − f_neutral) Ω_n (Å²)")
     fig.tight_layout()
-    fig.savefig(path, dpi=120)
+    atomic_figure(fig, path, dpi=120)
     plt.close(fig)
 
 
@@ -235,7 +236,7 @@ def plot_responses(ds, idx, path: Path):
             axs[0, col].legend(fontsize=7)
     fig.suptitle("responses at the peak conditions (other axes fixed there)", fontsize=10)
     fig.tight_layout()
-    fig.savefig(path, dpi=110)
+    atomic_figure(fig, path, dpi=110)
     plt.close(fig)
 
 
@@ -261,7 +262,7 @@ def plot_angle(ds, idx, scn, path: Path):
     axs[1].plot(np.deg2rad(th), np.abs(chi))
     axs[1].set_title("|χ'_yxx| (A m/V²) vs current angle", fontsize=9)
     fig.tight_layout()
-    fig.savefig(path, dpi=110)
+    atomic_figure(fig, path, dpi=110)
     plt.close(fig)
     return th, amp
 
@@ -293,7 +294,7 @@ def plot_scaling(ds, idx, path: Path):
     ax.set_title("scaling: E⊥/E∥² = C0 + C1 σ + C2 σ² separates mechanisms", fontsize=9)
     ax.legend(fontsize=7)
     fig.tight_layout()
-    fig.savefig(path, dpi=110)
+    atomic_figure(fig, path, dpi=110)
     plt.close(fig)
     return True
 
@@ -466,7 +467,7 @@ def write_report(ds, scn, folder) -> list:
         th = np.linspace(0, 360, 181)
         angle_info = (th, angle_scan(ds, idx, scn, th)[0])
     text = summary_markdown(ds, scn, idx, angle_info)
-    (folder / "summary.md").write_text(text, encoding="utf-8")
+    atomic_text(folder / "summary.md", text)
     written.append(folder / "summary.md")
     return written
 

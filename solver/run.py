@@ -45,6 +45,7 @@ from typing import Callable
 
 import numpy as np
 
+from .files import atomic_text, atomic_write, check_free_space
 from .scenario import Scenario
 
 DEVICE_KEYS = ("field_x", "field_y", "v_xx", "v_hall", "v2w_x", "v2w_y", "v2w_y_amplitude", "v2w_y_rms",
@@ -141,23 +142,7 @@ def check_manifest(folder: Path, fp: str, parts: dict) -> None:
                    "rerun into another --output folder or delete this one")
 
 
-def _atomic_write(path: Path, writer: Callable[[str], None]):
-    path.parent.mkdir(parents=True, exist_ok=True)
-    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
-    os.close(fd)
-    try:
-        writer(tmp)
-        os.replace(tmp, path)
-    finally:
-        if os.path.exists(tmp):
-            os.unlink(tmp)
-
-
-def _atomic_text(path: Path, text: str):
-    def w(tmp):
-        with open(tmp, "w", encoding="utf-8") as f:
-            f.write(text)
-    _atomic_write(path, w)
+_atomic_write, _atomic_text = atomic_write, atomic_text     # names used before solver/files.py
 
 
 def _savez(tmp: str, res: dict):
@@ -506,6 +491,9 @@ def flat_table(ds):
 
 
 def write_results(ds, folder: Path):
+    """``results.nc`` and ``results.csv``, atomically, after checking the disk can hold them (an
+    HDF5 writer may crash rather than raise on a full disk)."""
+    check_free_space(folder, 4 * int(ds.nbytes), "results.nc and results.csv")
     _atomic_write(folder / "results.nc", lambda tmp: ds.to_netcdf(tmp, engine="h5netcdf"))
     frame = flat_table(ds)
     _atomic_write(folder / "results.csv", lambda tmp: frame.to_csv(tmp))

@@ -27,6 +27,7 @@ from pathlib import Path
 import jax.numpy as jnp
 import numpy as np
 
+from .files import atomic_figure, atomic_text, make_folder
 from .pipeline import OUTPUTS, base_values, evaluate, scenario_knobs
 
 AXIS_COLUMNS = {"gate_V": ("gate", "V", "V", 1.0), "density_cm2": ("density", "cm^-2", "cm^-2", 1.0),
@@ -126,7 +127,7 @@ def run_fit(scn, data_path, folder, *, starts=None) -> dict:
     curve = np.asarray(predict(best, xs))
     model_at = np.asarray(predict(best, x))
     units = scenario_knobs(scn)
-    folder.mkdir(parents=True, exist_ok=True)
+    make_folder(folder)
     out = {"quantity": spec.quantity, "quantity_unit": QUANTITY_UNITS[spec.quantity], "axis": spec.axis,
            "data_file": str(data_path), "points": int(y.size), "resolution": spec.resolution,
            "values": {k: res.values[k] for k in res.free}, "stderr": {k: res.stderr[k] for k in res.free},
@@ -138,10 +139,10 @@ def run_fit(scn, data_path, folder, *, starts=None) -> dict:
            "nfev": res.nfev, "absolute_errors": err is not None,
            "data": {"x": x.tolist(), "y": y.tolist(), "err": None if err is None else err.tolist(),
                     "model": model_at.tolist()}}
-    (folder / "fit.json").write_text(json.dumps(out, indent=1, default=float), encoding="utf-8")
+    atomic_text(folder / "fit.json", json.dumps(out, indent=1, default=float))
     _plots(scn, x, y, err, xs, curve, model_at, folder)
-    (folder / "fitted_scenario.toml").write_text(fitted_scenario_text(scn, res.values, res.free), encoding="utf-8")
-    (folder / "fit_summary.md").write_text(fit_markdown(scn, out), encoding="utf-8")
+    atomic_text(folder / "fitted_scenario.toml", fitted_scenario_text(scn, res.values, res.free))
+    atomic_text(folder / "fit_summary.md", fit_markdown(scn, out))
     return out
 
 
@@ -158,7 +159,7 @@ def _plots(scn, x, y, err, xs, curve, model_at, folder):
     ax.set_ylabel(f"{spec.quantity} ({u})")
     ax.legend()
     fig.tight_layout()
-    fig.savefig(folder / "fit_curve.png", dpi=110)
+    atomic_figure(fig, folder / "fit_curve.png", dpi=110)
     plt.close(fig)
     fig, ax = plt.subplots(figsize=(5.5, 3.2))
     r = (y - model_at) / (err if err is not None else 1.0)
@@ -167,7 +168,7 @@ def _plots(scn, x, y, err, xs, curve, model_at, folder):
     ax.set_xlabel(f"{col} ({unit})")
     ax.set_ylabel("(data − model)/error" if err is not None else f"data − model ({u})")
     fig.tight_layout()
-    fig.savefig(folder / "fit_residuals.png", dpi=110)
+    atomic_figure(fig, folder / "fit_residuals.png", dpi=110)
     plt.close(fig)
 
 
@@ -212,12 +213,12 @@ def _run_scaling(scn, s, y, err, data_path, folder):
         sf = scaling_fit(s, y, err)
     except ValueError as exc:
         raise FitInputError(f"{data_path}: {exc}") from None
-    folder.mkdir(parents=True, exist_ok=True)
+    make_folder(folder)
     out = {"scaling": True, "data_file": str(data_path), "points": int(s.size),
            "coefficients": dict(zip(("c0", "c1", "c2"), sf.coefficients)),
            "stderr": dict(zip(("c0", "c1", "c2"), sf.stderr)), "units": sf.units, "meaning": sf.meaning,
            "correlation": np.asarray(sf.correlation).tolist(), "chi2_reduced": sf.chi2_reduced, "dof": sf.dof}
-    (folder / "fit.json").write_text(json.dumps(out, indent=1, default=float), encoding="utf-8")
+    atomic_text(folder / "fit.json", json.dumps(out, indent=1, default=float))
     from .report import _plt
     plt = _plt()
     xs = np.linspace(float(np.min(s)), float(np.max(s)), 50)
@@ -231,7 +232,7 @@ def _run_scaling(scn, s, y, err, data_path, folder):
         ax.set_ylabel("E⊥/E∥² (m/V)")
         ax.legend()
         fig.tight_layout()
-        fig.savefig(folder / name, dpi=110)
+        atomic_figure(fig, folder / name, dpi=110)
         plt.close(fig)
     lines = ["# Crosswind scaling fit", "",
              f"Data `{Path(str(data_path)).name}` ({s.size} points): E⊥/E∥² = C0 + C1 σ_xx + C2 σ_xx² "
@@ -240,7 +241,7 @@ def _run_scaling(scn, s, y, err, data_path, folder):
     for k, v, e in zip(("c0", "c1", "c2"), sf.coefficients, sf.stderr):
         lines.append(f"| {k.upper()} | {v:+.4e} | {e:.2e} | {sf.units[k]} | {sf.meaning[k]} |")
     lines += ["", f"χ²_red = {sf.chi2_reduced:.4g} ({sf.dof} degrees of freedom).", ""]
-    (folder / "fit_summary.md").write_text("\n".join(lines), encoding="utf-8")
+    atomic_text(folder / "fit_summary.md", "\n".join(lines))
     return out
 
 

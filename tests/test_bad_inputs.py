@@ -494,3 +494,57 @@ def test_unreliable_fit_sets_exit_status_summary_and_json(tmp_path, monkeypatch,
     assert any("residuals hardly depend on mass" in p for p in res["problems"])
     summary = (out / "fit_summary.md").read_text(encoding="utf-8")
     assert "**FIT UNRELIABLE**: do not quote these values" in summary and "- **problem**: " in summary
+
+
+# ------------------------------------------------------------------ full disk ----------------
+def _disk_full(*args):
+    raise OSError(28, "No space left on device")
+
+
+def test_atomic_write_on_a_full_disk_keeps_the_old_file_and_no_temporary(tmp_path):
+    from crosswind.solver.files import OutputError, atomic_text, atomic_write
+    target = tmp_path / "summary.md"
+    atomic_text(target, "old summary\n")
+
+    def half_then_full(tmp):
+        with open(tmp, "w", encoding="utf-8") as f:
+            f.write("new but trunc")
+        _disk_full()
+    with pytest.raises(OutputError, match=rf"cannot write {target} \(No space left on device\); free disk space or "
+                                          r"choose another output folder, then rerun the same command"):
+        atomic_write(target, half_then_full)
+    assert target.read_text(encoding="utf-8") == "old summary\n"
+    assert [p.name for p in tmp_path.iterdir()] == ["summary.md"]
+
+
+def test_full_disk_before_the_dataset_keeps_checkpoints_and_resumes(tmp_path, monkeypatch):
+    from collections import namedtuple
+
+    from crosswind.solver import files
+    from crosswind.solver.files import OutputError
+    calls = []
+    monkeypatch.setattr(run_mod, "compute_batch", _fake_batch(calls))
+    scn = parse_scenario(_scenario_file(tmp_path).read_text(encoding="utf-8"), source="s.toml", base=tmp_path)
+    usage = namedtuple("usage", "total used free")
+    monkeypatch.setattr(files.shutil, "disk_usage", lambda p: usage(10 ** 9, 10 ** 9 - 4096, 4096))
+    with pytest.raises(OutputError, match=r"not enough free space in .*out for results\.nc and results\.csv \(about "
+                                          r"0 MiB needed, 0 MiB free\)"):
+        run_scenario(scn, tmp_path / "out", progress=False)
+    assert sorted(p.name for p in (tmp_path / "out" / "batches").iterdir()) == ["batch_00000.npz", "batch_00001.npz"]
+    assert not (tmp_path / "out" / "results.nc").exists()
+    monkeypatch.undo()
+    monkeypatch.setattr(run_mod, "compute_batch", _fake_batch(calls))
+    run_scenario(scn, tmp_path / "out", progress=False)
+    assert calls == [5.0, 20.0] and (tmp_path / "out" / "results.nc").exists()
+
+
+def test_full_disk_during_a_run_exits_2_with_one_line_and_no_partial_file(tmp_path, monkeypatch, capsys):
+    from crosswind.solver import files
+    from crosswind.solver.cli import main
+    monkeypatch.setattr(run_mod, "compute_batch", _fake_batch([]))
+    monkeypatch.setattr(files.os, "fsync", _disk_full)
+    out = tmp_path / "o"
+    assert main(["run", str(_scenario_file(tmp_path)), "--output", str(out), "--no-progress"]) == 2
+    lines = capsys.readouterr().err.strip().splitlines()
+    assert len(lines) == 1 and lines[0].startswith(f"crosswind: error: cannot write {out}/run.json (No space left")
+    assert sorted(p.name for p in out.iterdir()) == []
