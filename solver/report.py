@@ -310,6 +310,27 @@ def _fmt_point(ds, idx):
     return ", ".join(parts)
 
 
+# fields that may legitimately hold NaN: error estimates (unavailable at level 0), ratios at σ = 0
+_MAY_BE_NAN = ("error_", "has_error_estimate", "hall_angle", "nonlinear_ratio")
+
+
+def _non_finite_warning(ds) -> list:
+    """Lines warning, before anything else, that the dataset holds NaN/inf outside the fields that
+    may legitimately do so; no lines when every value is finite."""
+    bad = {}
+    for name, var in ds.data_vars.items():
+        if name.startswith(_MAY_BE_NAN) or not np.issubdtype(var.dtype, np.number):
+            continue
+        n = int(np.count_nonzero(~np.isfinite(var.values)))
+        if n:
+            bad[name] = n
+    if not bad:
+        return []
+    listed = ", ".join(f"`{k}` ({n})" for k, n in sorted(bad.items()))
+    return [f"> **WARNING: the dataset holds non-finite values (NaN/inf)** in {listed}; numbers derived from "
+            "them below are not results. Check the model and the conditions at those grid points.", ""]
+
+
 def _error_line(err_chi, chi_size, err_sig, sig_size) -> str:
     """The error-estimate bullet; NaN (no coarser level was compared) is reported as unavailable,
     never as 0."""
@@ -346,6 +367,7 @@ def summary_markdown(ds, scn, idx, angle_info=None) -> str:
         f"Scenario: `{Path(str(scn.path)).name}` — model `{scn.material.model or scn.material.tight_binding.name}`, "
         f"crosswind {ds.attrs.get('crosswind_version', '?')}.",
         "",
+        *_non_finite_warning(ds),
         "## Where the second-harmonic signal peaks",
         "",
         f"The transverse 2ω voltage is largest at {_fmt_point(ds, idx)}: "

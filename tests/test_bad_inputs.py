@@ -338,6 +338,7 @@ def test_level_0_reports_the_error_as_unavailable_not_zero(tmp_path, capsys):
     summary = (tmp_path / "results" / "summary.md").read_text(encoding="utf-8")
     assert "Estimated integration error at the peak: **unavailable**" in summary
     assert "fixed level 0: nothing coarser to compare." in summary and "0 relative" not in summary
+    assert "non-finite values" not in summary              # NaN error estimates are not a warning
 
 
 # ------------------------------------------------------------------ fingerprints -------------
@@ -548,3 +549,15 @@ def test_full_disk_during_a_run_exits_2_with_one_line_and_no_partial_file(tmp_pa
     lines = capsys.readouterr().err.strip().splitlines()
     assert len(lines) == 1 and lines[0].startswith(f"crosswind: error: cannot write {out}/run.json (No space left")
     assert sorted(p.name for p in out.iterdir()) == []
+
+
+def test_summary_warns_first_when_the_dataset_holds_non_finite_values():
+    import xarray as xr
+
+    from crosswind.solver.report import _non_finite_warning
+    ds = xr.Dataset({"v_xx": (("g",), np.array([1.0, np.inf, np.nan])), "error_sigma": (("g",), np.full(3, np.nan)),
+                     "hall_angle": (("g",), np.array([np.nan, 0.1, 0.2])), "sigma": (("g",), np.ones(3))})
+    assert _non_finite_warning(ds) == [
+        "> **WARNING: the dataset holds non-finite values (NaN/inf)** in `v_xx` (2); numbers derived from them below "
+        "are not results. Check the model and the conditions at those grid points.", ""]
+    assert _non_finite_warning(ds.drop_vars("v_xx")) == []
