@@ -557,7 +557,45 @@ def test_summary_warns_first_when_the_dataset_holds_non_finite_values():
     from crosswind.solver.report import _non_finite_warning
     ds = xr.Dataset({"v_xx": (("g",), np.array([1.0, np.inf, np.nan])), "error_sigma": (("g",), np.full(3, np.nan)),
                      "hall_angle": (("g",), np.array([np.nan, 0.1, 0.2])), "sigma": (("g",), np.ones(3))})
-    assert _non_finite_warning(ds) == [
-        "> **WARNING: the dataset holds non-finite values (NaN/inf)** in `v_xx` (2); numbers derived from them below "
-        "are not results. Check the model and the conditions at those grid points.", ""]
+    expect = ("> **WARNING: the dataset holds non-finite values (NaN/inf)** in `v_xx` (2); numbers derived from "
+              "them below are not results. Check the model and the conditions at those grid points.")
+    assert _non_finite_warning(ds) == [expect, ""]
     assert _non_finite_warning(ds.drop_vars("v_xx")) == []
+
+
+# ------------------------------------------------------------------ error estimates vs truth --
+def _levels_of(model, mu, temperature, levels):
+    out = []
+    for level in levels:
+        r = response(model, mu=mu, temperature=temperature, tau=100.0, resolution=level, estimate_error=False)
+        out.append((float(r.sigma[0, 0].real), float(r.chi[1, 0, 0].real)))
+    return np.array(out)
+
+
+@pytest.mark.parametrize("mass, mu, T", [(0.1, 0.15, 0.0), (0.005, 0.010, 1.0)], ids=["T0_in_band", "small_gap"])
+def test_level_2_error_estimate_bounds_the_true_error(mass, mu, T):
+    """|v_2 − v_1| against |v_2 − v_4| (level 4 as truth; benchmarks/bench_error_estimates.py):
+    measured ratios 3.4e3–8.6e3 (σ_xx, χ_yxx), i.e. conservative, on T → 0 and small-gap cases."""
+    v = _levels_of(build("massive-dirac", velocity=5e5, mass=mass, tilt=5e4), mu, T, (1, 2, 4))
+    est, true = np.abs(v[1] - v[0]), np.abs(v[1] - v[2])
+    assert np.all(est >= true), (est, true)
+
+
+@pytest.mark.xfail(strict=True, reason="known limitation (issue 10, item 5): at a band edge at T = 0 the "
+                   "level-1 estimate is 75x below the true error (ratio 0.013); needs the error model in "
+                   "solver/response.py / solver/mesh.py")
+def test_level_1_error_estimate_at_a_band_edge_at_zero_temperature():
+    v = _levels_of(build("massive-dirac", **DIRAC), 0.1, 0.0, (0, 1, 4))
+    est, true = np.abs(v[1] - v[0]), np.abs(v[1] - v[2])
+    assert np.all(est >= true), (est, true)
+
+
+@pytest.mark.slow
+@pytest.mark.xfail(strict=True, reason="known silent wrong answer (found for issue 10, item 5): the node "
+                   "quadrature of a lattice at a fixed resolution and T -> 0 finds no node in the Fermi window: "
+                   "sigma_xx ~ 1e-254 S with an error estimate ~ 5e-259 S; the ladder gives 3.139e-3 S")
+def test_lattice_node_quadrature_at_zero_temperature_is_right_or_says_so():
+    m = build("honeycomb", staggered=0.1)
+    r = response(m, mu=0.3, temperature=0.0, tau=100.0, resolution=2)
+    ladder = 3.139053e-3      # engine="ladder" (automatic resolution), error estimate 1e-7 S
+    assert abs(float(r.sigma[0, 0].real) - ladder) <= max(float(r.error["sigma"][0, 0]), 1e-2 * ladder)
