@@ -50,6 +50,7 @@ from crosswind.models.domain import Lattice
 from crosswind.models.units import ANGSTROM, E_CHARGE, HBAR_JS, KB_EVK
 from . import ladder as _ladder
 from . import mesh as _mesh
+from . import rays as _rays
 from .inputs import check_arguments
 from .kernels import moments, moments_indexed
 from .occupation import T_FLOOR, thermal_energy
@@ -384,6 +385,96 @@ def _ladder_path(model, muf, kt, Tf, tauf, omega, kw, rtol, resolution, max_leve
     return fine, err, bad, info
 
 
+@partial(jax.jit, static_argnames=("plan", "tau_eval", "filled", "sea"))
+def _rays_at(model, grid, mu, kt, temp, tau_arr, omega, *, plan, tau_eval, filled, sea):
+    tau_col = jax.tree_util.tree_map(lambda a: a[:, None], tau_arr)
+    return _rays.ray_moments(model, model.params, plan, grid, mu, kt, temp, tau_eval, tau_col, omega,
+                             filled, sea)
+
+
+def _run_rays(model, mu, kt, temp, tau_arr, omega, res, kw, plan, traced):
+    """One evaluation of the shared ray rule; a concrete run whose rays had more crossings than
+    the plan's slots (or whose windows left the knot tables) is repeated with a new plan."""
+    if plan is None:
+        plan = _rays.make_plan(model, model.params, np.asarray(mu), np.asarray(kt), res)
+    tried = []
+    for _ in range(3):
+        tried.append(plan)
+        sums, ex, over = _rays_at(model, plan[1], mu, kt, temp, tau_arr, omega, plan=plan[0], **kw)
+        if traced or not bool(over):
+            break
+        counted = _rays.make_plan(model, model.params, np.asarray(mu), np.asarray(kt), res)
+        plan = (counted if counted[0].slots > plan[0].slots else
+                _rays.make_plan(model, model.params, np.asarray(mu), np.asarray(kt), res,
+                                slots=2 * plan[0].slots))
+    return sums, ex, over, tried
+
+
+def _rays_path(model, muf, kt, Tf, tauf, omega, kw, rtol, resolution, max_level, intrinsic, plan,
+               traced, tau_max, estimate_error):
+    """Energy-resolved shared rays (:mod:`crosswind.solver.rays`) for continuum models: one ray
+    set per pass for every condition; the error is |fine − coarse| between consecutive
+    resolutions plus the T² extrapolation spread."""
+    if isinstance(model.domain, Lattice) or model.dim != 2:
+        raise ValueError("response: engine='rays' integrates 2D continuum (k·p) models; use "
+                         "engine='ladder' or 'mesh' for lattice models")
+    nres = len(_rays.RESOLUTIONS)
+    if traced and plan is None:
+        raise ValueError("response: with engine='rays' under jax.grad/jit pass plan=..., the plan of "
+                         "a concrete call: dict(response(...).resolution)['plan']")
+    k_points = 0
+    centres = len(model.domain.centers)
+    runs, attempts = {}, {}
+
+    def run(lev, given=None):
+        sums, ex, over, tried = _run_rays(model, muf, kt, Tf, tauf, omega, lev, kw, given, traced)
+        nonlocal k_points
+        k_points += sum(p[0].k_points(centres) for p in tried)
+        runs[lev] = (sums, ex, over, tried[-1])
+        attempts[lev] = len(tried)
+        return runs[lev]
+
+    def errors(lev):
+        f, ex, over, _ = runs[lev]
+        fine = _to_si(f, model, Tf, intrinsic)
+        shifted = _to_si(jax.tree_util.tree_map(lambda a, b: a + b.astype(a.dtype), f, ex), model, Tf,
+                         intrinsic)
+        spread = _field_errors(shifted, fine)
+        if lev - 1 in runs:
+            c, _, over_c, _ = runs[lev - 1]
+            diff = _field_errors(fine, _to_si(c, model, Tf, intrinsic))
+            over = over | over_c
+        else:
+            diff = jax.tree_util.tree_map(lambda a: jnp.full(a.shape, jnp.nan), spread)
+        err = jax.tree_util.tree_map(lambda u, v: jnp.where(over, jnp.inf, u + v), diff, spread)
+        return fine, err
+
+    bad = None
+    if resolution is None:
+        top = nres - 1 if max_level is None else min(max_level, nres - 1)
+        run(0)
+        lev = 1
+        run(1)
+        while True:
+            fine, err = errors(lev)
+            bad = _converged(fine, err, runs[lev][0], rtol, model, tau_max)
+            if not bad or lev >= top:
+                break
+            lev += 1
+            run(lev)
+    else:
+        if not (0 <= resolution <= nres - 1):
+            raise ValueError(f"response: resolution must be a level 0..{nres - 1}")
+        lev = resolution
+        run(lev, plan)
+        if lev > 0 and estimate_error and not traced:
+            run(lev - 1)
+        fine, err = errors(lev)
+    info = {"engine": "rays", "level": lev, "plan": runs[lev][3], "attempts": attempts[lev],
+            "k_points": int(k_points)}
+    return fine, err, bad, info
+
+
 def response(model: BandModel, mu, temperature, tau, frequency=0.0, *, rtol: float = 1e-3,
              resolution: int | None = None, max_level: int | None = None, intrinsic: bool = True,
              dipole_route: str = "surface", chunk: int = 4096, estimate_error: bool = True,
@@ -410,16 +501,22 @@ def response(model: BandModel, mu, temperature, tau, frequency=0.0, *, rtol: flo
     always includes ``k_points``, the distinct k-points where the band geometry was evaluated
     (all passes and conditions).
     """
-    if engine not in ("auto", "mesh", "ladder"):
-        raise ValueError("response: engine must be 'auto', 'mesh' (node quadrature, every model) or "
-                         "'ladder' (energy-resolved, lattice models)")
+    if engine not in ("auto", "mesh", "ladder", "rays"):
+        raise ValueError("response: engine must be 'auto', 'mesh' (node quadrature, every model), "
+                         "'ladder' (energy-resolved, 2D lattice models) or 'rays' (energy-resolved, "
+                         "2D continuum models)")
     if not isinstance(model, BandModel):
         raise TypeError("response: the first argument must be a BandModel from crosswind.models.build(...)")
     if engine == "auto":
         # the ladder's shells are surfaces in 3D (budgets grow 4× per level): measured far too
         # costly for the Weyl model, so 3D lattices keep the node quadrature unless asked for
-        engine = ("ladder" if isinstance(model.domain, Lattice) and model.dim == 2 and resolution is None
-                  else "mesh")
+        if plan is not None:
+            # a plan from an earlier call selects its own engine
+            engine = "ladder" if isinstance(plan, _ladder.Plan) else "rays"
+        elif resolution is not None or model.dim != 2:
+            engine = "mesh"
+        else:
+            engine = "ladder" if isinstance(model.domain, Lattice) else "rays"
     if dipole_route not in ("surface", "both"):
         raise ValueError("response: dipole_route must be 'surface' or 'both'")
     if not (0 < rtol < 1):
@@ -452,7 +549,10 @@ def response(model: BandModel, mu, temperature, tau, frequency=0.0, *, rtol: flo
     if resolution is None:
         tau_max = float(np.max(np.abs(np.asarray(jax.vmap(lambda a: type(scat).evaluate(
             a, jnp.zeros((1, 1)), jnp.zeros((1, 1)))[0])(jax.tree_util.tree_map(lambda x: x[:, None, None], tauf))))))
-    if engine == "ladder":
+    if engine == "rays":
+        fine, err, bad, info = _rays_path(model, muf, kt, Tf, tauf, omega, kw, rtol, resolution,
+                                          max_level, intrinsic, plan, traced, tau_max, estimate_error)
+    elif engine == "ladder":
         fine, err, bad, info = _ladder_path(model, muf, kt, Tf, tauf, omega, kw, rtol, resolution,
                                             max_level, intrinsic, plan, traced, tau_max)
     else:

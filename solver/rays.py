@@ -1,0 +1,502 @@
+"""Energy-resolved integration of continuum (k·p) models: one set of rays for every condition.
+
+A continuum model lives on the whole plane around each valley centre.  The node quadrature of
+:mod:`crosswind.solver.mesh` builds polar rays per condition, with Gauss panels around that
+condition's Fermi crossings, so a sweep of P conditions costs P meshes.  This module builds one
+ray set per call for all conditions together and reduces each condition to a sum over energy
+knots (docs/theory.md §14.3):
+
+* **Energy breakpoints.**  A graded list e_0 < e_1 < … covers the union of the thermal windows
+  μ_p ± (W+2)·k_BT_p of the conditions, with spacing c·min{k_BT_p : ε within the window of p}:
+  fine around cold conditions, coarser where only hot ones reach (``breakpoints``).
+* **Radial panels.**  Along each ray (angles (i+½)·2π/n around each centre) the crossings of every
+  breakpoint by every band are bracketed on a compactified probe grid and refined by bisection;
+  together with fixed geometric breakpoints s·2^{m/2} (s the model's curvature scale) they split
+  the ray into panels, each carrying Gauss–Legendre nodes; the last panel maps [k_last, ∞) to
+  [0, 1) (the 1/k³ curvature tail of a Dirac cone to spectral accuracy, as in the node rule).
+  Across a window panel a band changes by at most one breakpoint spacing, so every condition's
+  occupation factor is smooth on every panel: the rule resolves all conditions at once.
+* **Energy knots.**  Every node deposits w·A (A the geometric factors of
+  :func:`crosswind.solver.ladder.point_factors`) onto R knot tables of spacing δ_r = δ_0·2^r,
+  δ_0 = k_BT_min/ρ, with the four moment-preserving cubic Lagrange weights of
+  :mod:`crosswind.solver.ladder`; a condition reads the table whose spacing is about k_BT_p/ρ, so
+  its sum has the same short length for any temperature.  States below the tables are fully
+  occupied for every condition, states above empty.
+* **Fermi-sea kernels.**  Density and the Fermi-sea dipole need f0 − θ(band filled at
+  neutrality), which in a continuum model is not f0 minus a finite constant; the filled bands are
+  therefore deposited into separate "hole" columns and enter as −(1 − f0).  The anomalous Hall
+  kernel Σ f0 Ω takes every occupied state, including the whole valence band below the tables.
+* **Cold conditions.**  Below ``t_res`` (per resolution) a condition is extrapolated in T² from the
+  sums at t_res and 2t_res (Sommerfeld), with the spread against the extrapolation from 2t_res and
+  4t_res added to its error; T = 0 is the same formula.
+
+Placement (rays, breakpoints, knots) is wrapped in ``stop_gradient``; μ, T, τ and ω enter only the
+knot sums, so their derivatives are exact derivatives of those sums, and model parameters act
+through the geometry at the placed nodes.  The error estimate is |fine − coarse| between two
+resolutions (as for the node quadrature), plus the extrapolation spread; a plan whose panel
+slots or knot window do not hold the conditions reports an infinite error (``overflow``).
+"""
+from __future__ import annotations
+
+from dataclasses import dataclass
+from functools import partial
+
+import jax
+import jax.numpy as jnp
+import numpy as np
+from crosswind.models.band_model import BandModel
+from crosswind.models.domain import Lattice
+from crosswind.models.units import KB_EVK as KB
+
+from .ladder import _kernel_sums, _lagrange, _occupations, factor_layout, point_factors
+from .mesh import energies_at
+
+W = 20.0                     # window half-width in k_BT (neglected weight ~ e^-20)
+PROBE = 160                  # probe points per ray for bracketing crossings
+BISECT = 30                  # bisection steps per crossing (2^-30 of a probe interval)
+GEOMETRIC = tuple(2.0 ** (m / 2.0) for m in range(-8, 9))     # fixed breakpoints in units of s
+PAD_ENERGY = 1e9             # padding breakpoints (eV): never crossed
+
+#: per resolution: (angles per centre, Gauss nodes per panel, breakpoint spacing c in k_BT,
+#: knots per k_BT rho, extrapolation temperature t_res in K)
+RESOLUTIONS = ((24, 5, 3.0, 6.0, 2.0), (48, 6, 2.5, 8.0, 1.0), (64, 8, 2.0, 12.0, 0.5),
+               (96, 10, 1.5, 16.0, 0.25), (192, 12, 1.0, 20.0, 0.125))
+
+
+@dataclass(frozen=True)
+class RayPlan:
+    """Static shape of one ray integration: ``angles`` rays per centre, ``nodes`` Gauss nodes per
+    panel, ``levels`` energy breakpoints (padded), ``slots`` crossing panels kept per ray,
+    ``knots`` per table, ``tables`` knot tables (spacings δ_0·2^r), ``rho``, ``t_res`` (K) and
+    whether some condition is colder than ``t_res`` (``extrapolate``)."""
+
+    angles: int
+    nodes: int
+    levels: int
+    slots: int
+    knots: int
+    tables: int
+    rho: float
+    t_res: float
+    extrapolate: bool = False
+
+    @property
+    def panels(self) -> int:
+        return len(GEOMETRIC) + self.slots
+
+    def nodes_per_ray(self) -> int:
+        return self.panels * self.nodes + 2 * self.nodes
+
+    def k_points(self, centres: int) -> int:
+        """Points where the band geometry is evaluated (probe and bisection evaluate energies only)."""
+        return centres * self.angles * self.nodes_per_ray()
+
+
+@dataclass(frozen=True)
+class RayGrid:
+    """The placement arrays of a plan (leaves; new values never recompile): energy breakpoints
+    (levels,), the first knot ``e_lo`` and the finest knot spacing ``delta`` (eV)."""
+
+    breakpoints: jax.Array
+    e_lo: jax.Array
+    delta: jax.Array
+
+
+jax.tree_util.register_pytree_node(
+    RayGrid, lambda g: ((g.breakpoints, g.e_lo, g.delta), None), lambda _, c: RayGrid(*c))
+
+
+def _gauss(n):
+    x, w = np.polynomial.legendre.leggauss(n)
+    return jnp.asarray(0.5 * (x + 1.0)), jnp.asarray(0.5 * w)
+
+
+def _bucket(n, q):
+    return int(-(-max(n, 1) // q) * q)
+
+
+# --------------------------------------------------------------------------------------------
+# planning (concrete values)
+# --------------------------------------------------------------------------------------------
+
+def effective_windows(mu, kt, t_res):
+    """(μ, k_BT) pairs whose windows the rule must resolve: every condition at
+    max(T, t_res), and the extrapolation temperatures 2·t_res, 4·t_res of cold ones."""
+    mu, kt = np.asarray(mu, float).ravel(), np.asarray(kt, float).ravel()
+    ktr = KB * t_res
+    out = [np.stack([mu, np.maximum(kt, ktr)], -1)]
+    cold = kt < ktr
+    if np.any(cold):
+        for f in (2.0, 4.0):
+            out.append(np.stack([mu[cold], np.full(cold.sum(), f * ktr)], -1))
+    return np.unique(np.concatenate(out), axis=0)
+
+
+def breakpoints(mu, kt, t_res, spacing):
+    """Graded energy breakpoints (eV) over the union of the windows μ ± (W+2)k_BT, with spacing
+    ``spacing``·(the smallest k_BT whose window contains the energy)."""
+    win = effective_windows(mu, kt, t_res)
+    m, k = win[:, 0], win[:, 1]
+    lo, hi = m - (W + 2) * k, m + (W + 2) * k
+    e, stop = float(lo.min()), float(hi.max())
+    out = [e]
+    while e < stop:
+        inside = (lo <= e) & (hi >= e)
+        if np.any(inside):
+            step = spacing * float(k[inside].min())
+        else:                         # a gap between windows: jump to the next one
+            nxt = lo[lo > e]
+            step = float(nxt.min() - e) if nxt.size else stop - e
+        e = min(e + step, stop)
+        out.append(e)
+    return np.asarray(out)
+
+
+def make_plan(model: BandModel, params, mu, kt, resolution: int, slots: int | None = None):
+    """Plan and grid for the conditions (μ, k_BT) (eV) at ``resolution`` (index into
+    ``RESOLUTIONS``).  ``slots`` (crossing panels per ray) defaults to a count on the model."""
+    angles, nodes, c, rho, t_res = RESOLUTIONS[resolution]
+    bps = breakpoints(mu, kt, t_res, c)
+    nlev = _bucket(len(bps), 16)
+    padded = np.concatenate([bps, np.full(nlev - len(bps), PAD_ENERGY)])
+    win = effective_windows(mu, kt, t_res)
+    kt_min, kt_max = float(win[:, 1].min()), float(win[:, 1].max())
+    delta = kt_min / rho
+    tables = int(np.floor(np.log2(kt_max / kt_min))) + 1
+    coarsest = delta * 2 ** (tables - 1)
+    e_lo = float(bps[0]) - 8 * coarsest
+    span = float(bps[-1]) + 8 * coarsest - e_lo
+    knots = _bucket(int(np.ceil(span / delta)) + window_knots(rho) + 16, 256)
+    grid = RayGrid(jnp.asarray(padded), jnp.asarray(e_lo), jnp.asarray(delta))
+    if slots is None:
+        found = int(np.max(np.asarray(_crossing_counts(model, params, grid, angles=angles))))
+        slots = _bucket(int(found * 1.25) + 4, 8)
+    slots = min(slots, 2 * model.n_bands * nlev)
+    cold = bool(np.any(np.asarray(kt) < KB * t_res))
+    return RayPlan(angles, nodes, nlev, slots, knots, tables, rho, t_res, cold), grid
+
+
+# --------------------------------------------------------------------------------------------
+# the rays
+# --------------------------------------------------------------------------------------------
+
+def _directions(n):
+    theta = (jnp.arange(n, dtype=jnp.float64) + 0.5) * (2 * jnp.pi / n)
+    return jnp.stack([jnp.cos(theta), jnp.sin(theta)], axis=-1)
+
+
+def _probe_radii(s):
+    u = (jnp.arange(1, PROBE + 1, dtype=jnp.float64) - 0.5) / PROBE
+    return jnp.concatenate([jnp.zeros(1), s * 4.0 * u / (1.0 - u)])
+
+
+def _ray_candidates(model, params, c, dvec, kr, levels):
+    """Approximate crossings of every (band, breakpoint) on one ray: first and last crossing
+    interval of the probe grid.  Returns positions (2·nb·J,) (−1: none), band, interval, level."""
+    pts = c[None, :] + kr[:, None] * dvec[None, :]
+    e = jax.vmap(lambda q: energies_at(model, q, params))(pts)              # (NP, nb)
+    diff = e[:, :, None] - levels[None, None, :]                            # (NP, nb, J)
+    cross = (diff[1:] > 0) != (diff[:-1] > 0)                               # (NP-1, nb, J)
+    anyc = jnp.any(cross, axis=0)
+    npi = cross.shape[0]
+    first = jnp.argmax(cross, axis=0)
+    last = npi - 1 - jnp.argmax(cross[::-1], axis=0)
+
+    def locate(i):
+        d0 = jnp.take_along_axis(diff, i[None], axis=0)[0]
+        d1 = jnp.take_along_axis(diff, (i + 1)[None], axis=0)[0]
+        frac = jnp.clip(d0 / jnp.where(d0 == d1, 1.0, d0 - d1), 0.0, 1.0)
+        return kr[i] + frac * (kr[i + 1] - kr[i])
+
+    kf = jnp.where(anyc, locate(first), -1.0)
+    kl = jnp.where(anyc & (last != first), locate(last), -1.0)
+    nb, J = anyc.shape
+    band = jnp.broadcast_to(jnp.arange(nb)[:, None], (nb, J))
+    lev = jnp.broadcast_to(jnp.arange(J)[None, :], (nb, J))
+    pos = jnp.concatenate([kf.reshape(-1), kl.reshape(-1)])
+    return (pos, jnp.concatenate([band.reshape(-1)] * 2), jnp.concatenate([first.reshape(-1), last.reshape(-1)]),
+            jnp.concatenate([lev.reshape(-1)] * 2))
+
+
+@partial(jax.jit, static_argnames=("angles",))
+def _crossing_counts(model, params, grid, *, angles):
+    """Crossings found on every ray (for sizing ``slots``)."""
+    p = jax.lax.stop_gradient(params)
+    dom = model.domain
+    s = dom.scale_for(p)
+    kr = _probe_radii(s)
+    centers = jnp.asarray(np.asarray(dom.centers, dtype=float))
+    dirs = _directions(angles)
+
+    def one(c, d):
+        pos = _ray_candidates(model, p, c, d, kr, grid.breakpoints)[0]
+        return jnp.sum(pos >= 0)
+
+    return jax.vmap(lambda c: jax.lax.map(lambda d: one(c, d), dirs))(centers)
+
+
+def ray_nodes(model: BandModel, params, plan: RayPlan, grid: RayGrid):
+    """Nodes (N, 2) and weights (N,) of the shared rule, and whether some ray had more crossings
+    than ``plan.slots`` (overflow)."""
+    dom = model.domain
+    p = jax.lax.stop_gradient(params)
+    s = dom.scale_for(p)
+    kr = _probe_radii(s)
+    levels = jax.lax.stop_gradient(grid.breakpoints)
+    centers = jnp.asarray(np.asarray(dom.centers, dtype=float))
+    dirs = _directions(plan.angles)
+    x, wx = _gauss(plan.nodes)
+    geo = jnp.asarray(GEOMETRIC) * s
+
+    def one_ray(c, dvec):
+        pos, band, itv, lev = _ray_candidates(model, p, c, dvec, kr, levels)
+        found = jnp.sum(pos >= 0)
+        order = jnp.argsort(pos)[-plan.slots:]
+        pos, band, itv, lev = pos[order], band[order], itv[order], lev[order]
+        ok = pos >= 0
+
+        def f(kk):
+            e = jax.vmap(lambda q: energies_at(model, c + q * dvec, p))(kk)       # (slots, nb)
+            return jnp.take_along_axis(e, band[:, None], axis=1)[:, 0] - levels[lev]
+
+        a, b = kr[itv], kr[jnp.minimum(itv + 1, PROBE)]
+        fa = f(a)
+
+        def body(_, st):
+            a, b, fa = st
+            m = 0.5 * (a + b)
+            fm = f(m)
+            left = (fm > 0) == (fa > 0)
+            return jnp.where(left, m, a), jnp.where(left, b, m), jnp.where(left, fm, fa)
+
+        a, b, _ = jax.lax.fori_loop(0, BISECT, body, (a, b, fa))
+        kc = jnp.where(ok, 0.5 * (a + b), 0.0)
+        bps = jnp.sort(jnp.concatenate([jnp.zeros(1), geo, kc]))
+        lo, hi = bps[:-1], bps[1:]
+        r = lo[:, None] + (hi - lo)[:, None] * x[None, :]
+        wr = (hi - lo)[:, None] * wx[None, :]
+        last = bps[-1]
+        xt, wt = _gauss(2 * plan.nodes)
+        rt = last + last * xt / (1.0 - xt)
+        wrt = last * wt / (1.0 - xt) ** 2
+        r = jnp.concatenate([r.reshape(-1), rt])
+        wr = jnp.concatenate([wr.reshape(-1), wrt])
+        pts = c[None, :] + r[:, None] * dvec[None, :]
+        return pts, wr * r * (2 * jnp.pi / plan.angles) / (2 * jnp.pi) ** 2, found > plan.slots
+
+    pts, w, over = jax.vmap(lambda c: jax.lax.map(lambda d: one_ray(c, d), dirs))(centers)
+    return (jax.lax.stop_gradient(pts.reshape(-1, 2)), jax.lax.stop_gradient(w.reshape(-1)),
+            jnp.any(over))
+
+
+# --------------------------------------------------------------------------------------------
+# knot tables
+# --------------------------------------------------------------------------------------------
+
+def _deposit3(acc, e, f, w, e_lo, delta):
+    """Like :func:`crosswind.solver.ladder._deposit`, also summing the states above the table
+    (``above``), which the filled-band ("hole") columns need."""
+    table, below, above = acc
+    M = table.shape[0]
+    pos = (jax.lax.stop_gradient(e) - e_lo) / delta
+    j = jnp.floor(pos)
+    t = (e - e_lo) / delta - j
+    lw = _lagrange(t)
+    ji = j.astype(jnp.int32)
+    idx = ji[..., None] + jnp.arange(-1, 3, dtype=jnp.int32)[None, None, :]
+    inside = (ji >= 1) & (ji <= M - 3)
+    wf = w[:, None, None] * f
+    val = lw[..., None] * wf[:, :, None, :]
+    idx = jnp.where(inside[..., None], idx, M)
+    table = table.at[idx.reshape(-1)].add(val.reshape(-1, f.shape[-1]), mode="drop")
+    below = below + jnp.sum(jnp.where((pos < 1.0)[..., None], wf, 0.0), axis=(0, 1))
+    above = above + jnp.sum(jnp.where((ji > M - 3)[..., None], wf, 0.0), axis=(0, 1))
+    return table, below, above
+
+
+def _layout(sea):
+    layout, nc = factor_layout(2, sea)
+    layout = dict(layout)
+    layout["hole_one"] = (nc, ())
+    nc += 1
+    if sea:
+        layout["hole_dom"] = (nc, (2,))
+        nc += 2
+    return layout, nc
+
+
+def build_tables(model, params, plan: RayPlan, grid: RayGrid, filled, sea, chunk=2048):
+    """Knot tables (R, M, nc), below (R, nc), above (R, nc) and the overflow flag."""
+    layout, nc = _layout(sea)
+    k, w, over = ray_nodes(model, params, plan, grid)
+    n = k.shape[0]
+    c = min(chunk, n)
+    nch = -(-n // c)
+    pad = nch * c - n
+    kp = jnp.concatenate([k, jnp.broadcast_to(k[:1], (pad, 2))]) if pad else k
+    wp = jnp.concatenate([w, jnp.zeros((pad,))]) if pad else w
+    e_lo = jax.lax.stop_gradient(grid.e_lo)
+    deltas = jax.lax.stop_gradient(grid.delta) * 2.0 ** jnp.arange(plan.tables, dtype=jnp.float64)
+    nb = model.n_bands
+    fill = (jnp.arange(nb) < filled).astype(jnp.float64)[:, None]
+
+    def factors(q):
+        # the filled bands go to the "hole" columns only: their full weight (which grows without
+        # bound on the compactified tail) never enters a sum that is later subtracted
+        e, _gn, f = point_factors(model, params, q, sea)
+        f = f.at[:, layout["one"][0]].multiply(1.0 - fill[:, 0])
+        extra = [fill]
+        if sea:
+            st, _ = layout["dom"]
+            dom = f[:, st:st + 2]
+            f = f.at[:, st:st + 2].multiply(1.0 - fill)
+            extra.append(fill * dom)
+        return e, jnp.concatenate([f] + extra, axis=-1)
+
+    def body(acc, i):
+        sl = lambda x: jax.lax.dynamic_slice_in_dim(x, i * c, c)
+        e, f = jax.vmap(factors)(sl(kp))
+        return _deposit3(acc, e, f, sl(wp), e_lo, deltas[0]), None
+
+    init = (jnp.zeros((plan.knots, nc)), jnp.zeros((nc,)), jnp.zeros((nc,)))
+    fine, _ = jax.lax.scan(jax.checkpoint(body), init, jnp.arange(nch))
+    # coarser tables from the finest: each knot is a point mass moved with the same
+    # moment-preserving weights (the composition preserves the moments up to cubic order)
+    e_knots = (e_lo + jnp.arange(plan.knots, dtype=jnp.float64) * deltas[0])[:, None]
+    accs = [fine]
+    for r in range(1, plan.tables):
+        t, b, a = _deposit3((jnp.zeros_like(fine[0]), jnp.zeros((nc,)), jnp.zeros((nc,))), e_knots,
+                            fine[0][:, None, :], jnp.ones((plan.knots,)), e_lo, deltas[r])
+        accs.append((t, b + fine[1], a + fine[2]))
+    tables = jnp.stack([a[0] for a in accs])
+    below = jnp.stack([a[1] for a in accs])
+    above = jnp.stack([a[2] for a in accs])
+    return tables, below, above, over, layout
+
+
+# --------------------------------------------------------------------------------------------
+# sums per condition
+# --------------------------------------------------------------------------------------------
+
+def _window(plan: RayPlan):
+    """Knots per condition: μ ± (W+2)k_BT at up to 2ρ knots per k_BT, plus the Lagrange margin."""
+    return window_knots(plan.rho)
+
+
+def window_knots(rho):
+    return int(2 * (W + 2) * 2 * rho) + 8
+
+
+def _cols(vals, layout, name):
+    st, shape = layout[name]
+    size = int(np.prod(shape)) if shape else 1
+    return vals[..., st:st + size].reshape(vals.shape[:-1] + shape)
+
+
+def _tapered(occ, E, mu, kt):
+    """Occupations that reach their limits (f0 → 1 or 0, −f0' and s → 0) smoothly between
+    W and W+2 k_BT from μ (C¹ smoothstep): the knot window can then move with μ without a jump,
+    so a sum is a smooth function of μ and T (bias ≤ e^{−W} ≈ 2e-9 of the integrand)."""
+    x = (E - mu[:, None]) / kt[:, None]
+    a = jnp.clip((jnp.abs(x) - W) / 2.0, 0.0, 1.0)
+    taper = 1.0 - a * a * (3.0 - 2.0 * a)
+    step = (x < 0).astype(E.dtype)
+    return {"f0": step + (occ["f0"] - step) * taper, "F": occ["F"] * taper, "s": occ["s"] * taper}
+
+
+def _sums_at(tabs, plan, grid, layout, mu, kt_occ, temp, tau_eval, tau_arr, omega, sea):
+    """Kernel sums for conditions (P,) at occupation temperatures ``kt_occ`` (P,)."""
+    tables, below, above = tabs
+    R, M = plan.tables, plan.knots
+    Q = _window(plan)
+    kt_s = jax.lax.stop_gradient(kt_occ)
+    delta0 = jax.lax.stop_gradient(grid.delta)
+    e_lo = jax.lax.stop_gradient(grid.e_lo)
+    r = jnp.clip(jnp.floor(jnp.log2(kt_s / (plan.rho * delta0))), 0, R - 1).astype(jnp.int32)
+    delta = delta0 * 2.0 ** r.astype(jnp.float64)
+    start = jnp.floor((jax.lax.stop_gradient(mu) - (W + 2) * kt_s - e_lo) / delta).astype(jnp.int32) - 2
+    j = start[:, None] + jnp.arange(Q, dtype=jnp.int32)[None, :]
+    fits = (start >= 1) & (start + Q <= M - 3)
+    jc = jnp.clip(j, 0, M - 1)
+    vals = tables[r[:, None], jc]                                              # (P, Q, nc)
+    E = e_lo + j.astype(jnp.float64) * delta[:, None]
+    occ = _tapered(_occupations(E, mu, kt_occ), E, mu, kt_occ)
+    out = _kernel_sums(vals, occ, E, mu, temp, tau_eval, tau_arr, omega, layout, sea)
+    # Fermi-sea kernels: knots below the window are fully occupied, above it empty
+    csum = jnp.concatenate([jnp.zeros((R, 1, tables.shape[-1])), jnp.cumsum(tables, axis=1)], axis=1)
+    pre = below[r] + csum[r, jnp.clip(start, 0, M)]                             # (P, nc) below window
+    post = above[r] + csum[r, M] - csum[r, jnp.clip(start + Q, 0, M)]           # (P, nc) above window
+    f0 = occ["f0"]
+    for key, name in (("ahe", "om"), ("scale_ahe", "abs_om")):
+        out[key] = out[key] + _cols(pre, layout, name)
+    # density = Σ_upper w f0 − Σ_filled w (1 − f0)
+    # the "one" and "dom" columns hold the bands empty at neutrality, the "hole" columns the
+    # filled ones: n = Σ_upper w f0 − Σ_filled w (1 − f0)
+    hole = _cols(vals, layout, "hole_one")
+    out["dos"] = out["dos"] + jnp.einsum("pq,pq->p", occ["F"], hole)
+    out["density"] = (jnp.einsum("pq,pq->p", f0, _cols(vals, layout, "one")) + _cols(pre, layout, "one")
+                      - jnp.einsum("pq,pq->p", 1.0 - f0, hole) - _cols(post, layout, "hole_one"))
+    if sea:
+        hole = _cols(vals, layout, "hole_dom")
+        out["dipole_sea"] = (jnp.einsum("pq,pqb->pb", f0, _cols(vals, layout, "dom")) + _cols(pre, layout, "dom")
+                             - jnp.einsum("pq,pqb->pb", 1.0 - f0, hole) - _cols(post, layout, "hole_dom"))
+    return out, fits
+
+
+def _bshape(v, like):
+    return v.reshape(v.shape + (1,) * (like.ndim - 1))
+
+
+def condition_sums(tabs, plan, grid, layout, mu, kt, temp, tau_eval, tau_arr, omega, sea):
+    """Sums for conditions (P,), with the T² extrapolation below ``plan.t_res`` (only when the
+    plan has cold conditions, ``plan.extrapolate``).  Returns ``(sums, extrapolation_error, fits)``."""
+    ktr = KB * plan.t_res
+    args = (tabs, plan, grid, layout, mu)
+    rest = (temp, tau_eval, tau_arr, omega, sea)
+    k0 = jnp.maximum(kt, ktr)
+    s0, f0 = _sums_at(*args, k0, *rest)
+    if not plan.extrapolate:
+        # every condition of a plan without cold ones is resolved (traced values colder than
+        # t_res would be evaluated at t_res: reported as overflow)
+        zero = jax.tree_util.tree_map(lambda x: jnp.zeros(x.shape), s0)
+        return s0, zero, f0 & (kt >= ktr)
+    k1, k2 = jnp.maximum(kt, 2 * ktr), jnp.maximum(kt, 4 * ktr)
+    s1, f1 = _sums_at(*args, k1, *rest)
+    s2, f2 = _sums_at(*args, k2, *rest)
+    cold = kt < ktr
+
+    def ext(a, b, ka, kb):
+        fac = (kt ** 2 - ka ** 2) / jnp.where(ka == kb, 1.0, ka ** 2 - kb ** 2)
+        return jax.tree_util.tree_map(lambda x, y: x + (x - y) * _bshape(fac, x).astype(x.dtype), a, b)
+
+    e1 = ext(s0, s1, k0, k1)
+    e2 = ext(s1, s2, k1, k2)
+    res = jax.tree_util.tree_map(lambda x, y: jnp.where(_bshape(cold, x), x, y), e1, s0)
+    err = jax.tree_util.tree_map(lambda x, y: jnp.where(_bshape(cold, x), jnp.abs(x - y), 0.0), e1, e2)
+    return res, err, f0 & jnp.where(cold, f1 & f2, True)
+
+
+def ray_moments(model, params, plan: RayPlan, grid: RayGrid, mu, kt, temp, tau_eval, tau_arr, omega,
+                filled, sea, condition_chunk=128):
+    """Kernel sums (natural units, degeneracy not applied) for P conditions from one ray set.
+    Returns ``(sums, extrapolation_error, overflow)``."""
+    if isinstance(model.domain, Lattice) or model.dim != 2:
+        raise ValueError("rays: the shared ray rule integrates 2D continuum (k·p) models")
+    tables, below, above, over, layout = build_tables(model, params, plan, grid, filled, sea)
+    tabs = (tables, below, above)
+    P = mu.shape[0]
+    cc = min(condition_chunk, P)
+    nch = -(-P // cc)
+    pad = nch * cc - P
+    padv = lambda x: jnp.concatenate([x, jnp.broadcast_to(x[-1:], (pad,) + x.shape[1:])]) if pad else x
+    args = (padv(mu), padv(kt), padv(temp), jax.tree_util.tree_map(padv, tau_arr))
+
+    def one(a):
+        m, k, t, ta = a
+        return condition_sums(tabs, plan, grid, layout, m, k, t, tau_eval, ta, omega, sea)
+
+    split = lambda x: x.reshape((nch, cc) + x.shape[1:])
+    out = jax.lax.map(one, jax.tree_util.tree_map(split, args))
+    out = jax.tree_util.tree_map(lambda x: x.reshape((nch * cc,) + x.shape[2:])[:P], out)
+    sums, err, fits = out
+    return sums, err, over | ~jnp.all(fits)
