@@ -54,11 +54,20 @@ def _err(msg: str) -> None:
     print(f"crosswind: error: {msg}", file=sys.stderr)
 
 
+def _say_if_outside(folder: Path, scn) -> None:
+    """First line of output when results go outside the scenario file's folder (e.g. ``../../x``)."""
+    home = Path(str(scn.path)).resolve().parent
+    where = folder.resolve()
+    if Path(str(scn.path)).is_file() and home != where and home not in where.parents:
+        print(f"crosswind: writing results to {where} (outside the scenario's folder {home})", flush=True)
+
+
 def _run(scn, output, progress: bool) -> int:
     from .files import OutputError
     from .report import write_report
     from .run import RunError, run_scenario
     folder = Path(output) if output else scn.output_folder
+    _say_if_outside(folder, scn)
     t0 = time.time()
     try:
         ds = run_scenario(scn, folder, progress=progress)

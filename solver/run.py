@@ -29,6 +29,8 @@ are variables ``error_<field>``.
 """
 from __future__ import annotations
 
+import contextlib
+import fcntl
 import functools
 import hashlib
 import itertools
@@ -121,13 +123,19 @@ def fingerprint(scn: Scenario) -> str:
     return _sha(json.dumps(fingerprint_parts(scn), sort_keys=True).encode())
 
 
+def refuse_foreign(folder: Path) -> None:
+    """A folder without ``run.json`` must be empty (apart from a run's lock file): results never
+    go into a folder of other files."""
+    if not (folder / "run.json").exists() and any(p.name != LOCK_NAME for p in folder.iterdir()):
+        raise RunError(f"{folder} exists and is not empty; choose another --output folder")
+
+
 def check_manifest(folder: Path, fp: str, parts: dict) -> None:
     """Refuse a folder whose ``run.json`` was written from other inputs, naming what changed;
     refuse a non-empty folder without one."""
     manifest = folder / "run.json"
     if not manifest.exists():
-        if any(folder.iterdir()):
-            raise RunError(f"{folder} exists and is not empty; choose another --output folder")
+        refuse_foreign(folder)
         return
     try:
         old = json.loads(manifest.read_text(encoding="utf-8"))
@@ -332,12 +340,42 @@ def check_finite_batch(scn: Scenario, b: int, values: dict, res: dict) -> None:
                            "parameters at that point (e.g. a power-law exponent that overflows tau).")
 
 
+LOCK_NAME = ".crosswind.lock"
+
+
+@contextlib.contextmanager
+def folder_lock(folder: Path):
+    """Hold an exclusive ``flock`` on ``<folder>/.crosswind.lock`` (which records the owner's pid)
+    for the duration of a run; a second writer is refused with a :class:`RunError` naming it."""
+    path = folder / LOCK_NAME
+    fd = os.open(path, os.O_RDWR | os.O_CREAT, 0o644)
+    try:
+        try:
+            fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
+        except BlockingIOError:
+            owner = os.pread(fd, 32, 0).decode(errors="replace").strip() or "?"
+            raise RunError(f"{folder} is being written by another crosswind run (pid {owner}); wait for it to "
+                           "finish (then rerun to resume) or choose another --output folder") from None
+        os.ftruncate(fd, 0)
+        os.pwrite(fd, f"{os.getpid()}\n".encode(), 0)
+        yield
+    finally:
+        os.close(fd)          # releases the lock
+
+
 def run_scenario(scn: Scenario, output: Path | str | None = None, *, progress: bool = True,
                  after_batch: Callable[[int], None] | None = None):
     """Run (or resume) the sweep of ``scn``; returns the xarray Dataset (also written to disk).
-    ``after_batch(i)`` is called after batch ``i`` is checkpointed (for tests and monitoring)."""
+    ``after_batch(i)`` is called after batch ``i`` is checkpointed (for tests and monitoring).
+    The output folder is locked for the run (:func:`folder_lock`)."""
     folder = Path(output) if output is not None else scn.output_folder
     prepare_folder(folder)
+    refuse_foreign(folder)              # before the lock file: a foreign folder is left untouched
+    with folder_lock(folder):
+        return _run_locked(scn, folder, progress, after_batch)
+
+
+def _run_locked(scn: Scenario, folder: Path, progress: bool, after_batch):
     parts = fingerprint_parts(scn)
     fp = _sha(json.dumps(parts, sort_keys=True).encode())
     check_manifest(folder, fp, parts)

@@ -2,6 +2,7 @@
 NaN/zero results without complaint or ended in a raw traceback; each now gives a clear error
 naming the argument (or file entry) and the fix.  Error paths only: nothing here integrates."""
 import math
+import os
 
 import jax.numpy as jnp
 import numpy as np
@@ -548,7 +549,7 @@ def test_full_disk_during_a_run_exits_2_with_one_line_and_no_partial_file(tmp_pa
     assert main(["run", str(_scenario_file(tmp_path)), "--output", str(out), "--no-progress"]) == 2
     lines = capsys.readouterr().err.strip().splitlines()
     assert len(lines) == 1 and lines[0].startswith(f"crosswind: error: cannot write {out}/run.json (No space left")
-    assert sorted(p.name for p in out.iterdir()) == []
+    assert sorted(p.name for p in out.iterdir()) == [".crosswind.lock"]     # the run's lock, nothing else
 
 
 def test_summary_warns_first_when_the_dataset_holds_non_finite_values():
@@ -599,3 +600,59 @@ def test_lattice_node_quadrature_at_zero_temperature_is_right_or_says_so():
     r = response(m, mu=0.3, temperature=0.0, tau=100.0, resolution=2)
     ladder = 3.139053e-3      # engine="ladder" (automatic resolution), error estimate 1e-7 S
     assert abs(float(r.sigma[0, 0].real) - ladder) <= max(float(r.error["sigma"][0, 0]), 1e-2 * ladder)
+
+
+# ------------------------------------------------------------------ concurrent writers -------
+def test_second_writer_into_a_locked_folder_is_refused(tmp_path, monkeypatch):
+    """Two runs into one fresh folder were guarded only by timing; the second is now refused with
+    the owner's pid, and the folder is usable again once the first ends."""
+    calls = []
+    monkeypatch.setattr(run_mod, "compute_batch", _fake_batch(calls))
+    scn = parse_scenario(_scenario_file(tmp_path).read_text(encoding="utf-8"), source="s.toml", base=tmp_path)
+    out = tmp_path / "out"
+    seen = []
+
+    def second_writer(b):
+        if b == 0:
+            with pytest.raises(RunError, match=rf"{out} is being written by another crosswind run \(pid "
+                                               rf"{os.getpid()}\); wait for it to finish"):
+                run_scenario(scn, out, progress=False)
+            seen.append(b)
+    run_scenario(scn, out, progress=False, after_batch=second_writer)
+    assert seen == [0] and calls == [5.0, 20.0]
+    run_scenario(scn, out, progress=False)          # lock released: resumes, nothing recomputed
+    assert calls == [5.0, 20.0]
+
+
+def test_output_outside_the_scenario_folder_is_announced_first(tmp_path, monkeypatch, capsys):
+    from crosswind.solver.cli import main
+
+    def stop(*args, **kwargs):
+        raise RunError("stopped by the test")
+    monkeypatch.setattr(run_mod, "run_scenario", stop)
+    home = tmp_path / "a" / "b"
+    home.mkdir(parents=True)
+    p = home / "s.toml"
+    p.write_text(SCN.replace("[output]\n", '[output]\nfolder = "../../x"\n'), encoding="utf-8")
+    assert main(["run", str(p), "--no-progress"]) == 2
+    first = capsys.readouterr().out.splitlines()[0]
+    assert first == f"crosswind: writing results to {tmp_path / 'x'} (outside the scenario's folder {home})"
+    p.write_text(SCN, encoding="utf-8")                  # default folder "results" next to it: no line
+    assert main(["run", str(p), "--no-progress"]) == 2
+    assert capsys.readouterr().out == ""
+
+
+def test_existing_folder_that_is_not_a_results_folder_is_refused_unless_empty(tmp_path, monkeypatch):
+    calls = []
+    monkeypatch.setattr(run_mod, "compute_batch", _fake_batch(calls))
+    scn = parse_scenario(_scenario_file(tmp_path).read_text(encoding="utf-8"), source="s.toml", base=tmp_path)
+    thesis = tmp_path / "thesis"
+    thesis.mkdir()
+    (thesis / "chapter1.tex").write_text("precious", encoding="utf-8")
+    with pytest.raises(RunError, match=rf"{thesis} exists and is not empty; choose another --output folder"):
+        run_scenario(scn, thesis, progress=False)
+    assert [p.name for p in thesis.iterdir()] == ["chapter1.tex"] and calls == []
+    empty = tmp_path / "empty"
+    empty.mkdir()
+    run_scenario(scn, empty, progress=False)
+    assert calls == [5.0, 20.0]
