@@ -540,6 +540,8 @@ def response(model: BandModel, mu, temperature, tau, frequency=0.0, *, rtol: flo
     tauf = jax.tree_util.tree_map(flat, tau_arr)
     kt = thermal_energy(Tf)
     omega = jnp.asarray(2 * jnp.pi * frequency * FS, dtype=jnp.float64)
+    # a concrete static field takes the real-arithmetic path of the energy-resolved engines
+    omega_sums = None if (not _is_traced(frequency) and np.all(np.asarray(frequency) == 0)) else omega
     kw = dict(tau_eval=type(scat).evaluate, filled=neutral_filling(model), sea=dipole_route == "both")
     traced = _is_traced(model.params, muf, Tf, tauf, omega)
     if resolution is None and traced:
@@ -550,10 +552,10 @@ def response(model: BandModel, mu, temperature, tau, frequency=0.0, *, rtol: flo
         tau_max = float(np.max(np.abs(np.asarray(jax.vmap(lambda a: type(scat).evaluate(
             a, jnp.zeros((1, 1)), jnp.zeros((1, 1)))[0])(jax.tree_util.tree_map(lambda x: x[:, None, None], tauf))))))
     if engine == "rays":
-        fine, err, bad, info = _rays_path(model, muf, kt, Tf, tauf, omega, kw, rtol, resolution,
+        fine, err, bad, info = _rays_path(model, muf, kt, Tf, tauf, omega_sums, kw, rtol, resolution,
                                           max_level, intrinsic, plan, traced, tau_max, estimate_error)
     elif engine == "ladder":
-        fine, err, bad, info = _ladder_path(model, muf, kt, Tf, tauf, omega, kw, rtol, resolution,
+        fine, err, bad, info = _ladder_path(model, muf, kt, Tf, tauf, omega_sums, kw, rtol, resolution,
                                             max_level, intrinsic, plan, traced, tau_max)
     else:
         fine, err, bad, info = _mesh_path(model, muf, kt, Tf, tauf, omega, dict(kw, chunk=chunk), rtol,

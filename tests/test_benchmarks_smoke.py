@@ -1,5 +1,5 @@
 """Benchmarks must not rot: the quick integration benchmark runs end to end (slow: it compiles
-several ladder and mesh programs)."""
+several ladder and mesh programs); the continuum part runs on a small case in the fast suite."""
 import importlib.util
 import pathlib
 
@@ -16,4 +16,16 @@ def test_integration_benchmark_quick_run():
                    t_range=(150.0, 300.0))
     names = [r[0] for r in rows]
     assert names == ["sweep ladder", "sweep mesh", "eigh", "memory"]
+    assert all(r[2] > 0 for r in rows)
+
+
+def test_continuum_integration_benchmark_quick_run():
+    """The continuum part on a single tilted Dirac cone and 4 × 2 conditions (fast)."""
+    path = pathlib.Path(__file__).resolve().parents[1] / "benchmarks" / "bench_integration.py"
+    spec = importlib.util.spec_from_file_location("bench_integration", path)
+    mod = importlib.util.module_from_spec(spec)
+    spec.loader.exec_module(mod)
+    rows = mod.run_continuum(n_mu=4, n_t=2, model=dict(name="massive-dirac", params=dict(mass=0.1, tilt=5e4)),
+                             mu_range=(0.14, 0.16), t_range=(10.0, 20.0))
+    assert [r[0] for r in rows] == ["sweep rays", "sweep mesh", "memory"]
     assert all(r[2] > 0 for r in rows)

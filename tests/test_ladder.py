@@ -84,7 +84,9 @@ def test_new_conditions_reuse_the_compiled_ladder(haldane_ladder):
 
 def test_response_engine_option_and_k_point_count():
     model = build("haldane")
-    assert dict(response(build("massive-dirac"), mu=0.15, temperature=10.0, tau=100.0).resolution)["engine"] == "mesh"
+    dirac = build("massive-dirac")
+    assert dict(response(dirac, mu=0.15, temperature=10.0, tau=100.0).resolution)["engine"] == "rays"
+    assert dict(response(dirac, mu=0.15, temperature=10.0, tau=100.0, resolution=1).resolution)["engine"] == "mesh"
     r = response(model, mu=1.2, temperature=300.0, tau=TAU, engine="ladder", resolution=0)
     info = dict(r.resolution)
     assert info["engine"] == "ladder" and info["attempts"] >= 1

@@ -143,3 +143,16 @@ def test_refusals_name_the_fix():
                                      engine="rays").dipole[0])(0.15)
     with pytest.raises(ValueError, match="'rays'"):
         response(m, mu=0.15, temperature=10.0, tau=100.0, engine="triangles")
+
+
+def test_static_field_real_path_equals_the_general_one():
+    """frequency = 0 takes the real-arithmetic knot sums; a negligible frequency (ωτ ~ 1e-23)
+    takes the complex ones: every field agrees."""
+    m = build("massive-dirac", **TILTED)
+    kw = {"mu": jnp.array([0.14, 0.15]), "temperature": jnp.array([5.0, 20.0]),
+          "tau": ConstantTau(100.0), "resolution": 1}
+    a = response(m, frequency=0.0, engine="rays", **kw)
+    b = response(m, frequency=1e-6, engine="rays", **kw)
+    for name in ("sigma", "dipole", "chi", "chi_dc", "seebeck", "sigma_lorentz"):
+        x, y = np.asarray(getattr(a, name)), np.asarray(getattr(b, name))
+        assert np.allclose(x, y, rtol=1e-12, atol=1e-14 * np.max(np.abs(y))), name
