@@ -6,8 +6,9 @@ fit) in a Hall bar of our own invention on a 285 nm SiO2 back gate.  Strain of 1
 crystal x axis lowers the C3 symmetry and gives a Berry-curvature dipole along x; the current runs
 along x, where the nonlinear Hall voltage is largest.  Scattering: impurities plus phonons
 (Matthiessen's rule), so the temperature sweep also changes τ and feeds the scaling plot.  The
-sweep (12 gate voltages × 3 temperatures) and the fixed mesh level 1 keep the run to about a
-minute on two cores.
+sweep (12 gate voltages × 3 temperatures) runs with automatic resolution (the shared-ray engine
+of docs/theory.md §14.3: one ray set per batch, converged to rtol 1e-3) and μ from the gate
+density on the fixed mesh level 1.
 """
 from .files import atomic_text, make_folder
 
@@ -44,7 +45,7 @@ tau_phonon_fs = 100.0      # phonon-limited tau at the reference temperature
 reference_temperature_K = 300.0
 
 [numerics]
-resolution = 1             # fixed k-mesh level (fast); "auto" refines to rtol
+resolution = "auto"          # refine to rtol (shared rays for this k·p model); or a fixed level
 density_resolution = 1
 
 [output]
