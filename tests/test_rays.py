@@ -156,3 +156,16 @@ def test_static_field_real_path_equals_the_general_one():
     for name in ("sigma", "dipole", "chi", "chi_dc", "seebeck", "sigma_lorentz"):
         x, y = np.asarray(getattr(a, name)), np.asarray(getattr(b, name))
         assert np.allclose(x, y, rtol=1e-12, atol=1e-14 * np.max(np.abs(y))), name
+
+
+@pytest.mark.parametrize("T", [0.0, 1.0, 10.0])
+def test_rashba_gas_density_counts_both_spin_bands_from_the_empty_band(T):
+    """Parabolic band with Rashba splitting, μ > 0: E± = ħ²k²/2m ± αk gives
+    n = (m/πħ²)(μ + mα²/ħ²) (both bands; the density of states is constant above the band crossing,
+    so the Sommerfeld correction vanishes).  Neutrality is the empty band: before the model said so,
+    the lower band's empty states were counted as holes and the density was −1.8e25 m⁻²."""
+    m = build("parabolic", effective_mass=0.5, rashba=0.3)
+    r = response(m, mu=0.02, temperature=T, tau=100.0)
+    ms, a, mu = 0.5 * C.m_e, 0.3 * C.e * 1e-10, 0.02 * C.e
+    exact = ms / (np.pi * C.hbar ** 2) * (mu + ms * a ** 2 / C.hbar ** 2)
+    assert abs(float(r.density) / exact - 1) < 1e-7

@@ -58,4 +58,8 @@ def build_parabolic(p, s) -> BandModel:
                          degeneracy=2.0, blocks=1, block_size=1, description="parabolic band")
     return BandModel(name="parabolic", dim=2, hamiltonian=H_SPIN, params=p, spec=SPEC, domain=dom,
                      degeneracy=1.0, blocks=1, block_size=2, dvector=dvector_spin,
+                     # both spin bands are conduction bands: neutrality is the empty band (the
+                     # two-band default, the lower band filled, would count the unbounded empty
+                     # states of the lower band as holes)
+                     static=(("neutral_filling", 0),),
                      description="parabolic band with spin")
