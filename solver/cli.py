@@ -86,7 +86,24 @@ def _run(scn, output, progress: bool) -> int:
         return 130
     print(f"crosswind: wrote {folder}/results.nc, results.csv, summary.md{extra}"
           + (" and figures" if scn.figures else "") + f" in {time.time() - t0:.1f} s")
+    line = _headline_line(folder / "summary.md")
+    if line:
+        print(f"crosswind: {line}")
     return 0
+
+
+def _headline_line(path: Path) -> str:
+    """The first sentence of the summary's headline (the 2ω result, or why it is zero), plain text."""
+    try:
+        text = path.read_text(encoding="utf-8")
+        para = text.split("## Where the second-harmonic signal peaks", 1)[1].strip().split("\n\n")[0]
+    except (OSError, IndexError):
+        return ""
+    para = para.replace("**", "")
+    if para.startswith("The transverse 2ω voltage is largest at"):
+        return "2ω transverse signal " + para.split(": ", 1)[1].split(" for a drive")[0] + " at " \
+            + para.split(" is largest at ", 1)[1].split(": ", 1)[0]
+    return para.split(". ")[0] + "."
 
 
 def cmd_fit(args) -> int:

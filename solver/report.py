@@ -66,6 +66,179 @@ def _model_at(scn, ds, idx):
     return scn.build_model(strain)
 
 
+# ----------------------------------------------------------------------------- resolution -----
+# A number is reported as a result only when it is resolved: |x| > max(its integration-error
+# estimate, ZERO_FLOOR × the scale of the quantities it competes with), and no symmetry of the
+# model forbids it.  Otherwise it reads "zero within error (|x| < bound)" and is never ranked,
+# called dominant or used for a direction.
+ZERO_FLOOR = 1e-6
+
+SYMMETRY_SOURCES = ("Sodemann & Fu, PRL 115, 216806 (2015); Gao, Yang & Niu, PRL 112, 166601 (2014); "
+                    "docs/theory.md §5.6")
+
+
+def zero_bound(err, scale) -> float:
+    """The bound below which a value is zero within error: max(error estimate, ZERO_FLOOR·scale);
+    a NaN error (no coarser level compared) counts as unavailable."""
+    err = float(np.nan_to_num(np.max(np.abs(err)), nan=0.0)) if np.size(err) else 0.0
+    return max(err, ZERO_FLOOR * abs(float(scale)))
+
+
+def is_resolved(x, err, scale) -> bool:
+    return bool(np.isfinite(x)) and abs(x) > zero_bound(err, scale)
+
+
+def model_symmetries(model, n=48, seed=0) -> dict:
+    """Which of time reversal T (ε_n(k) = ε_n(−k), Ω → −Ω), C2 rotation about z (2D inversion:
+    ε and Ω even in k) and C3 rotation about z the model has, checked on its band energies and
+    Berry curvature at ``n`` random wavevectors (about the valley centre of a k·p model, over the
+    zone of a lattice).  Energy-smoothed sums Σ_n g_j(ε_n) and Σ_n g_j(ε_n) Ω_n are compared so
+    that degenerate bands and valley blocks need no matching."""
+    from crosswind.models import band_geometry
+    from crosswind.models.domain import Lattice
+    if model.dim != 2:
+        return {"T": False, "C2": False, "C3": False}
+    rng = np.random.default_rng(seed)
+    if isinstance(model.domain, Lattice):
+        b = np.asarray(model.reciprocal_vectors())[:2, :2]
+        k = rng.uniform(-0.5, 0.5, (n, 2)) @ b
+        c = np.zeros(2)
+        kscale = float(np.linalg.norm(b[0]))
+    else:
+        dom = model.domain
+        kscale = float(dom.scale_for(model.params) if hasattr(dom, "scale_for") else dom.scale)
+        c = np.asarray(dom.centers[0], dtype=float)
+        r, ph = kscale * rng.uniform(0.05, 3.0, n), rng.uniform(0, 2 * np.pi, n)
+        k = c + np.stack([r * np.cos(ph), r * np.sin(ph)], -1)
+    q = k - c
+    r3 = np.array([[-0.5, -np.sqrt(3) / 2], [np.sqrt(3) / 2, -0.5]])
+    g = band_geometry(model, np.concatenate([k, c - q, c + q @ r3.T]))
+    e = np.asarray(g.energies).reshape(3, n, -1)
+    om = np.asarray(g.berry_curvature).reshape(3, n, -1)
+    lo, hi = np.percentile(e, 2), np.percentile(e, 98)
+    width = (hi - lo) / 8 or 1.0
+    w = np.exp(-((e[..., None] - np.linspace(lo, hi, 9)) / width) ** 2)
+    E, W = w.sum(2), (w * om[..., None]).sum(2)
+    tE = 1e-7 * float(np.max(np.abs(E)))
+    tW = 1e-7 * max(float(np.max(np.abs(W))), 1.0 / kscale ** 2)
+    same = lambda a, b, t: bool(np.max(np.abs(a - b)) <= t)
+    even_e = same(E[0], E[1], tE)
+    return {"T": even_e and same(W[0], -W[1], tW), "C2": even_e and same(W[0], W[1], tW),
+            "C3": same(E[0], E[2], tE) and same(W[0], W[2], tW)}
+
+
+def forbidden_parts(sym: dict) -> dict:
+    """The χ parts a symmetry forces to zero, each with the symmetry's name (docs/theory.md §5.6)."""
+    out = {}
+    if sym.get("C2"):
+        return {p: "C2 rotation about z (inversion of a 2D sheet)" for p in PARTS}
+    if sym.get("C3"):
+        out["dipole"] = "C3 rotation (the dipole is an in-plane vector)"
+    if sym.get("T"):
+        out["drude"] = out["intrinsic"] = "time reversal"
+    return out
+
+
+def _symmetry_names(model, sym) -> str:
+    names = []
+    if sym.get("T"):
+        names.append("time reversal" + ("" if model.domain.periodic else " (its valleys form a time-reversed pair)"))
+    if sym.get("C3"):
+        names.append("C3 rotation about z (as in an unstrained honeycomb or TMD lattice)")
+    if sym.get("C2"):
+        names.append("C2 rotation about z (inversion of the sheet)")
+    return " and ".join(names)
+
+
+def _remedies(model, sym) -> str:
+    params = set(getattr(model, "params", {}) or {})
+    tips = []
+    if sym.get("C2"):
+        tips.append("break inversion: a displacement field (interlayer asymmetry)"
+                    + (" — raise `asymmetry`" if "asymmetry" in params else "")
+                    + " or a sublattice mass" + (" — `staggered`/`mass`/`gap`" if params & {"staggered", "mass", "gap"} else ""))
+    if sym.get("C3") or sym.get("C2"):
+        if {"strain_xx", "strain_yy", "strain_xy"} & params:
+            tips.append("break C3: uniaxial strain along a named crystal axis, e.g. `[material.strain] "
+                        "magnitude = 0.01, angle_deg = 0` (strain along x gives a dipole along x; drive the "
+                        "current along x)")
+        else:
+            tips.append("break C3: uniaxial strain along a crystal axis (this model has no strain "
+                        "parameters; use one that does, e.g. `tmd` or `honeycomb`)")
+        tilt = sorted(p for p in params if p.startswith("tilt"))
+        if tilt:
+            tips.append("or tilt the cones (" + ", ".join(f"`{t}`" for t in tilt) + ")")
+    if sym.get("T"):
+        tips.append("break time reversal (magnetic order or a field) to allow the nonlinear Drude (τ²) "
+                    "and intrinsic (τ⁰) terms")
+    return "; ".join(tips)
+
+
+def _rotation_abs(angle_deg):
+    from .device import rotation
+    return np.abs(np.asarray(rotation(np.asarray(angle_deg, dtype=float))))
+
+
+def v2w_error(sigma, err_sigma, err_chi, bar, angle_deg, amp):
+    """Linear error bound (V) of a transverse second-order voltage amplitude ``amp`` from the error
+    estimates of χ (crystal frame, rotated with |R|) and σ: W·Σ|ρ'_ya| err'_abc |E_b||E_c| +
+    3|amp|·max err_σ / min(|σ'_xx|, |σ'_yy|).  NaN errors give NaN (unavailable)."""
+    from .device import rotate_sigma
+    sigma = np.asarray(sigma, dtype=complex)
+    sp = np.asarray(rotate_sigma(sigma, np.asarray(angle_deg, dtype=float)))
+    rho = np.linalg.inv(sp)
+    W = bar.width_um * 1e-6
+    E = np.abs(rho[..., :, 0]) * bar.current_uA * 1e-6 / W
+    R = _rotation_abs(angle_deg)
+    errp = np.einsum("...ai,...bj,...ck,...ijk->...abc", R, R, R,
+                     np.broadcast_to(np.asarray(err_chi, dtype=float), R.shape[:-2] + (2, 2, 2)))
+    dv = W * np.einsum("...a,...abc,...b,...c->...", np.abs(rho[..., 1, :]), errp, E, E)
+    ssize = np.minimum(np.abs(sp[..., 0, 0]), np.abs(sp[..., 1, 1]))
+    es = np.max(np.asarray(err_sigma, dtype=float), axis=(-2, -1))
+    return dv + 3 * np.abs(amp) * es / ssize
+
+
+def _grid_v2w_error(ds, scn, field="chi", amp_name="v2w_y_amplitude"):
+    """Error bound of ``amp_name`` at every grid point (same dims as the amplitude)."""
+    from .device import HallBar
+    dev = scn.device
+    bar = HallBar(dev.width_um, dev.length_um, dev.current_uA, dev.frequency_Hz)
+    amp = ds[amp_name]
+    ang = ds["current_angle"].values
+    sig = ds["sigma"].values + 1j * ds["sigma_imag"].values if "sigma_imag" in ds else ds["sigma"].values
+    # crystal-frame fields lack the current_angle dim: add it last, then move the tensor indices
+    sig = np.moveaxis(np.broadcast_to(sig[..., None], sig.shape + (len(ang),)), -1, -3)
+    ec = ds[f"error_{field}"].values
+    ec = np.moveaxis(np.broadcast_to(ec[..., None], ec.shape + (len(ang),)), -1, -4)
+    es = ds["error_sigma"].values
+    es = np.moveaxis(np.broadcast_to(es[..., None], es.shape + (len(ang),)), -1, -3)
+    return v2w_error(sig, es, ec, bar, np.broadcast_to(ang, amp.shape), amp.values)
+
+
+def resolution_info(ds, scn, idx, model=None) -> dict:
+    """Everything the summary needs to decide what is resolved (see the rule above ZERO_FLOOR)."""
+    model = model if model is not None else _model_at(scn, ds, idx)
+    sym = model_symmetries(model)
+    forb = forbidden_parts(sym)
+    amp = ds["v2w_y_amplitude"].values
+    err_amp = _grid_v2w_error(ds, scn)
+    all_forbidden = all(p in forb for p in PARTS)
+    bound = np.maximum(np.nan_to_num(err_amp, nan=0.0), ZERO_FLOOR * np.nanmax(amp))
+    resolved = (amp > bound) & (not all_forbidden)
+    return {"symmetries": sym, "forbidden": forb, "all_forbidden": all_forbidden, "amp_error": err_amp,
+            "amp_resolved": resolved, "any_resolved": bool(np.any(resolved)), "model": model,
+            "amp_bound": bound}
+
+
+def fmt_volts(v) -> str:
+    """A voltage with an engineering prefix (pV … V)."""
+    a = abs(v)
+    for f, u in ((1.0, "V"), (1e-3, "mV"), (1e-6, "μV"), (1e-9, "nV"), (1e-12, "pV")):
+        if a >= f:
+            return f"{v / f:.4g} {u}"
+    return f"{v:.2g} V" if a > 0 else "0 V"
+
+
 # ----------------------------------------------------------------------------- figures --------
 def _kpath(model, mu):
     from crosswind.models.domain import Lattice
@@ -138,10 +311,10 @@ def plot_bands(model, mu, path: Path):
     ax.axhline(mu, color="k", lw=0.6, ls="--", label=f"μ = {mu:.4g} eV (peak point)")
     ax.set_xticks(ticks)
     ax.set_xticklabels(labels)
-    ax.set_ylabel("energy (eV)")
+    ax.set_ylabel("energy [eV]")
     ax.set_title(f"{model.name}: bands coloured by Berry curvature")
     ax.legend(loc="best", fontsize=8)
-    cb = fig.colorbar(sc, ax=ax, label="Ω (Å²)", ticks=[-vmax, -vmax * 1e-2, 0.0, vmax * 1e-2, vmax])
+    cb = fig.colorbar(sc, ax=ax, label="Berry curvature Ω [Å²] (symmetric-log scale)", ticks=[-vmax, -vmax * 1e-2, 0.0, vmax * 1e-2, vmax])
     cb.ax.set_yticklabels([f"{t:.2g}" for t in (-vmax, -vmax * 1e-2, 0.0, vmax * 1e-2, vmax)])
     from .response import neutral_filling
     lo, hi = mu - 0.5 * max(abs(mu), 0.2), mu + 0.5 * max(abs(mu), 0.2)
@@ -185,10 +358,10 @@ def plot_curvature_map(model, mu, temperature, path: Path, n=161):
         if en.min() < mu < en.max():
             ax.contour(KX, KY, en, levels=[mu], colors="k", linewidths=0.8)
     ax.set_aspect("equal")
-    ax.set_xlabel("k_x (1/Å)")
-    ax.set_ylabel("k_y (1/Å)")
+    ax.set_xlabel("$k_x$ [1/Å]")
+    ax.set_ylabel("$k_y$ [1/Å]")
     ax.set_title(f"curvature of added carriers, μ = {mu:.4g} eV, T = {temperature:g} K", fontsize=9)
-    fig.colorbar(im, ax=ax, label="Σ_n (f − f_neutral) Ω_n (Å²)")
+    fig.colorbar(im, ax=ax, label="$\\sum_n (f - f_{\\rm neutral})\\,\\Omega_n$ [Å²]")
     fig.tight_layout()
     atomic_figure(fig, path, dpi=120)
     plt.close(fig)
@@ -204,11 +377,44 @@ def _bar_parts(ds, idx):
     return out
 
 
-def plot_responses(ds, idx, path: Path):
+PREFIXES = ((1.0, ""), (1e-3, "m"), (1e-6, "μ"), (1e-9, "n"), (1e-12, "p"), (1e-15, "f"))
+
+
+def eng_scale(values, unit: str):
+    """(factor, label unit) with an engineering prefix chosen from the largest |value|: plot
+    ``values / factor`` against ``label unit`` (2.3e-8 V → nV); below femto a power of ten
+    (4e-17 A·m/V² → 10⁻¹⁸ A·m/V²)."""
+    a = float(np.nanmax(np.abs(np.asarray(values, dtype=float)))) if np.size(values) else 0.0
+    if a == 0 or not np.isfinite(a):
+        return 1.0, unit
+    for f, pre in PREFIXES:
+        if a >= f:
+            return f, pre + unit
+    e = 3 * int(np.floor(np.log10(a) / 3))
+    return 10.0 ** e, f"$10^{{{e}}}$ {unit}"
+
+
+def axis_label(ds, name) -> str:
+    """"gate voltage [V]" from the coordinate's long_name and units."""
+    unit = ds[name].attrs.get("units", "")
+    unit = {"deg": "°", "1": ""}.get(unit, unit)
+    text = ds[name].attrs.get("long_name", name.replace("_", " "))
+    return f"{text} [{unit}]" if unit else text
+
+
+BAR_FRAME_NOTE = "primes: bar frame (x′ along the current, y′ across the bar)"
+
+
+def plot_responses(ds, idx, path: Path, info=None):
+    """2ω amplitude, σ'_xx and χ'_yxx against every sweep axis; points whose amplitude is zero
+    within error are drawn hollow over a grey band up to the error bound."""
     plt = _plt()
     axes = [d for d in grid_axes(ds) if ds.sizes[d] > 1 and d != "current_angle"]
     if not axes:
         axes = [grid_axes(ds)[-2]]
+    fa, ua = eng_scale(ds["v2w_y_amplitude"].values, "V")
+    fs, us = eng_scale(ds["sigma_bar"].values[..., 0, 0], "S")
+    fc, uc = eng_scale(ds["chi_bar"].values[..., 1, 0, 0], "A·m/V²")
     fig, axs = plt.subplots(3, len(axes), figsize=(4.2 * len(axes), 8), squeeze=False)
     for col, name in enumerate(axes):
         others = [d for d in grid_axes(ds) if d != name and ds.sizes[d] > 1 and d != "current_angle"]
@@ -220,21 +426,39 @@ def plot_responses(ds, idx, path: Path):
             label = None
             if line_axis is not None:
                 sel[line_axis] = li
-                label = f"{line_axis} = {ds[line_axis].values[li]:g} {ds[line_axis].attrs.get('units', '')}"
-            amp = ds["v2w_y_amplitude"].isel(sel).values * 1e9
-            sxx = ds["sigma_bar"].isel(sel).values[..., 0, 0] / E2H
-            chi = ds["chi_bar"].isel(sel).values[..., 1, 0, 0]
-            axs[0, col].plot(x, amp, "o-", ms=3, label=label)
+                unit = {"deg": "°", "1": ""}.get(ds[line_axis].attrs.get("units", ""), ds[line_axis].attrs.get("units", ""))
+                label = f"{ds[line_axis].attrs.get('long_name', line_axis)} = {ds[line_axis].values[li]:g} {unit}".rstrip()
+            amp = ds["v2w_y_amplitude"].isel(sel).values / fa
+            sxx = ds["sigma_bar"].isel(sel).values[..., 0, 0] / fs
+            chi = ds["chi_bar"].isel(sel).values[..., 1, 0, 0] / fc
+            line, = axs[0, col].plot(x, amp, "-", lw=1, label=label)
+            if info is not None:
+                ok = np.asarray(info["amp_resolved"][tuple(sel.get(d, slice(None)) for d in ds["v2w_y_amplitude"].dims)])
+                bd = np.asarray(info["amp_bound"][tuple(sel.get(d, slice(None)) for d in ds["v2w_y_amplitude"].dims)]) / fa
+                axs[0, col].plot(x[ok], amp[ok], "o", ms=3, color=line.get_color())
+                axs[0, col].plot(x[~ok], amp[~ok], "o", ms=4, mfc="none", color=line.get_color())
+                axs[0, col].fill_between(x, 0, bd, color="0.85", lw=0, zorder=0)
+            else:
+                axs[0, col].plot(x, amp, "o", ms=3, color=line.get_color())
             axs[1, col].plot(x, sxx, "o-", ms=3, label=label)
             axs[2, col].plot(x, chi, "o-", ms=3, label=label)
-        unit = ds[name].attrs.get("units", "")
-        axs[2, col].set_xlabel(f"{name} ({unit})")
-        axs[0, col].set_ylabel("|V_y^2ω| amplitude (nV)")
-        axs[1, col].set_ylabel("σ'_xx (e²/h)")
-        axs[2, col].set_ylabel("χ'_yxx (A m/V²)")
+        axs[2, col].set_xlabel(axis_label(ds, name))
+        axs[0, col].set_ylabel(f"$|V_{{y'}}^{{2\\omega}}|$ amplitude [{ua}]")
+        axs[1, col].set_ylabel(f"$\\sigma'_{{xx}}$ [{us}]")
+        axs[2, col].set_ylabel(f"$\\chi'_{{yxx}}$ [{uc}]")
+        for r in range(3):
+            axs[r, col].ticklabel_format(axis="y", style="plain", useOffset=False)
+        if info is not None and info["all_forbidden"]:
+            axs[0, col].set_title("vanishes by symmetry: values are integration residue", fontsize=8)
+        elif info is not None and not info["any_resolved"]:
+            axs[0, col].set_title("zero within error everywhere (grey: error bound)", fontsize=8)
         if line_axis is not None:
             axs[0, col].legend(fontsize=7)
-    fig.suptitle("responses at the peak conditions (other axes fixed there)", fontsize=10)
+    cap = "responses at the peak conditions (other axes fixed there); " + BAR_FRAME_NOTE
+    if info is not None:
+        cap += "\nhollow points and grey band: zero within error (|V| below its error bound)"
+    import textwrap
+    fig.suptitle("\n".join(textwrap.fill(c, 58 * len(axes)) for c in cap.split("\n")), fontsize=9)
     fig.tight_layout()
     atomic_figure(fig, path, dpi=110)
     plt.close(fig)
@@ -252,16 +476,31 @@ def angle_scan(ds, idx, scn, angles_deg):
     return np.asarray(out["v2w_y_amplitude"]), chib[:, 1, 0, 0].real
 
 
-def plot_angle(ds, idx, scn, path: Path):
+def plot_angle(ds, idx, scn, path: Path, info=None):
     plt = _plt()
+    from matplotlib.ticker import MaxNLocator
     th = np.linspace(0, 360, 181)
     amp, chi = angle_scan(ds, idx, scn, th)
-    fig, axs = plt.subplots(1, 2, subplot_kw={"projection": "polar"}, figsize=(9, 4.2))
-    axs[0].plot(np.deg2rad(th), amp * 1e9)
-    axs[0].set_title("|V_y^2ω| amplitude (nV) vs current angle", fontsize=9)
-    axs[1].plot(np.deg2rad(th), np.abs(chi))
-    axs[1].set_title("|χ'_yxx| (A m/V²) vs current angle", fontsize=9)
-    fig.tight_layout()
+    fa, ua = eng_scale(amp, "V")
+    fc, uc = eng_scale(chi, "A·m/V²")
+    fig, axs = plt.subplots(1, 2, subplot_kw={"projection": "polar"}, figsize=(9, 5.0))
+    axs[0].plot(np.deg2rad(th), amp / fa)
+    axs[0].set_title(f"$|V_{{y'}}^{{2\\omega}}|$ amplitude [{ua}] against current angle θ", fontsize=9, pad=16)
+    pos, neg = np.where(chi >= 0, np.abs(chi), np.nan), np.where(chi < 0, np.abs(chi), np.nan)
+    axs[1].plot(np.deg2rad(th), pos / fc, "-", color="C3", label="χ′ > 0")
+    axs[1].plot(np.deg2rad(th), neg / fc, "--", color="C0", label="χ′ < 0")
+    axs[1].legend(loc="upper left", bbox_to_anchor=(0.92, 1.08), fontsize=7)
+    axs[1].set_title(f"$|\\chi'_{{yxx}}|$ [{uc}] against θ (line style: sign)", fontsize=9, pad=16)
+    for ax in axs:
+        ax.yaxis.set_major_locator(MaxNLocator(3))
+        ax.set_rlabel_position(112.5)
+        ax.tick_params(axis="y", labelsize=7)
+    if info is not None and (info["all_forbidden"] or not info["any_resolved"]):
+        fig.text(0.5, 0.02, "the 2ω signal is zero within error here: the curves are integration residue",
+                 ha="center", fontsize=8, color="C3")
+    else:
+        fig.text(0.5, 0.02, "θ from the crystal x axis; " + BAR_FRAME_NOTE, ha="center", fontsize=8)
+    fig.tight_layout(rect=(0, 0.05, 1, 0.96))
     atomic_figure(fig, path, dpi=110)
     plt.close(fig)
     return th, amp
@@ -288,9 +527,10 @@ def plot_scaling(ds, idx, path: Path):
         sxx = ds["sigma_bar"].isel(sel).values[..., 0, 0]
         ratio = ds["nonlinear_ratio"].isel(sel).values
         ax.plot(sxx / E2H, ratio, "o-", ms=3,
-                label=f"{carrier} = {ds[carrier].values[ci]:.3g} {ds[carrier].attrs.get('units', '')}")
-    ax.set_xlabel(f"σ'_xx (e²/h), varied through {name}")
-    ax.set_ylabel("E⊥/E∥² = χ'_yxx/σ'_yy (m/V)")
+                label=f"{ds[carrier].attrs.get('long_name', carrier)} = {ds[carrier].values[ci]:.3g} "
+                      f"{ds[carrier].attrs.get('units', '')}")
+    ax.set_xlabel(f"$\\sigma'_{{xx}}$ [$e^2/h$], varied through {ds[name].attrs.get('long_name', name)}")
+    ax.set_ylabel("$E_\\perp/E_\\parallel^2 = \\chi'_{yxx}/\\sigma'_{yy}$ [m/V]")
     ax.set_title("scaling: E⊥/E∥² = C0 + C1 σ + C2 σ² separates mechanisms", fontsize=9)
     ax.legend(fontsize=7)
     fig.tight_layout()
@@ -341,23 +581,99 @@ def _error_line(err_chi, chi_size, err_sig, sig_size) -> str:
             f"({err_chi / chi_size:.2g} relative), σ {err_sig:.2g} S ({err_sig / sig_size:.2g} relative).")
 
 
-def summary_markdown(ds, scn, idx, angle_info=None) -> str:
+def _zero(bound, unit_fmt, symbol="x") -> str:
+    return f"zero within error (|{symbol}| < {unit_fmt(bound)})"
+
+
+def _rotated_error(err, angle):
+    R = _rotation_abs(angle)
+    return np.einsum("ai,bj,ck,ijk->abc", R, R, R, np.nan_to_num(np.asarray(err, dtype=float), nan=0.0))
+
+
+def _headline(ds, scn, idx, info, amp, rms, phase, mu, dens) -> list:
+    dev = scn.device
+    drive = (f"for a drive I(t) = {dev.current_uA:g} μA · sin ωt at {dev.frequency_Hz:g} Hz in a bar "
+             f"{dev.width_um:g} μm wide")
+    all_amp = ds["v2w_y_amplitude"].values
+    bound = float(np.nanmax(info["amp_bound"]))
+    name = scn.material.model or scn.material.tight_binding.name
+    if info["all_forbidden"]:
+        sym, model = info["symmetries"], info["model"]
+        why = []
+        if sym.get("C2"):
+            why.append("C2 rotation (inversion of the sheet) forbids every second-order current")
+        else:
+            if sym.get("T"):
+                why.append("time reversal removes the nonlinear Drude (τ²) and intrinsic (τ⁰) terms")
+            if sym.get("C3"):
+                why.append("C3 rotation forces the Berry-curvature dipole to zero")
+        return [
+            f"**No 2ω transverse signal: it vanishes by symmetry.** The model `{name}` at these parameters has "
+            f"{_symmetry_names(model, sym)}: {'; '.join(why)} ({SYMMETRY_SOURCES}). The computed amplitudes "
+            f"are integration residue, zero within error (|V_y^2ω| < {fmt_volts(bound)} everywhere; "
+            f"largest residue {fmt_volts(float(np.nanmax(all_amp)))}) {drive}.",
+            "",
+            f"What would allow a signal: {_remedies(model, sym)}.",
+            ""]
+    if not info["any_resolved"]:
+        forb = info["forbidden"]
+        extra = ("" if not forb else " By symmetry " + ", ".join(
+            f"the {PART_NAMES[p]} part vanishes ({why})" for p, why in forb.items()) + ".")
+        return [f"**No 2ω transverse signal is resolved: zero within error (|V_y^2ω| < {fmt_volts(bound)}) at "
+                f"every grid point** {drive}.{extra} A finer k mesh (resolution, rtol) lowers the error bound.",
+                ""]
+    lo_i = int(np.nanargmin(np.where(info["amp_resolved"], all_amp, np.inf)))
+    unresolved_min = not bool(np.all(info["amp_resolved"]))
+    low = (_zero(float(np.max(np.where(info["amp_resolved"], 0.0, info["amp_bound"]))), fmt_volts, "V")
+           if unresolved_min else fmt_volts(float(all_amp.ravel()[lo_i])))
+    return [
+        f"The transverse 2ω voltage is largest at {_fmt_point(ds, idx)}: "
+        f"**{fmt_volts(amp)} amplitude ({fmt_volts(rms)} rms on a lock-in)** {drive}. "
+        f"The lock-in phase relative to sin 2ωt is {phase:.1f}°. "
+        f"There μ = {mu:.5g} eV and the carrier density is {dens:.4g} cm⁻² (relative to neutrality).",
+        "",
+        f"Over the whole sweep the amplitude ranges from {low} to {fmt_volts(float(np.nanmax(all_amp)))} "
+        f"({all_amp.size} grid points).",
+        ""]
+
+
+def summary_markdown(ds, scn, idx, angle_info=None, info=None) -> str:
     num = json.loads(ds.attrs["numerics"])
     sel_pt = {d: i for d, i in idx.items() if d != "current_angle"}
     g = lambda name: ds[name].isel({d: i for d, i in idx.items() if d in ds[name].dims}).values
+    info = info if info is not None else resolution_info(ds, scn, idx)
     amp, rms, phase = float(g("v2w_y_amplitude")), float(g("v2w_y_rms")), float(g("v2w_y_phase_deg"))
     mu = float(ds["mu"].isel(sel_pt).values)
     dens = float(ds["density"].isel(sel_pt).values) * 1e-4
     sbar = g("sigma_bar")
+    ang = float(ds["current_angle"].values[idx["current_angle"]])
     parts = _bar_parts(ds, idx)
-    total = sum(abs(v) for v in parts.values()) or 1.0
-    dom = max(parts, key=lambda p: abs(parts[p]))
     chi = complex(g("chi_bar")[1, 0, 0])
     err_chi = float(np.max(ds["error_chi"].isel(sel_pt).values))
     chi_size = float(np.max(np.abs(_point(ds, idx, "chi")))) or 1.0
     err_sig = float(np.max(ds["error_sigma"].isel(sel_pt).values))
     sig_size = float(np.max(np.abs(_point(ds, idx, "sigma")))) or 1.0
-    all_amp = ds["v2w_y_amplitude"].values
+    # resolution of each number at the peak (rule above ZERO_FLOOR)
+    chi_scale = float(np.nanmax(np.abs(ds["chi"].values)))
+    chi_bound = zero_bound(_rotated_error(ds["error_chi"].isel(sel_pt).values, ang)[1, 0, 0], chi_scale)
+    chi_ok = not info["all_forbidden"] and abs(chi) > chi_bound
+    part_ok, part_bound = {}, {}
+    total = sum(abs(v) for v in parts.values()) or 1.0
+    for p in PARTS:
+        part_bound[p] = zero_bound(_rotated_error(ds[f"error_chi_{p}"].isel(sel_pt).values, ang)[1, 0, 0], total)
+        part_ok[p] = chi_ok and p not in info["forbidden"] and abs(parts[p]) > part_bound[p]
+    sxy_bound = zero_bound(err_sig, abs(sbar[0, 0]))
+    hall_txt = (f"{float(g('hall_angle')):.3g}" if abs(sbar[0, 1]) > sxy_bound else
+                f"zero within error (|σ'_xy| < {sxy_bound:.2g} S)")
+    A = lambda v: f"{v:.4g} A·m/V²"
+    chi_txt = f"{chi.real:.4g} A·m/V²" if chi_ok else _zero(chi_bound, A, "χ'_yxx")
+    ratio_txt = (f"{float(g('nonlinear_ratio')):.4g} m/V" if chi_ok else "zero within error")
+    vdc = float(g("vdc_y"))
+    vdc_err = float(np.max(np.nan_to_num(_grid_v2w_error(ds, scn, "chi_dc", "vdc_y")
+                                         [tuple(idx[d] for d in ds["vdc_y"].dims)], nan=0.0)))
+    vdc_bound = max(vdc_err, ZERO_FLOOR * float(np.nanmax(np.abs(ds["vdc_y"].values))))
+    vdc_txt = (fmt_volts(vdc) if not info["all_forbidden"] and abs(vdc) > vdc_bound
+               else _zero(vdc_bound, fmt_volts, "V_dc"))
     dev = scn.device
     vxx = abs(complex(g("v_xx")))
     jd, pd = float(g("current_density")), float(g("power_density"))
@@ -370,34 +686,55 @@ def summary_markdown(ds, scn, idx, angle_info=None) -> str:
         *_non_finite_warning(ds),
         "## Where the second-harmonic signal peaks",
         "",
-        f"The transverse 2ω voltage is largest at {_fmt_point(ds, idx)}: "
-        f"**{amp * 1e9:.4g} nV amplitude ({rms * 1e9:.4g} nV rms on a lock-in)** for a drive "
-        f"I(t) = {dev.current_uA:g} μA · sin ωt at {dev.frequency_Hz:g} Hz in a bar {dev.width_um:g} μm wide. "
-        f"The lock-in phase relative to sin 2ωt is {phase:.1f}°. "
-        f"There μ = {mu:.5g} eV and the carrier density is {dens:.4g} cm⁻² (relative to neutrality).",
-        "",
-        f"Over the whole sweep the amplitude ranges from {np.nanmin(all_amp) * 1e9:.4g} nV to "
-        f"{np.nanmax(all_amp) * 1e9:.4g} nV ({all_amp.size} grid points).",
-        "",
-        f"At the peak: σ'_xx = {sbar[0, 0]:.4g} S ({sbar[0, 0] / E2H:.4g} e²/h), σ'_yy = {sbar[1, 1]:.4g} S, "
-        f"Hall angle tan θ_H = {float(g('hall_angle')):.3g}, χ'_yxx = {chi.real:.4g} A·m/V², "
-        f"E⊥/E∥² = {float(g('nonlinear_ratio')):.4g} m/V, longitudinal voltage |V_xx| = {vxx * 1e3:.4g} mV "
-        f"over L = {dev.length_um:g} μm, rectified transverse voltage {float(g('vdc_y')) * 1e9:.4g} nV.",
+        *_headline(ds, scn, idx, info, amp, rms, phase, mu, dens),
+        f"At the {'peak' if info['any_resolved'] else 'grid point shown in the figures'}: "
+        f"σ'_xx = {sbar[0, 0]:.4g} S ({sbar[0, 0] / E2H:.4g} e²/h), σ'_yy = {sbar[1, 1]:.4g} S, "
+        f"Hall angle tan θ_H = {hall_txt}, χ'_yxx = {chi_txt}, "
+        f"E⊥/E∥² = {ratio_txt}, longitudinal voltage |V_xx| = {fmt_volts(vxx)} "
+        f"over L = {dev.length_um:g} μm, rectified transverse voltage {vdc_txt}. Primes (σ', χ') denote the "
+        "bar frame: x' along the current, y' across the bar.",
         "",
         "## Which mechanism dominates",
         "",
-        f"At the peak the **{PART_NAMES[dom]}** term is the largest part of χ'_yxx:",
-        "",
-        "| part | χ'_yxx (A·m/V²) | share of Σ|parts| |",
-        "|---|---|---|",
     ]
+    ok = [p for p in PARTS if part_ok[p]]
+    if ok:
+        dom = max(ok, key=lambda p: abs(parts[p]))
+        lines.append(f"At the peak the **{PART_NAMES[dom]}** term is the largest resolved part of χ'_yxx:")
+    else:
+        lines.append("No mechanism can be named: no part of χ'_yxx is resolved at this point.")
+    lines += ["", "| part | χ'_yxx (A·m/V²) | share of Σ|parts| |", "|---|---|---|"]
     for p in PARTS:
-        lines.append(f"| {PART_NAMES[p]} | {parts[p].real:.4g} | {abs(parts[p]) / total:.3f} |")
+        if part_ok[p]:
+            lines.append(f"| {PART_NAMES[p]} | {parts[p].real:.4g} | {abs(parts[p]) / total:.3f} |")
+        elif p in info["forbidden"]:
+            lines.append(f"| {PART_NAMES[p]} | 0 by {info['forbidden'][p]} (residue |χ| < "
+                         f"{max(part_bound[p], abs(parts[p])):.2g}) | — |")
+        else:
+            lines.append(f"| {PART_NAMES[p]} | {_zero(part_bound[p], lambda v: f'{v:.2g}', 'χ')} | — |")
     if angle_info is not None:
         th, a = angle_info
-        lines += ["", f"Rotating the current (no new k-space work), |V_y^2ω| is largest at θ = "
-                      f"{th[int(np.argmax(a))]:.0f}° ({np.max(a) * 1e9:.4g} nV) and smallest at θ = "
-                      f"{th[int(np.argmin(a))]:.0f}° ({np.min(a) * 1e9:.3g} nV) from the crystal x axis."]
+        sig_pt, esig = _point(ds, idx, "sigma"), ds["error_sigma"].isel(sel_pt).values
+        echi = ds["error_chi"].isel(sel_pt).values
+        from .device import HallBar
+        bar = HallBar(dev.width_um, dev.length_um, dev.current_uA, dev.frequency_Hz)
+        ea = np.nan_to_num(v2w_error(np.broadcast_to(sig_pt, (len(th), 2, 2)), esig, echi, bar, th, a), nan=0.0)
+        bd = np.maximum(ea, ZERO_FLOOR * float(np.max(a)))
+        ok_a = (a > bd) & (not info["all_forbidden"])
+        if not np.any(ok_a):
+            lines += ["", f"Rotating the current (no new k-space work), |V_y^2ω| stays zero within error at every "
+                          f"angle (|V| < {fmt_volts(float(np.max(bd)))}); no direction is singled out."]
+        else:
+            hi = int(np.argmax(a))
+            txt = (f"Rotating the current (no new k-space work), |V_y^2ω| is largest at θ = {th[hi]:.0f}° "
+                   f"({fmt_volts(float(a[hi]))}) from the crystal x axis")
+            if np.all(ok_a):
+                lo = int(np.argmin(a))
+                txt += f" and smallest at θ = {th[lo]:.0f}° ({fmt_volts(float(a[lo]))})."
+            else:
+                txt += (f"; at some angles it falls to zero within error (|V| < "
+                        f"{fmt_volts(float(np.max(bd[~ok_a])))}), so no direction of smallest signal is given.")
+            lines += ["", txt]
     lines += [
         "",
         "## Conditions and units",
@@ -436,6 +773,12 @@ def summary_markdown(ds, scn, idx, angle_info=None) -> str:
            if num["all_converged"] is False else "fixed level: the error estimate below compares it with "
            "the next coarser level." if num["levels_used"] != [0] else "fixed level 0: nothing coarser to compare."),
         _error_line(err_chi, chi_size, err_sig, sig_size),
+        f"- Zero rule: a number is reported only when |x| exceeds both its error estimate (propagated linearly "
+        f"to the voltages) and {ZERO_FLOOR:g} of the scale it competes with (σ'_xx for the Hall angle, the largest "
+        "value over the sweep or over current angles for a voltage, Σ|parts| for a part of χ'), and no symmetry of "
+        "the model forbids it; otherwise it reads \"zero within error (|x| < bound)\" and is never ranked or used "
+        "for a direction. Symmetries found in the model's bands at the peak point (energies and Berry curvature at "
+        f"48 random wavevectors): {_symmetry_names(info['model'], info['symmetries']) or 'none of T, C2, C3'}.",
         "",
         "## Cautions",
         "",
@@ -473,22 +816,23 @@ def write_report(ds, scn, folder) -> list:
     idx = peak_index(ds)
     written = []
     angle_info = None
+    model = _model_at(scn, ds, idx)
+    info = resolution_info(ds, scn, idx, model)
     if scn.figures:
-        model = _model_at(scn, ds, idx)
         sel = {d: i for d, i in idx.items() if d != "current_angle"}
         mu = float(ds["mu"].isel(sel).values)
         T = float(ds["temperature"].values[idx["temperature"]])
         plot_bands(model, mu, folder / "bands.png")
         plot_curvature_map(model, mu, max(T, 0.0), folder / "curvature_map.png")
-        plot_responses(ds, idx, folder / "responses.png")
-        angle_info = plot_angle(ds, idx, scn, folder / "angle.png")
+        plot_responses(ds, idx, folder / "responses.png", info)
+        angle_info = plot_angle(ds, idx, scn, folder / "angle.png", info)
         written += [folder / n for n in ("bands.png", "curvature_map.png", "responses.png", "angle.png")]
         if plot_scaling(ds, idx, folder / "scaling.png"):
             written.append(folder / "scaling.png")
     else:
         th = np.linspace(0, 360, 181)
         angle_info = (th, angle_scan(ds, idx, scn, th)[0])
-    text = summary_markdown(ds, scn, idx, angle_info)
+    text = summary_markdown(ds, scn, idx, angle_info, info)
     atomic_text(folder / "summary.md", text)
     written.append(folder / "summary.md")
     return written

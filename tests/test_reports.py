@@ -1,0 +1,136 @@
+"""Reports a device physicist can trust (issue 11): numbers compared with their error estimates and
+a symmetry-aware zero floor, symmetry-forbidden headlines, readable labels, full validation sources,
+visible progress and help texts with formulas and units."""
+import numpy as np
+import pytest
+
+from crosswind.solver.cli import main
+
+BILAYER = """
+[material]
+model = "bilayer-graphene"
+
+[material.parameters]
+asymmetry = 0.05            # gapped by a displacement field, no strain
+
+[device]
+width_um = 5.0
+length_um = 10.0
+current_uA = 10.0
+dielectric_nm = 285.0
+permittivity = 3.9
+
+[conditions]
+gate_V = [5.0, 40.0]
+temperature_K = 10.0
+tau_fs = 100.0
+
+[numerics]
+resolution = 1
+density_resolution = 1
+
+[output]
+folder = "out"
+figures = false
+"""
+
+
+@pytest.fixture(scope="module")
+def bilayer(tmp_path_factory):
+    tmp = tmp_path_factory.mktemp("blg")
+    p = tmp / "blg.toml"
+    p.write_text(BILAYER, encoding="utf-8")
+    import contextlib
+    import io
+    buf = io.StringIO()
+    with contextlib.redirect_stdout(buf):
+        assert main(["run", str(p), "--output", str(tmp / "out"), "--no-progress"]) == 0
+    return (tmp / "out" / "summary.md").read_text(encoding="utf-8"), buf.getvalue(), tmp / "out"
+
+
+def _demo_small():
+    """The demo scenario (strained MoS2, automatic resolution) at one temperature and two gates."""
+    from crosswind.solver.demo import SCENARIO
+    text = SCENARIO.replace("gate_V = {start = 6.0, stop = 60.0, num = 12}", "gate_V = [6.0, 60.0]")
+    text = text.replace("temperature_K = [10.0, 60.0, 150.0]", "temperature_K = 150.0")
+    assert text != SCENARIO and "temperature_K = 150.0" in text
+    return text.replace('folder = "crosswind-demo"', 'folder = "demo"\nfigures = false')
+
+
+@pytest.fixture(scope="module")
+def demo(tmp_path_factory):
+    tmp = tmp_path_factory.mktemp("demo")
+    p = tmp / "demo.toml"
+    p.write_text(_demo_small(), encoding="utf-8")
+    import contextlib
+    import io
+    buf = io.StringIO()
+    with contextlib.redirect_stdout(buf):
+        assert main(["run", str(p), "--no-progress"]) == 0
+    return (tmp / "demo" / "summary.md").read_text(encoding="utf-8"), buf.getvalue(), tmp / "demo"
+
+
+def _section(summary, title):
+    return summary.split(f"## {title}")[1].split("\n## ")[0]
+
+
+# ------------------------------------------------------------------ item 1: noise is not a result --
+def test_symmetry_check_on_catalogue_models():
+    """Unstrained gapped bilayer graphene: T (valley pair) and C3; strain along x removes C3 from the
+    TMD model; the Haldane model breaks T (Haldane, PRL 61, 2015 (1988))."""
+    from crosswind.models import build
+    from crosswind.solver.report import forbidden_parts, model_symmetries
+    blg = model_symmetries(build("bilayer-graphene", asymmetry=0.05))
+    assert blg["T"] and blg["C3"] and not blg["C2"]
+    assert set(forbidden_parts(blg)) == {"dipole", "drude", "intrinsic"}
+    strained = model_symmetries(build("tmd", material="MoS2", strain_xx=0.01, strain_yy=-0.0025))
+    assert strained["T"] and not strained["C3"] and not strained["C2"]
+    assert set(forbidden_parts(strained)) == {"drude", "intrinsic"}
+    assert not model_symmetries(build("haldane"))["T"]
+
+
+def test_symmetry_forbidden_bilayer_headline(bilayer):
+    """Unstrained gapped bilayer graphene: the 2ω signal is forbidden (time reversal removes the
+    Drude and intrinsic terms, C3 the dipole; Sodemann & Fu, PRL 115, 216806 (2015)).  The summary
+    used to headline "8.8e-12 nV", call the Drude term dominant and name a largest-signal angle."""
+    summary, stdout, _ = bilayer
+    head = _section(summary, "Where the second-harmonic signal peaks")
+    assert "**No 2ω transverse signal: it vanishes by symmetry.**" in head
+    assert "time reversal" in head and "C3 rotation" in head and "Sodemann & Fu" in head
+    assert "What would allow a signal:" in head and "strain" in head
+    assert "zero within error (|V_y^2ω| <" in head
+    assert "nV amplitude" not in head and "largest at" not in summary and "smallest at" not in summary
+    mech = _section(summary, "Which mechanism dominates")
+    assert "No mechanism can be named" in mech and "largest resolved part" not in mech
+    assert "0 by C3 rotation" in mech and mech.count("0 by time reversal") == 2
+    assert "share" in mech and "0.5" not in mech.split("|---|---|---|")[1]
+    assert "no direction is singled out" in summary
+    assert "χ'_yxx = zero within error" in head and "tan θ_H = zero within error" in head
+    assert "Zero rule:" in summary and "1e-06" in summary
+    assert "vanishes by symmetry" in stdout                # the CLI line says it too
+
+
+def test_demo_noise_reads_zero_within_error(demo):
+    """Demo scenario: the dipole signal is resolved; the minimum-angle line ("smallest at θ = 270°
+    (5.42e-12 nV)") and "tan θ_H = −2.33e-16" were noise and must read as zero within error; the
+    Drude and intrinsic parts vanish by time reversal (docs/theory.md §5.6)."""
+    summary, stdout, _ = demo
+    head = _section(summary, "Where the second-harmonic signal peaks")
+    assert "nV amplitude" in head and "**" in head and "vanishes by symmetry" not in head
+    assert "tan θ_H = zero within error (|σ'_xy| <" in head
+    assert "smallest at θ" not in summary
+    assert "falls to zero within error" in summary and "no direction of smallest signal" in summary
+    assert "largest at θ = 0°" in summary
+    mech = _section(summary, "Which mechanism dominates")
+    assert "**Berry-curvature dipole (∝ τ)** term is the largest resolved part" in mech
+    assert mech.count("0 by time reversal") == 2
+    assert "2ω" in stdout and "nV" in stdout
+
+
+def test_zero_rule_units():
+    from crosswind.solver.report import fmt_volts, is_resolved, zero_bound
+    assert zero_bound(np.nan, 2.0) == pytest.approx(2e-6)
+    assert zero_bound(1e-3, 2.0) == pytest.approx(1e-3)
+    assert not is_resolved(1e-7, np.nan, 1.0) and is_resolved(1e-5, np.nan, 1.0)
+    assert not is_resolved(5e-4, 1e-3, 1.0)
+    assert fmt_volts(23.47e-9) == "23.47 nV" and fmt_volts(4.0e-3) == "4 mV" and fmt_volts(2e-6) == "2 μV"
