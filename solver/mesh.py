@@ -80,7 +80,8 @@ REFINE_SHARE = 0.25           # share of coarse cells that may be refined
 
 
 def _lattice_scores(model, res, mu, kt, params=None, chunk=4096):
-    """Refinement score of every coarse cell (negative: needs refinement), chunked.
+    """Refinement score of every coarse cell (negative: needs refinement), chunked, and for every
+    condition the largest band slope |∇ε| (eV Å) met near its Fermi contour (0: no contour).
 
     A cell needs refinement when some band passes within the thermal window of some μ across the
     cell (|ε−μ| < 36 k_BT + 2|∇ε|h, h the cell diameter) — the Fermi contour — or when two
@@ -97,37 +98,43 @@ def _lattice_scores(model, res, mu, kt, params=None, chunk=4096):
         e = band_e(q)
         g = jnp.sqrt(jnp.sum(jax.jacfwd(band_e)(q) ** 2, axis=-1))                 # (nb,)
         reach = WINDOW * kt[None, :] + 2 * g[:, None] * h
-        fermi = (jnp.abs(e[:, None] - mu[None, :]) - reach) / (reach + 1e-12)
+        dist = jnp.abs(e[:, None] - mu[None, :])
+        fermi = (dist - reach) / (reach + 1e-12)
+        slope = jnp.max(jnp.where(dist < reach, g[:, None], 0.0), axis=0)           # (P,)
         if e.shape[0] > 1:
             spread = 2 * (g[1:] + g[:-1]) * h
             gap = ((e[1:] - e[:-1]) - spread) / (spread + 1e-12)
-            return jnp.minimum(jnp.min(fermi), jnp.min(gap))
-        return jnp.min(fermi)
+            return jnp.minimum(jnp.min(fermi), jnp.min(gap)), slope
+        return jnp.min(fermi), slope
 
     chunk = min(chunk, total)
     nchunks = -(-total // chunk)
 
-    def body(_, c):
+    def body(top, c):
         idx = c * chunk + jnp.arange(chunk)
         kk, _w = node_fn(jnp.minimum(idx, total - 1))
-        sc = jax.vmap(score)(kk)
-        return None, jnp.where(idx < total, sc, jnp.inf)
+        sc, slope = jax.vmap(score)(kk)
+        return jnp.maximum(top, jnp.max(slope, axis=0)), jnp.where(idx < total, sc, jnp.inf)
 
-    _, sc = jax.lax.scan(body, None, jnp.arange(nchunks))
-    return sc.reshape(-1)[:total]
+    slope, sc = jax.lax.scan(body, jnp.zeros(mu.shape), jnp.arange(nchunks))
+    return sc.reshape(-1)[:total], slope
 
 
-def refined_lattice_nodes(model: BandModel, res: Resolution, mu, kt, params=None):
+def refined_lattice_rule(model: BandModel, res: Resolution, mu, kt, params=None):
     """Uniform offset grid plus a fixed budget of refined cells (REFINE_SHARE of the coarse cells,
     the most urgent by :func:`_lattice_scores`, each split into REFINE_SUB^d sub-cells) placed on the
-    Fermi contours of all requested μ and on small-gap hot spots.  Returns ``(n, node_fn)``."""
+    Fermi contours of all requested μ and on small-gap hot spots.  Returns ``(n, node_fn, window)``:
+    ``window[p]`` is the finest node spacing on the Fermi contour of condition p over the half-width
+    of its thermal window, h·max|∇ε|/(W k_BT) (W = 36); above 1 the window falls between the nodes
+    and the Fermi-window integrands are not resolved (T → 0 at a fixed level)."""
     dim, n = model.dim, res.n
     p = model.params if params is None else params
     total, coarse = lattice_nodes(model, res, p)
     m = REFINE_SUB[dim]
     sub = m ** dim
     budget = max(1, int(REFINE_SHARE * total))
-    scores = _lattice_scores(model, res, jnp.atleast_1d(mu), jnp.atleast_1d(kt), p)
+    mu1, kt1 = jnp.atleast_1d(mu), jnp.atleast_1d(kt)
+    scores, slope = _lattice_scores(model, res, mu1, kt1, p)
     _, chosen = jax.lax.top_k(-scores, budget)
     chosen = jax.lax.stop_gradient(chosen)
     # refine only when every flagged cell fits the budget: otherwise the thermal window covers much
@@ -136,6 +143,8 @@ def refined_lattice_nodes(model: BandModel, res: Resolution, mu, kt, params=None
     active = jnp.sum(scores < 0) <= budget
     refined = jnp.zeros((total,), dtype=bool).at[chosen].set(active)
     b = jax.lax.stop_gradient(model.reciprocal_vectors(p))
+    step = jnp.max(jnp.sqrt(jnp.sum(b * b, axis=-1))) / n / jnp.where(active, m, 1)
+    window = jax.lax.stop_gradient(step * slope / (WINDOW * kt1))
     grid = np.stack(np.meshgrid(*([(np.arange(m) + 0.5) / m - 0.5] * dim), indexing="ij"), -1).reshape(-1, dim)
     offsets = jnp.asarray(grid) / n                                              # reduced, (sub, dim)
 
@@ -154,7 +163,13 @@ def refined_lattice_nodes(model: BandModel, res: Resolution, mu, kt, params=None
         w_sea = jnp.where(is_coarse, wfull, 0.0)
         return k, w, w_sea
 
-    return total + budget * sub, node_fn
+    return total + budget * sub, node_fn, window
+
+
+def refined_lattice_nodes(model: BandModel, res: Resolution, mu, kt, params=None):
+    """``(n, node_fn)`` of :func:`refined_lattice_rule`."""
+    total, node_fn, _window = refined_lattice_rule(model, res, mu, kt, params)
+    return total, node_fn
 
 
 def lattice_rule(model: BandModel, res: Resolution, params=None, mu=None, kt=None):

@@ -37,6 +37,7 @@ symmetry, to the size of its integrand).
 """
 from __future__ import annotations
 
+import warnings
 from dataclasses import dataclass, field
 from functools import partial
 from typing import Any
@@ -53,6 +54,7 @@ from . import mesh as _mesh
 from . import rays as _rays
 from .inputs import check_arguments
 from .kernels import moments, moments_indexed
+from .memory import budget_bytes, condition_block
 from .occupation import T_FLOOR, thermal_energy
 from .scattering import as_scattering
 
@@ -135,13 +137,16 @@ def neutral_filling(model: BandModel) -> int:
 
 @partial(jax.jit, static_argnames=("level", "tau_eval", "filled", "sea", "chunk"))
 def _moments_at(model, mu, kt, temp, tau_arr, omega, *, level, tau_eval, filled, sea, chunk):
+    """Kernel sums of one block of conditions at one level, and per condition the node spacing on
+    its Fermi contour over its thermal window (above 1: unresolved; continuum rays place their
+    panels on the window itself, 0)."""
     res = _levels(model)[level]
     p = model.params
     tau_col = jax.tree_util.tree_map(lambda a: a[:, None], tau_arr)
     if isinstance(model.domain, Lattice):
-        n, node_fn = _mesh.refined_lattice_nodes(model, res, mu, kt)
+        n, node_fn, window = _mesh.refined_lattice_rule(model, res, mu, kt)
         return moments_indexed(model, p, n, node_fn, mu, kt, temp, tau_eval, tau_col, omega, filled,
-                               sea, min(chunk, n))
+                               sea, min(chunk, n)), window
 
     def one(args):
         m, t, tt, ta = args
@@ -150,7 +155,7 @@ def _moments_at(model, mu, kt, temp, tau_arr, omega, *, level, tau_eval, filled,
         out = moments(model, p, k, w, m[None], t[None], tt[None], tau_eval, ta1, omega, filled, sea, chunk)
         return jax.tree_util.tree_map(lambda a: a[0], out)
 
-    return jax.vmap(one)((mu, kt, temp, tau_col))
+    return jax.vmap(one)((mu, kt, temp, tau_col)), jnp.zeros(mu.shape)
 
 
 def _eps(dim):
@@ -306,44 +311,91 @@ def _ladder_errors(fine_m, coarse_m, ex_m, over, model, temp, intrinsic):
     return fine, err
 
 
+# fields integrated over the Fermi sea with the uniform rule; every other field lives in the
+# thermal window around the Fermi contours (derived tensors included)
+SEA_FIELDS = ("density", "sigma_anomalous", "dipole_sea")
+
+
+def _window_errors(err, unresolved):
+    """inf for the Fermi-window fields of the conditions whose thermal window the nodes miss."""
+    def mark(key, e):
+        if key in SEA_FIELDS:
+            return e
+        return jnp.where(unresolved.reshape(unresolved.shape + (1,) * (e.ndim - 1)), jnp.inf, e)
+    return {key: mark(key, e) for key, e in err.items()}
+
+
 def _mesh_path(model, muf, kt, Tf, tauf, omega, kw, rtol, resolution, max_level, intrinsic,
-               estimate_error, tau_max, P):
-    """Node-based quadrature (:mod:`crosswind.solver.mesh`): one mesh pass per level."""
+               estimate_error, tau_max, P, budget):
+    """Node-based quadrature (:mod:`crosswind.solver.mesh`): one mesh pass per level, conditions in
+    blocks sized by the memory budget (:func:`condition_block`)."""
     levels = _levels(model)
     top = len(levels) - 1 if max_level is None else min(max_level, len(levels) - 1)
     passes = []
+    blocks = {}
 
     def run(lev):
         passes.append(lev)
-        return _moments_at(model, muf, kt, Tf, tauf, omega, level=lev, **kw)
+        block = condition_block(model, levels[lev], P, kw["chunk"], kw["sea"], budget)
+        blocks[lev] = block
+        if block >= P:
+            return _moments_at(model, muf, kt, Tf, tauf, omega, level=lev, **kw)
+        outs = []
+        for start in range(0, P, block):
+            # one compiled program for every block: the last one is padded with its last condition
+            idx = np.minimum(np.arange(start, start + block), P - 1)
+            out = _moments_at(model, muf[idx], kt[idx], Tf[idx], jax.tree_util.tree_map(lambda a: a[idx], tauf),
+                              omega, level=lev, **kw)
+            if not _is_traced(out):
+                out = jax.device_get(out)           # one block in memory at a time
+            outs.append(out)
+        if _is_traced(outs):
+            return jax.tree_util.tree_map(lambda *xs: jnp.concatenate(xs)[:P], *outs)
+        # host-side joining: no compiled concatenation per number of blocks
+        return jax.tree_util.tree_map(lambda *xs: jnp.asarray(np.concatenate(xs)[:P]), *outs)
+
+    def errors(fine, coarse, window):
+        return _window_errors(_field_errors(fine, coarse), window > 1)
 
     bad = None
     if resolution is None:
         lev = 1
-        coarse_m = run(0)
-        fine_m = run(1)
+        coarse_m, _ = run(0)
+        fine_m, window = run(1)
         while True:
             fine = _to_si(fine_m, model, Tf, intrinsic)
             coarse = _to_si(coarse_m, model, Tf, intrinsic)
-            bad = _converged(fine, _field_errors(fine, coarse), fine_m, rtol, model, tau_max)
+            bad = _converged(fine, errors(fine, coarse, window), fine_m, rtol, model, tau_max)
             if not bad or lev >= top:
                 break
             lev += 1
-            coarse_m, fine_m = fine_m, run(lev)
+            coarse_m, (fine_m, window) = fine_m, run(lev)
+        err = errors(fine, coarse, window)
     else:
         if not (0 <= resolution <= len(levels) - 1):
             raise ValueError(f"response: resolution must be a level 0..{len(levels) - 1}")
         lev = resolution
-        fine_m = run(lev)
-        coarse_m = run(lev - 1) if lev > 0 and estimate_error else fine_m
+        fine_m, window = run(lev)
+        compared = lev > 0 and estimate_error
+        coarse_m = run(lev - 1)[0] if compared else fine_m
         fine = _to_si(fine_m, model, Tf, intrinsic)
         coarse = _to_si(coarse_m, model, Tf, intrinsic)
-    err = _field_errors(fine, coarse)
+        err = _field_errors(fine, coarse)
+        if not compared:
+            # level 0 has no coarser level to compare with: the estimate is unavailable (NaN), never 0
+            err = jax.tree_util.tree_map(lambda a: jnp.full(a.shape, jnp.nan), err)
+        err = _window_errors(err, window > 1)
     # distinct k-points where the band geometry was evaluated: lattice meshes are shared by all
-    # conditions of a pass, continuum ray meshes are built per condition
-    per_pass = 1 if isinstance(model.domain, Lattice) else P
+    # conditions of a block, continuum ray meshes are built per condition
+    per_pass = lambda q: -(-P // blocks[q]) if isinstance(model.domain, Lattice) else P
     info = {"engine": "mesh", "level": lev, "nodes_per_condition": _mesh.node_count(model, levels[lev]),
-            "k_points": int(sum(_mesh.node_count(model, levels[q]) * per_pass for q in set(passes)))}
+            "k_points": int(sum(_mesh.node_count(model, levels[q]) * per_pass(q) for q in set(passes))),
+            "condition_block": int(blocks[lev])}
+    if not _is_traced(window):
+        w = np.asarray(window)
+        info["window_unresolved"] = int(np.sum(w > 1))
+        if info["window_unresolved"]:
+            info["window_ratio"] = float(np.max(w))
     return fine, err, bad, info
 
 
@@ -475,10 +527,33 @@ def _rays_path(model, muf, kt, Tf, tauf, omega, kw, rtol, resolution, max_level,
     return fine, err, bad, info
 
 
+# fields whose integrals are finite for every finite model and finite conditions (the ratios
+# seebeck, lorenz, hall_coefficient may be inf/NaN where σ vanishes, e.g. μ in a gap at T → 0)
+FINITE_FIELDS = ("density", "dos", "sigma", "sigma_drude", "sigma_anomalous", "dipole", "chi", "chi_dc",
+                 "sigma_lorentz", "nernst")
+
+
+def _refuse_non_finite(fine, info):
+    """A non-finite kernel sum from finite inputs means the band geometry was NaN/inf somewhere on
+    the mesh (a user Hamiltonian that divides by zero, takes a square root of a negative number, ...
+    away from the build-time check points): refuse it rather than return NaN."""
+    for name in FINITE_FIELDS:
+        a = np.asarray(fine[name])
+        bad = ~np.isfinite(a.reshape(a.shape[0], -1)).all(axis=1) if a.size else np.zeros(0, bool)
+        if bad.any():
+            raise ValueError(
+                f"response: {name} is not finite (NaN/inf) for {int(bad.sum())} of {bad.size} conditions "
+                f"(first at flat index {int(np.argmax(bad))}; engine {info.get('engine')}, level "
+                f"{info.get('level')}) although every input was finite: the model's Hamiltonian is "
+                "NaN/inf (or its derivative is) somewhere in the zone, between the points checked at "
+                "build time. Check divisions (e.g. by |k|), square roots and logarithms of the "
+                "Hamiltonian; evaluate it on a fine grid of k to find where.")
+
+
 def response(model: BandModel, mu, temperature, tau, frequency=0.0, *, rtol: float = 1e-3,
              resolution: int | None = None, max_level: int | None = None, intrinsic: bool = True,
              dipole_route: str = "surface", chunk: int = 4096, estimate_error: bool = True,
-             engine: str = "auto", plan=None) -> Response:
+             engine: str = "auto", plan=None, memory_gib: float | None = None) -> Response:
     """Transport coefficients of ``model`` at chemical potential(s) ``mu`` (eV), ``temperature`` (K)
     and relaxation time ``tau`` (fs, or a scattering object from :mod:`crosswind.solver.scattering`),
     at drive ``frequency`` (Hz).  ``mu``, ``temperature`` and ``tau`` broadcast against each other;
@@ -488,7 +563,33 @@ def response(model: BandModel, mu, temperature, tau, frequency=0.0, *, rtol: flo
     chooses it automatically for ``rtol``.  ``dipole_route="both"`` also evaluates the Fermi-sea
     integral ∫f0 ∂Ω (``dipole_sea``) and folds the disagreement of the two routes into
     ``error["dipole"]``.  With a fixed ``resolution``, ``estimate_error=False`` skips the coarser
-    pass (half the cost, e.g. inside fits); ``error`` is then NaN.
+    pass (half the cost, e.g. inside fits); ``error`` is then NaN.  The node quadrature at
+    ``resolution=0`` has no coarser level to compare with: its ``error`` is NaN (unavailable), never 0.
+
+    Unresolved thermal windows (node quadrature of lattice models, ``engine="mesh"``): the Fermi
+    window of a condition is about W·k_BT/|∇ε| wide in k (W = 36); when it is narrower than the
+    node spacing on its Fermi contour (the refined 4×4 sub-cells, or the plain grid when refinement
+    is off), typically at a fixed ``resolution`` and T → 0, the Fermi-surface integrals miss the
+    window (σ_xx of order 1e-254 S was once returned with an error of 1e-259 S).  Such conditions
+    get ``error = inf`` for every field except ``density``, ``sigma_anomalous`` and ``dipole_sea``
+    (Fermi-sea integrals); ``resolution`` metadata then says ``converged=False``,
+    ``window_unresolved`` (the number of such conditions) and ``window_ratio`` (spacing / window,
+    largest), and a ``RuntimeWarning`` names the fix: ``engine="ladder"`` (automatic for 2D
+    lattices with ``resolution=None``), a finer level or a higher temperature.  With
+    ``resolution=None`` and ``engine="mesh"`` the level is raised until the window is resolved or
+    the finest level is reached.
+
+    Non-finite results: a concrete call whose integrated fields (density, dos, σ, D, χ, Lorentz,
+    Nernst) come out NaN/inf although every input was finite raises ``ValueError`` naming the field:
+    the model is NaN/inf somewhere in the zone.  (``seebeck``, ``lorenz`` and ``hall_coefficient``
+    are ratios that may be inf/NaN where σ vanishes.)
+
+    Memory: the node quadrature evaluates conditions in blocks so that its working memory stays
+    within ``memory_gib`` GiB (default ``$CROSSWIND_MEMORY_GIB``, else 2 GiB;
+    :mod:`crosswind.solver.memory`) whatever the number of conditions (10 000 μ points once asked for
+    87 GB); the energy engines (ladder, rays) take conditions 128 at a time.  ``resolution``
+    metadata records ``condition_block``.  The budget holds for concrete calls; under
+    ``jax.grad`` the reverse pass keeps what it needs of every block.
 
     ``engine="auto"`` (default) takes the ladder for 2D lattice models with automatic resolution
     (``resolution=None``) and the node quadrature ("mesh") otherwise.
@@ -521,6 +622,7 @@ def response(model: BandModel, mu, temperature, tau, frequency=0.0, *, rtol: flo
         raise ValueError("response: dipole_route must be 'surface' or 'both'")
     if not (0 < rtol < 1):
         raise ValueError("response: rtol must lie in (0, 1), e.g. 1e-3")
+    budget = budget_bytes(memory_gib)
     scat = as_scattering(tau)
     tau_arr = scat.arrays()
     mu = jnp.asarray(mu, dtype=jnp.float64)
@@ -559,16 +661,31 @@ def response(model: BandModel, mu, temperature, tau, frequency=0.0, *, rtol: flo
                                             max_level, intrinsic, plan, traced, tau_max)
     else:
         fine, err, bad, info = _mesh_path(model, muf, kt, Tf, tauf, omega, dict(kw, chunk=chunk), rtol,
-                                          resolution, max_level, intrinsic, estimate_error, tau_max, P)
+                                          resolution, max_level, intrinsic, estimate_error, tau_max, P,
+                                          budget)
     if dipole_route == "both":
         err["dipole"] = jnp.maximum(err["dipole"], jnp.abs(fine["dipole"] - fine["dipole_sea"]))
     if resolution is not None and not estimate_error:
-        err = {key: jnp.full(v.shape, jnp.nan) for key, v in err.items()}
+        # no estimate was asked for: NaN, except where the engine knows the value is unresolved (inf)
+        err = {key: jnp.where(jnp.isposinf(v), v, jnp.nan) for key, v in err.items()}
+    if not _is_traced(fine):
+        _refuse_non_finite(fine, info)
     reshape = lambda x: x.reshape(shape + x.shape[1:])
     fine = jax.tree_util.tree_map(reshape, fine)
     err = jax.tree_util.tree_map(reshape, err)
-    info.update({"converged": (not bad) if bad is not None else None,
-                 "unconverged_fields": tuple(b[0] for b in bad) if bad else ()})
+    converged = (not bad) if bad is not None else None
+    unconverged = tuple(b[0] for b in bad) if bad else ()
+    if info.get("window_unresolved"):
+        # the thermal window of some condition fell between the nodes: not converged, whatever the level
+        converged = False
+        unconverged = tuple(dict.fromkeys(unconverged + ("sigma", "dipole", "chi", "chi_dc")))
+        warnings.warn(
+            f"response: at level {info['level']} the node spacing on the Fermi contour is "
+            f"{info['window_ratio']:.3g}x the thermal window (W k_BT/|grad e|) for {info['window_unresolved']} "
+            "of the conditions (low temperature): their Fermi-surface fields are not resolved and carry "
+            "error = inf. Use engine='ladder' (the default for 2D lattices with resolution=None), a finer "
+            "resolution, or a higher temperature.", RuntimeWarning, stacklevel=2)
+    info.update({"converged": converged, "unconverged_fields": unconverged})
     units = UNITS_2D if model.dim == 2 else UNITS_3D
     return Response(**{k: fine[k] for k in ARRAY_FIELDS}, chi_parts=fine["chi_parts"],
                     chi_dc_parts=fine["chi_dc_parts"], error=err, resolution=tuple(sorted(info.items())),
