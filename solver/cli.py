@@ -4,7 +4,7 @@
     crosswind fit SCENARIO --data FILE [--output DIR] [--starts N]   fit the [fit] parameters to data
     crosswind demo [--output DIR] [--no-progress] [--fit]    run the built-in demonstration
     crosswind models                                        list the model catalogue
-    crosswind validate                                      run the validation cases
+    crosswind validate [--wide] [--markdown FILE]           run the validation cases (sources in full)
 
 ``main(argv=None)`` returns the exit status (0 success, 1 failed validation or run, 2 bad input,
 130 interrupted by Ctrl-C: ``run`` says how to resume); errors go to stderr, one line each.
@@ -45,8 +45,12 @@ def _parser() -> argparse.ArgumentParser:
                    "model plus noise) and report the recovered parameters (adds minutes)")
     sub.add_parser("models", help="list the model catalogue", description="List every catalogue model with its "
                    "Hamiltonian, source and parameters.")
-    sub.add_parser("validate", help="run the validation cases",
-                   description="Compare computed values with published or closed-form references; exit 1 if any fails.")
+    v = sub.add_parser("validate", help="run the validation cases",
+                       description="Compare computed values with published or closed-form references; exit 1 if "
+                                   "any fails. The source column is wrapped to the terminal, never cut.")
+    v.add_argument("--wide", action="store_true", help="print each source on one line (no wrapping)")
+    v.add_argument("--markdown", metavar="FILE", help="also write the table as Markdown to FILE")
+    v.add_argument("--no-progress", action="store_true", help="do not show per-case progress on stderr")
     return p
 
 
@@ -178,24 +182,64 @@ def cmd_models(args) -> int:
     return 0
 
 
+def _validation_progress(i: int, n: int, name: str, seconds: float | None) -> None:
+    if seconds is None:
+        print(f"crosswind: validation case {i}/{n}: {name} …", file=sys.stderr, flush=True)
+    else:
+        print(f"crosswind: validation case {i}/{n}: {name} done in {seconds:.1f} s", file=sys.stderr, flush=True)
+
+
+VALIDATE_HEAD = ("case", "source", "expected", "computed", "tolerance", "passed")
+
+
+def _cell(r, h) -> str:
+    v = r.get(h, "")
+    return f"{v:.6g}" if isinstance(v, float) else str(v)
+
+
+def validation_table(rows, width: int | None = None, wide: bool = False) -> str:
+    """The validation table for a terminal: every column in full; the source column (the published
+    source is the point of the table) is wrapped at word boundaries to fit ``width`` characters,
+    never cut (``wide``: one line per case)."""
+    import shutil
+    import textwrap
+    table = [[_cell(r, h) for h in VALIDATE_HEAD] for r in rows]
+    widths = [max(len(h), *(len(t[i]) for t in table)) if table else len(h) for i, h in enumerate(VALIDATE_HEAD)]
+    if not wide:
+        width = width or shutil.get_terminal_size((120, 24)).columns
+        room = width - sum(w for i, w in enumerate(widths) if i != 1) - 2 * (len(widths) - 1)
+        widths[1] = max(24, min(widths[1], room))
+    fmt = lambda cells: "  ".join(c.ljust(w) for c, w in zip(cells, widths)).rstrip()
+    lines = [fmt(VALIDATE_HEAD), fmt(["-" * w for w in widths])]
+    for t in table:
+        src = [t[1]] if wide else (textwrap.wrap(t[1], widths[1], break_long_words=False, break_on_hyphens=False)
+                                   or [""])
+        lines.append(fmt([t[0], src[0], *t[2:]]))
+        lines += [fmt(["", more] + [""] * (len(widths) - 2)) for more in src[1:]]
+    return "\n".join(lines)
+
+
+def validation_markdown(rows) -> str:
+    esc = lambda c: c.replace("|", "\\|")
+    lines = ["| " + " | ".join(VALIDATE_HEAD) + " |", "|" + "---|" * len(VALIDATE_HEAD)]
+    lines += ["| " + " | ".join(esc(_cell(r, h)) for h in VALIDATE_HEAD) + " |" for r in rows]
+    return "\n".join(lines) + "\n"
+
+
 def cmd_validate(args) -> int:
     try:
         from crosswind.validation import run_cases
     except ImportError as exc:
         _err(f"the validation cases are not available ({exc})")
         return 2
-    rows = run_cases()
-    head = ("case", "source", "expected", "computed", "tolerance", "passed")
-    table = [[str(r.get(h, "")) if not isinstance(r.get(h), float) else f"{r[h]:.6g}" for h in head] for r in rows]
-    widths = [max(len(h), *(len(t[i]) for t in table)) if table else len(h) for i, h in enumerate(head)]
-    widths[1] = min(widths[1], 48)
-    fmt = lambda cells: "  ".join(c[:w].ljust(w) for c, w in zip(cells, widths))
-    print(fmt(head))
-    print(fmt(["-" * w for w in widths]))
-    for t in table:
-        print(fmt(t))
+    rows = run_cases(progress=None if getattr(args, "no_progress", False) else _validation_progress)
+    print(validation_table(rows, wide=getattr(args, "wide", False)))
     failed = [r for r in rows if not r.get("passed")]
     print(f"\n{len(rows) - len(failed)} of {len(rows)} cases passed")
+    if getattr(args, "markdown", None):
+        from .files import atomic_text
+        atomic_text(Path(args.markdown), validation_markdown(rows))
+        print(f"crosswind: wrote the table to {args.markdown}")
     return 1 if failed else 0
 
 

@@ -44,7 +44,7 @@ def test_models_lists_the_catalogue(capsys):
 def test_validate_exit_status_follows_the_cases(monkeypatch, capsys):
     rows = [{"case": "a", "source": "s", "expected": 1.0, "computed": 1.0, "tolerance": 1e-6, "passed": True}]
     fake = types.ModuleType("crosswind.validation")
-    fake.run_cases = lambda: rows
+    fake.run_cases = lambda **kw: rows
     monkeypatch.setitem(sys.modules, "crosswind.validation", fake)
     assert main(["validate"]) == 0
     assert "1 of 1 cases passed" in capsys.readouterr().out

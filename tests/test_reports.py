@@ -134,3 +134,61 @@ def test_zero_rule_units():
     assert not is_resolved(1e-7, np.nan, 1.0) and is_resolved(1e-5, np.nan, 1.0)
     assert not is_resolved(5e-4, 1e-3, 1.0)
     assert fmt_volts(23.47e-9) == "23.47 nV" and fmt_volts(4.0e-3) == "4 mV" and fmt_volts(2e-6) == "2 μV"
+
+
+# ------------------------------------------------------------------ item 6: validate shows sources in full --
+def _fake_validation(monkeypatch, seen=None):
+    """Rows with the real cases' sources (no k-space work); the fake calls the progress callback."""
+    import sys
+    import types
+    from crosswind.validation import load_cases
+    rows = [{"case": c["name"], "source": c["source"], "expected": 1.0, "computed": 1.0, "tolerance": "rtol 0.001",
+             "passed": True} for c in load_cases()]
+
+    def run_cases(names=None, progress=None):
+        for i, r in enumerate(rows, 1):
+            if progress:
+                progress(i, len(rows), r["case"], None)
+                progress(i, len(rows), r["case"], 0.5)
+        return rows
+    fake = types.ModuleType("crosswind.validation")
+    fake.run_cases = run_cases
+    monkeypatch.setitem(sys.modules, "crosswind.validation", fake)
+    return rows
+
+
+def test_validate_prints_every_source_in_full(monkeypatch, capsys, tmp_path):
+    """The source column used to be cut at 48 characters ("…(2007); physics-r"): wrapped at word
+    boundaries to the terminal width instead; --wide keeps one line per case; --markdown writes a file."""
+    rows = _fake_validation(monkeypatch)
+    assert max(len(r["source"]) for r in rows) > 100
+    monkeypatch.setenv("COLUMNS", "110")
+    assert main(["validate", "--no-progress"]) == 0
+    out = capsys.readouterr().out
+    tokens = set(out.split())
+    for r in rows:
+        assert all(word in tokens for word in r["source"].split()), r["source"]
+    assert max(len(line) for line in out.splitlines()) <= 110
+    assert main(["validate", "--wide", "--no-progress", "--markdown", str(tmp_path / "v.md")]) == 0
+    out = capsys.readouterr().out
+    assert all(r["source"] in out for r in rows)
+    md = (tmp_path / "v.md").read_text(encoding="utf-8")
+    assert md.startswith("| case | source |") and all(r["source"].replace("|", "\\|") in md for r in rows)
+
+
+# ------------------------------------------------------------------ item 5: visible progress --
+def test_validate_reports_progress_per_case(monkeypatch, capsys):
+    rows = _fake_validation(monkeypatch)
+    assert main(["validate"]) == 0
+    err = capsys.readouterr().err
+    assert f"validation case 1/{len(rows)}: {rows[0]['case']}" in err
+    assert f"validation case {len(rows)}/{len(rows)}: {rows[-1]['case']} done in 0.5 s" in err
+
+
+def test_run_cases_calls_progress_around_each_case():
+    from crosswind.validation import run_cases
+    calls = []
+    rows = run_cases(names=["dirac-density"], progress=lambda *a: calls.append(a))
+    assert len(rows) == 1 and rows[0]["passed"]
+    assert calls[0] == (1, 1, "dirac-density", None) and calls[1][:3] == (1, 1, "dirac-density")
+    assert calls[1][3] >= 0.0

@@ -58,13 +58,19 @@ def evaluate_case(case) -> dict:
             "tolerance": f"rtol {rtol:g}" if rtol else f"atol {atol:g}", "passed": bool(passed)}
 
 
-def run_cases(names=None) -> list[dict]:
-    """Evaluate every case (or those named) and return table rows."""
+def run_cases(names=None, progress=None) -> list[dict]:
+    """Evaluate every case (or those named) and return table rows.  ``progress(i, n, name, seconds)``,
+    when given, is called before each case (``seconds`` None) and after it (its wall time)."""
+    import time
+    cases = [c for c in load_cases() if not names or c["name"] in names]
     rows = []
-    for case in load_cases():
-        if names and case["name"] not in names:
-            continue
+    for i, case in enumerate(cases, 1):
+        if progress:
+            progress(i, len(cases), case["name"], None)
+        t0 = time.perf_counter()
         rows.append(evaluate_case(case))
+        if progress:
+            progress(i, len(cases), case["name"], time.perf_counter() - t0)
     return rows
 
 
