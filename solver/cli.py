@@ -36,6 +36,7 @@ def _parser() -> argparse.ArgumentParser:
                    "default: [fit] data")
     f.add_argument("--output", "-o", metavar="DIR", help="output folder (default: fit-<scenario name> next to it)")
     f.add_argument("--starts", type=int, metavar="N", help="number of starting points (default: [fit] starts)")
+    f.add_argument("--no-progress", action="store_true", help="do not show the iterations on stderr")
     d = sub.add_parser("demo", help="run the built-in demonstration scenario",
                        description="Run a small built-in scenario (strained MoS2 Hall bar, gate and "
                                    "temperature sweep) and write results, figures and a summary.")
@@ -75,6 +76,9 @@ def _run(scn, output, progress: bool) -> int:
     t0 = time.time()
     try:
         ds = run_scenario(scn, folder, progress=progress)
+        if progress:
+            print("crosswind: writing " + ("figures and " if scn.figures else "") + "summary…", file=sys.stderr,
+                  flush=True)
         write_report(ds, scn, folder)
         extra = ""
         if scn.sensitivities is not None:
@@ -132,7 +136,11 @@ def cmd_fit(args) -> int:
     folder = Path(args.output) if args.output else Path(args.scenario).resolve().parent / f"fit-{Path(args.scenario).stem}"
     t0 = time.time()
     try:
-        out = run_fit(scn, data, folder, starts=args.starts)
+        if not args.no_progress:
+            print("crosswind: fitting (the first iteration compiles the k-space kernels)…", file=sys.stderr, flush=True)
+        out = run_fit(scn, data, folder, starts=args.starts,
+                      progress=None if args.no_progress else lambda line: print(f"crosswind: fit {line}",
+                                                                               file=sys.stderr, flush=True))
     except (FitInputError, OutputError) as exc:
         _err(str(exc))
         return 2

@@ -186,7 +186,7 @@ def _bad_entries(r):
 def fit(residual_fn: Callable[[dict], object], initial: Mapping[str, float], *, bounds: Mapping | None = None,
         fixed=None, starts: int = 1, seed: int = 0, sigma=None, absolute_sigma: bool = False,
         jacobian: str = "forward", tolerance: float = 1e-10, max_evaluations: int | None = None,
-        jit: bool = False) -> FitResult:
+        jit: bool = False, progress: Callable[[str], None] | None = None) -> FitResult:
     """Least-squares fit of the parameters in ``initial``.
 
     ``residual_fn(params) -> residual vector``: ``params`` is a dict with every name of ``initial``
@@ -201,7 +201,9 @@ def fit(residual_fn: Callable[[dict], object], initial: Mapping[str, float], *, 
     cost, step and gradient tests of ``least_squares``; ``max_evaluations`` caps residual
     evaluations per start (default 100 × (number of free parameters + 1)).  ``jit=True`` compiles
     the residual and its JVP once (worth it for cheap residuals evaluated many times; a residual
-    that calls ``response`` already runs compiled code and gains little).
+    that calls ``response`` already runs compiled code and gains little).  ``progress(line)``, when
+    given, receives one line per iteration (start, iteration, cost ½Σr², parameter values; per
+    residual evaluation with a SciPy older than 1.16, whose ``least_squares`` has no callback).
     """
     init, fixed, free, lo, hi = _check_inputs(initial, bounds, fixed)
     if int(starts) < 1:
@@ -242,7 +244,15 @@ def fit(residual_fn: Callable[[dict], object], initial: Mapping[str, float], *, 
     tangent_of = lambda p, t: jax.jvp(residual_of, (p,), (t,))[1]
     tangent_eval = jax.jit(tangent_of) if jit else tangent_of
 
-    def run(start):
+    import inspect
+    per_iteration = "callback" in inspect.signature(least_squares).parameters
+
+    def report(label, what, cost, z, ref):
+        if progress is not None:
+            vals = ", ".join(f"{k} = {v:.6g}" for k, v in zip(free, ref + s_vec * np.asarray(z)))
+            progress(f"{label}, {what}: cost {cost:.4g}, {vals}")
+
+    def run(start, label=""):
         base = dict(start)
         p0 = np.array([start[k] for k in free])
         ref = np.array([init[k] for k in free])
@@ -254,7 +264,10 @@ def fit(residual_fn: Callable[[dict], object], initial: Mapping[str, float], *, 
 
         def fun(z):
             counter["nfev"] += 1
-            return np.asarray(residual_eval(full(to_p(z), base)), dtype=np.float64)
+            r = np.asarray(residual_eval(full(to_p(z), base)), dtype=np.float64)
+            if not per_iteration:
+                report(label, f"evaluation {counter['nfev']}", 0.5 * float(r @ r), z, ref)
+            return r
 
         def jac(z):
             p = full(to_p(z), base)
@@ -290,8 +303,14 @@ def fit(residual_fn: Callable[[dict], object], initial: Mapping[str, float], *, 
                           "or bound the parameters away from the invalid region"), counter["nfev"]
         jac_arg = jac if jacobian in ("forward", "jacfwd") else jacobian
         try:
+            it = {"n": 0}
+
+            def step(intermediate_result):
+                it["n"] += 1
+                report(label, f"iteration {it['n']}", float(intermediate_result.cost), intermediate_result.x, ref)
+            extra = {"callback": step} if per_iteration and progress is not None else {}
             res = least_squares(fun, z0, jac=jac_arg, bounds=(zlo, zhi), method="trf", x_scale=1.0,
-                                ftol=tolerance, xtol=tolerance, gtol=tolerance, max_nfev=max_nfev)
+                                ftol=tolerance, xtol=tolerance, gtol=tolerance, max_nfev=max_nfev, **extra)
         except _Stop as exc:
             return None, str(exc), counter["nfev"]
         except (jax.errors.TracerArrayConversionError, jax.errors.ConcretizationTypeError) as exc:
@@ -302,8 +321,8 @@ def fit(residual_fn: Callable[[dict], object], initial: Mapping[str, float], *, 
     rng = np.random.default_rng(seed)
     starts_list = [dict(init)] + [_random_start(rng, init, free, lo, hi, scale) for _ in range(int(starts) - 1)]
     outcomes = []
-    for st in starts_list:
-        outcomes.append(run(st))
+    for i, st in enumerate(starts_list, 1):
+        outcomes.append(run(st, f"start {i}/{len(starts_list)}"))
     good = [o for o in outcomes if o[0] is not None and np.isfinite(o[0][0].cost)]
     start_costs = tuple(float(o[0][0].cost) if o[0] is not None else math.nan for o in outcomes)
     if not good:

@@ -216,14 +216,33 @@ class _Progress:
             except ImportError:
                 self.bar = None
 
+    def phase(self, text: str):
+        """A phase line ("compiling …") above the bar, so a long first batch is not silent."""
+        if not self.enabled:
+            return
+        self.t_begin = time.time()
+        if self.bar is not None:
+            self.bar.write(f"crosswind: {text}", file=sys.stderr)
+        else:
+            print(f"crosswind: {text}", file=sys.stderr, flush=True)
+
     def update(self, skipped=False):
         self.done += 1
+        if not skipped:
+            self.computed = getattr(self, "computed", 0) + 1
+            self.t_first = getattr(self, "t_first", None) or time.time()
         if not self.enabled:
             return
         if self.bar is not None:
             self.bar.update(1)
         else:
             tag = " (from checkpoint)" if skipped else ""
+            left = self.total - self.done
+            if not skipped and left and self.computed > 1:     # batches after the first (no compile time)
+                tag += f", about {(time.time() - self.t_first) / (self.computed - 1) * left:.0f} s left"
+            elif not skipped and left and getattr(self, "t_begin", None):
+                tag += (f", at most about {(time.time() - self.t_begin) * left:.0f} s left "
+                        "(the first batch included compiling)")
             print(f"crosswind: batch {self.done}/{self.total}{tag}", file=sys.stderr, flush=True)
 
     def close(self):
@@ -398,6 +417,9 @@ def _run_locked(scn: Scenario, folder: Path, progress: bool, after_batch):
                 results.append(done)
                 prog.update(skipped=True)
                 continue
+            if not computed:
+                prog.phase(f"compiling the k-space kernels for {scn.material.model or scn.material.tight_binding.name} "
+                           "(first run only; cached afterwards)…")
             idx = dict(zip(outer, combo))
             P = len(axes[inner])
             values = {}

@@ -106,8 +106,9 @@ def _predictor(scn):
     return predict, base
 
 
-def run_fit(scn, data_path, folder, *, starts=None) -> dict:
-    """Fit, write every output into ``folder``; returns the fit.json content."""
+def run_fit(scn, data_path, folder, *, starts=None, progress=None) -> dict:
+    """Fit, write every output into ``folder``; returns the fit.json content.  ``progress(line)``
+    receives one line per iteration (cost and parameter values)."""
     from .fit import fit
     spec = scn.fit
     x, y, err = load_data(scn, data_path)
@@ -121,7 +122,7 @@ def run_fit(scn, data_path, folder, *, starts=None) -> dict:
     sig = err if err is not None else None
     resid = lambda p: (predict(p, x) - jnp.asarray(y)) / (1.0 if sig is not None else yscale)
     res = fit(resid, initial, bounds=bounds, starts=starts or spec.starts, sigma=sig,
-              absolute_sigma=err is not None, jit=True)
+              absolute_sigma=err is not None, jit=True, progress=progress)
     best = {k: jnp.asarray(v) for k, v in res.values.items()}
     xs = np.linspace(float(np.min(x)), float(np.max(x)), 25)
     curve = np.asarray(predict(best, xs))

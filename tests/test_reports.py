@@ -192,3 +192,50 @@ def test_run_cases_calls_progress_around_each_case():
     assert len(rows) == 1 and rows[0]["passed"]
     assert calls[0] == (1, 1, "dirac-density", None) and calls[1][:3] == (1, 1, "dirac-density")
     assert calls[1][3] >= 0.0
+
+
+def test_run_shows_compile_phase_estimate_and_report_phase(tmp_path, monkeypatch, capsys):
+    """The first batch used to sit silent while compiling, and figure writing was silent: a phase
+    line names the model, the plain progress lines give an estimate after the first batch."""
+    import sys
+    from test_scenario import GOOD
+    monkeypatch.setitem(sys.modules, "tqdm", None)          # the plain progress lines (no bar)
+    p = tmp_path / "s.toml"
+    p.write_text(GOOD, encoding="utf-8")
+    assert main(["run", str(p)]) == 0
+    err = capsys.readouterr().err
+    assert "crosswind: compiling the k-space kernels for massive-dirac (first run only" in err
+    assert "crosswind: batch 1/2, at most about" in err and "s left (the first batch included compiling)" in err
+    assert "crosswind: writing summary…" in err
+    assert err.index("compiling") < err.index("batch 1/2") < err.index("writing summary")
+
+
+def test_fit_reports_each_iteration_with_cost_and_values():
+    """crosswind fit used to be silent for minutes: fit(progress=...) gets one line per iteration
+    (or per evaluation with an old SciPy) naming the start, the cost and the parameter values."""
+    import jax.numpy as jnp
+    from crosswind.solver.fit import fit
+    lines = []
+    x = jnp.linspace(0.0, 1.0, 8)
+    res = fit(lambda p: p["a"] * jnp.exp(p["b"] * x) - 2.0 * jnp.exp(-0.5 * x), {"a": 1.0, "b": 0.3},
+              progress=lines.append, starts=2)
+    assert res.converged and abs(res.values["a"] - 2.0) < 1e-6
+    assert lines and lines[0].startswith("start 1/2, ") and any(s.startswith("start 2/2, ") for s in lines)
+    assert all(": cost " in s and "a = " in s and "b = " in s for s in lines)
+    assert ("iteration 1:" in lines[0]) or ("evaluation 1:" in lines[0])
+
+
+def test_fit_command_prints_progress(tmp_path, monkeypatch, capsys):
+    from crosswind.solver import scenario_fit
+    from test_fit_cli import FIT
+
+    def fake_run_fit(scn, data, folder, starts=None, progress=None):
+        progress("start 1/1, iteration 1: cost 3.2, tilt = 3.5e+04")
+        return {"status": "ok", "scaling": False}
+    monkeypatch.setattr(scenario_fit, "run_fit", fake_run_fit)
+    p = tmp_path / "f.toml"
+    p.write_text(FIT, encoding="utf-8")
+    (tmp_path / "d.csv").write_text("mu [eV], V2w [nV]\n0.1, 1\n", encoding="utf-8")
+    assert main(["fit", str(p), "--data", str(tmp_path / "d.csv"), "--output", str(tmp_path / "o")]) == 0
+    err = capsys.readouterr().err
+    assert "crosswind: fitting" in err and "crosswind: fit start 1/1, iteration 1: cost 3.2, tilt = 3.5e+04" in err
