@@ -179,7 +179,22 @@ def band_geometry(model: BandModel, k, tol: float = DEGENERACY_TOL) -> BandGeome
 
     Returns a :class:`BandGeometry` whose fields have a leading ``nk`` axis and bands in
     ascending energy.  Vectorised with ``jax.vmap`` (no Python loop over k-points) and
-    differentiable with respect to ``model.params``.
+    differentiable with respect to ``model.params``.  All fields are real (float64).
+
+    Fields, units and formulas (sums over states with V^a = U†∂_aH U, never differentiated
+    eigenvectors; docs/theory.md §2):
+
+    * ``energies`` ε_n [eV]; ``energy_gradient`` ∂ε_n/∂k [eV·Å] (``velocities`` = ∂ε/ħ∂k [m/s]);
+      ``energy_hessian`` ∂_a∂_bε_n [eV·Å²] (``inverse_mass`` in 1/m_e);
+    * ``berry_curvature`` Ω_n = −2 Im Σ_{m≠n} V^x_nm V^y_mn/(ε_n−ε_m)² [Å²] (Ω = ∇ₖ×i⟨u|∇ₖu⟩;
+      2D: the z component, 3D: a vector); two-band d-vector form Ω_± = ∓ d·(∂_xd × ∂_yd)/(2|d|³);
+    * ``orbital_moment`` m_n = −(e/ħ) Σ_{m≠n} Im[V^x_nm V^y_mn]/(ε_n−ε_m) [eV/T] (carrier charge −e);
+    * ``quantum_metric`` g^n_ab = Σ_{m≠n} Re[V^a_nm V^b_mn]/(ε_n−ε_m)² [Å²];
+    * ``polarizability`` G^n_ab = 2 Re Σ_{m≠n} V^a_nm V^b_mn/(ε_n−ε_m)³ [Å²/eV] (Berry-connection
+      polarizability; Gao, Yang, Niu, PRL 112, 166601 (2014)).
+
+    Bands of one block closer than ``tol`` (eV) form a degenerate group: pairs inside it are left
+    out of the sums and each member gets the group average (see the module docstring).
     """
     k = jnp.asarray(k, dtype=jnp.float64)
     if k.ndim != 2 or k.shape[1] != model.dim:

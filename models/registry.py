@@ -48,6 +48,18 @@ def build(name: str, **params) -> BandModel:
     ``params`` are checked against the model's parameter spec: an unknown name raises
     ``ValueError`` listing the valid ones; a concrete value out of range raises ``ValueError``
     giving the range.  Traced JAX values are accepted so gradients flow through the model.
+
+    Units and conventions (every model): energies in eV, lengths in Å, k in 1/Å, velocities in
+    m/s, strain dimensionless (ε_ij, ε_xy half the engineering shear); each parameter's unit,
+    default, range and meaning are listed by ``crosswind models`` (or ``catalogue()[name].spec``),
+    its Hamiltonian H(k) and published source by ``catalogue()[name].hamiltonian``/``.source``.
+    H(k) is in eV with k measured in 1/Å (from the valley centre for a k·p model; lattice Bloch
+    phases include the orbital positions, docs/theory.md §2.5).  Examples of the formulas behind
+    the names: ``massive-dirac`` H = ħt k_x + ħv(k_xσ_x + k_yσ_y) + Δσ_z (one valley; gap 2|Δ|, a Dirac
+    "mass" is half the gap); ``haldane`` H = 2t2 cosφ Σcos(k·b_i) + t1 Σ[cos(k·a_i)σ_x +
+    sin(k·a_i)σ_y] + [M − 2t2 sinφ Σ sin(k·b_i)]σ_z.  Returns a :class:`BandModel` pytree (real
+    parameters are leaves, so ``jax.grad`` flows through them); pass it to ``band_geometry`` or
+    ``response``.
     """
     _load()
     if name not in _CATALOGUE:

@@ -557,7 +557,30 @@ def response(model: BandModel, mu, temperature, tau, frequency=0.0, *, rtol: flo
     """Transport coefficients of ``model`` at chemical potential(s) ``mu`` (eV), ``temperature`` (K)
     and relaxation time ``tau`` (fs, or a scattering object from :mod:`crosswind.solver.scattering`),
     at drive ``frequency`` (Hz).  ``mu``, ``temperature`` and ``tau`` broadcast against each other;
-    every field carries that shape in front.  See the module docstring for formulas and units.
+    every field carries that shape in front.
+
+    Formulas (q = −e, ∫[dk] = ∫dᵈk/(2π)ᵈ over bands × degeneracy, F = −∂f0/∂ε, v = ∇ₖε/ħ,
+    τ̃_ω = τ/(1+iωτ); E(t) = Re[E e^{iωt}], j_a = σ_ab E_b; full list in the module docstring and
+    docs/theory.md §5), units for a 2D sheet (3D in brackets; ``r.units`` names every field):
+
+    * ``sigma`` = ``sigma_drude`` + ``sigma_anomalous`` [S (S/m)]: σ^D_ab = q²∫[dk] F τ̃_ω v_a v_b;
+      σ^A_xy = −(e²/ħ)∫[dk] f0 Ω (a filled Chern band gives −C e²/h).
+    * ``dipole`` D_b = ∫[dk] f0 ∂_bΩ [m (dimensionless)], the Berry-curvature dipole.
+    * ``chi`` χ_abc [A·m/V² (A/V²)], the 2ω phasor j^{2ω}_a = χ_abc E_b E_c (Sodemann & Fu, PRL 115,
+      216806 (2015) convention; symmetric in b, c) = dipole part χ_yxx = −e³τ̃_ω D_x/(2ħ²) (2D)
+      + nonlinear Drude (∝ τ², ∫f0 ∂_a∂_b∂_c ε) + intrinsic (τ⁰, Berry-connection polarizability);
+      the parts are in ``chi_parts``.  ``chi_dc`` is the rectified j⁽⁰⁾_a = χ^dc_abc E_b E_c*;
+      a static field E gives j = 2 χ^dc E E.
+    * ``density`` [m⁻² (m⁻³)] relative to neutrality; ``dos`` [J⁻¹m⁻² (J⁻¹m⁻³)];
+      ``sigma_lorentz`` = ∂σ/∂B_z [S/T]; ``hall_coefficient`` [Ω/T (m³/C)]; ``seebeck`` [V/K];
+      ``thermal_conductivity`` [W/K (W/(K·m))]; ``lorenz`` [W·Ω/K²]; ``nernst`` [A/K (A/(K·m))].
+
+    Contract: dc quantities are real (float64): ``density``, ``dos``, ``dipole``, ``dipole_sea``,
+    ``sigma_lorentz``, ``hall_coefficient``, ``seebeck``, ``thermal_conductivity``, ``lorenz``,
+    ``nernst``.  Phasor coefficients are complex (complex128) at every frequency: ``sigma``,
+    ``sigma_drude``, ``sigma_anomalous``, ``chi``, ``chi_dc`` (at ``frequency=0`` their imaginary
+    parts are exactly 0: use ``.real`` for a dc number).  ``error`` holds |fine − coarse| per field
+    in the same units (real).
 
     ``resolution`` fixes the refinement level (required under ``jax.grad``/``jit``); ``None``
     chooses it automatically for ``rtol``.  ``dipole_route="both"`` also evaluates the Fermi-sea

@@ -164,6 +164,15 @@ def sensitivities(model: BandModel, wrt, *, mu, temperature, tau, frequency=0.0,
     where ``value`` is the Response itself.  ``mode``: ``"forward"`` (one ``jax.jvp`` per name,
     one compiled program for every choice of names) or ``"jacfwd"`` (batched tangents).  For
     reverse mode use :func:`gradient` with a scalar target.
+
+    Formula and units: for each name x, ∂F/∂x of every field F of ``response`` (σ [S], D [m],
+    χ [A·m/V²], density [m⁻²], … for a 2D sheet; see ``help(response)`` for the formulas), taken
+    by automatic differentiation at fixed k-space nodes (mesh placement is ``stop_gradient``ed),
+    so ``units[field]`` reads ``"(field unit) / (input unit)"``, e.g. ∂χ/∂mu in A·m/V² per eV,
+    ∂σ/∂temperature in S/K, ∂χ/∂tau in A·m/V² per fs.  Contract as in ``response``: derivatives of
+    dc quantities are real, of phasor coefficients (σ, χ, χ^dc) complex.  At a converged
+    ``resolution`` they agree with central differences of ``response``; derivative integrands are
+    sharper than the fields, so check a second level.
     """
     names = _names(wrt)
     if mode not in ("forward", "jacfwd"):
