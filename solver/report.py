@@ -230,6 +230,13 @@ def resolution_info(ds, scn, idx, model=None) -> dict:
             "amp_bound": bound}
 
 
+def fmt_eng(v, unit: str) -> str:
+    """A number with an engineering prefix (33.05 μS); plain scientific notation below femto."""
+    v = float(np.real(v))
+    f, u = eng_scale(v, unit)
+    return f"{v:.4g} {unit}" if u.startswith("$") else f"{v / f:.4g} {u}"
+
+
 def fmt_volts(v) -> str:
     """A voltage with an engineering prefix (pV … V)."""
     a = abs(v)
@@ -448,6 +455,10 @@ def plot_responses(ds, idx, path: Path, info=None):
         axs[2, col].set_ylabel(f"$\\chi'_{{yxx}}$ [{uc}]")
         for r in range(3):
             axs[r, col].ticklabel_format(axis="y", style="plain", useOffset=False)
+        a0 = ds["v2w_y_amplitude"].values
+        pos = a0[np.isfinite(a0) & (a0 > 0)]
+        if pos.size and info is not None and info["any_resolved"] and pos.max() > 100 * pos.min():
+            axs[0, col].set_yscale("log")        # the signal spans decades
         if info is not None and info["all_forbidden"]:
             axs[0, col].set_title("vanishes by symmetry: values are integration residue", fontsize=8)
         elif info is not None and not info["any_resolved"]:
@@ -521,16 +532,18 @@ def plot_scaling(ds, idx, path: Path):
     fig, ax = plt.subplots(figsize=(5.5, 4.2))
     n = ds.sizes[carrier]
     picks = sorted(set(np.linspace(0, n - 1, min(n, 5)).round().astype(int)))
+    fr, ur = eng_scale(ds["nonlinear_ratio"].values, "m/V")
     for ci in picks:
         sel = {d: i for d, i in idx.items() if d not in (name, carrier)}
         sel[carrier] = ci
         sxx = ds["sigma_bar"].isel(sel).values[..., 0, 0]
         ratio = ds["nonlinear_ratio"].isel(sel).values
-        ax.plot(sxx / E2H, ratio, "o-", ms=3,
+        ax.plot(sxx / E2H, ratio / fr, "o-", ms=3,
                 label=f"{ds[carrier].attrs.get('long_name', carrier)} = {ds[carrier].values[ci]:.3g} "
                       f"{ds[carrier].attrs.get('units', '')}")
     ax.set_xlabel(f"$\\sigma'_{{xx}}$ [$e^2/h$], varied through {ds[name].attrs.get('long_name', name)}")
-    ax.set_ylabel("$E_\\perp/E_\\parallel^2 = \\chi'_{yxx}/\\sigma'_{yy}$ [m/V]")
+    ax.set_ylabel(f"$E_\\perp/E_\\parallel^2 = \\chi'_{{yxx}}/\\sigma'_{{yy}}$ [{ur}]")
+    ax.ticklabel_format(axis="y", style="plain", useOffset=False)
     ax.set_title("scaling: E⊥/E∥² = C0 + C1 σ + C2 σ² separates mechanisms", fontsize=9)
     ax.legend(fontsize=7)
     fig.tight_layout()
@@ -545,8 +558,9 @@ def _fmt_point(ds, idx):
     for d in grid_axes(ds):
         v = float(ds[d].values[idx[d]])
         if ds.sizes[d] > 1 or d == "current_angle":
-            unit = ds[d].attrs.get("units", "")
-            parts.append(f"{d} = {v:.4g} {unit if unit != '1' else ''}".rstrip())
+            unit = {"deg": "°", "1": ""}.get(ds[d].attrs.get("units", ""), ds[d].attrs.get("units", ""))
+            name = ds[d].attrs.get("long_name", d.replace("_", " "))
+            parts.append(f"{name} = {v:.4g}{unit}" if unit == "°" else f"{name} = {v:.4g} {unit}".rstrip())
     return ", ".join(parts)
 
 
@@ -688,7 +702,7 @@ def summary_markdown(ds, scn, idx, angle_info=None, info=None) -> str:
         "",
         *_headline(ds, scn, idx, info, amp, rms, phase, mu, dens),
         f"At the {'peak' if info['any_resolved'] else 'grid point shown in the figures'}: "
-        f"σ'_xx = {sbar[0, 0]:.4g} S ({sbar[0, 0] / E2H:.4g} e²/h), σ'_yy = {sbar[1, 1]:.4g} S, "
+        f"σ'_xx = {fmt_eng(sbar[0, 0], 'S')} ({sbar[0, 0] / E2H:.4g} e²/h), σ'_yy = {fmt_eng(sbar[1, 1], 'S')}, "
         f"Hall angle tan θ_H = {hall_txt}, χ'_yxx = {chi_txt}, "
         f"E⊥/E∥² = {ratio_txt}, longitudinal voltage |V_xx| = {fmt_volts(vxx)} "
         f"over L = {dev.length_um:g} μm, rectified transverse voltage {vdc_txt}. Primes (σ', χ') denote the "

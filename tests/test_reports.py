@@ -268,3 +268,38 @@ def test_help_of_public_functions_shows_formulas_units_and_contract():
         v = np.asarray(getattr(res, f))
         assert np.iscomplexobj(v) and np.all(v.imag == 0.0), f
     assert all(not np.iscomplexobj(np.asarray(v)) for v in res.error.values())
+
+
+# ------------------------------------------------------------------ item 9: labels read like physics --
+def test_figure_labels_are_typeset_with_units_and_prefixes(demo, monkeypatch):
+    """Labels used to read "|V_y^2ω|", "gate_voltage (V)", "σ'_xx (e²/h)" with bare 1e-16 multipliers
+    and unexplained primes: units in brackets, engineering prefixes, the bar frame explained."""
+    from crosswind.solver import report
+    from crosswind.solver.demo import SCENARIO
+    from crosswind.solver.run import open_results
+    from crosswind.solver.scenario import parse_scenario
+    figs = {}
+    monkeypatch.setattr(report, "atomic_figure", lambda fig, path, dpi=None: figs.__setitem__(path.name, fig))
+    monkeypatch.setattr(report._plt(), "close", lambda fig: None)
+    ds = open_results(demo[2])
+    scn = parse_scenario(SCENARIO, source="<built-in demo>", base=demo[2])
+    idx = report.peak_index(ds)
+    info = report.resolution_info(ds, scn, idx)
+    report.plot_responses(ds, idx, demo[2] / "responses.png", info)
+    report.plot_angle(ds, idx, scn, demo[2] / "angle.png", info)
+    fig = figs["responses.png"]
+    labels = [a.get_ylabel() for a in fig.axes] + [a.get_xlabel() for a in fig.axes if a.get_xlabel()]
+    assert "gate voltage [V]" in labels
+    assert any(lab.endswith("amplitude [nV]") and "2\\omega" in lab for lab in labels)
+    assert any(lab == "$\\sigma'_{xx}$ [μS]" for lab in labels)
+    assert all("_" not in lab for lab in labels if "$" not in lab)      # no identifiers outside math text
+    assert "gate_voltage" not in " ".join(labels) and all("(" not in lab for lab in labels)
+    for a in fig.axes:            # no bare "1e-16" multiplier above an axis
+        a.figure.canvas.draw()
+        assert a.yaxis.get_offset_text().get_text() == ""
+    assert "bar frame" in fig._suptitle.get_text()
+    texts = " ".join(t.get_text() for t in figs["angle.png"].texts)
+    assert "bar frame" in texts
+    angle_titles = [a.get_title() for a in figs["angle.png"].axes]
+    assert any("[nV]" in t for t in angle_titles) and any("sign" in t for t in angle_titles)
+    assert len(figs["angle.png"].axes[0].get_yticks()) <= 5        # radial ticks do not crowd
