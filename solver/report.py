@@ -80,7 +80,7 @@ SYMMETRY_SOURCES = ("Sodemann & Fu, PRL 115, 216806 (2015); Gao, Yang & Niu, PRL
 def zero_bound(err, scale) -> float:
     """The bound below which a value is zero within error: max(error estimate, ZERO_FLOOR·scale);
     a NaN error (no coarser level compared) counts as unavailable."""
-    err = float(np.nan_to_num(np.max(np.abs(err)), nan=0.0)) if np.size(err) else 0.0
+    err = float(np.nan_to_num(np.max(np.abs(err)), nan=0.0, posinf=np.inf)) if np.size(err) else 0.0
     return max(err, ZERO_FLOOR * abs(float(scale)))
 
 
@@ -223,7 +223,7 @@ def resolution_info(ds, scn, idx, model=None) -> dict:
     amp = ds["v2w_y_amplitude"].values
     err_amp = _grid_v2w_error(ds, scn)
     all_forbidden = all(p in forb for p in PARTS)
-    bound = np.maximum(np.nan_to_num(err_amp, nan=0.0), ZERO_FLOOR * np.nanmax(amp))
+    bound = np.maximum(np.nan_to_num(err_amp, nan=0.0, posinf=np.inf), ZERO_FLOOR * np.nanmax(amp))
     resolved = (amp > bound) & (not all_forbidden)
     return {"symmetries": sym, "forbidden": forb, "all_forbidden": all_forbidden, "amp_error": err_amp,
             "amp_resolved": resolved, "any_resolved": bool(np.any(resolved)), "model": model,
@@ -240,6 +240,8 @@ def fmt_eng(v, unit: str) -> str:
 def fmt_volts(v) -> str:
     """A voltage with an engineering prefix (pV … V)."""
     a = abs(v)
+    if not np.isfinite(a):
+        return f"{v} V"
     for f, u in ((1.0, "V"), (1e-3, "mV"), (1e-6, "μV"), (1e-9, "nV"), (1e-12, "pV")):
         if a >= f:
             return f"{v / f:.4g} {u}"
@@ -596,12 +598,15 @@ def _error_line(err_chi, chi_size, err_sig, sig_size) -> str:
 
 
 def _zero(bound, unit_fmt, symbol="x") -> str:
+    if not np.isfinite(bound):
+        return "not resolved (its error estimate is infinite: see the Numerical accuracy section)"
     return f"zero within error (|{symbol}| < {unit_fmt(bound)})"
 
 
 def _rotated_error(err, angle):
     R = _rotation_abs(angle)
-    return np.einsum("ai,bj,ck,ijk->abc", R, R, R, np.nan_to_num(np.asarray(err, dtype=float), nan=0.0))
+    err = np.nan_to_num(np.asarray(err, dtype=float), nan=0.0, posinf=np.inf)
+    return np.einsum("ai,bj,ck,ijk->abc", R, R, R, err) if np.all(np.isfinite(err)) else np.full((2, 2, 2), np.inf)
 
 
 def _headline(ds, scn, idx, info, amp, rms, phase, mu, dens) -> list:
@@ -684,7 +689,7 @@ def summary_markdown(ds, scn, idx, angle_info=None, info=None) -> str:
     ratio_txt = (f"{float(g('nonlinear_ratio')):.4g} m/V" if chi_ok else "zero within error")
     vdc = float(g("vdc_y"))
     vdc_err = float(np.max(np.nan_to_num(_grid_v2w_error(ds, scn, "chi_dc", "vdc_y")
-                                         [tuple(idx[d] for d in ds["vdc_y"].dims)], nan=0.0)))
+                                         [tuple(idx[d] for d in ds["vdc_y"].dims)], nan=0.0, posinf=np.inf)))
     vdc_bound = max(vdc_err, ZERO_FLOOR * float(np.nanmax(np.abs(ds["vdc_y"].values))))
     vdc_txt = (fmt_volts(vdc) if not info["all_forbidden"] and abs(vdc) > vdc_bound
                else _zero(vdc_bound, fmt_volts, "V_dc"))
@@ -732,7 +737,8 @@ def summary_markdown(ds, scn, idx, angle_info=None, info=None) -> str:
         echi = ds["error_chi"].isel(sel_pt).values
         from .device import HallBar
         bar = HallBar(dev.width_um, dev.length_um, dev.current_uA, dev.frequency_Hz)
-        ea = np.nan_to_num(v2w_error(np.broadcast_to(sig_pt, (len(th), 2, 2)), esig, echi, bar, th, a), nan=0.0)
+        ea = np.nan_to_num(v2w_error(np.broadcast_to(sig_pt, (len(th), 2, 2)), esig, echi, bar, th, a), nan=0.0,
+                           posinf=np.inf)
         bd = np.maximum(ea, ZERO_FLOOR * float(np.max(a)))
         ok_a = (a > bd) & (not info["all_forbidden"])
         if not np.any(ok_a):

@@ -134,6 +134,10 @@ def test_zero_rule_units():
     assert not is_resolved(1e-7, np.nan, 1.0) and is_resolved(1e-5, np.nan, 1.0)
     assert not is_resolved(5e-4, 1e-3, 1.0)
     assert fmt_volts(23.47e-9) == "23.47 nV" and fmt_volts(4.0e-3) == "4 mV" and fmt_volts(2e-6) == "2 μV"
+    # an infinite error estimate (unresolved thermal window) is never turned into a finite bound
+    from crosswind.solver.report import _zero
+    assert zero_bound(np.inf, 1.0) == np.inf and not is_resolved(1.0, np.inf, 1.0)
+    assert _zero(np.inf, fmt_volts).startswith("not resolved")
 
 
 # ------------------------------------------------------------------ item 6: validate shows sources in full --
