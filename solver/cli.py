@@ -36,7 +36,9 @@ def _parser() -> argparse.ArgumentParser:
                    "default: [fit] data")
     f.add_argument("--output", "-o", metavar="DIR", help="output folder (default: fit-<scenario name> next to it)")
     f.add_argument("--starts", type=int, metavar="N", help="number of starting points (default: [fit] starts)")
-    f.add_argument("--no-progress", action="store_true", help="do not show the iterations on stderr")
+    f.add_argument("--progress", action="store_true", default=None,
+                   help="show each iteration (cost, parameter values) on stderr; default: when stderr is a terminal")
+    f.add_argument("--no-progress", dest="progress", action="store_false", help="do not show the iterations")
     d = sub.add_parser("demo", help="run the built-in demonstration scenario",
                        description="Run a small built-in scenario (strained MoS2 Hall bar, gate and "
                                    "temperature sweep) and write results, figures and a summary.")
@@ -136,11 +138,10 @@ def cmd_fit(args) -> int:
     folder = Path(args.output) if args.output else Path(args.scenario).resolve().parent / f"fit-{Path(args.scenario).stem}"
     t0 = time.time()
     try:
-        if not args.no_progress:
-            print("crosswind: fitting (the first iteration compiles the k-space kernels)…", file=sys.stderr, flush=True)
+        show = sys.stderr.isatty() if args.progress is None else args.progress
         out = run_fit(scn, data, folder, starts=args.starts,
-                      progress=None if args.no_progress else lambda line: print(f"crosswind: fit {line}",
-                                                                               file=sys.stderr, flush=True))
+                      progress=(lambda line: print(f"crosswind: fit {line}", file=sys.stderr, flush=True)) if show
+                      else None)
     except (FitInputError, OutputError) as exc:
         _err(str(exc))
         return 2

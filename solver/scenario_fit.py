@@ -116,6 +116,9 @@ def run_fit(scn, data_path, folder, *, starts=None, progress=None) -> dict:
     if spec.scaling:
         return _run_scaling(scn, x, y, err, data_path, folder)
     predict, base = _predictor(scn)
+    if progress is not None:
+        progress(f"of {len(spec.parameters)} parameter(s) to {y.size} points: the first evaluation compiles the "
+                 "k-space kernels…")
     initial = {n: i for n, i, _, _ in spec.parameters}
     bounds = {n: (lo, hi) for n, _, lo, hi in spec.parameters}
     yscale = float(np.max(np.abs(y))) or 1.0
