@@ -110,8 +110,19 @@ def _tname(v) -> str:
     return type(v).__name__
 
 
+MAX_LATTICE_A = 1e6       # Å: longer lattice vectors are a unit mistake (0.1 mm)
+MAX_CELL = 1000           # hops reach at most this many cells (a longer one is a typing mistake)
+
+
 def _is_num(v) -> bool:
-    return isinstance(v, (int, float)) and not isinstance(v, bool)
+    """A TOML number that converts to float64 (an integer of 400 digits does not)."""
+    if isinstance(v, bool) or not isinstance(v, (int, float)):
+        return False
+    try:
+        float(v)
+    except OverflowError:
+        return False
+    return True
 
 
 def _string(ctx, table, key, v) -> str:
@@ -304,7 +315,7 @@ def _parse(data: dict, ctx: _Ctx):
             close = difflib.get_close_matches(key, list(_TOP), n=1)
             hint = f" Did you mean '{close[0]}'?" if close else ""
             ctx.fail("(top level)", key, f"unknown table.{hint}",
-                     f"Allowed: [model], [lattice], [parameters.<name>], [[orbital]], [[hop]].")
+                     "Allowed: [model], [lattice], [parameters.<name>], [[orbital]], [[hop]].")
     for key in ("model", "lattice", "orbital"):
         if key not in data:
             form = f"[[{key}]]" if _TOP[key] == "array of tables" else f"[{key}]"
@@ -332,6 +343,10 @@ def _parse(data: dict, ctx: _Ctx):
                  f"got {len(vecs) if isinstance(vecs, list) else _tname(vecs)}.")
     vectors = tuple(_vector(ctx, "[lattice]", f"vectors[{i}]", v, dim) for i, v in enumerate(vecs))
     a = np.asarray(vectors)
+    longest = float(np.max(np.sqrt(np.sum(a * a, axis=1)))) if np.all(np.abs(a) < 1e100) else math.inf
+    if not longest <= MAX_LATTICE_A:
+        ctx.fail("[lattice]", "vectors", f"a lattice vector is longer than {MAX_LATTICE_A:g} Å.",
+                 "Give the vectors in Å (a few Å for a crystal, up to ~1e3 Å for a moiré cell).")
     if abs(np.linalg.det(a)) < 1e-12:
         ctx.fail("[lattice]", "vectors", "the lattice vectors are linearly dependent (zero cell volume).")
 
@@ -402,9 +417,9 @@ def _parse(data: dict, ctx: _Ctx):
             ends.append(labels[lab])
         cell = hop["cell"]
         if not isinstance(cell, list) or len(cell) != dim or not all(
-                isinstance(c, int) and not isinstance(c, bool) for c in cell):
-            ctx.fail(tname, "cell", f"must be an array of {dim} integers (lattice displacement of the 'to' "
-                     f"orbital's cell, e.g. {[0] * dim}), got {cell!r}.")
+                isinstance(c, int) and not isinstance(c, bool) and abs(c) <= MAX_CELL for c in cell):
+            ctx.fail(tname, "cell", f"must be an array of {dim} integers of at most {MAX_CELL} in size (lattice "
+                     f"displacement of the 'to' orbital's cell, e.g. {[0] * dim}), got {cell!r}.")
         f, t = ends
         key = (f, t, tuple(cell))
         rev = (t, f, tuple(-c for c in cell))
@@ -425,6 +440,9 @@ def _parse(data: dict, ctx: _Ctx):
         hd.append(tuple(float(x) for x in delta))
         ha.append(amp)
 
+    if not hf:
+        ctx.fail("[[hop]]", None, "no hops: without hopping the bands are flat and carry no current.",
+                 "Add at least one [[hop]] table (from, to, cell, amplitude).")
     defn = _Definition(names=tuple(declared), n_orb=len(orbs), hop_from=tuple(hf), hop_to=tuple(ht),
                        hop_delta=tuple(hd), hop_amp=tuple(ha), onsite=tuple(onsite))
     spec = ParamSpec(tuple(parameters), owner=f"{name} ({ctx.source})")
@@ -444,7 +462,14 @@ def parse_tight_binding(text: str, source: str = "<string>", **values: Any) -> B
         data = tomllib.loads(text)
     except tomllib.TOMLDecodeError as exc:
         raise TightBindingFileError(f"{source}: not valid TOML: {exc}.") from exc
-    defn, spec, lattice, meta = _parse(data, ctx)
+    try:
+        defn, spec, lattice, meta = _parse(data, ctx)
+    except TightBindingFileError:
+        raise
+    except (TypeError, ValueError, KeyError, IndexError, AttributeError, OverflowError, ZeroDivisionError) as exc:
+        # a combination the checks above do not name: still this file's error, never a traceback
+        raise TightBindingFileError(f"{source}: an entry has an unexpected type or value ({type(exc).__name__}: "
+                                    f"{exc}). Check each table against docs/tight-binding-files.md.") from exc
     real, _ = spec.resolve(values)
     h, dv, jet = _functions_for(defn)
     return BandModel(name=meta["name"], dim=meta["dim"], hamiltonian=h, params=real, spec=spec,

@@ -104,8 +104,14 @@ def load_measurements(path, columns: dict, *, min_points: int | None = None) -> 
                              "with an optional prefix such as A, uA, V, nV, S, m/V") from None
     if not os.path.exists(path):
         raise FileNotFoundError(f"load_measurements: no file '{path}'")
-    with open(path, newline="", encoding="utf-8-sig") as fh:
-        lines = [(i + 1, row) for i, row in enumerate(csv.reader(fh))]
+    try:
+        with open(path, newline="", encoding="utf-8-sig") as fh:
+            lines = [(i + 1, row) for i, row in enumerate(csv.reader(fh))]
+    except UnicodeDecodeError as exc:
+        raise ValueError(f"{path}: not UTF-8 text (byte 0x{exc.object[exc.start]:02x} at position {exc.start}); "
+                         "save the measurement file as UTF-8 (CSV)") from None
+    except csv.Error as exc:
+        raise ValueError(f"{path}: not a readable CSV file ({exc}); save it as plain comma-separated text") from None
     body = [(n, row) for n, row in lines
             if row and any(c.strip() for c in row) and not row[0].lstrip().startswith("#")]
     if not body:

@@ -203,7 +203,13 @@ class _Ctx:
 
 
 def _is_num(v) -> bool:
-    return isinstance(v, (int, float)) and not isinstance(v, bool) and math.isfinite(v)
+    """A finite TOML number that converts to float64 (an integer of 400 digits does not)."""
+    if isinstance(v, bool) or not isinstance(v, (int, float)):
+        return False
+    try:
+        return math.isfinite(float(v))
+    except OverflowError:
+        return False
 
 
 def _number(ctx, table, key, v, positive=False, nonneg=False) -> float:
@@ -381,7 +387,7 @@ def _conditions(ctx, data, dev: Device, device_angle):
     if "scattering" in t:
         s = ctx.table("conditions.scattering", t["scattering"])
         kind = s.get("kind")
-        if kind not in _SCATTERING:
+        if not isinstance(kind, str) or kind not in _SCATTERING:
             ctx.fail("conditions.scattering", "kind", f"unknown or missing kind {kind!r}.",
                      ", ".join(f'"{k}"' for k in _SCATTERING))
         fields = _SCATTERING[kind]
@@ -447,7 +453,19 @@ def _output(ctx, data, base: Path):
 
 
 def parse_scenario(text: str, source: str = "<string>", base: Path | str | None = None) -> Scenario:
-    """A :class:`Scenario` from TOML text; ``base`` is the folder relative paths refer to."""
+    """A :class:`Scenario` from TOML text; ``base`` is the folder relative paths refer to.  Every
+    problem is a :class:`ScenarioError` naming the file (never another exception type)."""
+    try:
+        return _parse_scenario(text, source, base)
+    except ScenarioError:
+        raise
+    except (TypeError, ValueError, KeyError, IndexError, AttributeError, OverflowError, ZeroDivisionError) as exc:
+        # a combination the checks do not name: still this file's error, never a traceback
+        raise ScenarioError(f"{source}: an entry has an unexpected type or value ({type(exc).__name__}: {exc}). "
+                            "Check each table against docs/scenario-files.md.") from exc
+
+
+def _parse_scenario(text: str, source: str, base: Path | str | None) -> Scenario:
     ctx = _Ctx(source)
     base = Path(base) if base is not None else Path.cwd()
     try:
