@@ -571,6 +571,10 @@ def make_plan(model, params, mu, temperature, resolution: int, flagged=None, old
     n0 = min(n0, N0_MAX[dim])
     probe = Plan(n0, (), (64,), kappa, rho)
     ktl0 = float(ladder_temperatures(model, params, probe)[0][0])
+    if not np.isfinite(ktl0):
+        raise ValueError(f"response: the band energies or velocities of model '{model.name}' are NaN or "
+                         "infinite somewhere in the Brillouin zone (found while planning the k-space "
+                         "ladder); check the Hamiltonian and its parameters there")
     target = KB * max(float(np.min(kt)) / KB, T_DEEP[resolution])
     if ktl0 > target and n0 < N0_MAX[dim]:
         # refine level 0 by a factor in [1, 2) so that a level resolves exactly the coldest

@@ -764,3 +764,19 @@ def test_existing_folder_that_is_not_a_results_folder_is_refused_unless_empty(tm
     empty.mkdir()
     run_scenario(scn, empty, progress=False)
     assert calls == [5.0, 20.0]
+
+
+def test_model_nan_somewhere_gives_a_clear_error_with_the_ladder_engine():
+    """The same NaN-in-a-disc model with the energy-resolved ladder (automatic for 2D lattices):
+    a clear ValueError naming the model's non-finite values, never a raw conversion error."""
+    lat = Lattice(vectors=((3.0, 0.0), (0.0, 3.0)), positions=((0.0, 0.0),) * 2)
+    hole = np.array([1.2, 1.5])
+
+    def h(k, p):
+        inside = jnp.sum((k - hole) ** 2) < 0.3 ** 2
+        c = lambda x: jnp.asarray(x).astype(jnp.complex128)
+        return c(jnp.cos(3.0 * k[0])) * SX + c(jnp.sin(3.0 * k[1])) * SY + c(p["m"] + jnp.where(inside, jnp.nan, 0.0)) * SZ
+
+    model = from_function(h, parameters=GAPPED, domain=lat)
+    with pytest.raises(ValueError, match=r"NaN or infinite somewhere in the Brillouin zone.*check the Hamiltonian"):
+        response(model, mu=0.5, temperature=300.0, tau=100.0)
