@@ -47,6 +47,13 @@ def _block(r):
     return r
 
 
+def _table(title, rows):
+    print(title)
+    print(f"{'benchmark':<14} {'ratio of':<42} {'value':>10}  detail")
+    for name, what, val, det in rows:
+        print(f"{name:<14} {what:<42} {val:>10.3g}  {det}")
+
+
 HARD = dict(name="honeycomb", params=dict(staggered=0.2, strain_xx=0.01))
 
 
@@ -80,10 +87,7 @@ def run(n_mu=200, n_t=20, resolution=1, model=HARD, mu_range=(0.28, 0.32), t_ran
     rows.append(("eigh", f"ladder 1 condition / eigh on {nk} k", t_one / t_eig, f"{t_one:.2f} s / {t_eig:.3f} s"))
     peak = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
     rows.append(("memory", "peak RSS (MiB)", peak, f"after {n_mu * n_t} conditions"))
-    print(f"model {model_name}, resolution {resolution}, plan of one condition {plan}")
-    print(f"{'benchmark':<14} {'ratio of':<42} {'value':>10}  detail")
-    for name, what, val, det in rows:
-        print(f"{name:<14} {what:<42} {val:>10.3g}  {det}")
+    _table(f"model {model_name}, resolution {resolution}, plan of one condition {plan}", rows)
     return rows
 
 
@@ -119,10 +123,7 @@ def run_continuum(n_mu=200, n_t=20, model=TMD, mu_range=(0.84, 0.88), t_range=(1
                  f"{tm8:.2f} s / {tm1:.2f} s"))
     peak = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
     rows.append(("memory", "peak RSS (MiB)", peak, f"after {n_mu * n_t} conditions"))
-    print(f"model {model_name} (continuum)")
-    print(f"{'benchmark':<14} {'ratio of':<42} {'value':>10}  detail")
-    for name, what, val, det in rows:
-        print(f"{name:<14} {what:<42} {val:>10.3g}  {det}")
+    _table(f"model {model_name} (continuum)", rows)
     return rows
 
 
