@@ -17,7 +17,7 @@ import numpy as np
 
 from crosswind.models import build
 from crosswind.solver import response
-from crosswind.solver.response import _levels
+from crosswind.solver.engine.response import _levels
 
 CONTINUUM = [("massive Dirac, band edge mu = mass, T = 0", "massive-dirac",
               {"velocity": 5e5, "mass": 0.1, "tilt": 5e4}, 0.1, 0.0),

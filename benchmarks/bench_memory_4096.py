@@ -14,9 +14,9 @@ import time
 import jax.numpy as jnp
 
 from crosswind.models import build
-from crosswind.solver import mesh
-from crosswind.solver.kernels import moments_indexed
-from crosswind.solver.scattering import ConstantTau
+from crosswind.solver.engine import mesh
+from crosswind.solver.engine.kernels import moments_indexed
+from crosswind.solver.engine.scattering import ConstantTau
 
 
 def main(n=4096):

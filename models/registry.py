@@ -32,13 +32,8 @@ def register(name: str, spec: ParamSpec, *, summary: str, hamiltonian: str, sour
     return deco
 
 
-def _load():
-    from . import builtin  # noqa: F401  (registers the built-in models)
-
-
 def catalogue() -> dict[str, CatalogueEntry]:
-    """All catalogue entries by name."""
-    _load()
+    """All catalogue entries by name (the built-in ones register when ``crosswind.models`` is imported)."""
     return dict(_CATALOGUE)
 
 
@@ -61,7 +56,6 @@ def build(name: str, **params) -> BandModel:
     parameters are leaves, so ``jax.grad`` flows through them); pass it to ``band_geometry`` or
     ``response``.
     """
-    _load()
     if name not in _CATALOGUE:
         close = difflib.get_close_matches(name, list(_CATALOGUE), n=1)
         hint = f" Did you mean '{close[0]}'?" if close else ""

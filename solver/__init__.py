@@ -3,16 +3,15 @@
 Importing this package (like ``crosswind.models``) switches JAX to 64-bit floats process-wide.
 """
 import crosswind.models  # noqa: F401  (float64 and the compilation cache, models/runtime.py)
-
-from .density import gate_density, mu_from_density  # noqa: E402
-from .response import Response, response  # noqa: E402
-from .scattering import ConstantTau, MatthiessenTau, PowerLawTau  # noqa: E402
-from .topology import chern_number  # noqa: E402
+from crosswind.solver.engine.density import gate_density, mu_from_density  # noqa: E402
+from crosswind.solver.engine.response import Response, response  # noqa: E402
+from crosswind.solver.engine.scattering import ConstantTau, MatthiessenTau, PowerLawTau  # noqa: E402
+from crosswind.solver.engine.topology import chern_number  # noqa: E402
 
 __all__ = ["ConstantTau", "MatthiessenTau", "PowerLawTau", "Response", "chern_number",
            "gate_density", "mu_from_density", "response"]
-from .fit import FitResult, fit, scaling_fit  # noqa: E402
-from .measurements import load_measurements  # noqa: E402
-from .sensitivity import sensitivities, sensitivity_table  # noqa: E402
+from crosswind.solver.engine.sensitivity import sensitivities, sensitivity_table  # noqa: E402
+from crosswind.solver.fitting.fit import FitResult, fit, scaling_fit  # noqa: E402
+from crosswind.solver.fitting.measurements import load_measurements  # noqa: E402
 
 __all__ += ["FitResult", "fit", "load_measurements", "scaling_fit", "sensitivities", "sensitivity_table"]

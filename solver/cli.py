@@ -12,9 +12,23 @@
 from __future__ import annotations
 
 import argparse
+import shutil
 import sys
+import textwrap
 import time
 from pathlib import Path
+
+import crosswind.validation as validation
+from crosswind.models import describe_catalogue
+from crosswind.solver.demo import SCENARIO, run_demo_fit
+from crosswind.solver.fitting import scenario_fit
+from crosswind.solver.fitting.peak_sensitivity import write_sensitivities
+from crosswind.solver.fitting.scenario_fit import FitInputError
+from crosswind.solver.reporting.report import write_report
+from crosswind.solver.study import sweep
+from crosswind.solver.study.files import OutputError, atomic_text
+from crosswind.solver.study.scenario import ScenarioError, load_scenario, parse_scenario
+from crosswind.solver.study.sweep import RunError
 
 
 def _parser() -> argparse.ArgumentParser:
@@ -70,21 +84,17 @@ def _say_if_outside(folder: Path, scn) -> None:
 
 
 def _run(scn, output, progress: bool) -> int:
-    from .files import OutputError
-    from .report import write_report
-    from .run import RunError, run_scenario
     folder = Path(output) if output else scn.output_folder
     _say_if_outside(folder, scn)
     t0 = time.time()
     try:
-        ds = run_scenario(scn, folder, progress=progress)
+        ds = sweep.run_scenario(scn, folder, progress=progress)
         if progress:
             print("crosswind: writing " + ("figures and " if scn.figures else "") + "summary…", file=sys.stderr,
                   flush=True)
         write_report(ds, scn, folder)
         extra = ""
         if scn.sensitivities is not None:
-            from .peak_sensitivity import write_sensitivities
             write_sensitivities(scn, ds, folder)
             extra = ", sensitivities.csv"
     except (RunError, OutputError) as exc:
@@ -117,9 +127,6 @@ def _headline_line(path: Path) -> str:
 
 
 def cmd_fit(args) -> int:
-    from .files import OutputError
-    from .scenario import ScenarioError, load_scenario
-    from .scenario_fit import FitInputError, run_fit
     try:
         scn = load_scenario(args.scenario)
     except ScenarioError as exc:
@@ -139,7 +146,7 @@ def cmd_fit(args) -> int:
     t0 = time.time()
     try:
         show = sys.stderr.isatty() if args.progress is None else args.progress
-        out = run_fit(scn, data, folder, starts=args.starts,
+        out = scenario_fit.run_fit(scn, data, folder, starts=args.starts,
                       progress=(lambda line: print(f"crosswind: fit {line}", file=sys.stderr, flush=True)) if show
                       else None)
     except (FitInputError, OutputError) as exc:
@@ -157,7 +164,6 @@ def cmd_fit(args) -> int:
 
 
 def cmd_run(args) -> int:
-    from .scenario import ScenarioError, load_scenario
     try:
         scn = load_scenario(args.scenario)
     except ScenarioError as exc:
@@ -167,14 +173,10 @@ def cmd_run(args) -> int:
 
 
 def cmd_demo(args) -> int:
-    from .demo import SCENARIO
-    from .scenario import parse_scenario
     scn = parse_scenario(SCENARIO, source="<built-in demo>", base=Path.cwd())
     rc = _run(scn, args.output, not args.no_progress)
     if rc != 0 or not args.fit:
         return rc
-    from .demo import run_demo_fit
-    from .files import OutputError
     t0 = time.time()
     try:
         run_demo_fit(Path(args.output))
@@ -186,7 +188,6 @@ def cmd_demo(args) -> int:
 
 
 def cmd_models(args) -> int:
-    from crosswind.models import describe_catalogue
     print(describe_catalogue())
     return 0
 
@@ -210,8 +211,6 @@ def validation_table(rows, width: int | None = None, wide: bool = False) -> str:
     """The validation table for a terminal: every column in full; the source column (the published
     source is the point of the table) is wrapped at word boundaries to fit ``width`` characters,
     never cut (``wide``: one line per case)."""
-    import shutil
-    import textwrap
     table = [[_cell(r, h) for h in VALIDATE_HEAD] for r in rows]
     widths = [max(len(h), *(len(t[i]) for t in table)) if table else len(h) for i, h in enumerate(VALIDATE_HEAD)]
     if not wide:
@@ -236,17 +235,11 @@ def validation_markdown(rows) -> str:
 
 
 def cmd_validate(args) -> int:
-    try:
-        from crosswind.validation import run_cases
-    except ImportError as exc:
-        _err(f"the validation cases are not available ({exc})")
-        return 2
-    rows = run_cases(progress=None if getattr(args, "no_progress", False) else _validation_progress)
+    rows = validation.run_cases(progress=None if getattr(args, "no_progress", False) else _validation_progress)
     print(validation_table(rows, wide=getattr(args, "wide", False)))
     failed = [r for r in rows if not r.get("passed")]
     print(f"\n{len(rows) - len(failed)} of {len(rows)} cases passed")
     if getattr(args, "markdown", None):
-        from .files import atomic_text
         atomic_text(Path(args.markdown), validation_markdown(rows))
         print(f"crosswind: wrote the table to {args.markdown}")
     return 1 if failed else 0

@@ -10,7 +10,14 @@ sweep (12 gate voltages × 3 temperatures) runs with automatic resolution (the s
 of docs/theory.md §14.3: one ray set per batch, converged to rtol 1e-3) and μ from the gate
 density on the fixed mesh level 1.
 """
-from .files import atomic_text, make_folder
+from pathlib import Path
+
+import numpy as np
+from crosswind.solver.fitting.scenario_fit import run_fit
+from crosswind.solver.study.chain import evaluate
+from crosswind.solver.study.files import atomic_text, make_folder
+from crosswind.solver.study.knobs import base_values
+from crosswind.solver.study.scenario import parse_scenario
 
 SCENARIO = """\
 # Crosswind demo: strained MoS2 monolayer Hall bar (illustrative device)
@@ -90,12 +97,10 @@ parameters = {tilt_conduction = {initial = 0.6, bounds = [0.1, 3.0]}, gate_offse
 
 def invented_measurements(scn, path):
     """Write the invented V2w-vs-gate data set (clearly labelled) and return (gates, V2w, err) in V."""
-    import numpy as np
-    from .pipeline import base_values, evaluate
     vals = base_values(scn, who="demo fit")
     vals.update(FIT_TRUTH)
     vals["gate_V"] = np.asarray(FIT_GATES)
-    v = np.asarray(evaluate(scn, vals, resolution=scn.fit.resolution)["V2w"])
+    v = np.asarray(evaluate(scn, vals, resolution=scn.fit.resolution).V2w)
     rng = np.random.default_rng(FIT_SEED)
     err = FIT_NOISE * v
     y = v + err * rng.standard_normal(v.shape)
@@ -111,9 +116,6 @@ def invented_measurements(scn, path):
 
 def run_demo_fit(folder):
     """Invent data, fit them back, write ``<folder>/fit/`` and a section in ``summary.md``."""
-    from pathlib import Path
-    from .scenario import parse_scenario
-    from .scenario_fit import run_fit
     folder = Path(folder)
     fdir = folder / "fit"
     make_folder(fdir)

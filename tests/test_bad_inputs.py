@@ -13,9 +13,9 @@ from crosswind.models.custom import from_function, sample_k, sample_points
 from crosswind.models.domain import Continuum, Lattice
 from crosswind.models.tightbinding import TightBindingFileError, parse_tight_binding
 from crosswind.solver import ConstantTau, MatthiessenTau, PowerLawTau, response
-from crosswind.solver import run as run_mod
-from crosswind.solver.run import RunError, run_scenario
-from crosswind.solver.scenario import ScenarioError, parse_scenario
+from crosswind.solver.study import sweep as run_mod
+from crosswind.solver.study.sweep import RunError, run_scenario
+from crosswind.solver.study.scenario import ScenarioError, parse_scenario
 
 DIRAC = {"velocity": 5e5, "mass": 0.1, "tilt": 5e4}
 NAN, INF = math.nan, math.inf
@@ -62,7 +62,7 @@ def test_non_integer_levels_are_refused(dirac, kw, match):
 
 def test_integer_levels_of_numpy_type_are_accepted(dirac):
     """The level check accepts any integer type (a sweep may hand over numpy integers)."""
-    from crosswind.solver.inputs import check_arguments
+    from crosswind.solver.engine.inputs import check_arguments
     check_arguments(0.1, 1.0, ConstantTau(1.0).arrays(), "ConstantTau", 0.0, np.int64(1), np.int32(2))
     with pytest.raises(TypeError, match="resolution must be None or an integer"):
         check_arguments(0.1, 1.0, ConstantTau(1.0).arrays(), "ConstantTau", 0.0, np.float64(1.0), None)
@@ -171,14 +171,14 @@ def test_sweep_refuses_to_write_a_non_finite_batch(tmp_path, monkeypatch):
     point named; no checkpoint and no dataset is written for it."""
     scn = parse_scenario(SCN, source="s.toml", base=tmp_path)
 
-    def fake(scn, values, model):
-        P = len(values["chemical_potential"])
+    def fake(scn, values):
+        P = len(values["mu_eV"])
         sigma = np.ones((P, 2, 2), dtype=complex)
         sigma[1, 0, 0] = np.nan
-        return {"mu": values["chemical_potential"], "sigma": sigma}
+        return {"mu": values["mu_eV"], "sigma": sigma}
 
     monkeypatch.setattr(run_mod, "compute_batch", fake)
-    with pytest.raises(RunError, match=r"batch 0, point temperature = 5 K, .*chemical_potential = 0\.15 eV: "
+    with pytest.raises(RunError, match=r"batch 0, point temperature_K = 5 K, .*mu_eV = 0\.15 eV: "
                                        r"sigma is not finite \(1 of 2 points\); nothing was written"):
         run_scenario(scn, tmp_path / "out", progress=False)
     assert not list((tmp_path / "out" / "batches").iterdir())
@@ -262,10 +262,10 @@ def test_model_nan_between_the_check_points_raises_instead_of_returning_nan():
 # ------------------------------------------------------------------ command-line crashes -----
 def _fake_batch(calls):
     """A stand-in for ``compute_batch`` (no k-space work): the arrays ``assemble`` needs."""
-    def fake(scn, values, model):
-        calls.append(float(values["temperature"][0]))
-        P, A = len(values["chemical_potential"]), len(scn.axes[-1])
-        return {"mu": values["chemical_potential"], "sigma": np.ones((P, 2, 2), dtype=complex),
+    def fake(scn, values):
+        calls.append(float(values["temperature_K"][0]))
+        P, A = len(values["mu_eV"]), len(scn.axes[-1])
+        return {"mu": values["mu_eV"], "sigma": np.ones((P, 2, 2), dtype=complex),
                 "resolution_level": np.zeros(P, dtype=int), "converged": np.full(P, -1),
                 "dev_v_xx": np.ones((P, A), dtype=complex)}
     return fake
@@ -344,7 +344,7 @@ def test_level_0_reports_the_error_as_unavailable_not_zero(tmp_path, capsys):
     import json
 
     from crosswind.solver.cli import main
-    from crosswind.solver.run import open_results
+    from crosswind.solver.study.sweep import open_results
     p = tmp_path / "s.toml"
     p.write_text(SCN, encoding="utf-8")
     assert main(["run", str(p), "--no-progress"]) == 0
@@ -386,7 +386,7 @@ def _tb_scenario(tmp_path):
 def test_resume_refuses_checkpoints_of_an_edited_tight_binding_file(tmp_path, monkeypatch):
     """Editing the tight-binding file, deleting one checkpoint and rerunning used to mix two
     models in one dataset; the run now names the file that changed."""
-    from crosswind.solver.scenario import load_scenario
+    from crosswind.solver.study.scenario import load_scenario
     calls = []
     monkeypatch.setattr(run_mod, "compute_batch", _fake_batch(calls))
     p = _tb_scenario(tmp_path)
@@ -401,7 +401,7 @@ def test_resume_refuses_checkpoints_of_an_edited_tight_binding_file(tmp_path, mo
 
 
 def test_comment_or_output_edits_do_not_block_a_resume(tmp_path, monkeypatch):
-    from crosswind.solver.scenario import load_scenario
+    from crosswind.solver.study.scenario import load_scenario
     calls = []
     monkeypatch.setattr(run_mod, "compute_batch", _fake_batch(calls))
     p = _tb_scenario(tmp_path)
@@ -416,7 +416,7 @@ def test_comment_or_output_edits_do_not_block_a_resume(tmp_path, monkeypatch):
 
 
 def test_checkpoint_of_other_inputs_is_recomputed(tmp_path, monkeypatch, capsys):
-    from crosswind.solver.scenario import load_scenario
+    from crosswind.solver.study.scenario import load_scenario
     calls = []
     monkeypatch.setattr(run_mod, "compute_batch", _fake_batch(calls))
     p = _tb_scenario(tmp_path)
@@ -439,7 +439,7 @@ FY = 2.0 * np.asarray(FX) + 0.01 * np.random.default_rng(0).normal(size=8)   # s
 def test_fit_to_data_the_model_cannot_produce_is_unreliable():
     """Model ~1e-17 against data 1e-7 (all data shifted): this used to report "converged: gradient
     below tolerance" with a standard error of 1e9 relative and no warning."""
-    from crosswind.solver.fit import fit
+    from crosswind.solver.fitting.fit import fit
     r = fit(lambda p: (p["a"] * 1e-17 * FX - 1e-7) / 1e-7, {"a": 1.0})
     assert r.converged and r.status == "unreliable"
     assert any(p.startswith("the residuals hardly depend on a: changing it by its scale 1 changes them by 1.3e-10")
@@ -448,7 +448,7 @@ def test_fit_to_data_the_model_cannot_produce_is_unreliable():
 
 
 def test_fit_pinned_at_a_bound_is_flagged_and_its_stderr_not_meaningful():
-    from crosswind.solver.fit import fit
+    from crosswind.solver.fitting.fit import fit
     r = fit(lambda p: p["a"] * FX - FY, {"a": 1.0}, bounds={"a": (0.0, 1.5)})
     assert r.values["a"] == pytest.approx(1.5) and r.at_bound == ("a",) and math.isnan(r.stderr["a"])
     assert r.status == "unreliable"
@@ -457,7 +457,7 @@ def test_fit_pinned_at_a_bound_is_flagged_and_its_stderr_not_meaningful():
 
 
 def test_fit_with_improbable_chi2_for_known_errors_is_unreliable():
-    from crosswind.solver.fit import fit
+    from crosswind.solver.fitting.fit import fit
     good = fit(lambda p: p["a"] * FX - FY, {"a": 1.0}, sigma=0.01, absolute_sigma=True)
     assert good.status == "ok" and good.problems == ()
     bad = fit(lambda p: p["a"] * FX - FY, {"a": 1.0}, sigma=0.0005, absolute_sigma=True)   # errors 20× too small
@@ -468,7 +468,7 @@ def test_fit_with_improbable_chi2_for_known_errors_is_unreliable():
 
 
 def test_fit_ending_at_its_start_is_flagged_unless_another_start_confirms_it():
-    from crosswind.solver.fit import fit
+    from crosswind.solver.fitting.fit import fit
     best = fit(lambda p: p["a"] * FX - FY, {"a": 1.0}).values["a"]
     again = fit(lambda p: p["a"] * FX - FY, {"a": best})
     assert again.status == "unreliable" and again.problems[0].startswith("the fit ended at its starting point")
@@ -477,7 +477,7 @@ def test_fit_ending_at_its_start_is_flagged_unless_another_start_confirms_it():
 
 
 def test_fit_with_a_huge_relative_standard_error_is_unreliable():
-    from crosswind.solver.fit import fit
+    from crosswind.solver.fitting.fit import fit
     r = fit(lambda p: p["a"] * FX + p["b"] - FY, {"a": 1.0, "b": 0.5})
     assert r.status == "unreliable" and abs(r.values["b"]) < r.stderr["b"]
     assert any(p.startswith("the standard error of b (") and "exceeds 100% of its value" in p for p in r.problems)
@@ -500,7 +500,7 @@ def test_fit_with_repeated_abscissae_is_refused(tmp_path, capsys):
     data.write_text("mu [eV], V2w [nV]\n0.12, 1\n0.13, 2\n0.12, 1\n0.14, 3\n", encoding="utf-8")
     assert main(["fit", str(sp), "--data", str(data), "--output", str(tmp_path / "f")]) == 2
     assert capsys.readouterr().err.strip() == (
-        f"crosswind: error: {data}: column 'mu [eV]' repeats the value(s) 0.12; merge repeated measurements into one "
+        f"crosswind: error: {data}: column 'mu_eV [eV]' repeats the value(s) 0.12; merge repeated measurements into one "
         "row (their mean, with the standard error of the mean in the error column) or remove the extra rows")
     assert not (tmp_path / "f").exists()
 
@@ -510,7 +510,7 @@ def test_unreliable_fit_sets_exit_status_summary_and_json(tmp_path, monkeypatch,
     in the summary and fit.json (the model is a stand-in: no k-space work)."""
     import json
 
-    from crosswind.solver import scenario_fit
+    from crosswind.solver.fitting import scenario_fit
     from crosswind.solver.cli import main
     monkeypatch.setattr(scenario_fit, "_predictor",
                         lambda scn: ((lambda params, x: params["mass"] * 1e-20 * jnp.asarray(x)), {}))
@@ -535,7 +535,7 @@ def _disk_full(*args):
 
 
 def test_atomic_write_on_a_full_disk_keeps_the_old_file_and_no_temporary(tmp_path):
-    from crosswind.solver.files import OutputError, atomic_text, atomic_write
+    from crosswind.solver.study.files import OutputError, atomic_text, atomic_write
     target = tmp_path / "summary.md"
     atomic_text(target, "old summary\n")
 
@@ -553,8 +553,8 @@ def test_atomic_write_on_a_full_disk_keeps_the_old_file_and_no_temporary(tmp_pat
 def test_full_disk_before_the_dataset_keeps_checkpoints_and_resumes(tmp_path, monkeypatch):
     from collections import namedtuple
 
-    from crosswind.solver import files
-    from crosswind.solver.files import OutputError
+    from crosswind.solver.study import files
+    from crosswind.solver.study.files import OutputError
     calls = []
     monkeypatch.setattr(run_mod, "compute_batch", _fake_batch(calls))
     scn = parse_scenario(_scenario_file(tmp_path).read_text(encoding="utf-8"), source="s.toml", base=tmp_path)
@@ -572,7 +572,7 @@ def test_full_disk_before_the_dataset_keeps_checkpoints_and_resumes(tmp_path, mo
 
 
 def test_full_disk_during_a_run_exits_2_with_one_line_and_no_partial_file(tmp_path, monkeypatch, capsys):
-    from crosswind.solver import files
+    from crosswind.solver.study import files
     from crosswind.solver.cli import main
     monkeypatch.setattr(run_mod, "compute_batch", _fake_batch([]))
     monkeypatch.setattr(files.os, "fsync", _disk_full)
@@ -586,7 +586,7 @@ def test_full_disk_during_a_run_exits_2_with_one_line_and_no_partial_file(tmp_pa
 def test_summary_warns_first_when_the_dataset_holds_non_finite_values():
     import xarray as xr
 
-    from crosswind.solver.report import _non_finite_warning
+    from crosswind.solver.reporting.report import _non_finite_warning
     ds = xr.Dataset({"v_xx": (("g",), np.array([1.0, np.inf, np.nan])), "error_sigma": (("g",), np.full(3, np.nan)),
                      "hall_angle": (("g",), np.array([np.nan, 0.1, 0.2])), "sigma": (("g",), np.ones(3))})
     expect = ("> **WARNING: the dataset holds non-finite values (NaN/inf)** in `v_xx` (2); numbers derived from "
@@ -615,7 +615,7 @@ def test_level_2_error_estimate_bounds_the_true_error(mass, mu, T):
 
 @pytest.mark.xfail(strict=True, reason="known limitation (issue 10, item 5): at a band edge at T = 0 the "
                    "level-1 estimate is 75x below the true error (ratio 0.013); needs the error model in "
-                   "solver/response.py / solver/mesh.py")
+                   "solver/engine/response.py / solver/engine/mesh.py")
 def test_level_1_error_estimate_at_a_band_edge_at_zero_temperature():
     v = _levels_of(build("massive-dirac", **DIRAC), 0.1, 0.0, (0, 1, 4))
     est, true = np.abs(v[1] - v[0]), np.abs(v[1] - v[2])
@@ -690,7 +690,7 @@ def test_memory_stays_within_the_budget_whatever_the_number_of_conditions(name, 
 
 
 def test_memory_budget_setting_is_checked(dirac, monkeypatch):
-    from crosswind.solver.memory import budget_bytes
+    from crosswind.solver.engine.memory import budget_bytes
     assert budget_bytes() == 2 * 2 ** 30
     monkeypatch.setenv("CROSSWIND_MEMORY_GIB", "0.5")
     assert budget_bytes() == 2 ** 29 and budget_bytes(3) == 3 * 2 ** 30

@@ -40,7 +40,7 @@ import pytest
 from crosswind.models import Lattice, from_function
 from crosswind.models.units import E_CHARGE, HBAR_EVFS, HBAR_EVS, KB_EVK
 from crosswind.solver import response
-from crosswind.solver.mesh import lattice_levels, lattice_rule
+from crosswind.solver.engine.mesh import lattice_levels, lattice_rule
 
 # ----------------------------------------------------------------------------------------------
 # A square-lattice two-band toy that breaks time reversal, inversion and every point-group

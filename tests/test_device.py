@@ -1,10 +1,10 @@
-"""Hall-bar relations of crosswind.solver.device (docs/theory.md §10, derived there)."""
+"""Hall-bar relations of crosswind.solver.engine.device (docs/theory.md §10, derived there)."""
 import numpy as np
 import pytest
 
 from crosswind.models import build
 from crosswind.solver import response
-from crosswind.solver.device import HallBar, hall_bar, lockin_reading, rotate_chi, rotate_sigma
+from crosswind.solver.engine.device import HallBar, hall_bar, lockin_reading, rotate_chi, rotate_sigma
 
 EPS = np.array([[0.0, -1.0], [1.0, 0.0]])   # (ẑ × E)_a = EPS_ab E_b
 
@@ -30,15 +30,15 @@ def test_check_36_hall_bar_voltage(tilted_pair):
     # docs/theory.md check #36 (derived §10): W = 5 μm, I0 = 10 μA → 58.9 nV amplitude, 41.6 nV rms
     r = tilted_pair
     out = hall_bar(r.sigma, r.chi, r.chi_dc, HallBar(width_um=5.0, length_um=10.0, current_uA=10.0))
-    assert float(out["v2w_y_amplitude"]) == pytest.approx(58.9e-9, rel=2e-3)
-    assert float(out["v2w_y_rms"]) == pytest.approx(41.6e-9, rel=2e-3)
+    assert float(out.v2w_y_amplitude) == pytest.approx(58.9e-9, rel=2e-3)
+    assert float(out.v2w_y_rms) == pytest.approx(41.6e-9, rel=2e-3)
     # E⊥/E∥² = χ_yxx/σ_yy, check #22
-    assert float(out["nonlinear_ratio"]) == pytest.approx(7.186e-10, rel=2e-3)
+    assert float(out.nonlinear_ratio) == pytest.approx(7.186e-10, rel=2e-3)
 
 
 def test_second_harmonic_scales_as_current_squared_and_inverse_width():
     # derived in docs/theory.md §10: V_y = −χ_yxx I²/(W σ_xx² σ_yy)
-    v = lambda I, W: complex(hall_bar(SIG, CHI, CHI, HallBar(W, 10.0, I))["v2w_y"])
+    v = lambda I, W: complex(hall_bar(SIG, CHI, CHI, HallBar(W, 10.0, I)).v2w_y)
     assert v(20.0, 5.0) / v(10.0, 5.0) == pytest.approx(4.0, rel=1e-12)
     assert v(10.0, 10.0) / v(10.0, 5.0) == pytest.approx(0.5, rel=1e-12)
     expected = -CHI[1, 0, 0] * (10e-6) ** 2 / (5e-6 * SIG[0, 0] ** 2 * SIG[1, 1])
@@ -50,13 +50,13 @@ def test_open_circuit_first_order_uses_the_full_inverse():
     sig = np.array([[4e-4, 1e-4], [-1e-4, 3e-4]], dtype=complex)
     bar = HallBar(4.0, 8.0, 2.0)
     out = hall_bar(sig, CHI, CHI, bar)
-    E = np.array([complex(out["field_x"]), complex(out["field_y"])])
+    E = np.array([complex(out.field_x), complex(out.field_y)])
     j = sig @ E
     assert j[0] == pytest.approx(2e-6 / 4e-6, rel=1e-12)
     assert abs(j[1]) < 1e-12 * abs(j[0])
-    assert float(out["hall_angle"]) == pytest.approx(0.25, rel=1e-12)
+    assert float(out.hall_angle) == pytest.approx(0.25, rel=1e-12)
     # second order: the total 2ω current vanishes in both directions (ideal current source)
-    E2 = np.array([complex(out["v2w_x"]) / 8e-6, complex(out["v2w_y"]) / 4e-6])
+    E2 = np.array([complex(out.v2w_x) / 8e-6, complex(out.v2w_y) / 4e-6])
     j2 = sig @ E2 + np.einsum("abc,b,c->a", CHI, E, E)
     assert np.max(np.abs(j2)) < 1e-12 * np.max(np.abs(np.einsum("abc,b,c->a", CHI, E, E)))
 
@@ -83,7 +83,7 @@ def test_device_angle_matches_rotated_tensors():
     b = hall_bar(np.asarray(rotate_sigma(sig, 37.0)), np.asarray(rotate_chi(chi, 37.0)),
                  np.asarray(rotate_chi(chi, 37.0)), bar, 0.0)
     for key in ("v2w_y", "v2w_x", "v_xx", "v_hall", "vdc_y"):
-        assert complex(a[key]) == pytest.approx(complex(b[key]), rel=1e-12, abs=1e-30)
+        assert complex(getattr(a, key)) == pytest.approx(complex(getattr(b, key)), rel=1e-12, abs=1e-30)
 
 
 def test_lockin_conventions_check_35():
@@ -97,14 +97,14 @@ def test_lockin_conventions_check_35():
     # a resistor at the first harmonic is in phase with the drive
     assert float(lockin_reading(100.0, harmonic=1)[2]) == pytest.approx(0.0, abs=1e-12)
     # in the bar: a dipole response with χ_yxx < 0 gives V_y = +|K| I² → −90°; χ_yxx > 0 → +90°
-    assert float(hall_bar(SIG, -CHI, -CHI, HallBar(5.0, 10.0, 10.0))["v2w_y_phase_deg"]) == pytest.approx(-90.0)
-    assert float(hall_bar(SIG, CHI, CHI, HallBar(5.0, 10.0, 10.0))["v2w_y_phase_deg"]) == pytest.approx(90.0)
+    assert float(hall_bar(SIG, -CHI, -CHI, HallBar(5.0, 10.0, 10.0)).v2w_y_phase_deg) == pytest.approx(-90.0)
+    assert float(hall_bar(SIG, CHI, CHI, HallBar(5.0, 10.0, 10.0)).v2w_y_phase_deg) == pytest.approx(90.0)
 
 
 def test_rectified_voltage_matches_second_harmonic_at_low_frequency():
     # §10: with Sodemann–Fu χ and ωτ → 0 the dc part has the same magnitude as the 2ω amplitude
     out = hall_bar(SIG, CHI, CHI, HallBar(5.0, 10.0, 10.0))
-    assert abs(float(out["vdc_y"])) == pytest.approx(float(out["v2w_y_amplitude"]), rel=1e-12)
+    assert abs(float(out.vdc_y)) == pytest.approx(float(out.v2w_y_amplitude), rel=1e-12)
 
 
 def test_bad_device_input_is_refused():

@@ -10,9 +10,10 @@ import numpy as np
 import pytest
 
 from crosswind.solver.cli import main
-from crosswind.solver.pipeline import base_values, evaluate
-from crosswind.solver.run import open_results
-from crosswind.solver.scenario import ScenarioError, load_scenario
+from crosswind.solver.study.chain import evaluate
+from crosswind.solver.study.knobs import base_values
+from crosswind.solver.study.sweep import open_results
+from crosswind.solver.study.scenario import ScenarioError, load_scenario
 
 from test_scenario import GOOD
 
@@ -64,7 +65,7 @@ def test_fit_recovers_truth_and_writes_outputs_that_rerun(tmp_path, capsys):
     assert "χ²_red" in summ and "`tilt`" in summ and "converged" in summ
     again = load_scenario(out / "fitted_scenario.toml")
     assert float(dict(again.material.parameters)["tilt"]) == pytest.approx(res["values"]["tilt"])
-    assert again.fit is not None and again.axis("chemical_potential").values == (0.14,)
+    assert again.fit is not None and again.axis("mu_eV").values == (0.14,)
 
 
 @pytest.mark.parametrize("content, match", [
@@ -110,8 +111,8 @@ def test_sensitivity_table_matches_finite_difference_of_the_run(tmp_path):
     assert rows[0].startswith("knob,step") and len(rows) == 4
     d_tau = float(next(r for r in rows if r.startswith("tau_fs")).split(",")[4])
     # central difference of the run pipeline itself (tau does not move the k-mesh), h = 0.05 fs
-    peak = open_results(out)["v2w_y_amplitude"].max(dim="current_angle")
-    mu_peak = float(peak["chemical_potential"][int(np.argmax(peak.values.ravel()))])
+    peak = open_results(out)["v2w_y_amplitude"].max(dim="current_angle_deg")
+    mu_peak = float(peak["mu_eV"][int(np.argmax(peak.values.ravel()))])
     v = []
     for tau in (99.95, 100.05):
         t2 = text.replace("tau_fs = 100", f"tau_fs = {tau}").replace(

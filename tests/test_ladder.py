@@ -1,4 +1,4 @@
-"""The energy-resolved temperature ladder (solver/ladder.py, docs/theory.md §14.2).
+"""The energy-resolved temperature ladder (solver/engine/ladder.py, docs/theory.md §14.2).
 
 References the project did not write: a plain numpy uniform-grid quadrature
 (validation/fermi_contour.uniform_grid_reference, converged to ~1e-14 at n = 600 for these
@@ -12,10 +12,10 @@ import numpy as np
 import pytest
 
 from crosswind.models import build
-from crosswind.solver import ladder as ld
+from crosswind.solver.engine import ladder as ld
 from crosswind.solver import response
-from crosswind.solver.occupation import thermal_energy
-from crosswind.solver.scattering import as_scattering
+from crosswind.solver.engine.occupation import thermal_energy
+from crosswind.solver.engine.scattering import as_scattering
 from crosswind.validation.fermi_contour import uniform_grid_reference
 
 MU = np.array([1.2, 1.3])

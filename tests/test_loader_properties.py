@@ -20,8 +20,8 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
 from crosswind.models.tightbinding import TightBindingFileError, data_file, load_tight_binding, parse_tight_binding
-from crosswind.solver.scenario import Scenario, ScenarioError, load_scenario, parse_scenario
-from crosswind.solver.scenario_fit import FitInputError, load_data
+from crosswind.solver.study.scenario import Scenario, ScenarioError, load_scenario, parse_scenario
+from crosswind.solver.fitting.scenario_fit import FitInputError, load_data
 
 SETTINGS = settings(max_examples=int(os.environ.get("CROSSWIND_FUZZ_EXAMPLES", "150")), deadline=None, derandomize=True, database=None,
                     suppress_health_check=[HealthCheck.too_slow])
@@ -260,10 +260,10 @@ def test_files_with_arbitrary_bytes_load_or_raise_the_projects_error(blob, at, w
         assert _files(folder) == [Path(path.name)]
 
 
-def _fake_batch(scn, values, model):
+def _fake_batch(scn, values):
     """A stand-in for the k-space work of one batch: the arrays the runner assembles."""
     P, A = len(next(iter(values.values()))), len(scn.axes[-1])
-    mu = np.asarray(values.get("chemical_potential", np.zeros(P)), dtype=float)
+    mu = np.asarray(values.get("mu_eV", np.zeros(P)), dtype=float)
     return {"mu": mu, "sigma": np.ones((P, 2, 2), dtype=complex), "resolution_level": np.zeros(P, dtype=int),
             "converged": np.full(P, -1), "dev_v_xx": np.ones((P, A), dtype=complex)}
 
@@ -274,8 +274,8 @@ def _fake_batch(scn, values, model):
 def test_runs_of_mutated_scenarios_finish_or_stop_cleanly(data, monkeypatch):
     """A mutated scenario that loads is run (k-space work stubbed out): the sweep either writes its
     dataset or stops with ``RunError``, leaving no dataset and no stray temporary file."""
-    from crosswind.solver import run as run_mod
-    from crosswind.solver.run import RunError, run_scenario
+    from crosswind.solver.study import sweep as run_mod
+    from crosswind.solver.study.sweep import RunError, run_scenario
     monkeypatch.setattr(run_mod, "compute_batch", _fake_batch)
     text = _mutate(data, SCN)
     with _empty_dir() as folder:

@@ -1,14 +1,15 @@
-"""The shared-ray engine for continuum models (solver/rays.py; docs/theory.md §14.3): closed forms,
+"""The shared-ray engine for continuum models (solver/engine/rays.py; docs/theory.md §14.3): closed forms,
 an independent scipy quadrature, the node quadrature, sweeps, derivatives and refusals."""
 import jax
 import jax.numpy as jnp
 import numpy as np
 import pytest
 from crosswind.models import build
-from crosswind.solver import rays, response
-from crosswind.solver.occupation import thermal_energy
-from crosswind.solver.response import _rays_at
-from crosswind.solver.scattering import ConstantTau
+from crosswind.solver.engine import rays
+from crosswind.solver import response
+from crosswind.solver.engine.occupation import thermal_energy
+from crosswind.solver.engine.response import _rays_at
+from crosswind.solver.engine.scattering import ConstantTau
 from scipy import constants as C
 
 from validation.references import dirac_density, tilted_dipole_quadrature

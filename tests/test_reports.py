@@ -1,10 +1,11 @@
 """Reports a device physicist can trust (issue 11): numbers compared with their error estimates and
 a symmetry-aware zero floor, symmetry-forbidden headlines, readable labels, full validation sources,
 visible progress and help texts with formulas and units."""
+import crosswind.validation
 import numpy as np
 import pytest
-
 from crosswind.solver.cli import main
+from crosswind.solver.reporting.plotting import pyplot
 
 BILAYER = """
 [material]
@@ -79,7 +80,7 @@ def test_symmetry_check_on_catalogue_models():
     """Unstrained gapped bilayer graphene: T (valley pair) and C3; strain along x removes C3 from the
     TMD model; the Haldane model breaks T (Haldane, PRL 61, 2015 (1988))."""
     from crosswind.models import build
-    from crosswind.solver.report import forbidden_parts, model_symmetries
+    from crosswind.solver.reporting.report import forbidden_parts, model_symmetries
     blg = model_symmetries(build("bilayer-graphene", asymmetry=0.05))
     assert blg["T"] and blg["C3"] and not blg["C2"]
     assert set(forbidden_parts(blg)) == {"dipole", "drude", "intrinsic"}
@@ -128,14 +129,14 @@ def test_demo_noise_reads_zero_within_error(demo):
 
 
 def test_zero_rule_units():
-    from crosswind.solver.report import fmt_volts, is_resolved, zero_bound
+    from crosswind.solver.reporting.report import fmt_volts, is_resolved, zero_bound
     assert zero_bound(np.nan, 2.0) == pytest.approx(2e-6)
     assert zero_bound(1e-3, 2.0) == pytest.approx(1e-3)
     assert not is_resolved(1e-7, np.nan, 1.0) and is_resolved(1e-5, np.nan, 1.0)
     assert not is_resolved(5e-4, 1e-3, 1.0)
     assert fmt_volts(23.47e-9) == "23.47 nV" and fmt_volts(4.0e-3) == "4 mV" and fmt_volts(2e-6) == "2 μV"
     # an infinite error estimate (unresolved thermal window) is never turned into a finite bound
-    from crosswind.solver.report import _zero
+    from crosswind.solver.reporting.report import _zero
     assert zero_bound(np.inf, 1.0) == np.inf and not is_resolved(1.0, np.inf, 1.0)
     assert _zero(np.inf, fmt_volts).startswith("not resolved")
 
@@ -143,8 +144,7 @@ def test_zero_rule_units():
 # ------------------------------------------------------------------ item 6: validate shows sources in full --
 def _fake_validation(monkeypatch, seen=None):
     """Rows with the real cases' sources (no k-space work); the fake calls the progress callback."""
-    import sys
-    import types
+
     from crosswind.validation import load_cases
     rows = [{"case": c["name"], "source": c["source"], "expected": 1.0, "computed": 1.0, "tolerance": "rtol 0.001",
              "passed": True} for c in load_cases()]
@@ -155,9 +155,7 @@ def _fake_validation(monkeypatch, seen=None):
                 progress(i, len(rows), r["case"], None)
                 progress(i, len(rows), r["case"], 0.5)
         return rows
-    fake = types.ModuleType("crosswind.validation")
-    fake.run_cases = run_cases
-    monkeypatch.setitem(sys.modules, "crosswind.validation", fake)
+    monkeypatch.setattr(crosswind.validation, "run_cases", run_cases)
     return rows
 
 
@@ -202,6 +200,7 @@ def test_run_shows_compile_phase_estimate_and_report_phase(tmp_path, monkeypatch
     """The first batch used to sit silent while compiling, and figure writing was silent: a phase
     line names the model, the plain progress lines give an estimate after the first batch."""
     import sys
+
     from test_scenario import GOOD
     monkeypatch.setitem(sys.modules, "tqdm", None)          # the plain progress lines (no bar)
     p = tmp_path / "s.toml"
@@ -218,7 +217,7 @@ def test_fit_reports_each_iteration_with_cost_and_values():
     """crosswind fit used to be silent for minutes: fit(progress=...) gets one line per iteration
     (or per evaluation with an old SciPy) naming the start, the cost and the parameter values."""
     import jax.numpy as jnp
-    from crosswind.solver.fit import fit
+    from crosswind.solver.fitting.fit import fit
     lines = []
     x = jnp.linspace(0.0, 1.0, 8)
     res = fit(lambda p: p["a"] * jnp.exp(p["b"] * x) - 2.0 * jnp.exp(-0.5 * x), {"a": 1.0, "b": 0.3},
@@ -230,7 +229,7 @@ def test_fit_reports_each_iteration_with_cost_and_values():
 
 
 def test_fit_command_prints_progress(tmp_path, monkeypatch, capsys):
-    from crosswind.solver import scenario_fit
+    from crosswind.solver.fitting import scenario_fit
     from test_fit_cli import FIT
 
     def fake_run_fit(scn, data, folder, starts=None, progress=None):
@@ -251,6 +250,7 @@ def test_help_of_public_functions_shows_formulas_units_and_contract():
     """help(response) used to say "see the module docstring": the functions' own docstrings now
     carry the formulas, units and the real/complex contract, and the contract holds."""
     import pydoc
+
     import numpy as np
     from crosswind.models import band_geometry, build
     from crosswind.solver import response, sensitivities
@@ -277,15 +277,15 @@ def test_help_of_public_functions_shows_formulas_units_and_contract():
 
 # ------------------------------------------------------------------ item 9: labels read like physics --
 def test_figure_labels_are_typeset_with_units_and_prefixes(demo, monkeypatch):
-    """Labels used to read "|V_y^2ω|", "gate_voltage (V)", "σ'_xx (e²/h)" with bare 1e-16 multipliers
+    """Labels used to read "|V_y^2ω|", "gate_V (V)", "σ'_xx (e²/h)" with bare 1e-16 multipliers
     and unexplained primes: units in brackets, engineering prefixes, the bar frame explained."""
-    from crosswind.solver import report
     from crosswind.solver.demo import SCENARIO
-    from crosswind.solver.run import open_results
-    from crosswind.solver.scenario import parse_scenario
+    from crosswind.solver.reporting import report
+    from crosswind.solver.study.scenario import parse_scenario
+    from crosswind.solver.study.sweep import open_results
     figs = {}
     monkeypatch.setattr(report, "atomic_figure", lambda fig, path, dpi=None: figs.__setitem__(path.name, fig))
-    monkeypatch.setattr(report._plt(), "close", lambda fig: None)
+    monkeypatch.setattr(pyplot(), "close", lambda fig: None)
     ds = open_results(demo[2])
     scn = parse_scenario(SCENARIO, source="<built-in demo>", base=demo[2])
     idx = report.peak_index(ds)
@@ -298,7 +298,7 @@ def test_figure_labels_are_typeset_with_units_and_prefixes(demo, monkeypatch):
     assert any(lab.endswith("amplitude [nV]") and "2\\omega" in lab for lab in labels)
     assert any(lab == "$\\sigma'_{xx}$ [μS]" for lab in labels)
     assert all("_" not in lab for lab in labels if "$" not in lab)      # no identifiers outside math text
-    assert "gate_voltage" not in " ".join(labels) and all("(" not in lab for lab in labels)
+    assert "gate_V" not in " ".join(labels) and all("(" not in lab for lab in labels)
     for a in fig.axes:            # no bare "1e-16" multiplier above an axis
         a.figure.canvas.draw()
         assert a.yaxis.get_offset_text().get_text() == ""

@@ -7,7 +7,7 @@ import pytest
 
 from crosswind.models import build
 from crosswind.solver import response
-from crosswind.solver.response import _moments_at
+from crosswind.solver.engine.response import _moments_at
 
 DIRAC = dict(velocity=5e5, mass=0.1, tilt=5e4)
 
@@ -91,7 +91,7 @@ def test_memory_does_not_grow_with_the_mesh():
     memory analysis) grows by less than 32 bytes per cell — one refinement score and flag per cell,
     no per-k geometry (which would take hundreds of bytes per k-point).  The 4096² run is in
     benchmarks/."""
-    from crosswind.solver.scattering import ConstantTau
+    from crosswind.solver.engine.scattering import ConstantTau
 
     m = build("haldane")
     args = (m, jnp.array([0.0]), jnp.array([1e-2]), jnp.array([10.0]), {"tau0": jnp.array([100.0])},

@@ -18,7 +18,7 @@ from scipy.special import expit
 
 from crosswind.models import build
 from crosswind.solver import ConstantTau, MatthiessenTau, PowerLawTau, response
-from crosswind.solver.response import ARRAY_FIELDS
+from crosswind.solver.engine.response import ARRAY_FIELDS
 
 KB = sc.k / sc.e                      # eV/K
 MSTAR = 0.5

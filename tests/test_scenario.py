@@ -1,15 +1,14 @@
 """Scenario files, sweep runs with checkpoints/resume and the labeled dataset."""
 import json
-from pathlib import Path
 
 import numpy as np
 import pytest
 
 from crosswind.models import build
 from crosswind.solver import response
-from crosswind.solver import run as run_mod
-from crosswind.solver.run import RunError, open_results, run_scenario
-from crosswind.solver.scenario import ScenarioError, load_scenario, parse_scenario
+from crosswind.solver.study import sweep as run_mod
+from crosswind.solver.study.sweep import RunError, open_results, run_scenario
+from crosswind.solver.study.scenario import ScenarioError, load_scenario, parse_scenario
 
 GOOD = """
 [material]
@@ -48,8 +47,8 @@ def write(tmp_path, text, name="s.toml"):
 
 def test_axes_order_and_values(tmp_path):
     s = load_scenario(write(tmp_path, GOOD.replace('mu_eV = [0.13, 0.15]', 'mu_eV = {start = 0.12, stop = 0.16, num = 5}')))
-    assert [a.name for a in s.axes] == ["temperature", "tau", "chemical_potential", "current_angle"]
-    assert s.axis("chemical_potential").values == pytest.approx((0.12, 0.13, 0.14, 0.15, 0.16))
+    assert [a.name for a in s.axes] == ["temperature_K", "tau_fs", "mu_eV", "current_angle_deg"]
+    assert s.axis("mu_eV").values == pytest.approx((0.12, 0.13, 0.14, 0.15, 0.16))
     assert s.output_folder == tmp_path / "out"
 
 
@@ -96,9 +95,9 @@ def test_interrupted_sweep_resumes_without_loss_or_repeat(tmp_path, monkeypatch)
     calls = []
     real = run_mod.compute_batch
 
-    def counting(scn, values, model):
-        calls.append(tuple(np.asarray(values["temperature"])))
-        return real(scn, values, model)
+    def counting(scn, values):
+        calls.append(tuple(np.asarray(values["temperature_K"])))
+        return real(scn, values)
 
     monkeypatch.setattr(run_mod, "compute_batch", counting)
 
@@ -128,12 +127,12 @@ def test_dataset_reopens_with_units_axes_and_provenance(tmp_path):
     s = load_scenario(write(tmp_path, GOOD))
     run_scenario(s, progress=False)
     ds = open_results(tmp_path / "out")
-    assert ds["temperature"].attrs["units"] == "K"
-    assert ds["chemical_potential"].attrs["units"] == "eV"
-    assert ds["current_angle"].attrs["units"] == "deg"
+    assert ds["temperature_K"].attrs["units"] == "K"
+    assert ds["mu_eV"].attrs["units"] == "eV"
+    assert ds["current_angle_deg"].attrs["units"] == "deg"
     assert ds["sigma"].attrs["units"] == "S" and ds["chi"].attrs["units"] == "A m V^-2"
     assert ds["v2w_y_amplitude"].attrs["units"] == "V"
-    assert ds["v2w_y_amplitude"].dims == ("temperature", "tau", "chemical_potential", "current_angle")
+    assert ds["v2w_y_amplitude"].dims == ("temperature_K", "tau_fs", "mu_eV", "current_angle_deg")
     assert list(ds["i"].values) == ["x", "y"]
     assert "error_chi" in ds and ds.attrs["scenario_text"] == GOOD
     assert json.loads(ds.attrs["numerics"])["levels_used"] == [0]

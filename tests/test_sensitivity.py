@@ -12,8 +12,8 @@ import pytest
 from crosswind.models import build
 from crosswind.models.units import ANGSTROM, E2_OVER_H, HBAR_EVS
 from crosswind.solver import MatthiessenTau, response
-from crosswind.solver.response import ARRAY_FIELDS
-from crosswind.solver.sensitivity import gradient, sensitivities, sensitivity_table
+from crosswind.solver.engine.response import ARRAY_FIELDS
+from crosswind.solver.engine.sensitivity import gradient, sensitivities, sensitivity_table
 
 LEVEL = 2            # converged for derivative integrands too (level 1 is not, for ∂/∂velocity)
 PARAMS = dict(velocity=5e5, mass=0.1, tilt=5e4)          # docs/theory.md §6 set

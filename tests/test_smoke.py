@@ -1,5 +1,4 @@
 import jax.numpy as jnp
-import numpy as np
 
 from crosswind.models import band_geometry, build
 

@@ -178,7 +178,7 @@ def test_periodic_gauge_wraps_exactly(name, kw):
     # for every non-degenerate band.  The Hamiltonians carry orbital positions in their Bloch
     # phases (convention I, docs/theory.md §2.5), so this holds only after the
     # exp(i k·τ) gauge factor with the model's (strained) positions and reciprocal vectors.
-    from crosswind.solver.topology import _periodic_states
+    from crosswind.solver.engine.topology import _periodic_states
 
     m = build(name, **kw)
     recip = np.asarray(m.reciprocal_vectors())

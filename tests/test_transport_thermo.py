@@ -20,7 +20,7 @@ from scipy.special import expit, log_expit
 
 from crosswind.models import build
 from crosswind.solver import mu_from_density, response
-from crosswind.solver.occupation import entropy_density, fermi, minus_dfermi
+from crosswind.solver.engine.occupation import entropy_density, fermi, minus_dfermi
 
 KB = sc.k / sc.e                                   # eV/K
 HB2_M = sc.hbar ** 2 / sc.m_e / sc.e * 1e20        # ħ²/m_e in eV Å²

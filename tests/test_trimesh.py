@@ -1,4 +1,4 @@
-"""The energy-resolved linear-triangle engine (solver/trimesh.py) against closed forms.
+"""The energy-resolved linear-triangle engine (solver/engine/trimesh.py) against closed forms.
 
 Checks: the linear-triangle density of states and occupied area of a band are exact for the
 interpolant (Lehmann & Taut, phys. stat. sol. (b) 54, 469, 1972); at T → 0 the Fermi-window
@@ -9,9 +9,9 @@ import jax
 import jax.numpy as jnp
 
 from crosswind.models import build
-from crosswind.solver import trimesh as tm
-from crosswind.solver.occupation import thermal_energy
-from crosswind.solver.scattering import as_scattering
+from crosswind.solver.engine import trimesh as tm
+from crosswind.solver.engine.occupation import thermal_energy
+from crosswind.solver.engine.scattering import as_scattering
 
 
 def _tri_weights_np(E, e, area):

@@ -6,10 +6,13 @@ handbook constants or independent scipy quadratures (``references.py``), never s
 from __future__ import annotations
 
 import re
+import time
 import tomllib
 from importlib import resources
 
 import numpy as np
+from crosswind.models import build
+from crosswind.solver.engine.response import response
 
 from . import references
 
@@ -34,8 +37,6 @@ def _pick(r, quantity):
 
 
 def evaluate_case(case) -> dict:
-    from crosswind.models import build
-    from crosswind.solver import response
 
     cond = dict(case["conditions"])
     if isinstance(cond.get("mu"), str):
@@ -61,7 +62,6 @@ def evaluate_case(case) -> dict:
 def run_cases(names=None, progress=None) -> list[dict]:
     """Evaluate every case (or those named) and return table rows.  ``progress(i, n, name, seconds)``,
     when given, is called before each case (``seconds`` None) and after it (its wall time)."""
-    import time
     cases = [c for c in load_cases() if not names or c["name"] in names]
     rows = []
     for i, case in enumerate(cases, 1):

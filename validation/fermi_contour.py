@@ -50,13 +50,14 @@ Run ``python -m crosswind.validation.fermi_contour`` (or this file) for the hone
 from __future__ import annotations
 
 import math
-
-import numpy as np
-from scipy import optimize
+import time
 
 import crosswind.models  # noqa: F401  (enables float64 in JAX)
 import jax
 import jax.numpy as jnp
+import numpy as np
+from crosswind.models import build
+from scipy import optimize
 
 KB_EV = 8.617333262e-5  # eV/K
 
@@ -378,8 +379,6 @@ def uniform_grid_reference(model, mu, T, n, chunk=1 << 17, evaluator=None):
 
 # ----------------------------------------------------------------------------------------------
 def _demo():
-    import time
-    from crosswind.models import build
 
     t0 = time.time()
     model = build("honeycomb", staggered=0.2, strain_xx=0.01)

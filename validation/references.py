@@ -5,8 +5,17 @@ Nothing here calls the Crosswind solver.
 from __future__ import annotations
 
 import numpy as np
+from crosswind.models import build
 from scipy import constants as C
+from scipy import constants as sc
 from scipy import integrate
+
+from .fermi_contour import (
+    BandEvaluator,
+    band_extremum,
+    dipole_reference,
+    uniform_grid_reference,
+)
 
 HBAR_EVS = C.hbar / C.e
 KB = C.k / C.e
@@ -87,8 +96,7 @@ def honeycomb_dipole_contour(params, cond):
     model from the independent contour-following quadrature of ``fermi_contour.py`` (plain
     numpy/scipy; polar Gauss panels across the thermal window of each K/K′ pocket, trapezoid in
     angle).  Pocket centres: the conduction-band minima found from ±(b1 − b2)/3."""
-    from crosswind.models import build
-    from .fermi_contour import BandEvaluator, band_extremum, dipole_reference
+
 
     model = build("honeycomb", **params)
     ev = BandEvaluator(model)
@@ -103,10 +111,7 @@ def tmd_lattice_uniform_dos(params, cond):
     """Density of states (J⁻¹ m⁻², SI, degeneracy applied) of the three-orbital TMD lattice model
     from the plain numpy uniform offset grid of ``fermi_contour.py`` (n = 900 per reciprocal
     vector: converged to 1e-12 at 100 K, checked against n = 1200)."""
-    from scipy import constants as sc
 
-    from crosswind.models import build
-    from .fermi_contour import uniform_grid_reference
 
     model = build("tmd-lattice", **params)
     u = uniform_grid_reference(model, cond["mu"], cond["temperature"], 900)

@@ -1,12 +1,6 @@
-"""Built-in models.  Importing this package registers every catalogue entry."""
-from . import dirac, haldane, parabolic  # noqa: F401
+"""The built-in catalogue.  Importing this package registers every entry with
+:mod:`crosswind.models.registry`; ``crosswind.models`` imports it once.  An import error in any
+model module propagates (a model that fails to register is never silently missing)."""
+from . import bilayer, dirac, haldane, honeycomb, parabolic, tmd, tmd_lattice, weyl  # noqa: F401  (they register)
 
-# optional modules added by the catalogue work: imported when present
-import importlib as _il
-
-for _name in ("honeycomb", "bilayer", "tmd", "tmd_lattice", "weyl"):
-    try:
-        _il.import_module(f"{__name__}.{_name}")
-    except ModuleNotFoundError as _e:  # pragma: no cover - only while a module is absent
-        if _e.name != f"{__name__}.{_name}":
-            raise
+__all__ = ["bilayer", "dirac", "haldane", "honeycomb", "parabolic", "tmd", "tmd_lattice", "weyl"]

@@ -14,7 +14,7 @@ from ..domain import Continuum
 from ..params import ParamSpec, choice, real
 from ..registry import register
 from ..twoband import hamiltonian_of
-from ..units import HBAR_EVS, ANGSTROM
+from ..units import ANGSTROM, HBAR_EVS
 
 SPEC = ParamSpec((
     real("velocity", "m/s", 5e5, "Dirac velocity v", 1.0, 1e8),

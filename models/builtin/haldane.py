@@ -11,8 +11,8 @@ Topological for |M| < 3√3|t2 sin φ| with lower-band Chern number C = +sgn(sin
 """
 from __future__ import annotations
 
-import numpy as np
 import jax.numpy as jnp
+import numpy as np
 
 from ..band_model import BandModel
 from ..domain import Lattice

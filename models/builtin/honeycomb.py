@@ -41,15 +41,15 @@ from __future__ import annotations
 
 from functools import partial
 
-import numpy as np
 import jax
 import jax.numpy as jnp
+import numpy as np
 
 from ..band_model import BandModel
 from ..domain import Lattice
-from ..params import ParamSpec, pop_lattice_length, choice, real
+from ..params import ParamSpec, choice, pop_lattice_length, real
 from ..registry import build, register
-from ..strain import deformation, deform, scaled_hopping, strain_tensor, uniaxial
+from ..strain import deform, deformation, scaled_hopping, strain_tensor, uniaxial
 from ..twoband import bind_length, hamiltonian_of
 
 S3 = np.sqrt(3.0)

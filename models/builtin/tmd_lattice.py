@@ -33,15 +33,15 @@ t12 = 0.338, t22 = 0.057, λ = 0.073 (eV): gap at K 1.6628 eV, valence spin spli
 """
 from __future__ import annotations
 
-import numpy as np
 import jax.numpy as jnp
+import numpy as np
 
 from ..band_model import BandModel
 from ..domain import Lattice
 from ..params import ParamSpec, pop_lattice_length, real
 from ..registry import register
-from ..twoband import bind_length
 from ..strain import deform, deformation, scaled_hopping, strain_tensor
+from ..twoband import bind_length
 
 SPEC = ParamSpec((
     real("lattice_constant", "Å", 3.190, "lattice constant a (M–M distance); sets the lattice, not traceable",

@@ -24,8 +24,8 @@ giving (e²/h)(2π/a − 2k0)/(2π).)  A generic lattice model of this type is c
 """
 from __future__ import annotations
 
-import numpy as np
 import jax.numpy as jnp
+import numpy as np
 
 from ..band_model import BandModel
 from ..domain import Lattice

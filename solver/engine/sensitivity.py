@@ -2,7 +2,7 @@
 chemical potential, temperature and a constant relaxation time.
 
 ``sensitivities(model, wrt, mu=..., temperature=..., tau=...)`` returns ``{name: Response}`` where
-each field of the :class:`~crosswind.solver.response.Response` holds ∂field/∂name (same shapes,
+each field of the :class:`~crosswind.solver.engine.response.Response` holds ∂field/∂name (same shapes,
 including ``chi_parts`` and ``chi_dc_parts``).  Names are real model parameters (``"mass"``,
 ``"tilt"``, ``"strain_xx"``, … — see ``model.params``) or the conditions ``"mu"`` (eV),
 ``"temperature"`` (K) and ``"tau"`` (fs, constant relaxation time only).
@@ -18,7 +18,7 @@ How it is computed (docs/theory.md §A3, §A6):
   respect to all names in one reverse-mode pass (``jax.grad``) or, with ``mode="forward"``, by
   forward mode; the two agree to rounding (tested).
 * Derivatives are taken at fixed k-space nodes (the mesh placement is a numerical choice wrapped
-  in ``stop_gradient``; :mod:`crosswind.solver.mesh`), so ``resolution`` must be given.  At a
+  in ``stop_gradient``; :mod:`crosswind.solver.engine.mesh`), so ``resolution`` must be given.  At a
   converged level they agree with central differences of ``response`` itself.  Derivative
   integrands are sharper than the fields (∂f0/∂μ peaks harder than f0): a level converged for
   the values may not be for their derivatives — for the tilted Dirac cone at 20 K level 2 agrees
@@ -43,10 +43,9 @@ from typing import Callable, Iterable, Mapping, NamedTuple
 import jax
 import jax.numpy as jnp
 import numpy as np
-
 from crosswind.models.band_model import BandModel
-from .response import ARRAY_FIELDS, Response, response
-from .scattering import ConstantTau, as_scattering
+from crosswind.solver.engine.response import ARRAY_FIELDS, Response, response
+from crosswind.solver.engine.scattering import ConstantTau, as_scattering
 
 CONDITIONS = {"mu": "eV", "temperature": "K", "tau": "fs"}
 
@@ -157,7 +156,7 @@ def sensitivities(model: BandModel, wrt, *, mu, temperature, tau, frequency=0.0,
     ``wrt``: a name or a list of names — real parameters of ``model`` or ``"mu"`` (eV),
     ``"temperature"`` (K), ``"tau"`` (fs, constant τ).  ``mu``, ``temperature``, ``tau``,
     ``frequency`` (Hz) and further keywords (``intrinsic``, ``dipole_route``, ``chunk``) are those
-    of :func:`~crosswind.solver.response.response`; ``resolution`` (a fixed mesh level) is required.
+    of :func:`~crosswind.solver.engine.response.response`; ``resolution`` (a fixed mesh level) is required.
 
     Returns ``{name: Response}`` of derivatives (each field ∂field/∂name, units
     ``"(field unit) / (input unit)"``); with ``with_value=True`` returns ``(value, {name: ...})``

@@ -81,7 +81,8 @@ def _examples(unit: str) -> str:
     return f"e.g. {base}"
 
 
-def load_measurements(path, columns: dict, *, min_points: int | None = None) -> dict:
+def load_measurements(path, columns: dict, *, min_points: int | None = None, optional=(),
+                      aliases: dict | None = None) -> dict:
     """Read the requested ``columns`` ({name: unit wanted}) of a CSV file with a ``name [unit]``
     header; returns {name: float64 array converted to the unit wanted}.
 
@@ -89,7 +90,9 @@ def load_measurements(path, columns: dict, *, min_points: int | None = None) -> 
     Raises ``ValueError`` naming the file, the column and the fix for: a missing column, a header
     without a unit, an unknown unit, a unit of the wrong dimension, missing or non-numeric values
     (listing the file line numbers), and fewer than ``min_points`` rows (e.g. the number of free
-    fit parameters).  ``FileNotFoundError`` if the file does not exist.
+    fit parameters).  ``FileNotFoundError`` if the file does not exist.  Columns named in
+    ``optional`` may be absent (they are then left out of the result); ``aliases`` ({name: (other
+    header names, …)}) lists older header names also accepted for a column.
     """
     path = os.fspath(path)
     if not isinstance(columns, dict) or not columns:
@@ -135,7 +138,14 @@ def load_measurements(path, columns: dict, *, min_points: int | None = None) -> 
                              "rename one of them")
         seen.add(n)
     out = {}
+    aliases = aliases or {}
     for name, (want_factor, want_dims) in wanted.items():
+        if name not in names:
+            alt = next((a for a in aliases.get(name, ()) if a in names), None)
+            if alt is not None:
+                names = [name if n == alt else n for n in names]
+        if name not in names and name in optional:
+            continue
         if name not in names:
             close = difflib.get_close_matches(name, names, n=1)
             hint = f" (did you mean '{close[0]}'?)" if close else ""

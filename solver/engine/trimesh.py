@@ -1,7 +1,7 @@
 """Energy-resolved k-space integration on 2D lattices: linear triangles with local refinement.
 
 The band geometry is evaluated once per mesh, independently of μ, T and τ; every kernel of
-:mod:`crosswind.solver.kernels` is then a one-dimensional energy integral of a *transport
+:mod:`crosswind.solver.engine.kernels` is then a one-dimensional energy integral of a *transport
 function* (Mahan & Sofo, PNAS 93, 7436, 1996), so that a sweep over many (μ, T, τ) conditions costs
 little more than one condition (docs/theory.md §14).
 
@@ -40,10 +40,9 @@ from dataclasses import dataclass
 import jax
 import jax.numpy as jnp
 import numpy as np
-
-from . import ladder as _ladder
-from .kernels import _tilde
-from .mesh import energies_at
+from crosswind.solver.engine import ladder as _ladder
+from crosswind.solver.engine.kernels import _tilde
+from crosswind.solver.engine.mesh import energies_at
 
 WINDOW_X = 40.0          # Fermi window half-width in k_BT (neglected weight ~ e^-40)
 X_BREAKS = (-40.0, -24.0, -14.0, -8.0, -4.0, -1.5, 0.0, 1.5, 4.0, 8.0, 14.0, 24.0, 40.0)
@@ -85,7 +84,7 @@ def _layout(sea):
 
 def point_factors(model, params, k, sea):
     """Energies (nb,) and the flat factor vector (nb, ncomp) at one k, in the layout of
-    :func:`crosswind.solver.ladder.factor_layout`."""
+    :func:`crosswind.solver.engine.ladder.factor_layout`."""
     e, _speed, f = _ladder.point_factors(model, params, k, sea)
     return e, f
 
@@ -208,7 +207,7 @@ def energy_tables(model, params, lev: TriLevel, window, sea=False):
     refined-cell count and δ."""
     if model.dim != 2:
         raise ValueError(f"energy_tables: {model.name} is {model.dim}D; the triangle engine "
-                         "integrates 2D lattices only (use crosswind.solver.response for 3D models)")
+                         "integrates 2D lattices only (use crosswind.solver.engine.response for 3D models)")
     n0, m, B = lev.n0, lev.m, min(lev.budget, lev.n0 ** 2)
     layout, nc = _layout(sea)
     pfix = jax.lax.stop_gradient(params)
@@ -372,7 +371,7 @@ def energy_nodes(mu, kt, e_lo, delta, M):
 
 
 def moments_from_tables(table, layout, vol, mu, kt, temp, tau_eval, tau_arr, omega, filled, sea):
-    """The kernel sums of :func:`crosswind.solver.kernels.point_kernels` (same keys and units) for
+    """The kernel sums of :func:`crosswind.solver.engine.kernels.point_kernels` (same keys and units) for
     P conditions from one transport table ``(C, S, E_lo, δ)``."""
     C, S, e_lo, delta = table
     M = C.shape[0]

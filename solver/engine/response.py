@@ -30,7 +30,7 @@ Response coefficients (τ̃_ν = τ/(1+iντ), F = −∂f0/∂ε, v = ∇_kε/�
   ``lorenz`` = κ_xx/(σ_xx T).  Anomalous Nernst (Xiao, Yao, Fang, Niu, PRL 97, 026603, 2006):
   α_ab = (e k_B/ħ) ε_abc ∫[dk] Ω_c s(ε), j = σE + α(−∇T).
 
-Integration (:mod:`crosswind.solver.mesh`) is repeated at two resolutions; ``error`` holds
+Integration (:mod:`crosswind.solver.engine.mesh`) is repeated at two resolutions; ``error`` holds
 |fine − coarse| for every field (the fine value is returned).  With ``resolution=None`` the level is
 raised until every field passes ``rtol`` relative to its own size (or, for a field that vanishes by
 symmetry, to the size of its integrand).
@@ -45,18 +45,18 @@ from typing import Any
 import jax
 import jax.numpy as jnp
 import numpy as np
-
 from crosswind.models.band_model import BandModel
 from crosswind.models.domain import Lattice
 from crosswind.models.units import ANGSTROM, E_CHARGE, HBAR_JS, KB_EVK
-from . import ladder as _ladder
-from . import mesh as _mesh
-from . import rays as _rays
-from .inputs import check_arguments
-from .kernels import moments, moments_indexed
-from .memory import budget_bytes, condition_block
-from .occupation import T_FLOOR, thermal_energy
-from .scattering import as_scattering
+from crosswind.solver.engine import ladder as _ladder
+from crosswind.solver.engine import mesh as _mesh
+from crosswind.solver.engine import rays as _rays
+from crosswind.solver.engine.inputs import check_arguments
+from crosswind.solver.engine.kernels import moments, moments_indexed
+from crosswind.solver.engine.memory import budget_bytes, condition_block
+from crosswind.solver.engine.occupation import T_FLOOR, thermal_energy
+from crosswind.solver.engine.scattering import as_scattering
+from crosswind.solver.vocabulary import units_of
 
 E = E_CHARGE
 HB = HBAR_JS
@@ -93,16 +93,8 @@ class Response:
     units: dict = field(default_factory=dict)
 
 
-UNITS_2D = {"density": "m^-2", "dos": "J^-1 m^-2", "sigma": "S", "sigma_drude": "S",
-            "sigma_anomalous": "S", "dipole": "m", "dipole_sea": "m", "chi": "A m V^-2",
-            "chi_dc": "A m V^-2", "sigma_lorentz": "S T^-1", "hall_coefficient": "Ohm T^-1",
-            "seebeck": "V K^-1", "thermal_conductivity": "W K^-1", "lorenz": "W Ohm K^-2",
-            "nernst": "A K^-1"}
-UNITS_3D = {"density": "m^-3", "dos": "J^-1 m^-3", "sigma": "S m^-1", "sigma_drude": "S m^-1",
-            "sigma_anomalous": "S m^-1", "dipole": "1", "dipole_sea": "1", "chi": "A V^-2",
-            "chi_dc": "A V^-2", "sigma_lorentz": "S m^-1 T^-1", "hall_coefficient": "m^3 C^-1",
-            "seebeck": "V K^-1", "thermal_conductivity": "W K^-1 m^-1", "lorenz": "W Ohm K^-2",
-            "nernst": "A K^-1 m^-1"}
+UNITS_2D = units_of(2)     # SI units of every field (crosswind.solver.vocabulary)
+UNITS_3D = units_of(3)
 
 
 def _resp_flatten(r: Response):
@@ -327,7 +319,7 @@ def _window_errors(err, unresolved):
 
 def _mesh_path(model, muf, kt, Tf, tauf, omega, kw, rtol, resolution, max_level, intrinsic,
                estimate_error, tau_max, P, budget):
-    """Node-based quadrature (:mod:`crosswind.solver.mesh`): one mesh pass per level, conditions in
+    """Node-based quadrature (:mod:`crosswind.solver.engine.mesh`): one mesh pass per level, conditions in
     blocks sized by the memory budget (:func:`condition_block`)."""
     levels = _levels(model)
     top = len(levels) - 1 if max_level is None else min(max_level, len(levels) - 1)
@@ -401,7 +393,7 @@ def _mesh_path(model, muf, kt, Tf, tauf, omega, kw, rtol, resolution, max_level,
 
 def _ladder_path(model, muf, kt, Tf, tauf, omega, kw, rtol, resolution, max_level, intrinsic, plan,
                  traced, tau_max):
-    """Energy-resolved ladder (:mod:`crosswind.solver.ladder`): one program per resolution
+    """Energy-resolved ladder (:mod:`crosswind.solver.engine.ladder`): one program per resolution
     computes the fine and the nested coarse sums for every condition."""
     if not isinstance(model.domain, Lattice):
         raise ValueError("response: engine='ladder' integrates lattice models; use engine='mesh' "
@@ -464,7 +456,7 @@ def _run_rays(model, mu, kt, temp, tau_arr, omega, res, kw, plan, traced):
 
 def _rays_path(model, muf, kt, Tf, tauf, omega, kw, rtol, resolution, max_level, intrinsic, plan,
                traced, tau_max, estimate_error):
-    """Energy-resolved shared rays (:mod:`crosswind.solver.rays`) for continuum models: one ray
+    """Energy-resolved shared rays (:mod:`crosswind.solver.engine.rays`) for continuum models: one ray
     set per pass for every condition; the error is |fine − coarse| between consecutive
     resolutions plus the T² extrapolation spread."""
     if isinstance(model.domain, Lattice) or model.dim != 2:
@@ -555,7 +547,7 @@ def response(model: BandModel, mu, temperature, tau, frequency=0.0, *, rtol: flo
              dipole_route: str = "surface", chunk: int = 4096, estimate_error: bool = True,
              engine: str = "auto", plan=None, memory_gib: float | None = None) -> Response:
     """Transport coefficients of ``model`` at chemical potential(s) ``mu`` (eV), ``temperature`` (K)
-    and relaxation time ``tau`` (fs, or a scattering object from :mod:`crosswind.solver.scattering`),
+    and relaxation time ``tau`` (fs, or a scattering object from :mod:`crosswind.solver.engine.scattering`),
     at drive ``frequency`` (Hz).  ``mu``, ``temperature`` and ``tau`` broadcast against each other;
     every field carries that shape in front.
 
@@ -609,7 +601,7 @@ def response(model: BandModel, mu, temperature, tau, frequency=0.0, *, rtol: flo
 
     Memory: the node quadrature evaluates conditions in blocks so that its working memory stays
     within ``memory_gib`` GiB (default ``$CROSSWIND_MEMORY_GIB``, else 2 GiB;
-    :mod:`crosswind.solver.memory`) whatever the number of conditions (10 000 μ points once asked for
+    :mod:`crosswind.solver.engine.memory`) whatever the number of conditions (10 000 μ points once asked for
     87 GB); the energy engines (ladder, rays) take conditions 128 at a time.  ``resolution``
     metadata records ``condition_block``.  The budget holds for concrete calls; under
     ``jax.grad`` the reverse pass keeps what it needs of every block.
@@ -617,7 +609,7 @@ def response(model: BandModel, mu, temperature, tau, frequency=0.0, *, rtol: flo
     ``engine="auto"`` (default) takes the ladder for 2D lattice models with automatic resolution
     (``resolution=None``) and the node quadrature ("mesh") otherwise.
     ``engine="ladder"`` (lattice models) uses the energy-resolved ladder of
-    :mod:`crosswind.solver.ladder`: the band geometry is evaluated once per call for all
+    :mod:`crosswind.solver.engine.ladder`: the band geometry is evaluated once per call for all
     conditions (sweeps over μ, T, τ and ω cost energy sums, not k-points) on shells around the
     Fermi contours that narrow with temperature, and T below its deepest level is reached by T²
     extrapolation.  ``resolution`` then indexes ``ladder.RESOLUTIONS``; under ``jax.grad``/``jit``
@@ -657,7 +649,7 @@ def response(model: BandModel, mu, temperature, tau, frequency=0.0, *, rtol: flo
         raise ValueError(f"response: mu {mu.shape}, temperature {temperature.shape} and tau shapes "
                          f"{[a.shape for a in tau_arr.values()]} do not broadcast; pass arrays of equal "
                          "shape or scalars") from exc
-    # concrete NaN/inf/negative values and non-integer levels: a clear error (solver/inputs.py)
+    # concrete NaN/inf/negative values and non-integer levels: a clear error (solver/engine/inputs.py)
     check_arguments(mu, temperature, tau_arr, type(scat).__name__, frequency, resolution, max_level)
     P = int(np.prod(shape)) if shape else 1
     flat = lambda x: jnp.broadcast_to(x, shape).reshape(P)

@@ -1,21 +1,22 @@
 """``crosswind fit``: fit a scenario's free parameters to measurements (the ``[fit]`` table).
 
 The model prediction at the measured axis values goes through the device pipeline of
-``crosswind run`` (:func:`crosswind.solver.pipeline.evaluate`: gate → density → μ → response →
-Hall bar), differentiable end to end, so :func:`crosswind.solver.fit.fit` gets its Jacobian by
+``crosswind run`` (:func:`crosswind.solver.study.chain.evaluate`: gate → density → μ → response →
+Hall bar), differentiable end to end, so :func:`crosswind.solver.fitting.fit.fit` gets its Jacobian by
 forward-mode automatic differentiation.  Free parameters are named as the knobs of
-:mod:`crosswind.solver.pipeline`; every other number keeps its scenario value.
+:mod:`crosswind.solver.study.chain`; every other number keeps its scenario value.
 
-Data: a CSV file read by :func:`crosswind.solver.measurements.load_measurements` with the columns
+Data: a CSV file read by :func:`crosswind.solver.fitting.measurements.load_measurements` with the columns
 ``<axis column> [unit]``, ``<quantity> [unit]`` and optionally ``<quantity>_err [unit]`` (standard
-errors; with them the covariance is absolute).  Axis columns: ``gate`` (gate_V), ``density``
-(density_cm2), ``mu`` (mu_eV), ``temperature`` (temperature_K), ``current`` (current_uA),
-``sigma_xx`` (scaling analysis).
+errors; with them the covariance is absolute).  The axis column is named after the knob
+(``gate_V``, ``density_cm2``, ``mu_eV``, ``temperature_K``, ``current_uA``; ``sigma_xx`` for the
+scaling analysis); the short names ``gate``, ``density``, ``mu``, ``temperature``, ``current`` of
+earlier files are read too.
 
 Outputs (folder): ``fit_summary.md``, ``fit.json``, ``fit_curve.png`` (fitted curve over the data),
 ``fit_residuals.png``, ``fitted_scenario.toml`` (the scenario with the best-fit values written
 back; rerun it with ``crosswind run``).  With ``[fit] scaling = true`` (quantity "ratio" against
-"sigma_xx") the data are fitted by E⊥/E∥² = C0 + C1σ + C2σ² (:func:`~crosswind.solver.fit.scaling_fit`).
+"sigma_xx") the data are fitted by E⊥/E∥² = C0 + C1σ + C2σ² (:func:`~crosswind.solver.fitting.fit.scaling_fit`).
 """
 from __future__ import annotations
 
@@ -26,14 +27,20 @@ from pathlib import Path
 
 import jax.numpy as jnp
 import numpy as np
+from crosswind.solver.fitting.fit import fit, scaling_fit
+from crosswind.solver.fitting.measurements import load_measurements
+from crosswind.solver.reporting.plotting import pyplot
+from crosswind.solver.study.chain import evaluate
+from crosswind.solver.study.files import atomic_figure, atomic_text, make_folder
+from crosswind.solver.study.knobs import base_values, scenario_knobs
+from crosswind.solver.vocabulary import KNOBS, OUTPUTS
 
-from .files import atomic_figure, atomic_text, make_folder
-from .pipeline import OUTPUTS, base_values, evaluate, scenario_knobs
-
-AXIS_COLUMNS = {"gate_V": ("gate", "V", "V", 1.0), "density_cm2": ("density", "cm^-2", "cm^-2", 1.0),
-                "mu_eV": ("mu", "eV", "eV", 1.0), "temperature_K": ("temperature", "K", "K", 1.0),
-                "current_uA": ("current", "uA", "uA", 1.0), "sigma_xx": ("sigma_xx", "S", "S", 1.0)}
-QUANTITY_UNITS = {"V2w": "V", "Vxx": "V", "sigma_xx": "S", "ratio": "m/V"}
+#: unit of each fit axis column (the column is named after the knob; an older short name is also read)
+AXIS_COLUMNS = {k: KNOBS[k].unit for k in ("gate_V", "density_cm2", "mu_eV", "temperature_K", "current_uA")}
+AXIS_COLUMNS["sigma_xx"] = OUTPUTS["sigma_xx"].unit_2d
+LEGACY_COLUMNS = {"gate_V": ("gate",), "density_cm2": ("density",), "mu_eV": ("mu",),
+                  "temperature_K": ("temperature",), "current_uA": ("current",)}
+QUANTITY_UNITS = {k: f.unit_2d for k, f in OUTPUTS.items()}
 SHOW = {"V2w": (1e9, "nV"), "Vxx": (1e3, "mV"), "sigma_xx": (1e3, "mS"), "ratio": (1.0, "m/V")}
 
 
@@ -43,21 +50,15 @@ class FitInputError(ValueError):
 
 def load_data(scn, path):
     spec = scn.fit
-    col, unit, _, _ = AXIS_COLUMNS[spec.axis]
+    col, unit = spec.axis, AXIS_COLUMNS[spec.axis]
     q = spec.quantity
-    cols = {col: unit, q: QUANTITY_UNITS[q]}
+    cols = {col: unit, q: QUANTITY_UNITS[q], f"{q}_err": QUANTITY_UNITS[q]}
     npar = max(len(spec.parameters), 3 if spec.scaling else 1)
     try:
-        data = _load(path, cols, npar)
+        data = load_measurements(path, cols, min_points=npar, optional=(f"{q}_err",), aliases=LEGACY_COLUMNS)
     except (ValueError, FileNotFoundError) as exc:
         raise FitInputError(str(exc)) from None
-    try:
-        err = _load(path, {f"{q}_err": QUANTITY_UNITS[q]}, None)[f"{q}_err"]
-    except ValueError as exc:
-        if "is missing" in str(exc):
-            err = None
-        else:
-            raise FitInputError(str(exc)) from None
+    err = data.get(f"{q}_err")
     if err is not None and (np.any(err <= 0)):
         raise FitInputError(f"{path}: column '{q}_err' must hold positive standard errors")
     if not spec.scaling and data[q].size <= len(spec.parameters) and err is None:
@@ -80,28 +81,21 @@ def _refuse_duplicates(path, col, unit, x):
                             "error column) or remove the extra rows")
 
 
-def _load(path, cols, min_points):
-    from .measurements import load_measurements
-    return load_measurements(path, cols, min_points=min_points)
-
-
 def _predictor(scn):
     spec = scn.fit
     at = dict(spec.at)
-    probe = {a.name: a for a in scn.axes}
     base = base_values(scn, {k: v for k, v in at.items()}, who="[fit]")
     base.pop(spec.axis, None)
     missing = [k for k, v in base.items() if v is None]
     if missing:
         raise FitInputError(f"{scn.path}: [fit]: {', '.join(missing)} are swept in the scenario; fix them for "
                             f"the fit with at = {{{missing[0]} = ...}}")
-    del probe
 
     def predict(params, x):
         vals = dict(base)
         vals.update(params)
         vals[spec.axis] = jnp.asarray(x, dtype=jnp.float64)
-        return evaluate(scn, vals, resolution=spec.resolution)[spec.quantity]
+        return evaluate(scn, vals, resolution=spec.resolution).output(spec.quantity)
 
     return predict, base
 
@@ -109,7 +103,6 @@ def _predictor(scn):
 def run_fit(scn, data_path, folder, *, starts=None, progress=None) -> dict:
     """Fit, write every output into ``folder``; returns the fit.json content.  ``progress(line)``
     receives one line per iteration (cost and parameter values)."""
-    from .fit import fit
     spec = scn.fit
     x, y, err = load_data(scn, data_path)
     folder = Path(folder)
@@ -151,11 +144,10 @@ def run_fit(scn, data_path, folder, *, starts=None, progress=None) -> dict:
 
 
 def _plots(scn, x, y, err, xs, curve, model_at, folder):
-    from .report import _plt
-    plt = _plt()
+    plt = pyplot()
     spec = scn.fit
     f, u = SHOW[spec.quantity]
-    col, unit, _, _ = AXIS_COLUMNS[spec.axis]
+    col, unit = spec.axis, AXIS_COLUMNS[spec.axis]
     fig, ax = plt.subplots(figsize=(5.5, 4.0))
     ax.errorbar(x, y * f, yerr=None if err is None else err * f, fmt="o", label="data")
     ax.plot(xs, curve * f, "-", label="best fit")
@@ -180,7 +172,7 @@ def fit_markdown(scn, out) -> str:
     q, ax = out["quantity"], out["axis"]
     lines = ["# Crosswind fit", "",
              f"Scenario `{Path(str(scn.path)).name}`; data `{Path(out['data_file']).name}` ({out['points']} points): "
-             f"{OUTPUTS[q][1]} against `{ax}`, model through the `crosswind run` device pipeline at k-mesh "
+             f"{OUTPUTS[q].long_name} against `{ax}`, model through the `crosswind run` device pipeline at k-mesh "
              f"level {out['resolution']}.", "",
              "## Best-fit values", "", "| parameter | value | standard error | unit | start |", "|---|---|---|---|---|"]
     for k in out["free"]:
@@ -212,7 +204,6 @@ def fit_markdown(scn, out) -> str:
 
 
 def _run_scaling(scn, s, y, err, data_path, folder):
-    from .fit import scaling_fit
     try:
         sf = scaling_fit(s, y, err)
     except ValueError as exc:
@@ -223,8 +214,7 @@ def _run_scaling(scn, s, y, err, data_path, folder):
            "stderr": dict(zip(("c0", "c1", "c2"), sf.stderr)), "units": sf.units, "meaning": sf.meaning,
            "correlation": np.asarray(sf.correlation).tolist(), "chi2_reduced": sf.chi2_reduced, "dof": sf.dof}
     atomic_text(folder / "fit.json", json.dumps(out, indent=1, default=float))
-    from .report import _plt
-    plt = _plt()
+    plt = pyplot()
     xs = np.linspace(float(np.min(s)), float(np.max(s)), 50)
     for name, (xv, yv, lab) in {"fit_curve.png": (xs, sf.predict(xs), "C0 + C1σ + C2σ²"),
                                 "fit_residuals.png": (s, sf.residuals, "residual")}.items():

@@ -38,6 +38,7 @@ singular Jacobian, or residuals/Jacobian that are NaN or infinite.
 """
 from __future__ import annotations
 
+import inspect
 import math
 from dataclasses import dataclass, field
 from typing import Callable, Mapping
@@ -46,6 +47,7 @@ import jax
 import jax.numpy as jnp
 import numpy as np
 from scipy.optimize import least_squares
+from scipy.stats import chi2 as chi2_dist
 
 CORRELATION_LIMIT = 0.99
 CONDITION_LIMIT = 1e12
@@ -244,7 +246,6 @@ def fit(residual_fn: Callable[[dict], object], initial: Mapping[str, float], *, 
     tangent_of = lambda p, t: jax.jvp(residual_of, (p,), (t,))[1]
     tangent_eval = jax.jit(tangent_of) if jit else tangent_of
 
-    import inspect
     per_iteration = "callback" in inspect.signature(least_squares).parameters
 
     def report(label, what, cost, z, ref):
@@ -390,7 +391,6 @@ def _at_bounds(values, free, lo, hi, scale) -> list:
 def _problems(values, start, stderr, free, scale, Jz, r, dof, absolute_sigma, bounds_hit) -> list:
     """Plain-language reasons why a converged fit is not to be trusted (module docstring);
     ``start`` is None when another start reached the same cost (ending at the start is then fine)."""
-    from scipy.stats import chi2 as chi2_dist
     out = [f"{k} ended at its {where}: the best fit lies beyond it, so its standard error is not "
            "meaningful (reported as NaN); widen the bound if that is physical, else the model or the data "
            "are inconsistent" for k, where in bounds_hit]

@@ -8,7 +8,7 @@ With x = (ε − μ)/k_BT:
 * s(x) = −f ln f − (1−f) ln(1−f) = ln(1 + e^{−|x|}) + |x| f(|x|)   (entropy per state, k_B = 1)
 
 T → 0: temperatures below ``T_FLOOR`` (1 mK) are evaluated at ``T_FLOOR``.  The k-space meshes
-of :mod:`crosswind.solver.mesh` scale their Fermi windows with k_BT, so the quadrature error does
+of :mod:`crosswind.solver.engine.mesh` scale their Fermi windows with k_BT, so the quadrature error does
 not grow as T falls, and at 1 mK the Sommerfeld corrections (k_BT/E_F)² are ~1e-14 for E_F of
 order 10 meV: the result is the T = 0 limit to all printed digits.  The floor is applied with
 ``jnp.maximum`` before any division, so gradients stay finite (zero below the floor).
@@ -17,7 +17,6 @@ from __future__ import annotations
 
 import jax
 import jax.numpy as jnp
-
 from crosswind.models.units import KB_EVK
 
 T_FLOOR = 1e-3  # K

@@ -3,14 +3,14 @@
 After a sweep, the grid point where |V_y^2ω| is largest is taken (the peak of ``summary.md``) and
 the derivative of |V_y^2ω| with respect to every requested knob is computed by forward-mode
 automatic differentiation (``jax.jvp``) through the whole device pipeline of
-:mod:`crosswind.solver.pipeline` — strain magnitude → strain components → model, gate → density →
+:mod:`crosswind.solver.study.chain` — strain magnitude → strain components → model, gate → density →
 μ (implicit derivative of the density solve), scattering → response → Hall bar.  The change per
 step is the linear estimate derivative × step.
 
 Accuracy: derivatives are taken on a fixed k-mesh (``[sensitivities] resolution``; default the
 run's fixed level, else 2).  Derivative integrands are sharper than the values, so level ≥ 2 is
 more accurate for derivatives than the level-1 mesh that is often enough for the values
-(:mod:`crosswind.solver.sensitivity`).  Knobs that move the k-mesh placement (μ, temperature for
+(:mod:`crosswind.solver.engine.sensitivity`).  Knobs that move the k-mesh placement (μ, temperature for
 continuum models) are differentiated at fixed nodes.
 """
 from __future__ import annotations
@@ -21,30 +21,31 @@ from pathlib import Path
 import jax
 import jax.numpy as jnp
 import numpy as np
-
-from .files import atomic_text, atomic_write
-from .sensitivity import SensitivityRow
+from crosswind.solver.engine.sensitivity import SensitivityRow
+from crosswind.solver.reporting.report import peak_index
+from crosswind.solver.study.chain import evaluate
+from crosswind.solver.study.files import atomic_text, atomic_write
+from crosswind.solver.study.knobs import base_values, scenario_knobs
 
 
 def peak_values(scn, ds) -> dict:
     """Concrete knob values at the grid point of the largest |V_y^2ω|."""
-    from .pipeline import _AXIS_OF, base_values
-    from .report import peak_index
     idx = peak_index(ds)
     at = {}
-    for knob, axis in _AXIS_OF.items():
-        if axis in idx and ds.sizes[axis] > 1:
-            at[knob] = float(ds[axis].values[idx[axis]])
+    for a in scn.axes:
+        if a.name in idx and ds.sizes[a.name] > 1 and a.name != "current_angle_deg":
+            at[a.name] = float(ds[a.name].values[idx[a.name]])
+    if "current_angle_deg" in idx:
+        at["current_angle_deg"] = float(ds["current_angle_deg"].values[idx["current_angle_deg"]])
     return base_values(scn, at, who="[sensitivities]")
 
 
 def peak_sensitivities(scn, ds) -> list[SensitivityRow]:
     """Rows (knob, step, change of |V_y^2ω| in V, unit, derivative, relative), largest |change| first."""
-    from .pipeline import evaluate, scenario_knobs
     spec = scn.sensitivities
     base = peak_values(scn, ds)
     x = {k: jnp.asarray(v, dtype=jnp.float64) for k, v in base.items()}
-    f = lambda xx: evaluate(scn, xx, resolution=spec.resolution)["V2w"][0]
+    f = lambda xx: evaluate(scn, xx, resolution=spec.resolution).V2w[0]
     units = scenario_knobs(scn)
     rows = []
     for knob, step in spec.steps:

@@ -14,7 +14,7 @@ depends on energy.
 
 When τ depends on energy the closed forms change: σ is no longer τ × (a τ-free integral); the
 Berry-curvature dipole term uses the τ-weighted dipole ∫(−f0')τ(ε)ħv_bΩ_d, and the nonlinear Drude
-term gains ∂τ/∂ε (see :mod:`crosswind.solver.kernels`).  E⊥/E∥² is then τ-independent only on
+term gains ∂τ/∂ε (see :mod:`crosswind.solver.engine.kernels`).  E⊥/E∥² is then τ-independent only on
 average.
 
 The shape parameters (exponent, reference and scale energies, smoothing, reference temperature)
@@ -28,10 +28,10 @@ from dataclasses import dataclass
 
 import jax.numpy as jnp
 import numpy as np
+from crosswind.solver.engine.inputs import first_bad, is_traced
+from crosswind.solver.vocabulary import KNOBS
 
-from .inputs import first_bad, is_traced
-
-MAX_EXPONENT = 10.0   # |r| beyond this overflows τ over a band width (0.1 eV scale: 100^r) to inf/0
+MAX_EXPONENT = KNOBS["exponent"].high   # |r| beyond this overflows τ over a band width (0.1 eV scale: 100^r)
 
 
 def _require(owner: str, name: str, value, ok, rule: str, fix: str) -> None:

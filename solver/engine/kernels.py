@@ -29,9 +29,8 @@ from __future__ import annotations
 
 import jax
 import jax.numpy as jnp
-
 from crosswind.models.geometry import geometry_at
-from .occupation import entropy_density, fermi, minus_dfermi
+from crosswind.solver.engine.occupation import entropy_density, fermi, minus_dfermi
 
 FIELDS = ("density", "dos", "drude", "ahe", "dipole", "dipole_tau", "drude2_2w", "drude2_0",
           "bcp", "lorentz", "thermo1", "thermo2", "nernst")

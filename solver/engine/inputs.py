@@ -1,18 +1,18 @@
-"""Checks of the numeric arguments of :func:`~crosswind.solver.response.response` at the API
+"""Checks of the numeric arguments of :func:`~crosswind.solver.engine.response.response` at the API
 boundary: a bad value is refused with a ``ValueError`` that names the argument, the offending entry
 and the fix, before any k-space work.
 
 * ``mu`` (eV) must be finite; ``temperature`` (K) finite and >= 0 (0 is the T → 0 limit);
 * every relaxation time of the scattering model (``tau``, ``tau0``, ``tau_impurity``,
   ``tau_phonon``; fs) positive and finite (the shape parameters of the scattering objects are
-  checked when the object is built, :mod:`crosswind.solver.scattering`);
+  checked when the object is built, :mod:`crosswind.solver.engine.scattering`);
 * ``frequency`` (Hz) finite and >= 0 (E(t) = Re[E e^{iωt}] with ω >= 0);
 * ``resolution`` ``None`` or an integer level, ``max_level`` ``None`` or an integer (else
   ``TypeError``).
 
 Only concrete values are checked.  Values traced by ``jax.grad``/``jit`` cannot be inspected: a
 NaN or inf among them propagates into the result (every field NaN), and the sweep runner
-(:mod:`crosswind.solver.run`) refuses to write such a result, naming the point.
+(:mod:`crosswind.solver.study.sweep`) refuses to write such a result, naming the point.
 """
 from __future__ import annotations
 

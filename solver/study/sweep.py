@@ -8,8 +8,8 @@ Batches.  The *inner* axis is the innermost non-angle axis with more than one va
 last non-angle axis); one batch evaluates all its values in one call of ``response`` with arrays,
 so every batch has the same array shape and JAX compiles once for the whole sweep.  One batch is
 run for every combination of the other (outer) axes.  A carrier density or gate voltage goes
-through :func:`~crosswind.solver.density.mu_from_density` (gate via
-:func:`~crosswind.solver.density.gate_density`) at each point's temperature.
+through :func:`~crosswind.solver.engine.density.mu_from_density` (gate via
+:func:`~crosswind.solver.engine.density.gate_density`) at each point's temperature.
 
 Checkpoints and resume.  Each finished batch is written to ``<folder>/batches/batch_<i>.npz``
 atomically (a temporary file in the same folder, then ``os.replace``), so an interrupted run leaves
@@ -31,7 +31,6 @@ from __future__ import annotations
 
 import contextlib
 import fcntl
-import functools
 import hashlib
 import itertools
 import json
@@ -39,6 +38,7 @@ import os
 import sys
 import tempfile
 import time
+import tomllib
 import zipfile
 import zlib
 from importlib import metadata
@@ -46,41 +46,15 @@ from pathlib import Path
 from typing import Callable
 
 import numpy as np
+from crosswind.solver.pytrees import as_dict
+from crosswind.solver.study.chain import evaluate
+from crosswind.solver.study.knobs import base_values
+from crosswind.solver.study.files import atomic_text, atomic_write, check_free_space
+from crosswind.solver.study.scenario import Scenario
+from crosswind.solver.vocabulary import field
 
-from .files import atomic_text, atomic_write, check_free_space
-from .scenario import Scenario
-
-DEVICE_KEYS = ("field_x", "field_y", "v_xx", "v_hall", "v2w_x", "v2w_y", "v2w_y_amplitude", "v2w_y_rms",
-               "v2w_y_phase_deg", "v2w_y_lockin_x_rms", "v2w_y_lockin_y_rms", "v2w_x_amplitude",
-               "v2w_x_rms", "vdc_x", "vdc_y", "hall_angle", "nonlinear_ratio", "current_density",
-               "power_density")
 ERROR_FIELDS = ("density", "sigma", "sigma_anomalous", "dipole", "chi", "chi_dc", "chi_dipole", "chi_drude",
                 "chi_intrinsic")
-LONG = {
-    "density": "carrier density relative to neutrality", "mu": "chemical potential",
-    "sigma": "sheet conductivity (crystal frame)", "sigma_drude": "Drude part of sigma",
-    "sigma_anomalous": "intrinsic anomalous (Berry-curvature) part of sigma",
-    "dipole": "Berry-curvature dipole (z curvature)", "chi": "second-harmonic coefficient (crystal frame)",
-    "chi_dc": "rectified coefficient (crystal frame)", "chi_dipole": "dipole part of chi",
-    "chi_drude": "nonlinear Drude part of chi", "chi_intrinsic": "intrinsic (connection polarizability) part of chi",
-    "sigma_bar": "sheet conductivity in the bar frame (x' along the current)",
-    "chi_bar": "second-harmonic coefficient in the bar frame",
-    "field_x": "longitudinal field phasor at omega (cosine drive)", "field_y": "transverse field phasor at omega",
-    "v_xx": "longitudinal voltage phasor at omega over length L", "v_hall": "transverse voltage phasor at omega",
-    "v2w_x": "longitudinal 2omega voltage phasor (cosine drive)", "v2w_y": "transverse 2omega voltage phasor (cosine drive)",
-    "v2w_y_amplitude": "transverse 2omega voltage amplitude", "v2w_y_rms": "transverse 2omega voltage, lock-in rms",
-    "v2w_y_phase_deg": "lock-in phase of the transverse 2omega voltage vs sin(2 omega t), sine drive",
-    "v2w_y_lockin_x_rms": "lock-in X (in phase with sin 2 omega t), rms",
-    "v2w_y_lockin_y_rms": "lock-in Y (quadrature), rms",
-    "v2w_x_amplitude": "longitudinal 2omega voltage amplitude", "v2w_x_rms": "longitudinal 2omega voltage rms",
-    "vdc_x": "rectified longitudinal voltage", "vdc_y": "rectified transverse voltage",
-    "hall_angle": "Hall angle tangent Re sigma'_xy / Re sigma'_xx",
-    "nonlinear_ratio": "E_perp / E_par^2 = Re chi'_yxx / Re sigma'_yy",
-    "current_density": "sheet current density amplitude I0/W", "power_density": "time-averaged Joule power per area",
-    "resolution_level": "k-mesh refinement level used", "converged": "automatic refinement reached rtol (1) or not (0)",
-    "has_error_estimate": "error_* holds a comparison of two levels (1) or is unavailable, NaN (0)",
-}
-
 
 class RunError(RuntimeError):
     """The run cannot proceed (e.g. the output folder holds another scenario)."""
@@ -105,7 +79,6 @@ def fingerprint_parts(scn: Scenario) -> dict:
     """A hash per input the sweep's numbers depend on: the parsed scenario (so a comment-only edit
     changes nothing; [output], [sensitivities] and [fit] are left out), the content of every file
     it reads (the tight-binding definition) and the package version."""
-    import tomllib
     data = {k: v for k, v in tomllib.loads(scn.text).items() if k not in _NOT_IN_RESULTS}
     parts = {"scenario": _sha(json.dumps(data, sort_keys=True, default=str).encode()),
              "package version": package_version()}
@@ -150,7 +123,7 @@ def check_manifest(folder: Path, fp: str, parts: dict) -> None:
                    "rerun into another --output folder or delete this one")
 
 
-_atomic_write, _atomic_text = atomic_write, atomic_text     # names used before solver/files.py
+_atomic_write, _atomic_text = atomic_write, atomic_text     # names used before solver/study/files.py
 
 
 def _savez(tmp: str, res: dict):
@@ -250,64 +223,25 @@ class _Progress:
             self.bar.close()
 
 
-def _scattering(scn: Scenario, arrays: dict):
-    from .scattering import ConstantTau, MatthiessenTau, PowerLawTau
-    if scn.scattering == "constant":
-        return ConstantTau(arrays["tau"])
-    if scn.scattering == "power-law":
-        return PowerLawTau(arrays["tau0"], arrays["tau_exponent"], arrays["tau_reference_energy"],
-                           arrays["tau_energy_scale"])
-    return MatthiessenTau(arrays["tau_impurity"], arrays["tau_phonon"], arrays["tau_reference_temperature"])
-
-
-def gate_to_density(scn: Scenario, volts):
-    """Gate voltage (V) → density (m⁻²) with the scenario's parallel-plate gate."""
-    from .density import gate_density
-    d = scn.device
-    if d.capacitance_nF_cm2 is not None:
-        cap = d.capacitance_nF_cm2 * 1e-9 / 1e-4        # F/m²
-        from scipy import constants as c
-        return cap * (np.asarray(volts) - d.gate_offset_V) / c.e
-    return np.asarray(gate_density(np.asarray(volts), d.dielectric_nm, d.permittivity, d.gate_offset_V))
-
-
-MU_ITERATIONS = 44       # bisection steps on the (-5, 5) eV bracket: 10 eV / 2^44 ≈ 6e-13 eV
-
-
-@functools.lru_cache(maxsize=None)
-def _mu_solver():
-    """``mu_from_density`` jitted once per process, so every batch reuses the compiled solve."""
-    import jax
-    from .density import mu_from_density
-    return jax.jit(mu_from_density, static_argnames=("bracket", "resolution", "iterations"))
-
-
 def error_available(info: dict) -> bool:
     """False when ``response`` made no comparison: the node quadrature at level 0 has no coarser
     level, so its |fine − coarse| is 0 by construction; the dataset then holds NaN ("unavailable")."""
     return not (info.get("engine") == "mesh" and int(info["level"]) == 0)
 
 
-def compute_batch(scn: Scenario, values: dict, model) -> dict:
-    """Evaluate one batch.  ``values`` maps axis name → 1-D array of the batch's P points."""
-    from .device import HallBar, hall_bar
-    import jax.numpy as jnp
-    from .response import response
+def compute_batch(scn: Scenario, values: dict) -> dict:
+    """Evaluate one batch through the chain (:func:`crosswind.solver.study.chain.evaluate`) at the
+    scenario's numerics, with error estimates.  ``values`` maps each non-angle axis (knob name) to a
+    1-D array of the batch's P points; the device quantities are given for every current angle, (P, A).
+    Returns the arrays of the checkpoint (names of :mod:`crosswind.solver.vocabulary`)."""
     P = len(next(iter(values.values())))
-    temp = np.asarray(values["temperature"], dtype=float)
-    if scn.carrier == "mu_eV":
-        mu = np.asarray(values["chemical_potential"], dtype=float)
-    else:
-        if scn.carrier == "gate_V":
-            dens = gate_to_density(scn, values["gate_voltage"])
-        else:
-            dens = np.asarray(values["density_target"]) * 1e4
-        mu = np.asarray(_mu_solver()(model, jnp.asarray(dens, dtype=jnp.float64), jnp.asarray(temp),
-                                     resolution=scn.numerics.density_resolution, iterations=MU_ITERATIONS))
-    scat = _scattering(scn, values)
-    r = response(model, mu=mu, temperature=temp, tau=scat, frequency=scn.device.frequency_Hz,
-                 rtol=scn.numerics.rtol, resolution=scn.numerics.resolution, intrinsic=scn.numerics.intrinsic)
-    out = {"mu": mu, "density": np.asarray(r.density)}
+    angles = np.asarray(scn.axes[-1].values, dtype=float)
+    knobs = base_values(scn, dict(values, current_angle_deg=np.broadcast_to(angles, (P, len(angles)))), who="sweep")
+    if "strain" in knobs:
+        knobs["strain"] = float(np.asarray(knobs["strain"]).reshape(-1)[0])   # one strain per batch
+    got = evaluate(scn, knobs, resolution=scn.numerics.resolution, rtol=scn.numerics.rtol, estimate_error=True)
+    r = got.response
+    out = {"mu": np.asarray(got.mu), "density": np.asarray(r.density)}
     for k in ("sigma", "sigma_drude", "sigma_anomalous", "dipole", "chi", "chi_dc"):
         out[k] = np.asarray(getattr(r, k))
     for part, v in r.chi_parts.items():
@@ -321,19 +255,10 @@ def compute_batch(scn: Scenario, values: dict, model) -> dict:
     out["resolution_level"] = np.full(P, int(info["level"]))
     out["converged"] = np.full(P, -1 if info["converged"] is None else int(bool(info["converged"])))
     out["nodes_per_condition"] = np.full(P, int(info.get("nodes_per_condition", -1)))   # -1: energy engines
-    # device quantities for every current angle: (P, A)
-    angles = np.asarray(scn.axes[-1].values)
-    bar = HallBar(scn.device.width_um, scn.device.length_um, scn.device.current_uA, scn.device.frequency_Hz)
-    sig = np.repeat(out["sigma"][:, None], len(angles), axis=1)
-    chi = np.repeat(out["chi"][:, None], len(angles), axis=1)
-    chid = np.repeat(out["chi_dc"][:, None], len(angles), axis=1)
-    ang = np.broadcast_to(angles[None, :], (P, len(angles)))
-    dev = hall_bar(sig, chi, chid, bar, ang)
-    for k in DEVICE_KEYS:
-        out[f"dev_{k}"] = np.asarray(dev[k])
-    from .device import rotate_chi, rotate_sigma
-    out["dev_sigma_bar"] = np.asarray(rotate_sigma(sig, ang))
-    out["dev_chi_bar"] = np.asarray(rotate_chi(chi, ang))
+    for k, v in as_dict(got.reading).items():
+        out[f"dev_{k}"] = np.asarray(v)
+    out["dev_sigma_bar"] = np.asarray(got.sigma_bar)
+    out["dev_chi_bar"] = np.asarray(got.chi_bar)
     return out
 
 
@@ -408,7 +333,6 @@ def _run_locked(scn: Scenario, folder: Path, progress: bool, after_batch):
     bdir.mkdir(exist_ok=True)
     prog = _Progress(len(combos), progress)
     results, computed, t0 = [], [], time.time()
-    models: dict = {}
     try:
         for b, combo in enumerate(combos):
             path = bdir / f"batch_{b:05d}.npz"
@@ -428,17 +352,12 @@ def _run_locked(scn: Scenario, folder: Path, progress: bool, after_batch):
                     values[a.name] = np.asarray(a.values, dtype=float)
                 else:
                     values[a.name] = np.full(P, a.values[idx[i]], dtype=float)
-            strain = values["strain"][0] if "strain" in values and inner != 0 else None
-            if "strain" in values and inner == 0:
-                # strain is the only sweep: one model per point (no array form for model params)
-                parts = [compute_batch(scn, {k: v[j:j + 1] for k, v in values.items()},
-                                       scn.build_model(values["strain"][j])) for j in range(P)]
+            if "strain" in values and inner == 0 and P > 1:
+                # strain is the only sweep: one model per point (model parameters are scalars)
+                parts = [compute_batch(scn, {k: v[j:j + 1] for k, v in values.items()}) for j in range(P)]
                 res = {k: np.concatenate([p[k] for p in parts]) for k in parts[0]}
             else:
-                key = strain
-                if key not in models:
-                    models[key] = scn.build_model(strain)
-                res = compute_batch(scn, values, models[key])
+                res = compute_batch(scn, values)
             check_finite_batch(scn, b, values, res)
             _atomic_write(path, lambda tmp, res=res: _savez(tmp, dict(res, _fingerprint=np.array(fp))))
             results.append(res)
@@ -478,25 +397,21 @@ def assemble(scn: Scenario, results, inner, outer, combos):
     coords = {a.name: (a.name, np.asarray(a.values), {"units": a.unit, "long_name": a.long_name,
                                                       "scenario_key": a.key}) for a in scn.axes}
     coords.update({"i": comp, "j": comp, "k": comp})
-    units = _units()
     data = {}
     for k, v in grid.items():
         name = k[4:] if k.startswith("dev_") else k
-        d = list(dims) + (["current_angle"] if k.startswith("dev_") else [])
+        d = list(dims) + (["current_angle_deg"] if k.startswith("dev_") else [])
         extra = v.ndim - len(d)
         d = d + ["i", "j", "k"][:extra]
-        attrs = {"units": units.get(name.replace("error_", ""), ""), "long_name": LONG.get(name, name)}
-        if name.startswith("error_"):
-            attrs["long_name"] = f"estimated absolute integration error of {name[6:]} (|fine - coarse| mesh)"
-        if name == "density":
-            attrs["long_name"] = LONG["density"]
+        f = field(name)
+        attrs = {"units": f.unit(2), "long_name": f.long_name}
         if np.iscomplexobj(v):
             data[name] = (d, v.real, attrs)
             data[name + "_imag"] = (d, v.imag, dict(attrs, long_name="imaginary part of " + attrs["long_name"]))
         else:
             data[name] = (d, v, attrs)
     ds = xr.Dataset(data, coords=coords)
-    assert ds.sizes["current_angle"] == A
+    assert ds.sizes["current_angle_deg"] == A
     numerics = {"rtol": scn.numerics.rtol,
                 "resolution": "auto" if scn.numerics.resolution is None else scn.numerics.resolution,
                 "error_estimate": ("|fine - coarse|" if np.all(grid.get("has_error_estimate", 1) == 1) else
@@ -516,17 +431,6 @@ def assemble(scn: Scenario, results, inner, outer, combos):
         "model": "relaxation-time Boltzmann theory, band-independent tau, to second order in E",
     })
     return ds
-
-
-def _units():
-    from .device import FIELDS_UNITS
-    from .response import UNITS_2D
-    u = dict(UNITS_2D)
-    u.update({"mu": "eV", "chi_dipole": u["chi"], "chi_drude": u["chi"], "chi_intrinsic": u["chi"],
-              "sigma_bar": "S", "chi_bar": u["chi"], "resolution_level": "1", "converged": "1", "has_error_estimate": "1",
-              "nodes_per_condition": "1"})
-    u.update(FIELDS_UNITS)
-    return u
 
 
 def flat_table(ds):

@@ -1,4 +1,4 @@
-"""Memory budget of one :func:`~crosswind.solver.response.response` call.
+"""Memory budget of one :func:`~crosswind.solver.engine.response.response` call.
 
 The node quadrature evaluates every kernel for a chunk of k-points and a block of conditions at
 once, so its working memory is about (k-points per chunk) × (conditions per block) × (bytes per
@@ -20,6 +20,7 @@ import os
 from functools import lru_cache
 
 from crosswind.models.domain import Lattice
+from crosswind.solver.engine.mesh import node_count
 
 DEFAULT_GIB = 2.0
 ENV = "CROSSWIND_MEMORY_GIB"
@@ -53,7 +54,7 @@ def budget_bytes(memory_gib=None) -> float:
 @lru_cache(maxsize=64)
 def _pair_bytes(dim: int, bands: int, sea: bool) -> int:
     """Bytes of the kernel values of one k-point and one condition (the arrays of
-    :func:`~crosswind.solver.kernels.point_kernels` for P = 1), times ``OVERHEAD``."""
+    :func:`~crosswind.solver.engine.kernels.point_kernels` for P = 1), times ``OVERHEAD``."""
     per_band = 8 * (8 + 4 * dim + 2 * dim ** 2 + 2 * dim ** 3)          # f0, F, τ, τ̃, Fermi products
     out = 8 * (2 + 2 * dim ** 2 + dim + 2 * dim + 2 * 2 * dim ** 3 + dim ** 3 + 4 * dim ** 2 + dim + 4)
     if sea:
@@ -64,7 +65,6 @@ def _pair_bytes(dim: int, bands: int, sea: bool) -> int:
 def condition_block(model, res, P: int, chunk: int, sea: bool, budget: float) -> int:
     """Conditions per block so that (nodes per chunk) × block × bytes per pair stays within
     ``SHARE`` of ``budget`` bytes (at least 1, at most P)."""
-    from .mesh import node_count
     nodes = min(chunk, node_count(model, res))
     per_condition = nodes * _pair_bytes(model.dim, model.n_bands, bool(sea))
     if not isinstance(model.domain, Lattice):

@@ -1,7 +1,7 @@
 """Energy-resolved integration of continuum (k·p) models: one set of rays for every condition.
 
 A continuum model lives on the whole plane around each valley centre.  The node quadrature of
-:mod:`crosswind.solver.mesh` builds polar rays per condition, with Gauss panels around that
+:mod:`crosswind.solver.engine.mesh` builds polar rays per condition, with Gauss panels around that
 condition's Fermi crossings, so a sweep of P conditions costs P meshes.  This module builds one
 ray set per call for all conditions together and reduces each condition to a sum over energy
 knots (docs/theory.md §14.3):
@@ -17,9 +17,9 @@ knots (docs/theory.md §14.3):
   Across a window panel a band changes by at most one breakpoint spacing, so every condition's
   occupation factor is smooth on every panel: the rule resolves all conditions at once.
 * **Energy knots.**  Every node deposits w·A (A the geometric factors of
-  :func:`crosswind.solver.ladder.point_factors`) onto R knot tables of spacing δ_r = δ_0·2^r,
+  :func:`crosswind.solver.engine.ladder.point_factors`) onto R knot tables of spacing δ_r = δ_0·2^r,
   δ_0 = k_BT_min/ρ, with the four moment-preserving cubic Lagrange weights of
-  :mod:`crosswind.solver.ladder`; a condition reads the table whose spacing is about k_BT_p/ρ, so
+  :mod:`crosswind.solver.engine.ladder`; a condition reads the table whose spacing is about k_BT_p/ρ, so
   its sum has the same short length for any temperature.  States below the tables are fully
   occupied for every condition, states above empty.
 * **Fermi-sea kernels.**  Density and the Fermi-sea dipole need f0 − θ(band filled at
@@ -47,9 +47,14 @@ import numpy as np
 from crosswind.models.band_model import BandModel
 from crosswind.models.domain import Lattice
 from crosswind.models.units import KB_EVK as KB
-
-from .ladder import _kernel_sums, _lagrange, _occupations, factor_layout, point_factors
-from .mesh import energies_at
+from crosswind.solver.engine.ladder import (
+    _kernel_sums,
+    _lagrange,
+    _occupations,
+    factor_layout,
+    point_factors,
+)
+from crosswind.solver.engine.mesh import energies_at
 
 W = 20.0                     # window half-width in k_BT (neglected weight ~ e^-20)
 PROBE = 160                  # probe points per ray for bracketing crossings
@@ -294,7 +299,7 @@ def ray_nodes(model: BandModel, params, plan: RayPlan, grid: RayGrid):
 # --------------------------------------------------------------------------------------------
 
 def _deposit3(acc, e, f, w, e_lo, delta):
-    """Like :func:`crosswind.solver.ladder._deposit`, also summing the states above the table
+    """Like :func:`crosswind.solver.engine.ladder._deposit`, also summing the states above the table
     (``above``), which the filled-band ("hole") columns need."""
     table, below, above = acc
     M = table.shape[0]

@@ -29,11 +29,19 @@ import difflib
 import math
 import tomllib
 from dataclasses import dataclass
+from dataclasses import replace as _replace
 from pathlib import Path
 
 import numpy as np
-
-from .scattering import MAX_EXPONENT
+from crosswind.models import build, catalogue, load_tight_binding
+from crosswind.models.strain import uniaxial
+from crosswind.solver.study.knobs import (
+    KnobError,
+    base_model,
+    check_knob,
+    scenario_knobs,
+)
+from crosswind.solver.vocabulary import CARRIERS, KNOBS, SCATTERING, SCATTERING_DEFAULTS
 
 
 class ScenarioError(ValueError):
@@ -152,22 +160,9 @@ _STRAIN_TENSOR = ("xx", "yy", "xy")
 _STRAIN_UNIAXIAL = ("magnitude", "angle_deg", "poisson")
 _DEVICE = ("width_um", "length_um", "current_uA", "frequency_Hz", "current_angle_deg", "dielectric_nm",
            "permittivity", "capacitance_nF_cm2", "gate_offset_V")
-_CARRIERS = {"gate_V": ("gate_voltage", "V", "gate voltage"),
-             "density_cm2": ("density_target", "cm^-2", "carrier density (electrons > 0)"),
-             "mu_eV": ("chemical_potential", "eV", "chemical potential")}
-_SCATTERING = {
-    "constant": {"tau_fs": ("tau", "fs", "relaxation time", True)},
-    "power-law": {"tau0_fs": ("tau0", "fs", "relaxation time prefactor τ0", True),
-                  "exponent": ("tau_exponent", "1", "power r of τ = τ0(|ε−ε_ref|/ε_s)^r", None),
-                  "reference_energy_eV": ("tau_reference_energy", "eV", "reference energy ε_ref", None),
-                  "energy_scale_eV": ("tau_energy_scale", "eV", "energy scale ε_s", True)},
-    "matthiessen": {"tau_impurity_fs": ("tau_impurity", "fs", "impurity relaxation time", True),
-                    "tau_phonon_fs": ("tau_phonon", "fs", "phonon relaxation time at the reference T", True),
-                    "reference_temperature_K": ("tau_reference_temperature", "K",
-                                                "reference temperature of the phonon rate", True)},
-}
-_SCAT_DEFAULTS = {"power-law": {"exponent": 0.0, "reference_energy_eV": 0.0, "energy_scale_eV": 0.1},
-                  "matthiessen": {"reference_temperature_K": 300.0}}
+_CARRIERS = CARRIERS
+_SCATTERING = SCATTERING
+_SCAT_DEFAULTS = SCATTERING_DEFAULTS
 _CONDITIONS = tuple(_CARRIERS) + ("temperature_K", "tau_fs", "scattering", "current_angle_deg")
 _NUMERICS = ("rtol", "resolution", "intrinsic", "density_resolution")
 _OUTPUT = ("folder", "figures")
@@ -262,14 +257,12 @@ def _values(ctx, table, key, v, positive=False, nonneg=False) -> tuple:
 
 
 def _build_model(material: Material, strain_magnitude, source_path):
-    from crosswind.models import build, load_tight_binding
     params = dict(material.parameters)
     if material.strain is not None:
         st = material.strain
         if st.kind == "tensor":
             xx, yy, xy = st.xx, st.yy, st.xy
         else:
-            from crosswind.models.strain import uniaxial
             xx, yy, xy = (float(x) for x in uniaxial(float(strain_magnitude), math.radians(st.angle_deg), st.poisson))
         params.update(strain_xx=xx, strain_yy=yy, strain_xy=xy)
     if material.model is not None:
@@ -290,7 +283,6 @@ def _material(ctx, data, base: Path):
         model = t["model"]
         if not isinstance(model, str):
             ctx.fail("material", "model", f"must be a catalogue name (string), got {model!r}.")
-        from crosswind.models import catalogue
         names = sorted(catalogue())
         if model not in names:
             close = difflib.get_close_matches(model, names, n=1)
@@ -322,7 +314,7 @@ def _material(ctx, data, base: Path):
             mags = _values(ctx, "material.strain", "magnitude", s["magnitude"])
             strain = Strain("uniaxial", angle_deg=_number(ctx, "material.strain", "angle_deg", s.get("angle_deg", 0.0)),
                             poisson=_number(ctx, "material.strain", "poisson", s.get("poisson", 0.165)))
-            axis = Axis("strain", "material.strain.magnitude", "1", mags, "uniaxial strain magnitude")
+            axis = _axis("strain", mags)
         else:
             strain = Strain("tensor", **{k: _number(ctx, "material.strain", k, s.get(k, 0.0)) for k in _STRAIN_TENSOR})
             if any(k.startswith("strain_") for k in params):
@@ -393,31 +385,35 @@ def _conditions(ctx, data, dev: Device, device_angle):
         fields = _SCATTERING[kind]
         ctx.check_keys("conditions.scattering", s, ("kind",) + tuple(fields))
         defaults = _SCAT_DEFAULTS.get(kind, {})
-        for key, (name, unit, meaning, positive) in fields.items():
+        for key in fields:
             if key not in s and key not in defaults:
                 ctx.fail("conditions.scattering", key, f"missing for kind = \"{kind}\".", ", ".join(fields))
-            vals = _values(ctx, "conditions.scattering", key, s.get(key, defaults.get(key)), positive=bool(positive))
-            if key == "exponent" and max(abs(x) for x in vals) > MAX_EXPONENT:
-                ctx.fail("conditions.scattering", key, f"|exponent| must be <= {MAX_EXPONENT:g}, got "
+            knob = KNOBS[key]
+            vals = _values(ctx, "conditions.scattering", key, s.get(key, defaults.get(key)), positive=knob.positive)
+            if max(abs(x) for x in vals) > knob.high:
+                ctx.fail("conditions.scattering", key, f"|{key}| must be <= {knob.high:g}, got "
                          f"{max(vals, key=abs):g} (tau would overflow across the band).",
                          "exponents of order 1, e.g. -0.5 (acoustic phonons) or 1 (charged impurities)")
-            axes_scat.append(Axis(name, f"conditions.scattering.{key}", unit, vals, meaning))
+            axes_scat.append(_axis(key, vals))
     else:
         kind = "constant"
         if "tau_fs" not in t:
             ctx.fail("conditions", "tau_fs", "missing.", "tau_fs (fs) or a [conditions.scattering] table")
-        axes_scat.append(Axis("tau", "conditions.tau_fs", "fs", _values(ctx, "conditions", "tau_fs", t["tau_fs"],
-                                                                        positive=True), "relaxation time"))
+        axes_scat.append(_axis("tau_fs", _values(ctx, "conditions", "tau_fs", t["tau_fs"], positive=True)))
     if "current_angle_deg" in t and device_angle is not None:
         ctx.fail("conditions", "current_angle_deg", "also given in [device]; give it in one place.")
     angle = (_values(ctx, "conditions", "current_angle_deg", t["current_angle_deg"])
              if "current_angle_deg" in t else (device_angle or (0.0,)))
-    name, unit, meaning = _CARRIERS[carrier]
     cvals = _values(ctx, "conditions", carrier, t[carrier])
-    axes = ([Axis("temperature", "conditions.temperature_K", "K", temps, "temperature")] + axes_scat
-            + [Axis(name, f"conditions.{carrier}", unit, cvals, meaning)])
-    return carrier, kind, axes, Axis("current_angle", "current_angle_deg", "deg", angle,
-                                     "current direction from the crystal x axis")
+    axes = [_axis("temperature_K", temps)] + axes_scat + [_axis(carrier, cvals)]
+    return carrier, kind, axes, _axis("current_angle_deg", angle)
+
+
+def _axis(knob: str, values) -> Axis:
+    """The sweep axis of a knob: its one name, scenario key, unit and long name from the vocabulary."""
+    k = KNOBS[knob]
+    key = "current_angle_deg" if knob == "current_angle_deg" else k.scenario_key
+    return Axis(k.name, key, k.unit, tuple(values), k.long_name)
 
 
 def _numerics(ctx, data):
@@ -489,7 +485,6 @@ def _parse_scenario(text: str, source: str, base: Path | str | None) -> Scenario
     scn = Scenario(path=Path(source), text=text, material=material, device=device, carrier=carrier,
                    scattering=kind, axes=tuple(all_axes), numerics=numerics, output_folder=folder,
                    figures=figs)
-    from dataclasses import replace as _replace
     sens = _sensitivities(ctx, data["sensitivities"], scn) if "sensitivities" in data else None
     fit = _fit(ctx, data["fit"], scn, base) if "fit" in data else None
     return _replace(scn, sensitivities=sens, fit=fit)
@@ -504,16 +499,14 @@ def _level(ctx, table, key, v, default):
 
 
 def _knob_check(ctx, table, scn, name, units):
-    from .pipeline import check_knob
-    model = scn.build_model(scn.axis("strain").values[0] if any(a.name == "strain" for a in scn.axes) else None)
     kind = scn.material.strain.kind if scn.material.strain is not None else None
-    msg = check_knob(name, units, model, "knob", kind)
-    if msg:
-        ctx.fail(table, name, msg.split(": ", 1)[1], ", ".join(units))
+    try:
+        check_knob(name, units, base_model(scn), "knob", kind)
+    except KnobError as exc:
+        ctx.fail(table, name, exc.problem, ", ".join(units))
 
 
 def _sensitivities(ctx, data, scn):
-    from .pipeline import scenario_knobs
     t = ctx.table("sensitivities", data)
     ctx.check_keys("sensitivities", t, _SENS)
     knobs = ctx.table("sensitivities.knobs", t.get("knobs", {}))
@@ -533,7 +526,6 @@ def _sensitivities(ctx, data, scn):
 
 
 def _fit(ctx, data, scn, base):
-    from .pipeline import scenario_knobs
     t = ctx.table("fit", data)
     ctx.check_keys("fit", t, _FIT)
     scaling = t.get("scaling", False)

@@ -37,22 +37,46 @@ Everything is written with ``jax.numpy`` (differentiable); shapes broadcast expl
 from __future__ import annotations
 
 from dataclasses import dataclass
+from typing import Any
 
 import jax
 import jax.numpy as jnp
 import numpy as np
+from crosswind.solver.pytrees import pytree_dataclass
+from crosswind.solver.vocabulary import DEVICE_FIELDS
 
 UM = 1e-6
 UA = 1e-6
 
-FIELDS_UNITS = {
-    "field_x": "V m^-1", "field_y": "V m^-1", "v_xx": "V", "v_hall": "V",
-    "v2w_x": "V", "v2w_y": "V", "v2w_y_amplitude": "V", "v2w_y_rms": "V",
-    "v2w_y_phase_deg": "deg", "v2w_y_lockin_x_rms": "V", "v2w_y_lockin_y_rms": "V",
-    "v2w_x_amplitude": "V", "v2w_x_rms": "V", "vdc_x": "V", "vdc_y": "V",
-    "hall_angle": "1", "nonlinear_ratio": "m V^-1", "current_density": "A m^-1",
-    "power_density": "W m^-2",
-}
+FIELDS_UNITS = {k: f.unit_2d for k, f in DEVICE_FIELDS.items() if k not in ("sigma_bar", "chi_bar")}
+
+
+@pytree_dataclass
+class HallBarReading:
+    """What the Hall bar shows (SI units, :data:`FIELDS_UNITS`; long names in
+    :data:`crosswind.solver.vocabulary.DEVICE_FIELDS`).  ω and 2ω phasors (``field_x``, ``field_y``,
+    ``v_xx``, ``v_hall``, ``v2w_x``, ``v2w_y``) are complex and quoted for a cosine drive; amplitudes,
+    rms values and the lock-in phase are for the sine drive I0 sin ωt."""
+
+    field_x: Any
+    field_y: Any
+    v_xx: Any
+    v_hall: Any
+    v2w_x: Any
+    v2w_y: Any
+    v2w_y_amplitude: Any
+    v2w_y_rms: Any
+    v2w_y_phase_deg: Any
+    v2w_y_lockin_x_rms: Any
+    v2w_y_lockin_y_rms: Any
+    v2w_x_amplitude: Any
+    v2w_x_rms: Any
+    vdc_x: Any
+    vdc_y: Any
+    hall_angle: Any
+    nonlinear_ratio: Any
+    current_density: Any
+    power_density: Any
 
 
 @dataclass(frozen=True)
@@ -108,11 +132,11 @@ def rotate_chi(chi, angle_deg):
     return jnp.einsum("...ai,...bj,...ck,...ijk->...abc", R, R, R, c)
 
 
-def hall_bar(sigma, chi, chi_dc, bar: HallBar, angle_deg=0.0) -> dict:
+def hall_bar(sigma, chi, chi_dc, bar: HallBar, angle_deg=0.0) -> HallBarReading:
     """Voltages and ratios of ``bar`` for sheet tensors in the crystal frame: ``sigma`` (..., 2, 2) S,
     ``chi``/``chi_dc`` (..., 2, 2, 2) A·m/V² (Sodemann–Fu phasor convention), current at
-    ``angle_deg`` (scalar or array broadcasting with the leading dims).  Returns a dict of arrays
-    (units in :data:`FIELDS_UNITS`); ω and 2ω phasors are for a cosine drive of amplitude I0
+    ``angle_deg`` (scalar or array broadcasting with the leading dims).  Returns a
+    :class:`HallBarReading` (units in :data:`FIELDS_UNITS`); ω and 2ω phasors are for a cosine drive of amplitude I0
     (see the module docstring), amplitudes, rms values and lock-in phases are for the sine drive.
     Compiled once per shape (``jax.jit``; ``bar`` is static) and differentiable."""
     if jnp.shape(sigma)[-2:] != (2, 2) or jnp.shape(chi)[-3:] != (2, 2, 2):
@@ -121,7 +145,7 @@ def hall_bar(sigma, chi, chi_dc, bar: HallBar, angle_deg=0.0) -> dict:
     return _hall_bar_jit(sigma, chi, chi_dc, bar, angle_deg)
 
 
-def _hall_bar(sigma, chi, chi_dc, bar: HallBar, angle_deg=0.0) -> dict:
+def _hall_bar(sigma, chi, chi_dc, bar: HallBar, angle_deg=0.0) -> HallBarReading:
     shape, (s, a, c, cd) = _common(jnp.asarray(sigma).astype(jnp.complex128), angle_deg,
                                    jnp.asarray(chi).astype(jnp.complex128),
                                    jnp.asarray(chi_dc).astype(jnp.complex128))
@@ -142,21 +166,21 @@ def _hall_bar(sigma, chi, chi_dc, bar: HallBar, angle_deg=0.0) -> dict:
     phase = lockin_reading(v2y, 2)[2]
     rms_y = amp_y / jnp.sqrt(2.0)
     sxx, syy, sxy = sp[..., 0, 0].real, sp[..., 1, 1].real, sp[..., 0, 1].real
-    return {
-        "field_x": E[..., 0], "field_y": E[..., 1],
-        "v_xx": L * E[..., 0], "v_hall": W * E[..., 1],
-        "v2w_x": v2x, "v2w_y": v2y,
-        "v2w_y_amplitude": amp_y, "v2w_y_rms": rms_y, "v2w_y_phase_deg": phase,
-        "v2w_y_lockin_x_rms": rms_y * jnp.cos(jnp.deg2rad(phase)),
-        "v2w_y_lockin_y_rms": rms_y * jnp.sin(jnp.deg2rad(phase)),
-        "v2w_x_amplitude": jnp.abs(v2x), "v2w_x_rms": jnp.abs(v2x) / jnp.sqrt(2.0),
+    return HallBarReading(
+        field_x=E[..., 0], field_y=E[..., 1],
+        v_xx=L * E[..., 0], v_hall=W * E[..., 1],
+        v2w_x=v2x, v2w_y=v2y,
+        v2w_y_amplitude=amp_y, v2w_y_rms=rms_y, v2w_y_phase_deg=phase,
+        v2w_y_lockin_x_rms=rms_y * jnp.cos(jnp.deg2rad(phase)),
+        v2w_y_lockin_y_rms=rms_y * jnp.sin(jnp.deg2rad(phase)),
+        v2w_x_amplitude=jnp.abs(v2x), v2w_x_rms=jnp.abs(v2x) / jnp.sqrt(2.0),
         # rectified part: the sine drive gives the same E E* as the cosine drive
-        "vdc_x": L * E0[..., 0].real, "vdc_y": W * E0[..., 1].real,
-        "hall_angle": sxy / sxx,
-        "nonlinear_ratio": cp[..., 1, 0, 0].real / syy,
-        "current_density": jnp.full(shape, I0 / W),
-        "power_density": 0.5 * jnp.einsum("...a,...a->...", j, jnp.conj(E)).real,
-    }
+        vdc_x=L * E0[..., 0].real, vdc_y=W * E0[..., 1].real,
+        hall_angle=sxy / sxx,
+        nonlinear_ratio=cp[..., 1, 0, 0].real / syy,
+        current_density=jnp.full(shape, I0 / W),
+        power_density=0.5 * jnp.einsum("...a,...a->...", j, jnp.conj(E)).real,
+    )
 
 
 _hall_bar_jit = jax.jit(_hall_bar, static_argnames=("bar",))

@@ -20,24 +20,30 @@ every number in it is computed from the dataset.
 from __future__ import annotations
 
 import json
+import textwrap
 from pathlib import Path
 
 import numpy as np
-
+from crosswind.models import band_geometry, catalogue
+from crosswind.models.domain import Lattice
 from crosswind.models.units import E_CHARGE
-from .files import atomic_figure, atomic_text
+from crosswind.solver.engine.device import (
+    HallBar,
+    hall_bar,
+    rotate_chi,
+    rotate_sigma,
+    rotation,
+)
+from crosswind.solver.engine.occupation import fermi, thermal_energy
+from crosswind.solver.engine.response import neutral_filling
+from crosswind.solver.reporting.plotting import pyplot
+from crosswind.solver.study.files import atomic_figure, atomic_text
+from crosswind.solver.vocabulary import CARRIERS, SCATTERING
 
 E2H = E_CHARGE ** 2 / 6.62607015e-34  # e²/h in S
 PARTS = ("dipole", "drude", "intrinsic")
 PART_NAMES = {"dipole": "Berry-curvature dipole (∝ τ)", "drude": "nonlinear Drude (∝ τ²)",
               "intrinsic": "intrinsic / connection polarizability (τ⁰)"}
-
-
-def _plt():
-    import matplotlib
-    matplotlib.use("Agg")
-    import matplotlib.pyplot as plt
-    return plt
 
 
 def grid_axes(ds):
@@ -94,8 +100,6 @@ def model_symmetries(model, n=48, seed=0) -> dict:
     Berry curvature at ``n`` random wavevectors (about the valley centre of a k·p model, over the
     zone of a lattice).  Energy-smoothed sums Σ_n g_j(ε_n) and Σ_n g_j(ε_n) Ω_n are compared so
     that degenerate bands and valley blocks need no matching."""
-    from crosswind.models import band_geometry
-    from crosswind.models.domain import Lattice
     if model.dim != 2:
         return {"T": False, "C2": False, "C3": False}
     rng = np.random.default_rng(seed)
@@ -175,7 +179,6 @@ def _remedies(model, sym) -> str:
 
 
 def _rotation_abs(angle_deg):
-    from .device import rotation
     return np.abs(np.asarray(rotation(np.asarray(angle_deg, dtype=float))))
 
 
@@ -183,7 +186,6 @@ def v2w_error(sigma, err_sigma, err_chi, bar, angle_deg, amp):
     """Linear error bound (V) of a transverse second-order voltage amplitude ``amp`` from the error
     estimates of χ (crystal frame, rotated with |R|) and σ: W·Σ|ρ'_ya| err'_abc |E_b||E_c| +
     3|amp|·max err_σ / min(|σ'_xx|, |σ'_yy|).  NaN errors give NaN (unavailable)."""
-    from .device import rotate_sigma
     sigma = np.asarray(sigma, dtype=complex)
     sp = np.asarray(rotate_sigma(sigma, np.asarray(angle_deg, dtype=float)))
     rho = np.linalg.inv(sp)
@@ -200,11 +202,10 @@ def v2w_error(sigma, err_sigma, err_chi, bar, angle_deg, amp):
 
 def _grid_v2w_error(ds, scn, field="chi", amp_name="v2w_y_amplitude"):
     """Error bound of ``amp_name`` at every grid point (same dims as the amplitude)."""
-    from .device import HallBar
     dev = scn.device
     bar = HallBar(dev.width_um, dev.length_um, dev.current_uA, dev.frequency_Hz)
     amp = ds[amp_name]
-    ang = ds["current_angle"].values
+    ang = ds["current_angle_deg"].values
     sig = ds["sigma"].values + 1j * ds["sigma_imag"].values if "sigma_imag" in ds else ds["sigma"].values
     # crystal-frame fields lack the current_angle dim: add it last, then move the tensor indices
     sig = np.moveaxis(np.broadcast_to(sig[..., None], sig.shape + (len(ang),)), -1, -3)
@@ -250,7 +251,6 @@ def fmt_volts(v) -> str:
 
 # ----------------------------------------------------------------------------- figures --------
 def _kpath(model, mu):
-    from crosswind.models.domain import Lattice
     if isinstance(model.domain, Lattice):
         b = np.asarray(model.reciprocal_vectors())
         b1, b2 = b[0], b[1]
@@ -288,7 +288,6 @@ _EXTENT: dict = {}
 def _continuum_extent(model, mu):
     """Twice the largest Fermi wavevector along ±k_x, ±k_y (or twice the model's curvature scale
     when μ crosses no band), measured from the first valley centre."""
-    from crosswind.models import band_geometry
     key = (id(model), float(mu))
     if key in _EXTENT:
         return _EXTENT[key]
@@ -306,9 +305,8 @@ def _continuum_extent(model, mu):
 
 
 def plot_bands(model, mu, path: Path):
-    from crosswind.models import band_geometry
     from matplotlib.colors import SymLogNorm
-    plt = _plt()
+    plt = pyplot()
     k, s, ticks, labels = _kpath(model, mu)
     g = band_geometry(model, k)
     e, om = np.asarray(g.energies), np.asarray(g.berry_curvature)
@@ -325,7 +323,6 @@ def plot_bands(model, mu, path: Path):
     ax.legend(loc="best", fontsize=8)
     cb = fig.colorbar(sc, ax=ax, label="Berry curvature Ω [Å²] (symmetric-log scale)", ticks=[-vmax, -vmax * 1e-2, 0.0, vmax * 1e-2, vmax])
     cb.ax.set_yticklabels([f"{t:.2g}" for t in (-vmax, -vmax * 1e-2, 0.0, vmax * 1e-2, vmax)])
-    from .response import neutral_filling
     lo, hi = mu - 0.5 * max(abs(mu), 0.2), mu + 0.5 * max(abs(mu), 0.2)
     filled = neutral_filling(model)
     if filled > 0:   # show the top of the filled bands too, so the gap is visible
@@ -339,11 +336,7 @@ def plot_bands(model, mu, path: Path):
 
 
 def plot_curvature_map(model, mu, temperature, path: Path, n=161):
-    from crosswind.models import band_geometry
-    from crosswind.models.domain import Lattice
-    from .occupation import fermi, thermal_energy
-    from .response import neutral_filling
-    plt = _plt()
+    plt = pyplot()
     if isinstance(model.domain, Lattice):
         b = np.asarray(model.reciprocal_vectors())
         ext = 0.75 * float(max(np.linalg.norm(b[0]), np.linalg.norm(b[1])))
@@ -377,8 +370,7 @@ def plot_curvature_map(model, mu, temperature, path: Path, n=161):
 
 
 def _bar_parts(ds, idx):
-    from .device import rotate_chi
-    ang = float(ds["current_angle"].values[idx["current_angle"]])
+    ang = float(ds["current_angle_deg"].values[idx["current_angle_deg"]])
     out = {}
     for p in PARTS:
         chi = _point(ds, idx, f"chi_{p}")
@@ -417,8 +409,8 @@ BAR_FRAME_NOTE = "primes: bar frame (x′ along the current, y′ across the bar
 def plot_responses(ds, idx, path: Path, info=None):
     """2ω amplitude, σ'_xx and χ'_yxx against every sweep axis; points whose amplitude is zero
     within error are drawn hollow over a grey band up to the error bound."""
-    plt = _plt()
-    axes = [d for d in grid_axes(ds) if ds.sizes[d] > 1 and d != "current_angle"]
+    plt = pyplot()
+    axes = [d for d in grid_axes(ds) if ds.sizes[d] > 1 and d != "current_angle_deg"]
     if not axes:
         axes = [grid_axes(ds)[-2]]
     fa, ua = eng_scale(ds["v2w_y_amplitude"].values, "V")
@@ -426,7 +418,7 @@ def plot_responses(ds, idx, path: Path, info=None):
     fc, uc = eng_scale(ds["chi_bar"].values[..., 1, 0, 0], "A·m/V²")
     fig, axs = plt.subplots(3, len(axes), figsize=(4.2 * len(axes), 8), squeeze=False)
     for col, name in enumerate(axes):
-        others = [d for d in grid_axes(ds) if d != name and ds.sizes[d] > 1 and d != "current_angle"]
+        others = [d for d in grid_axes(ds) if d != name and ds.sizes[d] > 1 and d != "current_angle_deg"]
         line_axis = others[0] if others and ds.sizes[others[0]] <= 6 else None
         line_vals = range(ds.sizes[line_axis]) if line_axis else [None]
         x = ds[name].values
@@ -470,7 +462,6 @@ def plot_responses(ds, idx, path: Path, info=None):
     cap = "responses at the peak conditions (other axes fixed there); " + BAR_FRAME_NOTE
     if info is not None:
         cap += "\nhollow points and grey band: zero within error (|V| below its error bound)"
-    import textwrap
     fig.suptitle("\n".join(textwrap.fill(c, 58 * len(axes)) for c in cap.split("\n")), fontsize=9)
     fig.tight_layout()
     atomic_figure(fig, path, dpi=110)
@@ -478,19 +469,17 @@ def plot_responses(ds, idx, path: Path, info=None):
 
 
 def angle_scan(ds, idx, scn, angles_deg):
-    from .device import HallBar, hall_bar
     sig, chi, chid = (_point(ds, idx, n) for n in ("sigma", "chi", "chi_dc"))
     A = len(angles_deg)
     bar = HallBar(scn.device.width_um, scn.device.length_um, scn.device.current_uA, scn.device.frequency_Hz)
     out = hall_bar(np.broadcast_to(sig, (A, 2, 2)), np.broadcast_to(chi, (A, 2, 2, 2)),
                    np.broadcast_to(chid, (A, 2, 2, 2)), bar, np.asarray(angles_deg, dtype=float))
-    from .device import rotate_chi
     chib = np.asarray(rotate_chi(np.broadcast_to(chi, (A, 2, 2, 2)), np.asarray(angles_deg, dtype=float)))
-    return np.asarray(out["v2w_y_amplitude"]), chib[:, 1, 0, 0].real
+    return np.asarray(out.v2w_y_amplitude), chib[:, 1, 0, 0].real
 
 
 def plot_angle(ds, idx, scn, path: Path, info=None):
-    plt = _plt()
+    plt = pyplot()
     from matplotlib.ticker import MaxNLocator
     th = np.linspace(0, 360, 181)
     amp, chi = angle_scan(ds, idx, scn, th)
@@ -520,17 +509,18 @@ def plot_angle(ds, idx, scn, path: Path, info=None):
 
 
 def scaling_axes(ds):
-    cand = ["temperature"] + [d for d in grid_axes(ds) if d.startswith("tau")]
+    scattering = {k for knobs in SCATTERING.values() for k in knobs}
+    cand = ["temperature_K"] + [d for d in grid_axes(ds) if d in scattering]
     return [d for d in cand if d in ds.dims and ds.sizes[d] > 1]
 
 
 def plot_scaling(ds, idx, path: Path):
-    plt = _plt()
+    plt = pyplot()
     axes = scaling_axes(ds)
     if not axes:
         return False
     name = axes[0]
-    carrier = [d for d in grid_axes(ds) if d in ("gate_voltage", "density_target", "chemical_potential")][0]
+    carrier = [d for d in grid_axes(ds) if d in CARRIERS][0]
     fig, ax = plt.subplots(figsize=(5.5, 4.2))
     n = ds.sizes[carrier]
     picks = sorted(set(np.linspace(0, n - 1, min(n, 5)).round().astype(int)))
@@ -559,7 +549,7 @@ def _fmt_point(ds, idx):
     parts = []
     for d in grid_axes(ds):
         v = float(ds[d].values[idx[d]])
-        if ds.sizes[d] > 1 or d == "current_angle":
+        if ds.sizes[d] > 1 or d == "current_angle_deg":
             unit = {"deg": "°", "1": ""}.get(ds[d].attrs.get("units", ""), ds[d].attrs.get("units", ""))
             name = ds[d].attrs.get("long_name", d.replace("_", " "))
             parts.append(f"{name} = {v:.4g}{unit}" if unit == "°" else f"{name} = {v:.4g} {unit}".rstrip())
@@ -658,14 +648,14 @@ def _headline(ds, scn, idx, info, amp, rms, phase, mu, dens) -> list:
 
 def summary_markdown(ds, scn, idx, angle_info=None, info=None) -> str:
     num = json.loads(ds.attrs["numerics"])
-    sel_pt = {d: i for d, i in idx.items() if d != "current_angle"}
+    sel_pt = {d: i for d, i in idx.items() if d != "current_angle_deg"}
     g = lambda name: ds[name].isel({d: i for d, i in idx.items() if d in ds[name].dims}).values
     info = info if info is not None else resolution_info(ds, scn, idx)
     amp, rms, phase = float(g("v2w_y_amplitude")), float(g("v2w_y_rms")), float(g("v2w_y_phase_deg"))
     mu = float(ds["mu"].isel(sel_pt).values)
     dens = float(ds["density"].isel(sel_pt).values) * 1e-4
     sbar = g("sigma_bar")
-    ang = float(ds["current_angle"].values[idx["current_angle"]])
+    ang = float(ds["current_angle_deg"].values[idx["current_angle_deg"]])
     parts = _bar_parts(ds, idx)
     chi = complex(g("chi_bar")[1, 0, 0])
     err_chi = float(np.max(ds["error_chi"].isel(sel_pt).values))
@@ -735,7 +725,6 @@ def summary_markdown(ds, scn, idx, angle_info=None, info=None) -> str:
         th, a = angle_info
         sig_pt, esig = _point(ds, idx, "sigma"), ds["error_sigma"].isel(sel_pt).values
         echi = ds["error_chi"].isel(sel_pt).values
-        from .device import HallBar
         bar = HallBar(dev.width_um, dev.length_um, dev.current_uA, dev.frequency_Hz)
         ea = np.nan_to_num(v2w_error(np.broadcast_to(sig_pt, (len(th), 2, 2)), esig, echi, bar, th, a), nan=0.0,
                            posinf=np.inf)
@@ -807,7 +796,7 @@ def summary_markdown(ds, scn, idx, angle_info=None, info=None) -> str:
         "check that V_2ω scales as I² before trusting a number.",
     ]
     if scn.carrier == "gate_V":
-        vmax = float(np.max(np.abs(np.asarray(scn.axis("gate_voltage").values) - dev.gate_offset_V)))
+        vmax = float(np.max(np.abs(np.asarray(scn.axis("gate_V").values) - dev.gate_offset_V)))
         if dev.dielectric_nm is not None:
             lines.append(f"- Gate dielectric: the largest gate voltage puts {vmax / dev.dielectric_nm:.3g} V/nm "
                          "across the dielectric; compare with its breakdown field and ramp slowly.")
@@ -824,7 +813,6 @@ def summary_markdown(ds, scn, idx, angle_info=None, info=None) -> str:
 
 def _model_limits(scn) -> str:
     if scn.material.model is not None:
-        from crosswind.models import catalogue
         e = catalogue()[scn.material.model]
         return f"{e.summary}; source: {e.source}."
     return f"tight-binding model from {scn.material.tight_binding.name}."
@@ -839,9 +827,9 @@ def write_report(ds, scn, folder) -> list:
     model = _model_at(scn, ds, idx)
     info = resolution_info(ds, scn, idx, model)
     if scn.figures:
-        sel = {d: i for d, i in idx.items() if d != "current_angle"}
+        sel = {d: i for d, i in idx.items() if d != "current_angle_deg"}
         mu = float(ds["mu"].isel(sel).values)
-        T = float(ds["temperature"].values[idx["temperature"]])
+        T = float(ds["temperature_K"].values[idx["temperature_K"]])
         plot_bands(model, mu, folder / "bands.png")
         plot_curvature_map(model, mu, max(T, 0.0), folder / "curvature_map.png")
         plot_responses(ds, idx, folder / "responses.png", info)

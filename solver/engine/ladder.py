@@ -1,6 +1,6 @@
 """Energy-resolved k-space integration on lattices: a ladder of resolutions and temperatures.
 
-Every kernel of :mod:`crosswind.solver.kernels` is Σ_n ∫[dk] φ(ε_n(k); μ, T) A_n(k), with φ an
+Every kernel of :mod:`crosswind.solver.engine.kernels` is Σ_n ∫[dk] φ(ε_n(k); μ, T) A_n(k), with φ an
 occupation function (f0, −∂f0/∂ε or the entropy s) times a relaxation-time factor of ε and T, and
 A a geometric factor (1, g_a g_b, g_b Ω, ...).  A periodic trapezoid (uniform offset grid of spacing
 h) integrates such an integrand with spectral accuracy once h resolves its narrowest feature, the
@@ -43,11 +43,16 @@ from dataclasses import dataclass
 import jax
 import jax.numpy as jnp
 import numpy as np
-
 from crosswind.models.geometry import geometry_at
 from crosswind.models.units import KB_EVK as KB
-from .kernels import _tilde
-from .occupation import T_FLOOR, entropy_density, fermi, minus_dfermi
+from crosswind.solver.engine.kernels import _tilde
+from crosswind.solver.engine.occupation import (
+    T_FLOOR,
+    entropy_density,
+    fermi,
+    minus_dfermi,
+)
+from scipy.optimize import minimize
 
 W = 20.0                   # window half-width in k_BT: neglected weight ~ e^-20 ≈ 2e-9
 SLACK = 1.5                # cell-size reach in units of |∇ε|·(half diagonal)
@@ -372,7 +377,7 @@ def _kernel_sums_dc(vals, occ, E, mu, tau, dtau, layout, sea):
 
 
 def _kernel_sums(vals, occ, E, mu, temp, tau_eval, tau_arr, omega, layout, sea):
-    """The kernel sums of :func:`crosswind.solver.kernels.point_kernels` (same keys, natural
+    """The kernel sums of :func:`crosswind.solver.engine.kernels.point_kernels` (same keys, natural
     units, degeneracy not applied) from knot values ``vals`` (P, Q, nc) and occupation weights
     ``occ`` (each (P, Q)); ``E`` (P, Q) the knot energies.  ``omega=None`` marks a static field
     (the real-arithmetic path of :func:`_kernel_sums_dc`)."""
@@ -609,7 +614,6 @@ def hotspot_width(model, params, probe=96):
     between adjacent bands of any Hamiltonian block: a = Δ/(2 v_max) (a Dirac gap 2m closes at
     k = ±i m/ħv; common practice).  The gap minimum is located on a probe grid and polished by a
     Nelder–Mead search; inf for blocks with a single band."""
-    from scipy.optimize import minimize
     if model.block_size < 2:
         return np.inf
     b = np.asarray(model.reciprocal_vectors(params))

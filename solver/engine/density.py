@@ -18,27 +18,32 @@ from functools import partial
 import jax
 import jax.numpy as jnp
 import numpy as np
-from scipy import constants as _c
-
 from crosswind.models.band_model import BandModel
 from crosswind.models.domain import Lattice
-from . import mesh as _mesh
-from .occupation import fermi, thermal_energy
-from .response import neutral_filling, _levels
-
+from crosswind.solver.engine import mesh as _mesh
+from crosswind.solver.engine.mesh import energies_at
+from crosswind.solver.engine.occupation import fermi, thermal_energy
+from crosswind.solver.engine.response import _levels, neutral_filling
+from scipy import constants as _c
 
 MU_TOL = 1e-12    # eV: the solve stops when a step or the bracket is below this
+
+
+def parallel_plate_capacitance(thickness_nm, permittivity=3.9):
+    """Gate capacitance per area (F/m²) of a dielectric of ``thickness_nm`` (nm) and relative
+    permittivity ``permittivity``: ε0εr/d (no quantum capacitance; docs/theory.md §9)."""
+    if np.any(np.asarray(thickness_nm) <= 0):
+        raise ValueError("gate_density: the dielectric thickness must be positive (nm)")
+    if np.any(np.asarray(permittivity) <= 0):
+        raise ValueError("gate_density: the relative permittivity must be positive")
+    return _c.epsilon_0 * jnp.asarray(permittivity) / (jnp.asarray(thickness_nm) * 1e-9)
 
 
 def gate_density(voltage, thickness_nm, permittivity=3.9, offset_voltage=0.0):
     """Electron density (m⁻²) induced by a gate at ``voltage`` (V) across a dielectric of
     ``thickness_nm`` (nm) and relative permittivity ``permittivity``: ε0εr(V−V0)/(e d).
     Negative values are holes."""
-    if np.any(np.asarray(thickness_nm) <= 0):
-        raise ValueError("gate_density: the dielectric thickness must be positive (nm)")
-    if np.any(np.asarray(permittivity) <= 0):
-        raise ValueError("gate_density: the relative permittivity must be positive")
-    cap = _c.epsilon_0 * jnp.asarray(permittivity) / (jnp.asarray(thickness_nm) * 1e-9)  # F/m²
+    cap = parallel_plate_capacitance(thickness_nm, permittivity)   # F/m²
     return cap * (jnp.asarray(voltage) - offset_voltage) / _c.e
 
 
@@ -46,7 +51,6 @@ def _density_fn(model: BandModel, resolution: int):
     """n(μ, k_BT) in m^-d on a fixed mesh (continuum meshes are placed for the given μ)."""
     res = _levels(model)[resolution]
     filled = neutral_filling(model)
-    from .mesh import energies_at
 
     def n_of(params, mu, kt):
         m = model.with_params(**params) if params is not model.params else model

@@ -1,0 +1,1 @@
+"""The reporting layer: figures and the human-readable summary of a finished sweep."""

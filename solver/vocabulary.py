@@ -1,0 +1,207 @@
+"""The one vocabulary: every knob, axis and result field, its name, unit, meaning and valid range.
+
+A *knob* is a number of a scenario that a sweep may step through, a sensitivity may differentiate
+by and a fit may adjust.  Each knob has exactly one user-visible name — the key in the scenario
+file, the dimension of the results dataset, the column of ``results.csv`` and of a measured-data
+file, the name in ``[sensitivities]`` and ``[fit]`` — and the name carries its unit
+(``temperature_K``, ``gate_V``).  :data:`KNOBS` lists them with the scenario table that holds them,
+the keyword of the engine API that receives them (``response(mu=…, temperature=…, tau=…)``), the
+unit, a long name (dataset ``long_name`` attribute, figure labels, summary) and the valid range
+checked when a scenario is loaded.
+
+Result fields (:data:`FIELDS`) are the arrays a sweep writes: response tensors in SI units
+(docs/theory.md §1 lists the conventions), Hall-bar readings and bookkeeping.  Model parameters
+are knobs too; their units come from the model's own parameter table
+(:class:`crosswind.models.params.ParamSpec`), so they are not repeated here.
+
+Every other module reads units and names from here: nothing else defines them
+(tests/test_vocabulary.py checks the dataset, the CSV, the knob checks and the fit columns).
+"""
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+
+INF = math.inf
+
+
+@dataclass(frozen=True)
+class Knob:
+    """One knob: ``name`` (scenario key = dataset dimension = fit and CSV column), the scenario
+    ``table`` it lives in, ``unit``, ``long_name``, the engine keyword ``api`` that takes it (None if
+    it only enters the application layer) and its valid closed range [``low``, ``high``] (``positive``
+    excludes 0)."""
+
+    name: str
+    table: str
+    unit: str
+    long_name: str
+    api: str | None = None
+    low: float = -INF
+    high: float = INF
+    positive: bool = False
+    key: str | None = None
+
+    @property
+    def scenario_key(self) -> str:
+        """Dotted path in the scenario file, e.g. ``conditions.temperature_K`` (``key`` when the
+        file's key differs from the knob name: the strain magnitude)."""
+        return f"{self.table}.{self.key or self.name}"
+
+    def check(self, value: float) -> str | None:
+        """None if ``value`` is allowed, else what is wrong with it (for the caller's error)."""
+        if not math.isfinite(value):
+            return f"must be a finite number, got {value!r}"
+        if self.positive and value <= 0:
+            return f"must be > 0, got {value:g}"
+        if not self.low <= value <= self.high:
+            return f"must lie in [{self.low:g}, {self.high:g}] {self.unit}, got {value:g}"
+        return None
+
+
+def _k(*args, **kw) -> Knob:
+    return Knob(*args, **kw)
+
+
+#: every knob of the scenario schema, by name (model parameters come from the model)
+KNOBS: dict[str, Knob] = {k.name: k for k in (
+    _k("strain", "material.strain", "1", "uniaxial strain magnitude", None, key="magnitude"),
+    _k("temperature_K", "conditions", "K", "temperature", "temperature", 0.0),
+    _k("tau_fs", "conditions", "fs", "relaxation time", "tau", positive=True),
+    _k("tau0_fs", "conditions.scattering", "fs", "relaxation time prefactor τ0", "tau", positive=True),
+    _k("exponent", "conditions.scattering", "1", "power r of τ = τ0(|ε−ε_ref|/ε_s)^r", "tau", -10.0, 10.0),
+    _k("reference_energy_eV", "conditions.scattering", "eV", "reference energy ε_ref", "tau"),
+    _k("energy_scale_eV", "conditions.scattering", "eV", "energy scale ε_s", "tau", positive=True),
+    _k("tau_impurity_fs", "conditions.scattering", "fs", "impurity relaxation time", "tau", positive=True),
+    _k("tau_phonon_fs", "conditions.scattering", "fs", "phonon relaxation time at the reference T", "tau",
+       positive=True),
+    _k("reference_temperature_K", "conditions.scattering", "K", "reference temperature of the phonon rate",
+       "tau", positive=True),
+    _k("gate_V", "conditions", "V", "gate voltage", None),
+    _k("density_cm2", "conditions", "cm^-2", "carrier density (electrons > 0)", "density"),
+    _k("mu_eV", "conditions", "eV", "chemical potential", "mu"),
+    _k("current_angle_deg", "conditions", "deg", "current direction from the crystal x axis", "angle"),
+    _k("gate_offset_V", "device", "V", "gate voltage of charge neutrality", None),
+    _k("current_uA", "device", "uA", "drive current amplitude I0", None, positive=True),
+)}
+
+#: the carrier knobs: a scenario gives exactly one
+CARRIERS = ("gate_V", "density_cm2", "mu_eV")
+
+#: relaxation-time knobs of each scattering kind (docs/theory.md §6), in the order of the constructor
+SCATTERING = {"constant": ("tau_fs",),
+              "power-law": ("tau0_fs", "exponent", "reference_energy_eV", "energy_scale_eV"),
+              "matthiessen": ("tau_impurity_fs", "tau_phonon_fs", "reference_temperature_K")}
+SCATTERING_DEFAULTS = {"power-law": {"exponent": 0.0, "reference_energy_eV": 0.0, "energy_scale_eV": 0.1},
+                       "matthiessen": {"reference_temperature_K": 300.0}}
+
+
+@dataclass(frozen=True)
+class Field:
+    """One result field: unit in 2D and 3D (SI) and its long name."""
+
+    name: str
+    unit_2d: str
+    unit_3d: str
+    long_name: str
+
+    def unit(self, dim: int = 2) -> str:
+        return self.unit_2d if dim == 2 else self.unit_3d
+
+
+def _f(name, unit_2d, unit_3d, long_name) -> Field:
+    return Field(name, unit_2d, unit_3d, long_name)
+
+
+_CHI2, _CHI3 = "A m V^-2", "A V^-2"
+#: response fields of the engine (SI, sheet quantities in 2D, bulk in 3D)
+RESPONSE_FIELDS: dict[str, Field] = {f.name: f for f in (
+    _f("density", "m^-2", "m^-3", "carrier density relative to neutrality"),
+    _f("dos", "J^-1 m^-2", "J^-1 m^-3", "density of states at μ"),
+    _f("mu", "eV", "eV", "chemical potential"),
+    _f("sigma", "S", "S m^-1", "sheet conductivity (crystal frame)"),
+    _f("sigma_drude", "S", "S m^-1", "Drude part of sigma"),
+    _f("sigma_anomalous", "S", "S m^-1", "intrinsic anomalous (Berry-curvature) part of sigma"),
+    _f("dipole", "m", "1", "Berry-curvature dipole (z curvature)"),
+    _f("dipole_sea", "m", "1", "Berry-curvature dipole, Fermi-sea form"),
+    _f("chi", _CHI2, _CHI3, "second-harmonic coefficient (crystal frame)"),
+    _f("chi_dc", _CHI2, _CHI3, "rectified coefficient (crystal frame)"),
+    _f("chi_dipole", _CHI2, _CHI3, "dipole part of chi"),
+    _f("chi_drude", _CHI2, _CHI3, "nonlinear Drude part of chi"),
+    _f("chi_intrinsic", _CHI2, _CHI3, "intrinsic (connection polarizability) part of chi"),
+    _f("sigma_lorentz", "S T^-1", "S m^-1 T^-1", "Lorentz-force (ordinary Hall) conductivity per tesla"),
+    _f("hall_coefficient", "Ohm T^-1", "m^3 C^-1", "ordinary Hall coefficient"),
+    _f("seebeck", "V K^-1", "V K^-1", "Seebeck tensor"),
+    _f("thermal_conductivity", "W K^-1", "W K^-1 m^-1", "electronic thermal conductivity"),
+    _f("lorenz", "W Ohm K^-2", "W Ohm K^-2", "Lorenz ratio"),
+    _f("nernst", "A K^-1", "A K^-1 m^-1", "thermoelectric (Nernst) conductivity"),
+)}
+
+#: Hall-bar readings (docs/theory.md §10; 2D devices)
+DEVICE_FIELDS: dict[str, Field] = {f.name: f for f in (
+    _f("field_x", "V m^-1", "V m^-1", "longitudinal field phasor at omega (cosine drive)"),
+    _f("field_y", "V m^-1", "V m^-1", "transverse field phasor at omega"),
+    _f("v_xx", "V", "V", "longitudinal voltage phasor at omega over length L"),
+    _f("v_hall", "V", "V", "transverse voltage phasor at omega"),
+    _f("v2w_x", "V", "V", "longitudinal 2omega voltage phasor (cosine drive)"),
+    _f("v2w_y", "V", "V", "transverse 2omega voltage phasor (cosine drive)"),
+    _f("v2w_y_amplitude", "V", "V", "transverse 2omega voltage amplitude"),
+    _f("v2w_y_rms", "V", "V", "transverse 2omega voltage, lock-in rms"),
+    _f("v2w_y_phase_deg", "deg", "deg", "lock-in phase of the transverse 2omega voltage vs sin(2 omega t), sine drive"),
+    _f("v2w_y_lockin_x_rms", "V", "V", "lock-in X (in phase with sin 2 omega t), rms"),
+    _f("v2w_y_lockin_y_rms", "V", "V", "lock-in Y (quadrature), rms"),
+    _f("v2w_x_amplitude", "V", "V", "longitudinal 2omega voltage amplitude"),
+    _f("v2w_x_rms", "V", "V", "longitudinal 2omega voltage rms"),
+    _f("vdc_x", "V", "V", "rectified longitudinal voltage"),
+    _f("vdc_y", "V", "V", "rectified transverse voltage"),
+    _f("hall_angle", "1", "1", "Hall angle tangent Re sigma'_xy / Re sigma'_xx"),
+    _f("nonlinear_ratio", "m V^-1", "m V^-1", "E_perp / E_par^2 = Re chi'_yxx / Re sigma'_yy"),
+    _f("current_density", "A m^-1", "A m^-1", "sheet current density amplitude I0/W"),
+    _f("power_density", "W m^-2", "W m^-2", "time-averaged Joule power per area"),
+    _f("sigma_bar", "S", "S", "sheet conductivity in the bar frame (x' along the current)"),
+    _f("chi_bar", _CHI2, _CHI2, "second-harmonic coefficient in the bar frame"),
+)}
+
+#: bookkeeping fields of a sweep
+RUN_FIELDS: dict[str, Field] = {f.name: f for f in (
+    _f("resolution_level", "1", "1", "k-mesh refinement level used"),
+    _f("converged", "1", "1", "automatic refinement reached rtol (1) or not (0)"),
+    _f("has_error_estimate", "1", "1",
+       "error_* holds a comparison of two levels (1) or is unavailable, NaN (0)"),
+    _f("nodes_per_condition", "1", "1", "k-points per condition of the node rule (-1: energy-resolved engines)"),
+)}
+
+#: the four device numbers a fit or a sensitivity compares with measurements
+OUTPUTS: dict[str, Field] = {f.name: f for f in (
+    _f("V2w", "V", "V", "transverse 2ω voltage amplitude |V_y^2ω|"),
+    _f("Vxx", "V", "V", "longitudinal voltage amplitude |V_xx|"),
+    _f("sigma_xx", "S", "S", "sheet conductivity σ'_xx along the current"),
+    _f("ratio", "m V^-1", "m V^-1", "nonlinear Hall ratio E⊥^2ω/(E∥^ω)²"),
+)}
+
+
+def field(name: str) -> Field:
+    """The :class:`Field` of a result name (``error_<field>`` gets its field's unit)."""
+    base = name[6:] if name.startswith("error_") else name
+    for table in (RESPONSE_FIELDS, DEVICE_FIELDS, RUN_FIELDS, OUTPUTS):
+        if base in table:
+            f = table[base]
+            if base != name:
+                return Field(name, f.unit_2d, f.unit_3d,
+                             f"estimated absolute integration error of {base} (|fine - coarse| mesh)")
+            return f
+    raise KeyError(f"'{name}' is not a result field; known: {', '.join(sorted(all_field_names()))}")
+
+
+def all_field_names() -> list[str]:
+    return [*RESPONSE_FIELDS, *DEVICE_FIELDS, *RUN_FIELDS, *OUTPUTS]
+
+
+def units_of(dim: int = 2) -> dict[str, str]:
+    """{response field: SI unit} for a ``dim``-dimensional model (what ``Response.units`` holds)."""
+    return {k: f.unit(dim) for k, f in RESPONSE_FIELDS.items() if k not in ("mu", "chi_dipole", "chi_drude",
+                                                                           "chi_intrinsic")}
+
+
+__all__ = ["CARRIERS", "DEVICE_FIELDS", "Field", "KNOBS", "Knob", "OUTPUTS", "RESPONSE_FIELDS", "RUN_FIELDS",
+           "SCATTERING", "SCATTERING_DEFAULTS", "all_field_names", "field", "units_of"]
