@@ -19,6 +19,7 @@ import time
 from pathlib import Path
 
 import crosswind.validation as validation
+from crosswind import __version__
 from crosswind.models import describe_catalogue
 from crosswind.solver.demo import SCENARIO, run_demo_fit
 from crosswind.solver.fitting import scenario_fit
@@ -34,6 +35,7 @@ from crosswind.solver.study.sweep import RunError
 def _parser() -> argparse.ArgumentParser:
     p = argparse.ArgumentParser(prog="crosswind", description="Berry-curvature transport in real devices: "
                                 "band geometry, second-order Boltzmann response and Hall-bar voltages.")
+    p.add_argument("--version", action="version", version=f"crosswind {__version__}")
     sub = p.add_subparsers(dest="command", metavar="COMMAND")
     r = sub.add_parser("run", help="run (or resume) a scenario file",
                        description="Run the sweep of a scenario file (schema: docs/scenario-files.md). "
@@ -92,11 +94,11 @@ def _run(scn, output, progress: bool) -> int:
         if progress:
             print("crosswind: writing " + ("figures and " if scn.figures else "") + "summary…", file=sys.stderr,
                   flush=True)
-        write_report(ds, scn, folder)
-        extra = ""
+        extra, sections = "", []
         if scn.sensitivities is not None:
-            write_sensitivities(scn, ds, folder)
+            sections.append(write_sensitivities(scn, ds, folder))
             extra = ", sensitivities.csv"
+        write_report(ds, scn, folder, sections)
     except (RunError, OutputError) as exc:
         _err(str(exc))
         return 2

@@ -512,7 +512,7 @@ def test_unreliable_fit_sets_exit_status_summary_and_json(tmp_path, monkeypatch,
 
     from crosswind.solver.fitting import scenario_fit
     from crosswind.solver.cli import main
-    monkeypatch.setattr(scenario_fit, "_predictor",
+    monkeypatch.setattr(scenario_fit, "predictor",
                         lambda scn: ((lambda params, x: params["mass"] * 1e-20 * jnp.asarray(x)), {}))
     sp = tmp_path / "s.toml"
     sp.write_text(SCN + FIT_TABLE, encoding="utf-8")

@@ -71,3 +71,12 @@ def test_console_script_help():
 def test_demo_runs(tmp_path):
     assert main(["demo", "--output", str(tmp_path / "demo"), "--no-progress"]) == 0
     assert (tmp_path / "demo" / "summary.md").exists() and (tmp_path / "demo" / "scaling.png").exists()
+
+
+def test_version_is_the_package_version(capsys):
+    import crosswind
+    with pytest.raises(SystemExit) as exc:
+        main(["--version"])
+    assert exc.value.code == 0
+    assert capsys.readouterr().out.strip() == f"crosswind {crosswind.__version__}"
+    assert crosswind.__version__ not in ("", "0+unknown")

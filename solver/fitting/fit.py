@@ -49,6 +49,10 @@ import numpy as np
 from scipy.optimize import least_squares
 from scipy.stats import chi2 as chi2_dist
 
+from crosswind.solver.vocabulary import OUTPUTS
+
+_RATIO = OUTPUTS["ratio"].unit_2d        # unit of E⊥/E∥² (m V^-1)
+
 CORRELATION_LIMIT = 0.99
 CONDITION_LIMIT = 1e12
 RELATIVE_STDERR_LIMIT = 1.0     # a standard error above 100 % of the value: the value is not determined
@@ -509,7 +513,7 @@ class ScalingFit:
     chi2_reduced: float
     dof: int
     residuals: np.ndarray = field(repr=False)
-    units: dict = field(default_factory=lambda: {"c0": "m V^-1", "c1": "m V^-1 S^-1", "c2": "m V^-1 S^-2"})
+    units: dict = field(default_factory=lambda: {"c0": _RATIO, "c1": f"{_RATIO} S^-1", "c2": f"{_RATIO} S^-2"})
     meaning: dict = field(default_factory=lambda: dict(SCALING_MEANING), repr=False)
 
     @property

@@ -24,7 +24,7 @@ import numpy as np
 from crosswind.solver.engine.sensitivity import SensitivityRow
 from crosswind.solver.reporting.report import peak_index
 from crosswind.solver.study.chain import evaluate
-from crosswind.solver.study.files import atomic_text, atomic_write
+from crosswind.solver.study.files import atomic_write
 from crosswind.solver.study.knobs import base_values, scenario_knobs
 
 
@@ -86,18 +86,12 @@ def markdown(rows, resolution: int) -> str:
     return "\n".join(lines) + "\n"
 
 
-def write_sensitivities(scn, ds, folder) -> list:
-    """Compute the table, write ``sensitivities.csv`` and insert the section into ``summary.md``."""
-    folder = Path(folder)
+def write_sensitivities(scn, ds, folder) -> str:
+    """Compute the table at the peak, write ``sensitivities.csv`` and return its Markdown section
+    for ``summary.md`` (:func:`crosswind.solver.reporting.report.write_report` places it)."""
     rows = peak_sensitivities(scn, ds)
-    write_csv(rows, folder / "sensitivities.csv")
-    summ = folder / "summary.md"
-    text = summ.read_text(encoding="utf-8") if summ.exists() else ""
-    sec = markdown(rows, scn.sensitivities.resolution)
-    marker = "## Conditions and units"
-    text = text.replace(marker, sec + "\n" + marker, 1) if marker in text else text + "\n" + sec
-    atomic_text(summ, text)
-    return rows
+    write_csv(rows, Path(folder) / "sensitivities.csv")
+    return markdown(rows, scn.sensitivities.resolution)
 
 
 __all__ = ["peak_sensitivities", "write_sensitivities", "peak_values"]

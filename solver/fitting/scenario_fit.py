@@ -81,7 +81,7 @@ def _refuse_duplicates(path, col, unit, x):
                             "error column) or remove the extra rows")
 
 
-def _predictor(scn):
+def predictor(scn):
     spec = scn.fit
     at = dict(spec.at)
     base = base_values(scn, {k: v for k, v in at.items()}, who="[fit]")
@@ -108,7 +108,7 @@ def run_fit(scn, data_path, folder, *, starts=None, progress=None) -> dict:
     folder = Path(folder)
     if spec.scaling:
         return _run_scaling(scn, x, y, err, data_path, folder)
-    predict, base = _predictor(scn)
+    predict, base = predictor(scn)
     if progress is not None:
         progress(f"of {len(spec.parameters)} parameter(s) to {y.size} points: the first evaluation compiles the "
                  "k-space kernels…")

@@ -282,15 +282,9 @@ def _kpath(model, mu):
     return k, s, [0.0, kmax, 2 * kmax, 3 * kmax, 4 * kmax], ["−k_x", "centre", "+k_x | −k_y", "centre", "+k_y"]
 
 
-_EXTENT: dict = {}
-
-
 def _continuum_extent(model, mu):
     """Twice the largest Fermi wavevector along ±k_x, ±k_y (or twice the model's curvature scale
     when μ crosses no band), measured from the first valley centre."""
-    key = (id(model), float(mu))
-    if key in _EXTENT:
-        return _EXTENT[key]
     dom = model.domain
     scale = float(dom.scale_for(model.params) if hasattr(dom, "scale_for") else dom.scale)
     t = np.linspace(0, 12 * scale, 1200)
@@ -300,8 +294,7 @@ def _continuum_extent(model, mu):
     e = np.asarray(band_geometry(model, k).energies).reshape(4, len(t), -1)
     cross = np.any(np.diff(np.sign(e - mu), axis=1) != 0, axis=2)
     kmax = float(np.max(np.where(cross, t[None, 1:], 0.0)))
-    _EXTENT[key] = 2.0 * kmax if kmax > 0 else 2.0 * scale
-    return _EXTENT[key]
+    return 2.0 * kmax if kmax > 0 else 2.0 * scale
 
 
 def plot_bands(model, mu, path: Path):
@@ -646,7 +639,9 @@ def _headline(ds, scn, idx, info, amp, rms, phase, mu, dens) -> list:
         ""]
 
 
-def summary_markdown(ds, scn, idx, angle_info=None, info=None) -> str:
+def summary_markdown(ds, scn, idx, angle_info=None, info=None, sections=()) -> str:
+    """``summary.md``: the peak, the mechanism, then ``sections`` (Markdown text of later analyses,
+    e.g. the sensitivity table), then conditions, assumptions, accuracy and cautions."""
     num = json.loads(ds.attrs["numerics"])
     sel_pt = {d: i for d, i in idx.items() if d != "current_angle_deg"}
     g = lambda name: ds[name].isel({d: i for d, i in idx.items() if d in ds[name].dims}).values
@@ -744,6 +739,8 @@ def summary_markdown(ds, scn, idx, angle_info=None, info=None) -> str:
                 txt += (f"; at some angles it falls to zero within error (|V| < "
                         f"{fmt_volts(float(np.max(bd[~ok_a])))}), so no direction of smallest signal is given.")
             lines += ["", txt]
+    for sec in sections:
+        lines += ["", sec.rstrip("\n")]
     lines += [
         "",
         "## Conditions and units",
@@ -818,8 +815,9 @@ def _model_limits(scn) -> str:
     return f"tight-binding model from {scn.material.tight_binding.name}."
 
 
-def write_report(ds, scn, folder) -> list:
-    """Write the figures and ``summary.md`` to ``folder``; returns the written paths."""
+def write_report(ds, scn, folder, sections=()) -> list:
+    """Write the figures and ``summary.md`` to ``folder`` (with the Markdown ``sections`` of later
+    analyses placed before the conditions); returns the written paths."""
     folder = Path(folder)
     idx = peak_index(ds)
     written = []
@@ -840,7 +838,7 @@ def write_report(ds, scn, folder) -> list:
     else:
         th = np.linspace(0, 360, 181)
         angle_info = (th, angle_scan(ds, idx, scn, th)[0])
-    text = summary_markdown(ds, scn, idx, angle_info, info)
+    text = summary_markdown(ds, scn, idx, angle_info, info, sections)
     atomic_text(folder / "summary.md", text)
     written.append(folder / "summary.md")
     return written

@@ -48,8 +48,8 @@ from typing import Callable
 import numpy as np
 from crosswind.solver.pytrees import as_dict
 from crosswind.solver.study.chain import evaluate
-from crosswind.solver.study.knobs import base_values
 from crosswind.solver.study.files import atomic_text, atomic_write, check_free_space
+from crosswind.solver.study.knobs import base_values
 from crosswind.solver.study.scenario import Scenario
 from crosswind.solver.vocabulary import field
 

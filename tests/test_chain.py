@@ -1,0 +1,116 @@
+"""The one evaluation chain: a sweep point and the fit's model evaluation at the same knobs agree.
+
+Both ``crosswind run`` (the sweep, in batches) and ``crosswind fit`` (the fit's predictor, traced and
+jitted) call :func:`crosswind.solver.study.chain.evaluate`; at the same knobs and the same k-mesh
+level they must give the same device numbers (to 1e-12, round-off of a different XLA program).
+The gate → density step is checked against the parallel-plate formula n = ε0εr(V − V0)/(e d) with
+CODATA constants from ``scipy.constants`` (common practice).
+"""
+import jax
+import numpy as np
+import pytest
+from scipy import constants
+
+from crosswind.solver.fitting.scenario_fit import predictor
+from crosswind.solver.study.chain import ChainResult, evaluate, gate_capacitance
+from crosswind.solver.study.knobs import base_values
+from crosswind.solver.study.scenario import parse_scenario
+from crosswind.solver.study.sweep import run_scenario
+
+SCN = """
+[material]
+model = "massive-dirac"
+[material.parameters]
+velocity = 5e5
+tilt = 5e4
+mass = 0.1
+valleys = 2
+
+[device]
+width_um = 5
+length_um = 10
+current_uA = 10
+dielectric_nm = 285
+permittivity = 3.9
+gate_offset_V = 1.5
+
+[conditions]
+gate_V = [20.0, 35.0, 50.0]
+temperature_K = [5, 20]
+[conditions.scattering]
+kind = "matthiessen"
+tau_impurity_fs = 300
+tau_phonon_fs = 150
+
+[numerics]
+resolution = 1
+density_resolution = 1
+
+[output]
+folder = "out"
+figures = false
+"""
+
+FIT = """
+[fit]
+quantity = "{q}"
+axis = "gate_V"
+at = {{temperature_K = 20}}
+parameters = {{tilt = {{initial = 4e4, bounds = [1e4, 1e5]}}}}
+"""
+
+
+@pytest.fixture(scope="module")
+def swept(tmp_path_factory):
+    folder = tmp_path_factory.mktemp("chain")
+    scn = parse_scenario(SCN, source="s.toml", base=folder)
+    return scn, run_scenario(scn, folder / "out", progress=False)
+
+
+@pytest.mark.parametrize("q, field", [("V2w", "v2w_y_amplitude"), ("Vxx", "v_xx"), ("sigma_xx", "sigma_bar"),
+                                      ("ratio", "nonlinear_ratio")])
+def test_a_sweep_point_and_the_fit_prediction_agree(swept, tmp_path, q, field):
+    scn, ds = swept
+    fit_scn = parse_scenario(SCN + FIT.format(q=q), source="f.toml", base=tmp_path)
+    predict, base = predictor(fit_scn)
+    gates = np.asarray(ds["gate_V"].values)
+    got = np.asarray(jax.jit(predict)({"tilt": base["tilt"]}, gates))
+    point = ds.sel(temperature_K=20.0, current_angle_deg=0.0).squeeze()
+    if field == "v_xx":
+        want = np.abs(point["v_xx"].values + 1j * point["v_xx_imag"].values)
+    elif field == "sigma_bar":
+        want = point["sigma_bar"].sel(i="x", j="x").values
+    else:
+        want = point[field].values
+    np.testing.assert_allclose(got, want, rtol=1e-12, atol=0)
+
+
+def test_the_chain_returns_typed_results_and_solves_the_gate_density(swept):
+    scn, ds = swept
+    knobs = base_values(scn, {"gate_V": np.array([20.0, 50.0]), "temperature_K": 5.0})
+    out = evaluate(scn, knobs, resolution=1)
+    assert isinstance(out, ChainResult) and out.V2w.shape == (2,) and out.reading.v_xx.shape == (2,)
+    assert out.output("V2w") is out.V2w
+    with pytest.raises(KeyError, match="unknown output 'V2x'; choose from V2w, Vxx, sigma_xx, ratio"):
+        out.output("V2x")
+    cap = constants.epsilon_0 * 3.9 / 285e-9
+    assert gate_capacitance(scn.device) == pytest.approx(cap, rel=1e-15)
+    n = np.asarray(out.response.density)
+    np.testing.assert_allclose(n, cap * (np.array([20.0, 50.0]) - 1.5) / constants.e, rtol=1e-9)
+    np.testing.assert_allclose(out.mu, ds["mu"].sel(temperature_K=5.0, gate_V=[20.0, 50.0]).values.ravel(), rtol=1e-12)
+
+
+def test_angles_as_a_trailing_axis_rotate_the_same_tensors(swept):
+    scn, _ = swept
+    knobs = base_values(scn, {"gate_V": np.array([35.0]), "temperature_K": 20.0,
+                              "current_angle_deg": np.array([[0.0, 30.0, 90.0]])})
+    many = evaluate(scn, knobs, resolution=1)
+    assert many.V2w.shape == (1, 3)
+    one = evaluate(scn, dict(knobs, current_angle_deg=30.0), resolution=1)
+    np.testing.assert_allclose(many.V2w[:, 1], one.V2w, rtol=1e-13)
+
+
+def test_a_swept_knob_without_a_value_is_named(swept):
+    scn, _ = swept
+    with pytest.raises(ValueError, match=r"evaluate: no value for \['temperature_K', 'gate_V'\]"):
+        evaluate(scn, base_values(scn), resolution=1)
