@@ -155,10 +155,10 @@ def cmd_fit(args) -> int:
         _err(str(exc))
         return 2
     print(f"crosswind: wrote {folder}/fit_summary.md, fit.json, fit_curve.png, fit_residuals.png"
-          + ("" if out.get("scaling") else ", fitted_scenario.toml") + f" in {time.time() - t0:.1f} s")
-    status = out.get("status", "ok")
+          + ("" if out.scaling else ", fitted_scenario.toml") + f" in {time.time() - t0:.1f} s")
+    status = out.status
     if status != "ok":
-        why = out["message"] if status == "failed" else "; ".join(out["problems"])
+        why = out.message if status == "failed" else "; ".join(out.problems)
         verdict = {"failed": "the fit failed", "unreliable": "the fit is unreliable"}[status]
         _err(f"{verdict}: {why} (details in {folder}/fit_summary.md)")
         return 1

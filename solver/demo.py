@@ -13,6 +13,7 @@ density on the fixed mesh level 1.
 from pathlib import Path
 
 import numpy as np
+
 from crosswind.solver.fitting.scenario_fit import run_fit
 from crosswind.solver.study.chain import evaluate
 from crosswind.solver.study.files import atomic_text, make_folder
@@ -129,10 +130,10 @@ def run_demo_fit(folder):
              f"model at known true values plus {FIT_NOISE:.0%} Gaussian noise (seed {FIT_SEED}); "
              f"{len(FIT_GATES)} points in `fit/invented_measurements.csv`. `crosswind fit` recovers:", "",
              "| parameter | true | fitted ± standard error | unit |", "|---|---|---|---|"]
-    for k in out["free"]:
-        lines.append(f"| `{k}` | {FIT_TRUTH[k]:g} | {out['values'][k]:.4g} ± {out['stderr'][k]:.2g} | {out['units'][k]} |")
-    lines += ["", f"χ²_red = {out['chi2_reduced']:.3g}, {'converged' if out['converged'] else 'NOT converged'} "
-              f"({out['message']}). Details: `fit/fit_summary.md`, `fit/fit_curve.png`, `fit/fit_residuals.png`, "
+    for k in out.free:
+        lines.append(f"| `{k}` | {FIT_TRUTH[k]:g} | {out.values[k]:.4g} ± {out.stderr[k]:.2g} | {out.units[k]} |")
+    lines += ["", f"χ²_red = {out.chi2_reduced:.3g}, {'converged' if out.converged else 'NOT converged'} "
+              f"({out.message}). Details: `fit/fit_summary.md`, `fit/fit_curve.png`, `fit/fit_residuals.png`, "
               "`fit/fitted_scenario.toml`.", ""]
     summ = folder / "summary.md"
     text = summ.read_text(encoding="utf-8") if summ.exists() else ""

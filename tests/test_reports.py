@@ -1,9 +1,12 @@
 """Reports a device physicist can trust (issue 11): numbers compared with their error estimates and
 a symmetry-aware zero floor, symmetry-forbidden headlines, readable labels, full validation sources,
 visible progress and help texts with formulas and units."""
-import crosswind.validation
+import types
+
 import numpy as np
 import pytest
+
+import crosswind.validation
 from crosswind.solver.cli import main
 from crosswind.solver.reporting.plotting import pyplot
 
@@ -217,6 +220,7 @@ def test_fit_reports_each_iteration_with_cost_and_values():
     """crosswind fit used to be silent for minutes: fit(progress=...) gets one line per iteration
     (or per evaluation with an old SciPy) naming the start, the cost and the parameter values."""
     import jax.numpy as jnp
+
     from crosswind.solver.fitting.fit import fit
     lines = []
     x = jnp.linspace(0.0, 1.0, 8)
@@ -229,13 +233,14 @@ def test_fit_reports_each_iteration_with_cost_and_values():
 
 
 def test_fit_command_prints_progress(tmp_path, monkeypatch, capsys):
-    from crosswind.solver.fitting import scenario_fit
     from test_fit_cli import FIT
+
+    from crosswind.solver.fitting import scenario_fit
 
     def fake_run_fit(scn, data, folder, starts=None, progress=None):
         if progress is not None:
             progress("start 1/1, iteration 1: cost 3.2, tilt = 3.5e+04")
-        return {"status": "ok", "scaling": False}
+        return types.SimpleNamespace(status="ok", scaling=False)
     monkeypatch.setattr(scenario_fit, "run_fit", fake_run_fit)
     p = tmp_path / "f.toml"
     p.write_text(FIT, encoding="utf-8")
@@ -252,6 +257,7 @@ def test_help_of_public_functions_shows_formulas_units_and_contract():
     import pydoc
 
     import numpy as np
+
     from crosswind.models import band_geometry, build
     from crosswind.solver import response, sensitivities
     text = lambda f: pydoc.render_doc(f, renderer=pydoc.plaintext)

@@ -21,6 +21,7 @@ from pathlib import Path
 import jax
 import jax.numpy as jnp
 import numpy as np
+
 from crosswind.solver.engine.sensitivity import SensitivityRow
 from crosswind.solver.reporting.report import peak_index
 from crosswind.solver.study.chain import evaluate

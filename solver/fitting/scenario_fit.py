@@ -23,10 +23,12 @@ from __future__ import annotations
 import json
 import math
 import tomllib
+from dataclasses import asdict, dataclass
 from pathlib import Path
 
 import jax.numpy as jnp
 import numpy as np
+
 from crosswind.solver.fitting.fit import fit, scaling_fit
 from crosswind.solver.fitting.measurements import load_measurements
 from crosswind.solver.reporting.plotting import pyplot
@@ -42,6 +44,65 @@ LEGACY_COLUMNS = {"gate_V": ("gate",), "density_cm2": ("density",), "mu_eV": ("m
                   "temperature_K": ("temperature",), "current_uA": ("current",)}
 QUANTITY_UNITS = {k: f.unit_2d for k, f in OUTPUTS.items()}
 SHOW = {"V2w": (1e9, "nV"), "Vxx": (1e3, "mV"), "sigma_xx": (1e3, "mS"), "ratio": (1.0, "m/V")}
+
+
+@dataclass(frozen=True)
+class FitReport:
+    """What ``crosswind fit`` found (also written as ``fit.json``): the fitted ``values`` with
+    standard errors ``stderr`` in ``units`` (knob units), the ``correlation`` matrix of the ``free``
+    parameters, χ²_red and degrees of freedom, the optimiser's verdict (``converged``, ``message``,
+    ``status`` "ok" | "unreliable" | "failed", ``problems``, ``at_bound``,
+    ``identifiability_warnings``) and the data with the model at the best fit (``data``)."""
+
+    quantity: str
+    quantity_unit: str
+    axis: str
+    data_file: str
+    points: int
+    resolution: int
+    values: dict
+    stderr: dict
+    units: dict
+    initial: dict
+    correlation: list
+    free: list
+    chi2_reduced: float
+    dof: int
+    converged: bool
+    message: str
+    status: str
+    problems: list
+    at_bound: list
+    identifiability_warnings: list
+    starts: int
+    nfev: int
+    absolute_errors: bool
+    data: dict
+    scaling = False
+
+    def to_json(self) -> dict:
+        return asdict(self)
+
+
+@dataclass(frozen=True)
+class ScalingReport:
+    """The scaling analysis E⊥/E∥² = C0 + C1σ_xx + C2σ_xx² (``[fit] scaling = true``): coefficients
+    c0, c1, c2 with standard errors, units and meanings, correlation, χ²_red (also ``fit.json``)."""
+
+    data_file: str
+    points: int
+    coefficients: dict
+    stderr: dict
+    units: dict
+    meaning: dict
+    correlation: list
+    chi2_reduced: float
+    dof: int
+    scaling = True
+    status = "ok"
+
+    def to_json(self) -> dict:
+        return {"scaling": True, **asdict(self)}
 
 
 class FitInputError(ValueError):
@@ -100,8 +161,8 @@ def predictor(scn):
     return predict, base
 
 
-def run_fit(scn, data_path, folder, *, starts=None, progress=None) -> dict:
-    """Fit, write every output into ``folder``; returns the fit.json content.  ``progress(line)``
+def run_fit(scn, data_path, folder, *, starts=None, progress=None) -> FitReport | ScalingReport:
+    """Fit, write every output into ``folder``; returns the report (``fit.json`` holds the same).  ``progress(line)``
     receives one line per iteration (cost and parameter values)."""
     spec = scn.fit
     x, y, err = load_data(scn, data_path)
@@ -125,18 +186,19 @@ def run_fit(scn, data_path, folder, *, starts=None, progress=None) -> dict:
     model_at = np.asarray(predict(best, x))
     units = scenario_knobs(scn)
     make_folder(folder)
-    out = {"quantity": spec.quantity, "quantity_unit": QUANTITY_UNITS[spec.quantity], "axis": spec.axis,
-           "data_file": str(data_path), "points": int(y.size), "resolution": spec.resolution,
-           "values": {k: res.values[k] for k in res.free}, "stderr": {k: res.stderr[k] for k in res.free},
-           "units": {k: units[k] for k in res.free}, "initial": initial,
-           "correlation": np.asarray(res.correlation).tolist(), "free": list(res.free),
-           "chi2_reduced": res.chi2_reduced, "dof": res.dof, "converged": res.converged, "message": res.message,
-           "status": res.status, "problems": list(res.problems), "at_bound": list(res.at_bound),
-           "identifiability_warnings": list(res.identifiability_warnings), "starts": res.starts_tried,
-           "nfev": res.nfev, "absolute_errors": err is not None,
-           "data": {"x": x.tolist(), "y": y.tolist(), "err": None if err is None else err.tolist(),
-                    "model": model_at.tolist()}}
-    atomic_text(folder / "fit.json", json.dumps(out, indent=1, default=float))
+    out = FitReport(
+        quantity=spec.quantity, quantity_unit=QUANTITY_UNITS[spec.quantity], axis=spec.axis,
+        data_file=str(data_path), points=int(y.size), resolution=spec.resolution,
+        values={k: res.values[k] for k in res.free}, stderr={k: res.stderr[k] for k in res.free},
+        units={k: units[k] for k in res.free}, initial=initial,
+        correlation=np.asarray(res.correlation).tolist(), free=list(res.free),
+        chi2_reduced=res.chi2_reduced, dof=res.dof, converged=res.converged, message=res.message,
+        status=res.status, problems=list(res.problems), at_bound=list(res.at_bound),
+        identifiability_warnings=list(res.identifiability_warnings), starts=res.starts_tried,
+        nfev=res.nfev, absolute_errors=err is not None,
+        data={"x": x.tolist(), "y": y.tolist(), "err": None if err is None else err.tolist(),
+              "model": model_at.tolist()})
+    atomic_text(folder / "fit.json", json.dumps(out.to_json(), indent=1, default=float))
     _plots(scn, x, y, err, xs, curve, model_at, folder)
     atomic_text(folder / "fitted_scenario.toml", fitted_scenario_text(scn, res.values, res.free))
     atomic_text(folder / "fit_summary.md", fit_markdown(scn, out))
@@ -169,33 +231,33 @@ def _plots(scn, x, y, err, xs, curve, model_at, folder):
 
 
 def fit_markdown(scn, out) -> str:
-    q, ax = out["quantity"], out["axis"]
+    q, ax = out.quantity, out.axis
     lines = ["# Crosswind fit", "",
-             f"Scenario `{Path(str(scn.path)).name}`; data `{Path(out['data_file']).name}` ({out['points']} points): "
+             f"Scenario `{Path(str(scn.path)).name}`; data `{Path(out.data_file).name}` ({out.points} points): "
              f"{OUTPUTS[q].long_name} against `{ax}`, model through the `crosswind run` device pipeline at k-mesh "
-             f"level {out['resolution']}.", "",
+             f"level {out.resolution}.", "",
              "## Best-fit values", "", "| parameter | value | standard error | unit | start |", "|---|---|---|---|---|"]
-    for k in out["free"]:
-        err = "not meaningful (at a bound)" if k in out["at_bound"] else f"{out['stderr'][k]:.3g}"
-        lines.append(f"| `{k}` | {out['values'][k]:.6g} | {err} | {out['units'][k]} | {out['initial'][k]:g} |")
+    for k in out.free:
+        err = "not meaningful (at a bound)" if k in out.at_bound else f"{out.stderr[k]:.3g}"
+        lines.append(f"| `{k}` | {out.values[k]:.6g} | {err} | {out.units[k]} | {out.initial[k]:g} |")
     lines += ["", "Standard errors from the local covariance (JᵀJ)⁻¹"
-              + (" with the data's standard errors (absolute)." if out["absolute_errors"]
+              + (" with the data's standard errors (absolute)." if out.absolute_errors
                  else " scaled by χ²_red (no error column in the data)."), ""]
-    if len(out["free"]) > 1:
-        lines += ["## Correlation matrix", "", "| | " + " | ".join(f"`{k}`" for k in out["free"]) + " |",
-                  "|---" * (len(out["free"]) + 1) + "|"]
-        for k, row in zip(out["free"], out["correlation"]):
+    if len(out.free) > 1:
+        lines += ["## Correlation matrix", "", "| | " + " | ".join(f"`{k}`" for k in out.free) + " |",
+                  "|---" * (len(out.free) + 1) + "|"]
+        for k, row in zip(out.free, out.correlation):
             lines.append(f"| `{k}` | " + " | ".join(f"{c:+.3f}" for c in row) + " |")
         lines.append("")
     verdict = {"ok": "", "failed": "**FIT FAILED** (not converged); the values above are not a result.",
-               "unreliable": "**FIT UNRELIABLE**: do not quote these values; reasons below."}[out["status"]]
+               "unreliable": "**FIT UNRELIABLE**: do not quote these values; reasons below."}[out.status]
     lines += ["## Fit quality", ""] + ([verdict, ""] if verdict else []) + [
-              f"- {'converged' if out['converged'] else '**NOT converged**'}: {out['message']}",
-              f"- χ²_red = {out['chi2_reduced']:.4g} ({out['dof']} degrees of freedom), {out['nfev']} model evaluations, "
-              f"{out['starts']} start(s)"]
-    lines += [f"- **problem**: {w}" for w in out["problems"]]
-    if out["identifiability_warnings"]:
-        lines += [f"- identifiability: {w}" for w in out["identifiability_warnings"]]
+              f"- {'converged' if out.converged else '**NOT converged**'}: {out.message}",
+              f"- χ²_red = {out.chi2_reduced:.4g} ({out.dof} degrees of freedom), {out.nfev} model evaluations, "
+              f"{out.starts} start(s)"]
+    lines += [f"- **problem**: {w}" for w in out.problems]
+    if out.identifiability_warnings:
+        lines += [f"- identifiability: {w}" for w in out.identifiability_warnings]
     else:
         lines.append("- identifiability: no warnings (all |correlations| ≤ 0.99, JᵀJ well conditioned)")
     lines += ["", "Files: `fit_curve.png` (fitted curve over the data), `fit_residuals.png`, `fit.json`, "
@@ -209,11 +271,11 @@ def _run_scaling(scn, s, y, err, data_path, folder):
     except ValueError as exc:
         raise FitInputError(f"{data_path}: {exc}") from None
     make_folder(folder)
-    out = {"scaling": True, "data_file": str(data_path), "points": int(s.size),
-           "coefficients": dict(zip(("c0", "c1", "c2"), sf.coefficients)),
-           "stderr": dict(zip(("c0", "c1", "c2"), sf.stderr)), "units": sf.units, "meaning": sf.meaning,
-           "correlation": np.asarray(sf.correlation).tolist(), "chi2_reduced": sf.chi2_reduced, "dof": sf.dof}
-    atomic_text(folder / "fit.json", json.dumps(out, indent=1, default=float))
+    out = ScalingReport(data_file=str(data_path), points=int(s.size),
+                        coefficients=dict(zip(("c0", "c1", "c2"), sf.coefficients)),
+                        stderr=dict(zip(("c0", "c1", "c2"), sf.stderr)), units=sf.units, meaning=sf.meaning,
+                        correlation=np.asarray(sf.correlation).tolist(), chi2_reduced=sf.chi2_reduced, dof=sf.dof)
+    atomic_text(folder / "fit.json", json.dumps(out.to_json(), indent=1, default=float))
     plt = pyplot()
     xs = np.linspace(float(np.min(s)), float(np.max(s)), 50)
     for name, (xv, yv, lab) in {"fit_curve.png": (xs, sf.predict(xs), "C0 + C1σ + C2σ²"),
@@ -321,4 +383,4 @@ def _is_sweep(v: dict) -> bool:
     return "start" in v and "stop" in v
 
 
-__all__ = ["run_fit", "FitInputError", "fitted_scenario_text", "dumps_toml", "AXIS_COLUMNS"]
+__all__ = ["run_fit", "FitInputError", "FitReport", "ScalingReport", "predictor", "fitted_scenario_text", "dumps_toml", "AXIS_COLUMNS"]

@@ -24,6 +24,7 @@ import textwrap
 from pathlib import Path
 
 import numpy as np
+
 from crosswind.models import band_geometry, catalogue
 from crosswind.models.domain import Lattice
 from crosswind.models.units import E_CHARGE

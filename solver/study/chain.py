@@ -25,6 +25,8 @@ from typing import Any
 import jax
 import jax.numpy as jnp
 import numpy as np
+from scipy import constants
+
 from crosswind.models.strain import uniaxial
 from crosswind.solver.engine.density import mu_from_density, parallel_plate_capacitance
 from crosswind.solver.engine.device import (
@@ -39,7 +41,6 @@ from crosswind.solver.engine.scattering import ConstantTau, MatthiessenTau, Powe
 from crosswind.solver.pytrees import pytree_dataclass
 from crosswind.solver.study.knobs import base_model
 from crosswind.solver.vocabulary import OUTPUTS, SCATTERING
-from scipy import constants
 
 _SCATTERING_CLASS = {"constant": ConstantTau, "power-law": PowerLawTau, "matthiessen": MatthiessenTau}
 

@@ -10,6 +10,7 @@ import difflib
 from typing import Any
 
 import numpy as np
+
 from crosswind.solver.vocabulary import KNOBS, SCATTERING
 
 _STRAIN_COMPONENTS = ("strain_xx", "strain_yy", "strain_xy")

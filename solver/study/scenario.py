@@ -33,6 +33,7 @@ from dataclasses import replace as _replace
 from pathlib import Path
 
 import numpy as np
+
 from crosswind.models import build, catalogue, load_tight_binding
 from crosswind.models.strain import uniaxial
 from crosswind.solver.study.knobs import (

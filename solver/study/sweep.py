@@ -46,6 +46,7 @@ from pathlib import Path
 from typing import Callable
 
 import numpy as np
+
 from crosswind.solver.pytrees import as_dict
 from crosswind.solver.study.chain import evaluate
 from crosswind.solver.study.files import atomic_text, atomic_write, check_free_space
