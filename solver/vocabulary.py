@@ -83,6 +83,38 @@ KNOBS: dict[str, Knob] = {k.name: k for k in (
     _k("current_angle_deg", "conditions", "deg", "current direction from the crystal x axis", "angle"),
     _k("gate_offset_V", "device", "V", "gate voltage of charge neutrality", None),
     _k("current_uA", "device", "uA", "drive current amplitude I0", None, positive=True),
+    # device design (crosswind design; docs/design.md): knobs outside the k-space chain
+    _k("width_um", "device", "um", "bar width W", None, positive=True),
+    _k("strain_angle_deg", "material.strain", "deg", "uniaxial strain axis from the crystal x axis", None,
+       key="angle_deg"),
+    # measurement and thermal settings of [device] (engine/noise.py, docs/theory.md §15)
+    _k("probe_width_um", "device", "um", "width of the transverse probe arms", None, positive=True),
+    _k("probe_misalignment", "device", "1", "offset of the transverse probes along the bar, fraction of W", None,
+       0.0, 1.0),
+    _k("thermal_asymmetry", "device", "1", "fraction of the temperature rise across the transverse probes", None,
+       0.0, 1.0),
+    _k("amplifier_noise_nV_rtHz", "device", "nV Hz^-1/2", "preamplifier input voltage noise density", None, 0.0),
+    _k("time_constant_ms", "device", "ms", "lock-in time constant", None, positive=True),
+    _k("filter_slope_dB_oct", "device", "dB/oct", "lock-in filter slope (6, 12, 18 or 24)", None, 6.0, 24.0),
+    _k("averaging_limit_min", "device", "min", "longest averaging time considered (marginal verdict)", None,
+       positive=True),
+    _k("substrate_um", "device", "um", "substrate thickness (back face at the bath temperature)", None,
+       positive=True),
+    _k("substrate_conductivity_W_mK", "device", "W m^-1 K^-1", "substrate thermal conductivity", None,
+       positive=True),
+    _k("dielectric_conductivity_W_mK", "device", "W m^-1 K^-1", "gate dielectric thermal conductivity", None,
+       positive=True),
+    # limits of [design.limits] (constraints of the device design)
+    _k("max_current_density_A_m", "design.limits", "A m^-1", "largest sheet current density I0/W", None,
+       positive=True, key="current_density_A_m"),
+    _k("max_power_density_W_m2", "design.limits", "W m^-2", "largest Joule power per area", None,
+       positive=True, key="power_density_W_m2"),
+    _k("max_temperature_rise_K", "design.limits", "K", "largest channel temperature rise", None,
+       positive=True, key="temperature_rise_K"),
+    _k("max_gate_field_V_nm", "design.limits", "V nm^-1", "largest field in the gate dielectric", None,
+       positive=True, key="gate_field_V_nm"),
+    _k("max_strain", "design.limits", "1", "largest uniaxial strain magnitude", None, positive=True,
+       key="strain"),
 )}
 
 #: the carrier knobs: a scenario gives exactly one
@@ -160,6 +192,23 @@ DEVICE_FIELDS: dict[str, Field] = {f.name: f for f in (
     _f("power_density", "W m^-2", "W m^-2", "time-averaged Joule power per area"),
     _f("sigma_bar", "S", "S", "sheet conductivity in the bar frame (x' along the current)"),
     _f("chi_bar", _CHI2, _CHI2, "second-harmonic coefficient in the bar frame"),
+    # measurability (engine/noise.py, docs/theory.md §15)
+    _f("resistance_xx", "Ohm", "Ohm", "resistance seen by the longitudinal probe pair, Re rho'_xx L/W"),
+    _f("resistance_y", "Ohm", "Ohm", "resistance seen by the transverse probe pair, Re rho'_yy W/w_probe"),
+    _f("noise_density_x", "V Hz^-1/2", "V Hz^-1/2", "noise density at the longitudinal pair (Johnson + amplifier)"),
+    _f("noise_density_y", "V Hz^-1/2", "V Hz^-1/2", "noise density at the transverse pair (Johnson + amplifier)"),
+    _f("noise_bandwidth", "Hz", "Hz", "equivalent noise bandwidth of the lock-in filter"),
+    _f("noise_y_rms", "V", "V", "rms noise of the transverse lock-in reading at the time constant"),
+    _f("snr_v2w_y", "1", "1", "signal-to-noise ratio of |V_y^2omega| (rms) at the time constant"),
+    _f("averaging_time_snr10", "s", "s", "averaging time for a signal-to-noise ratio of 10"),
+    _f("measurability", "1", "1", "2 measurable, 1 marginal, 0 not measurable"),
+    _f("temperature_rise", "K", "K", "Joule temperature rise of the channel (thermal estimate)"),
+    _f("heating_flag", "1", "1", "1 where the temperature rise exceeds 10 % of the bath temperature"),
+    _f("pickup_v2w_y", "V", "V", "2omega pickup amplitude from transverse probe misalignment, (delta/L) V_xx^2omega"),
+    _f("thermoelectric_v2w_y", "V", "V", "thermoelectric 2omega amplitude |S'_yy| a Delta T (estimate)"),
+    _f("signal_to_pickup", "1", "1", "|V_y^2omega| / misalignment pickup"),
+    _f("signal_to_thermoelectric", "1", "1", "|V_y^2omega| / thermoelectric 2omega estimate"),
+    _f("gate_field", "V m^-1", "V m^-1", "field in the gate dielectric |V_g|/d (applied voltage over the thickness)"),
 )}
 
 #: bookkeeping fields of a sweep

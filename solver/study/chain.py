@@ -90,6 +90,8 @@ def evaluate(scn, values: dict, *, resolution: int | None, rtol: float = 1e-3, i
 
     ``resolution`` is the k-mesh level (``None``: automatic refinement to ``rtol``, concrete values
     only); ``estimate_error`` asks ``response`` for its error estimate (the sweep does, fits do not);
+    an optional ``strain_angle_deg`` value (a scalar; the device design passes it) replaces the
+    uniaxial strain axis of [material.strain];
     ``intrinsic`` defaults to the scenario's [numerics].  Traceable: every value may be a JAX tracer
     (model parameters and ``strain`` must be scalars)."""
     missing = [k for k, x in values.items() if x is None]
@@ -102,11 +104,15 @@ def evaluate(scn, values: dict, *, resolution: int | None, rtol: float = 1e-3, i
     over = {k: v[k].reshape(()) for k in model.params if k in v}
     st = scn.material.strain
     if st is not None and st.kind == "uniaxial":
-        xx, yy, xy = uniaxial(v["strain"].reshape(()), math.radians(st.angle_deg), st.poisson)
+        # the strain axis is [material.strain] angle_deg unless the design passes the knob strain_angle_deg
+        axis = (jnp.deg2rad(v["strain_angle_deg"].reshape(())) if "strain_angle_deg" in v
+                else math.radians(st.angle_deg))
+        xx, yy, xy = uniaxial(v["strain"].reshape(()), axis, st.poisson)
         over.update(strain_xx=xx, strain_yy=yy, strain_xy=xy)
     model = model.with_params(**over)
 
-    conditions = [x for k, x in v.items() if k not in model.params and k not in ("strain", "current_angle_deg")]
+    conditions = [x for k, x in v.items()
+                  if k not in model.params and k not in ("strain", "strain_angle_deg", "current_angle_deg")]
     shape = np.broadcast_shapes(*[jnp.shape(x) for x in conditions]) if conditions else ()
     P = int(np.prod(shape)) if shape else 1
     flat = lambda x: jnp.broadcast_to(x, shape).reshape(P)
