@@ -2,6 +2,7 @@
 
     crosswind run SCENARIO [--output DIR] [--no-progress]   run (or resume) a scenario file
     crosswind fit SCENARIO --data FILE [--output DIR] [--starts N]   fit the [fit] parameters to data
+    crosswind design SCENARIO [--output DIR] [--starts N]  optimise the [design] knobs (docs/design.md)
     crosswind demo [--output DIR] [--no-progress] [--fit]    run the built-in demonstration
     crosswind models                                        list the model catalogue
     crosswind validate [--wide] [--markdown FILE]           run the validation cases (sources in full)
@@ -26,6 +27,7 @@ from crosswind.solver.fitting import scenario_fit
 from crosswind.solver.fitting.peak_sensitivity import write_sensitivities
 from crosswind.solver.fitting.scenario_fit import FitInputError
 from crosswind.solver.reporting.report import write_report
+from crosswind.solver.study import design as device_design
 from crosswind.solver.study import sweep
 from crosswind.solver.study.files import OutputError, atomic_text
 from crosswind.solver.study.scenario import ScenarioError, load_scenario, parse_scenario
@@ -55,6 +57,15 @@ def _parser() -> argparse.ArgumentParser:
     f.add_argument("--progress", action="store_true", default=None,
                    help="show each iteration (cost, parameter values) on stderr; default: when stderr is a terminal")
     f.add_argument("--no-progress", dest="progress", action="store_false", help="do not show the iterations")
+    g = sub.add_parser("design", help="optimise a device's knobs for a measurable 2ω signal",
+                       description="Maximise the scenario's [design] objective (SNR, amplitude or dipole share of "
+                                   "the transverse 2ω signal) over its free knobs within their bounds and limits, by "
+                                   "gradients through the evaluation chain (docs/design.md); write design_summary.md, "
+                                   "design.json, design_map.png and optimal_scenario.toml.")
+    g.add_argument("scenario", metavar="SCENARIO", help="scenario file (TOML) with a [design] table")
+    g.add_argument("--output", "-o", metavar="DIR", help="output folder (default: design-<scenario name> next to it)")
+    g.add_argument("--starts", type=int, metavar="N", help="number of starting points (default: [design] starts)")
+    g.add_argument("--no-progress", action="store_true", help="do not show one line per start on stderr")
     d = sub.add_parser("demo", help="run the built-in demonstration scenario",
                        description="Run a small built-in scenario (strained MoS2 Hall bar, gate and "
                                    "temperature sweep) and write results, figures and a summary.")
@@ -165,6 +176,37 @@ def cmd_fit(args) -> int:
     return 0
 
 
+def cmd_design(args) -> int:
+    try:
+        scn = load_scenario(args.scenario)
+    except ScenarioError as exc:
+        _err(str(exc))
+        return 2
+    if getattr(scn, "design", None) is None:
+        _err(f"{args.scenario}: no [design] table; add one (docs/design.md)")
+        return 2
+    if args.starts is not None and args.starts < 1:
+        _err("--starts must be >= 1")
+        return 2
+    folder = (Path(args.output) if args.output
+              else Path(args.scenario).resolve().parent / f"design-{Path(args.scenario).stem}")
+    t0 = time.time()
+    show = None if args.no_progress else (lambda line: print(f"crosswind: design {line}", file=sys.stderr, flush=True))
+    try:
+        out = device_design.run_design(scn, folder, starts=args.starts, progress=show)
+    except OutputError as exc:
+        _err(str(exc))
+        return 2
+    print(f"crosswind: wrote {folder}/design_summary.md, design.json, optimal_scenario.toml"
+          + (", design_map.png" if out.map is not None else "") + f" in {time.time() - t0:.1f} s")
+    print(f"crosswind: {out.verdict} at the optimum: {out.objective} = {out.objective_value:.4g} "
+          + ", ".join(f"{k.name} = {k.value:.4g}" for k in out.knobs))
+    if not out.success:
+        _err(f"the design did not converge: {out.message} (details in {folder}/design_summary.md)")
+        return 1
+    return 0
+
+
 def cmd_run(args) -> int:
     try:
         scn = load_scenario(args.scenario)
@@ -256,7 +298,8 @@ def main(argv=None) -> int:
     if args.command is None:
         parser.print_help(sys.stderr)
         return 2
-    commands = {"run": cmd_run, "fit": cmd_fit, "demo": cmd_demo, "models": cmd_models, "validate": cmd_validate}
+    commands = {"run": cmd_run, "fit": cmd_fit, "design": cmd_design, "demo": cmd_demo, "models": cmd_models,
+                "validate": cmd_validate}
     try:
         return commands[args.command](args)
     except KeyboardInterrupt:
