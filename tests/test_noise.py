@@ -112,7 +112,7 @@ def test_assess_returns_the_verdict_and_artefacts_and_is_differentiable():
     assert float(m.snr_v2w_y) == pytest.approx(snr, rel=1e-12) and int(m.measurability) == 2
     assert float(m.pickup_v2w_y) == pytest.approx(0.02 * 5e-6 / 10e-6 * 1e-6, rel=1e-12)
     assert float(m.signal_to_pickup) == pytest.approx(50e-9 / float(m.pickup_v2w_y), rel=1e-12)
-    assert float(m.thermoelectric_v2w_y) == pytest.approx(1e-6 * 0.1 * float(m.temperature_rise), rel=1e-12)
+    assert float(m.thermoelectric_v2w_y) == pytest.approx(1e-6 * 0.02 * float(m.temperature_rise), rel=1e-12)
     assert int(m.heating_flag) == 0
     hot = noise.assess(sigma, 50e-9 + 0j, 1e-6 + 0j, 1e7, 10.0, **common)
     assert int(hot.heating_flag) == 1 and np.isnan(float(hot.thermoelectric_v2w_y))

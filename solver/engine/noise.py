@@ -83,13 +83,14 @@ class NoiseSettings:
     """Measurement and thermal settings, in the units of their scenario keys ([device] table,
     :data:`crosswind.solver.vocabulary.KNOBS`).  ``probe_width_um`` None: a fifth of the bar width.
     Defaults: 4 nV/√Hz preamplifier, 1 s time constant at 24 dB/oct, 1 h averaging limit, probes
-    misaligned by 2 % of W, 10 % thermal asymmetry, 500 μm Si substrate (κ = 150 W/m/K near room
+    misaligned by 2 % of W, 2 % thermal asymmetry (an assumption: the same order as the probes'
+    geometric asymmetry), 500 μm Si substrate (κ = 150 W/m/K near room
     temperature) under a SiO2 dielectric (κ = 1.4 W/m/K) — common-practice values, to be replaced
     by the device's own; both conductivities fall steeply at cryogenic temperatures."""
 
     probe_width_um: float | None = None
     probe_misalignment: float = 0.02
-    thermal_asymmetry: float = 0.1
+    thermal_asymmetry: float = 0.02
     amplifier_noise_nV_rtHz: float = 4.0
     time_constant_ms: float = 1000.0
     filter_slope_dB_oct: int = 24

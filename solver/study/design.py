@@ -75,6 +75,11 @@ _KNOB_SPEC = ("initial", "bounds")
 _DEFAULT_DIELECTRIC_NM = 285.0       # thermal path when the scenario has no gate dielectric (Si/SiO2)
 _ACTIVE = 1e-5                       # a constraint g = 1 − value/limit below this is active
 _SEED = 2024
+DIMENSIONLESS = DEVICE_FIELDS["snr_v2w_y"].unit_2d
+#: colour-bar label of each objective in the map
+_OBJECTIVE_LABEL = {"snr": "SNR of |V_y^2ω| at the time constant",
+                    "amplitude": f"|V_y^2ω| [{OUTPUTS['V2w'].unit_2d}]",
+                    "dipole_ratio": "|χ'_dipole / χ'_drude| of χ'_yxx"}
 
 
 # ------------------------------------------------------------------------------ the [design] table
@@ -561,7 +566,13 @@ def _fmt(v: float, unit: str = "") -> str:
             if abs(v) >= f:
                 return f"{v / f:.3g} {pre}{unit}"
         return f"{v:.3g} {unit}"
-    return f"{v:.4g} {unit}".rstrip()
+    return f"{v:.4g} {'' if unit == DIMENSIONLESS else unit}".rstrip()
+
+
+def _per(objective_unit: str, knob_unit: str) -> str:
+    """The unit of d objective / d knob, e.g. 'V/deg', '/V', '' (dimensionless over dimensionless)."""
+    top = "" if objective_unit == DIMENSIONLESS else objective_unit
+    return top if knob_unit == DIMENSIONLESS else f"{top}/{knob_unit}"
 
 
 def _duration(seconds: float) -> str:
@@ -597,6 +608,14 @@ CAUTIONS = [
 ]
 
 
+def artefact_warning(ratio: float) -> str:
+    """'.' or a warning when an artefact is within a factor 3 of the signal (or larger)."""
+    if math.isfinite(ratio) and ratio < 3.0:
+        return (" — **comparable to or larger than the signal**: tell them apart by the current-angle dependence "
+                "(the Hall signal follows cos(θ − θ_D), docs/theory.md §15).")
+    return "."
+
+
 def summary_markdown(scn, res: DesignResult) -> str:
     """``design_summary.md``: the verdict first, then the optimum, sensitivities, constraints, artefacts."""
     pt, m = res.point, res.point.noise
@@ -614,8 +633,8 @@ def summary_markdown(scn, res: DesignResult) -> str:
               "| knob | value | bounds | at bound | d objective / d knob | % change per 1 % of range |",
               "|---|---|---|---|---|---|"]
     for k in res.knobs:
-        lines.append(f"| `{k.name}` | {k.value:.6g} {k.unit} | [{k.low:g}, {k.high:g}] | {k.at_bound or '—'} | "
-                     f"{k.derivative:.4g} {unit}/{k.unit} | {k.percent_per_percent_range:+.3g} |")
+        lines.append(f"| `{k.name}` | {_fmt(k.value, k.unit)} | [{k.low:g}, {k.high:g}] | {k.at_bound or '—'} | "
+                     f"{(f'{k.derivative:.4g} ' + _per(unit, k.unit)).strip()} | {k.percent_per_percent_range:+.3g} |")
     if res.held:
         lines += ["", "Held at the first value of their sweep axis (not free, not in `at`): "
                   + ", ".join(f"`{k}` = {v:g} {KNOBS[k].unit}" for k, v in res.held.items()) + "."]
@@ -627,7 +646,7 @@ def summary_markdown(scn, res: DesignResult) -> str:
                   "|---|---|---|---|---|"]
         for c in res.constraints:
             gain = f"×{c.gain_relax_10pct:.3f}" if c.active else "—"
-            lines.append(f"| `{c.key}` ≤ {c.limit:g} {c.unit} | {c.value:.4g} {c.unit} | "
+            lines.append(f"| `{c.key}` ≤ {_fmt(c.limit, c.unit)} | {_fmt(c.value, c.unit)} | "
                          f"{'**yes**' if c.active else 'no'} | {c.multiplier:.3g} | {gain} |")
         lines += ["", "λ is the elasticity of the objective with respect to the limit (KKT conditions of "
                   "−ln objective): relaxing an active limit by 10 % multiplies the objective by about exp(0.1 λ)."]
@@ -638,10 +657,11 @@ def summary_markdown(scn, res: DesignResult) -> str:
               + (" — **more than 10 % of the bath temperature: the chosen temperature is not the electron "
                  "temperature**." if int(m.heating_flag) else " (below 10 % of the bath temperature)."),
               f"* Probe misalignment ({res.settings.probe_misalignment:g} of W): 2ω pickup "
-              f"{_fmt(float(m.pickup_v2w_y), OUTPUTS['V2w'].unit_2d)}; signal/pickup {float(m.signal_to_pickup):.3g}.",
+              f"{_fmt(float(m.pickup_v2w_y), OUTPUTS['V2w'].unit_2d)}; signal/pickup {float(m.signal_to_pickup):.3g}"
+              + artefact_warning(float(m.signal_to_pickup)),
               f"* Thermoelectric 2ω estimate ({res.settings.thermal_asymmetry:g} of the rise across the probes): "
               f"{_fmt(float(m.thermoelectric_v2w_y), OUTPUTS['V2w'].unit_2d)}; signal/thermoelectric "
-              f"{float(m.signal_to_thermoelectric):.3g}.",
+              f"{float(m.signal_to_thermoelectric):.3g}" + artefact_warning(float(m.signal_to_thermoelectric)),
               f"* Dipole share |χ'_dipole/χ'_drude| of χ'_yxx: {float(pt.dipole_ratio):.3g}."]
     if res.map is not None:
         lines += ["", f"`design_map.png`: the objective across `{res.map['x_name']}` and `{res.map['y_name']}`, the "
@@ -719,7 +739,7 @@ def plot_map(res: DesignResult, path: Path) -> None:
     mp = res.map
     fig, ax = plt.subplots(figsize=(6.0, 4.8))
     pcm = ax.pcolormesh(mp["x"], mp["y"], mp["objective"], shading="auto", cmap="viridis")
-    fig.colorbar(pcm, ax=ax, label=f"{res.objective} [{res.objective_unit}]")
+    fig.colorbar(pcm, ax=ax, label=_OBJECTIVE_LABEL[res.objective])
     for g, key in zip(mp["constraints"], mp["limit_keys"]):
         if np.nanmin(g) < 0 < np.nanmax(g):
             cs = ax.contour(mp["x"], mp["y"], g, levels=[0.0], colors="w", linestyles="--", linewidths=1.2)
@@ -801,6 +821,6 @@ def measurability(ds, device=None, settings: noise.NoiseSettings | None = None):
 
 
 __all__ = ["ConstraintResult", "DESIGN_KNOBS", "DesignPoint", "DesignResult", "DesignSpec", "KnobResult",
-           "LIMITS", "OBJECTIVES", "SETTINGS_KEYS", "StartResult", "design", "dielectric_m", "free_knob_names",
-           "held_values", "limit_value", "measurability", "noise_settings", "objective_map", "optimal_scenario_text",
-           "parse_design", "run_design", "summary_markdown", "verdict_line", "write_design"]
+           "LIMITS", "OBJECTIVES", "SETTINGS_KEYS", "StartResult", "artefact_warning", "design", "dielectric_m",
+           "free_knob_names", "held_values", "limit_value", "measurability", "noise_settings", "objective_map",
+           "optimal_scenario_text", "parse_design", "run_design", "summary_markdown", "verdict_line", "write_design"]
