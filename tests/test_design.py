@@ -204,3 +204,11 @@ def test_measurability_of_a_sweep_dataset(folder):
     for name in ("snr_v2w_y", "averaging_time_snr10", "temperature_rise", "pickup_v2w_y", "resistance_y"):
         assert float(got[name]) == pytest.approx(float(getattr(want, name)), rel=1e-12), name
     assert np.isnan(float(got["thermoelectric_v2w_y"]))          # the sweep stores no Seebeck tensor
+    # the lead lines of a sweep summary: the verdict at the peak first
+    a = ds["v2w_y_amplitude"]
+    peak = dict(zip(a.dims, (int(i) for i in np.unravel_index(int(np.nanargmax(a.values)), a.shape))))
+    lines = dz.measurability_lines(ds, scn, peak)
+    code = int(m["measurability"].isel(peak).values)
+    assert lines[0].startswith(f"**{noise.VERDICTS[code].capitalize()}** at the chosen settings (at the 2ω peak")
+    assert "SNR 10 after" in lines[0] and "Over the sweep:" in lines[2]
+    assert any(line.startswith("- Joule heating at the peak") for line in lines)

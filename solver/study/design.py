@@ -820,7 +820,40 @@ def measurability(ds, device=None, settings: noise.NoiseSettings | None = None):
     return res
 
 
+def measurability_lines(ds, scn, idx) -> list:
+    """Markdown lines that lead a sweep's ``summary.md``: the verdict at the grid point ``idx`` (the
+    2ω peak: {dimension: index}) with its SNR and averaging time, the count of verdicts over the
+    sweep, and the heating and misalignment artefacts there (docs/theory.md §15)."""
+    settings = noise_settings(scn.device)
+    m = measurability(ds, scn.device, settings)
+    at = m.isel({d: i for d, i in idx.items() if d in m.dims})
+    val = lambda name: float(at[name].values)
+    code = int(val("measurability"))
+    counts = [int((m["measurability"].values == c).sum()) for c in (2, 1, 0)]
+    lines = [verdict_line(val("snr_v2w_y"), val("averaging_time_snr10"), noise.VERDICTS[code], settings)
+             .replace(" at the chosen settings:", " at the chosen settings (at the 2ω peak below):"),
+             "",
+             f"Over the sweep: {counts[0]} point(s) measurable, {counts[1]} marginal, {counts[2]} not measurable "
+             f"(noise {val('noise_density_y') * 1e9:.3g} {KNOBS['amplifier_noise_nV_rtHz'].unit} at the transverse "
+             f"probes at the peak; settings and formulas: docs/design.md, docs/theory.md §15).",
+             ""]
+    rise = val("temperature_rise")
+    T = float(np.asarray(ds["temperature_K"].values)[idx.get("temperature_K", 0)])
+    heat = (" — **more than 10 % of the bath temperature: the chosen temperature is not the electron temperature**"
+            if int(val("heating_flag")) else "")
+    lines += [f"- Joule heating at the peak: channel temperature rise {rise:.3g} "
+              f"{DEVICE_FIELDS['temperature_rise'].unit_2d} (thermal estimate){heat}"
+              + ("" if heat else f", below 10 % of the bath temperature {T:g} {KNOBS['temperature_K'].unit}") + ".",
+              f"- Probe misalignment ({settings.probe_misalignment:g} of W): 2ω pickup "
+              f"{_fmt(val('pickup_v2w_y'), OUTPUTS['V2w'].unit_2d)}, signal/pickup {val('signal_to_pickup'):.3g}"
+              + artefact_warning(val("signal_to_pickup")),
+              "- Thermoelectric 2ω: not estimated from a sweep (no Seebeck tensor stored); `crosswind design` "
+              "reports it.", ""]
+    return lines
+
+
 __all__ = ["ConstraintResult", "DESIGN_KNOBS", "DesignPoint", "DesignResult", "DesignSpec", "KnobResult",
            "LIMITS", "OBJECTIVES", "SETTINGS_KEYS", "StartResult", "artefact_warning", "design", "dielectric_m",
-           "free_knob_names", "held_values", "limit_value", "measurability", "noise_settings", "objective_map",
-           "optimal_scenario_text", "parse_design", "run_design", "summary_markdown", "verdict_line", "write_design"]
+           "free_knob_names", "held_values", "limit_value", "measurability", "measurability_lines", "noise_settings",
+           "objective_map", "optimal_scenario_text", "parse_design", "run_design", "summary_markdown", "verdict_line",
+           "write_design"]
