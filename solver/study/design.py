@@ -164,8 +164,9 @@ def parse_design(ctx, data, scn) -> DesignSpec:
     units = scenario_knobs(scn)
     at = []
     for k, v in ctx.table("design.at", t.get("at", {})).items():
-        if k not in units and k not in ("width_um", "strain_angle_deg"):
-            ctx.fail("design.at", k, "not a knob of this scenario.", ", ".join(units))
+        extra = ("width_um", "current_uA") + (("strain_angle_deg",) if "strain" in units else ())
+        if k not in units and k not in extra:
+            ctx.fail("design.at", k, "not a knob of this scenario.", ", ".join([*units, *extra]))
         if k in ktab:
             ctx.fail("design.at", k, "is also a free knob in [design.knobs]; give it in one place.")
         at.append((k, _num(ctx, "design.at", k, v)))
