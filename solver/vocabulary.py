@@ -41,6 +41,17 @@ class Knob:
     high: float = INF
     positive: bool = False
     key: str | None = None
+    #: plausibility, checked when a scenario loads (inside the valid range): a value outside
+    #: [refuse_low, refuse_high] is refused as physically impossible, one outside [warn_low,
+    #: warn_high] loads with a warning; ``why`` says where the numbers come from (with a source)
+    refuse_low: float = -INF
+    refuse_high: float = INF
+    warn_low: float = -INF
+    warn_high: float = INF
+    why: str = ""
+    #: likely unit slips: ((factor, unit typed), ...) — the value was typed in ``unit typed`` and
+    #: means value × factor in this knob's unit (110 typed for meV in ``mu_eV``: 0.110 eV)
+    slips: tuple = ()
 
     @property
     def scenario_key(self) -> str:
@@ -58,28 +69,82 @@ class Knob:
             return f"must lie in [{self.low:g}, {self.high:g}] {self.unit}, got {value:g}"
         return None
 
+    def slip_hint(self, value: float, low: float | None = None, high: float | None = None) -> str:
+        """" Did you mean 0.11 eV (110 meV)?" when ``value`` read in one of the knob's likely wrong
+        units lands in the plausible range [``low``, ``high``] (default: the warning range), else ""."""
+        low = self.warn_low if low is None else low
+        high = self.warn_high if high is None else high
+        for factor, typed in self.slips:
+            v = value * factor
+            if low <= v <= high and v != value:
+                return f" Did you mean {v:.4g} {self.unit} ({value:g} {typed})?"
+        return ""
+
 
 def _k(*args, **kw) -> Knob:
     return Knob(*args, **kw)
 
 
+# ----------------------------------------------------------------------------- plausibility ---
+# Ranges a scenario's conditions are checked against when it loads (study/scenario.py): outside the
+# refuse range a value is physically impossible (most often a unit slip) and the scenario is refused
+# naming the likely slip; outside the warning range it loads with a warning.
+
+#: relaxation times (fs): refuse outside [1, 1e6], warn outside [10, 1e5]
+_TAU = dict(refuse_low=1.0, refuse_high=1e6, warn_low=10.0, warn_high=1e5, slips=((1e3, "ps"), (1e15, "s")), why=(
+    "the level broadening ħ/τ is 0.66 eV at 1 fs and 66 meV at 10 fs, beyond the Boltzmann picture that needs it "
+    "well below the Fermi energy (Ashcroft & Mermin, Solid State Physics (1976), ch. 16), and beyond 1e5 fs the "
+    "mean free path passes 10 μm at 1e5 m/s: ballistic, not diffusive, in a micrometre Hall bar (common practice)"))
+
+#: sheet densities (cm^-2): refuse |n| > 1e15, warn |n| > 1e14
+_DENSITY = dict(refuse_low=-1e15, refuse_high=1e15, warn_low=-1e14, warn_high=1e14, slips=((1e-4, "m^-2"),), why=(
+    "1e15 cm^-2 is about one carrier per unit cell of a 2D crystal (1.1e15 cells/cm^2 in MoS2, 1.9e15 in "
+    "graphene); solid gate dielectrics reach about 2e13 cm^-2 at breakdown and ionic-liquid gating about "
+    "4e14 cm^-2 (Efetov & Kim, PRL 105, 256805 (2010))"))
+
+#: temperatures (K): refuse above 4000, warn above 1000
+_TEMPERATURE = dict(refuse_high=4000.0, warn_high=1000.0, why=(
+    "no 2D crystal survives above about 3900 K, where graphite sublimes (CRC Handbook of Chemistry and "
+    "Physics), and transport devices are measured from millikelvin to a few hundred kelvin (common practice)"))
+
+#: gate field |V − V0|/d across the dielectric (V/nm): refuse above, warn above; SiO2 breaks down near
+#: 1 V/nm (Sze & Ng, Physics of Semiconductor Devices, 3rd ed. (2007)), hBN near 1.2 V/nm (Hattori et
+#: al., ACS Nano 9, 916 (2015))
+GATE_FIELD_REFUSE_V_PER_NM = 2.0
+GATE_FIELD_WARN_V_PER_NM = 0.5
+GATE_FIELD_UNIT = "V/nm"
+GATE_FIELD_SOURCE = ("SiO2 breaks down near 1 V/nm (Sze & Ng, Physics of Semiconductor Devices, 3rd ed. "
+                     "(2007)), hBN near 1.2 V/nm (Hattori et al., ACS Nano 9, 916 (2015))")
+
+#: validity window of a continuum (k·p) model: the energies its bands reach within |k| ≤ 1/a of the
+#: valley centre (|k|a ≤ 1; a = the model's lattice_constant, else KP_DEFAULT_LATTICE_A; never less
+#: than the model's own curvature scale), and beyond any Brillouin zone: |k| > KP_K_MAX, the
+#: zone-corner distance 4π/(3a) of graphene (a = 2.46 Å, the smallest lattice constant of the
+#: common 2D crystals; Castro Neto et al., RMP 81, 109 (2009))
+KP_DEFAULT_LATTICE_A = 3.2
+KP_K_MAX = 4 * math.pi / (3 * 2.46)
+K_UNIT = "1/Å"
+#: chemical-potential slips: meV typed into an eV key
+MU_SLIPS = ((1e-3, "meV"),)
+
+
 #: every knob of the scenario schema, by name (model parameters come from the model)
 KNOBS: dict[str, Knob] = {k.name: k for k in (
     _k("strain", "material.strain", "1", "uniaxial strain magnitude", None, key="magnitude"),
-    _k("temperature_K", "conditions", "K", "temperature", "temperature", 0.0),
-    _k("tau_fs", "conditions", "fs", "relaxation time", "tau", positive=True),
-    _k("tau0_fs", "conditions.scattering", "fs", "relaxation time prefactor τ0", "tau", positive=True),
+    _k("temperature_K", "conditions", "K", "temperature", "temperature", 0.0, **_TEMPERATURE),
+    _k("tau_fs", "conditions", "fs", "relaxation time", "tau", positive=True, **_TAU),
+    _k("tau0_fs", "conditions.scattering", "fs", "relaxation time prefactor τ0", "tau", positive=True, **_TAU),
     _k("exponent", "conditions.scattering", "1", "power r of τ = τ0(|ε−ε_ref|/ε_s)^r", "tau", -10.0, 10.0),
     _k("reference_energy_eV", "conditions.scattering", "eV", "reference energy ε_ref", "tau"),
     _k("energy_scale_eV", "conditions.scattering", "eV", "energy scale ε_s", "tau", positive=True),
-    _k("tau_impurity_fs", "conditions.scattering", "fs", "impurity relaxation time", "tau", positive=True),
+    _k("tau_impurity_fs", "conditions.scattering", "fs", "impurity relaxation time", "tau", positive=True, **_TAU),
     _k("tau_phonon_fs", "conditions.scattering", "fs", "phonon relaxation time at the reference T", "tau",
-       positive=True),
+       positive=True, **_TAU),
     _k("reference_temperature_K", "conditions.scattering", "K", "reference temperature of the phonon rate",
        "tau", positive=True),
     _k("gate_V", "conditions", "V", "gate voltage", None),
-    _k("density_cm2", "conditions", "cm^-2", "carrier density (electrons > 0)", "density"),
-    _k("mu_eV", "conditions", "eV", "chemical potential", "mu"),
+    _k("density_cm2", "conditions", "cm^-2", "carrier density (electrons > 0)", "density", **_DENSITY),
+    _k("mu_eV", "conditions", "eV", "chemical potential", "mu", slips=MU_SLIPS),
     _k("current_angle_deg", "conditions", "deg", "current direction from the crystal x axis", "angle"),
     _k("gate_offset_V", "device", "V", "gate voltage of charge neutrality", None),
     _k("current_uA", "device", "uA", "drive current amplitude I0", None, positive=True),
@@ -252,5 +317,7 @@ def units_of(dim: int = 2) -> dict[str, str]:
                                                                            "chi_intrinsic")}
 
 
-__all__ = ["CARRIERS", "DEVICE_FIELDS", "Field", "KNOBS", "Knob", "OUTPUTS", "RESPONSE_FIELDS", "RUN_FIELDS",
-           "SCATTERING", "SCATTERING_DEFAULTS", "all_field_names", "field", "units_of"]
+__all__ = ["CARRIERS", "DEVICE_FIELDS", "Field", "GATE_FIELD_REFUSE_V_PER_NM", "GATE_FIELD_SOURCE", "GATE_FIELD_UNIT",
+           "GATE_FIELD_WARN_V_PER_NM", "KNOBS", "KP_DEFAULT_LATTICE_A", "KP_K_MAX", "K_UNIT", "Knob", "MU_SLIPS",
+           "OUTPUTS", "RESPONSE_FIELDS", "RUN_FIELDS", "SCATTERING", "SCATTERING_DEFAULTS", "all_field_names", "field",
+           "units_of"]

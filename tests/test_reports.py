@@ -3,6 +3,7 @@ a symmetry-aware zero floor, symmetry-forbidden headlines, readable labels, full
 visible progress and help texts with formulas and units."""
 import types
 
+import jax
 import numpy as np
 import pytest
 
@@ -278,7 +279,7 @@ def test_help_of_public_functions_shows_formulas_units_and_contract():
     for f in ("sigma", "sigma_drude", "sigma_anomalous", "chi", "chi_dc"):
         v = np.asarray(getattr(res, f))
         assert np.iscomplexobj(v) and np.all(v.imag == 0.0), f
-    assert all(not np.iscomplexobj(np.asarray(v)) for v in res.error.values())
+    assert all(not np.iscomplexobj(np.asarray(v)) for v in jax.tree_util.tree_leaves(res.error))
 
 
 # ------------------------------------------------------------------ item 9: labels read like physics --
@@ -314,3 +315,201 @@ def test_figure_labels_are_typeset_with_units_and_prefixes(demo, monkeypatch):
     angle_titles = [a.get_title() for a in figs["angle.png"].axes]
     assert any("[nV]" in t for t in angle_titles) and any("sign" in t for t in angle_titles)
     assert len(figs["angle.png"].axes[0].get_yticks()) <= 5        # radial ticks do not crowd
+
+
+# ------------------------------------------------------------------ band figure colours --
+def _capture(monkeypatch):
+    from crosswind.solver.reporting import report
+    figs = {}
+    monkeypatch.setattr(report, "atomic_figure", lambda fig, path, dpi=None: figs.__setitem__(path.name, fig))
+    monkeypatch.setattr(pyplot(), "close", lambda fig: None)
+    return figs
+
+
+def _panels(fig):
+    """(axes, offsets, colour values) of every panel holding the band scatter."""
+    from matplotlib.collections import PathCollection
+    out = []
+    for ax in fig.axes:
+        cols = [c for c in ax.collections if isinstance(c, PathCollection) and c.get_array() is not None]
+        if cols:
+            out.append((ax, np.asarray(cols[0].get_offsets()), np.asarray(cols[0].get_array())))
+    return out
+
+
+def test_merge_coincident_sums_curvature_of_degenerate_partners():
+    from crosswind.solver.reporting.report import merge_coincident
+    e = np.array([[-1.0, 0.5, 0.5 + 1e-9, 2.0], [-1.0, 0.4, 0.6, 2.0]])
+    om = np.array([[1.0, 3.0, -3.0, 0.5], [1.0, 3.0, -3.0, 0.5]])
+    k, en, s, n = merge_coincident(e, om, tol=1e-6)
+    assert list(k) == [0, 0, 0, 1, 1, 1, 1] and list(n) == [1, 2, 1, 1, 1, 1, 1]
+    assert s[1] == 0.0 and en[1] == pytest.approx(0.5) and list(s[3:]) == [1.0, 3.0, -3.0, 0.5]
+
+
+def test_band_figure_two_valley_model_has_no_colour_flip(monkeypatch, tmp_path):
+    """massive-dirac with valleys = 2: K and K' fold onto one k origin with opposite Ω (Xiao, Yao, Niu,
+    PRL 99, 236809 (2007)); drawn on top of each other the colour flipped with the drawing order.  Now
+    one panel per valley block, each with its own curvature (the single-valley model's Ω, and −Ω)."""
+    from crosswind.models import band_geometry, build
+    from crosswind.solver.reporting import report
+    figs = _capture(monkeypatch)
+    two, one = build("massive-dirac", valleys=2), build("massive-dirac", valleys=1)
+    report.plot_bands(two, 0.15, tmp_path / "bands.png")
+    panels = _panels(figs["bands.png"])
+    assert len(panels) == 2
+    k = report._band_path(two, 0.15)[0]
+    om = np.asarray(band_geometry(one, k).berry_curvature).ravel()
+    for (_, off, col), sign in zip(panels, (1.0, -1.0)):
+        assert len(np.unique(off, axis=0)) == len(off)          # one colour per drawn point
+        assert np.allclose(col, sign * om, rtol=1e-10, atol=1e-12 * np.max(np.abs(om)))
+    fig = figs["bands.png"]
+    cbar = fig.axes[-1].get_ylabel()
+    assert "Berry curvature Ω [Å²]" in cbar and "symmetric log scale" in cbar
+    labels = [t.get_text() for t in panels[0][0].get_xticklabels()]
+    assert "[1/Å]" in panels[-1][0].get_xlabel() and any("(0, 0)" in t for t in labels)
+    assert "One panel per block" in " ".join(t.get_text() for t in fig.texts)
+
+
+def _qwz_pair(blocks):
+    """Qi–Wu–Zhang square-lattice Chern model (Qi, Wu, Zhang, PRB 74, 085308 (2006)) and, with
+    ``blocks = 2``, its time-reversed partner H(−k)*: identical bands, opposite curvature."""
+    import jax.numpy as jnp
+
+    from crosswind.models import from_function
+    from crosswind.models.domain import Lattice
+    sx = jnp.array([[0, 1], [1, 0]], dtype=jnp.complex128)
+    sy = jnp.array([[0, -1j], [1j, 0]], dtype=jnp.complex128)
+    sz = jnp.array([[1, 0], [0, -1]], dtype=jnp.complex128)
+
+    def h(k, p):
+        c = lambda x: jnp.asarray(x).astype(jnp.complex128)
+        dz = c(p["m"] + jnp.cos(k[0]) + jnp.cos(k[1]))
+        hk = c(jnp.sin(k[0])) * sx + c(jnp.sin(k[1])) * sy + dz * sz
+        partner = -c(jnp.sin(k[0])) * sx + c(jnp.sin(k[1])) * sy + dz * sz
+        return jnp.stack([hk, partner][:blocks])
+    lat = Lattice(vectors=((1.0, 0.0), (0.0, 1.0)), positions=((0.0, 0.0), (0.0, 0.0)))
+    return from_function(h, parameters={"m": (1.0, "eV", "mass")}, domain=lat)
+
+
+def test_band_figure_draws_coincident_lattice_bands_once_with_summed_curvature(monkeypatch, tmp_path):
+    from crosswind.models import band_geometry
+    from crosswind.solver.reporting import report
+    figs = _capture(monkeypatch)
+    pair, single = _qwz_pair(2), _qwz_pair(1)
+    k = report._band_path(single, 0.5)[0]
+    om = np.asarray(band_geometry(single, k).berry_curvature)
+    report.plot_bands(single, 0.5, tmp_path / "one.png")
+    (_, off1, col1), = _panels(figs["one.png"])
+    assert np.allclose(col1, om.ravel())                     # one block: its own curvature
+    report.plot_bands(pair, 0.5, tmp_path / "bands.png")
+    (ax, off, col), = _panels(figs["bands.png"])
+    assert len(off) == len(off1) and len(np.unique(off, axis=0)) == len(off)   # each pair drawn once ...
+    assert np.max(np.abs(col)) <= 1e-9 * np.max(np.abs(om))                     # ... with Ω + (−Ω) = 0
+    labels = [t.get_text() for t in ax.get_xticklabels()]
+    assert labels[0] == "Γ\n(0, 0)" and labels[1] == "M\n(3.14, 0)" and labels[2].startswith("corner\n(3.14, 3.14")
+    assert ax.get_xlabel() == "distance along Γ–M–corner–Γ [1/Å]"
+    text = " ".join(t.get_text() for t in figs["bands.png"].texts)
+    assert "drawn once, coloured by their summed curvature" in text and "cancel" in text
+
+
+# ------------------------------------------------------------------ scaling figure --
+def _scaling_dataset(C=(1.0e-12, 4.0e-14, -1.5e-15), n_t=4):
+    """A dataset of three densities whose E⊥/E∥² follows C0 + C1σ + C2σ² exactly (σ in e²/h) as the
+    temperature changes σ; integration errors 1e-9 relative."""
+    import xarray as xr
+
+    from crosswind.solver.reporting.report import E2H
+    T, mu = np.linspace(10, 160, n_t), np.array([0.12, 0.14, 0.16])
+    s = (3.0 + 40 * (mu[None, :] - 0.1)) * (1.0 + 2.0 * (160 - T[:, None]) / 150)       # e²/h
+    ratio = C[0] + C[1] * s + C[2] * s * s
+    sig = np.zeros(s.shape + (2, 2))
+    sig[..., 0, 0] = sig[..., 1, 1] = s * E2H
+    chi = np.zeros(s.shape + (2, 2, 2))
+    chi[..., 1, 0, 0] = ratio * s * E2H
+    add = lambda a, n: a[:, None, :, None] if n == 0 else a[:, None, :, None, ...]
+    ds = xr.Dataset({
+        "v2w_y_amplitude": (("temperature_K", "tau_fs", "mu_eV", "current_angle_deg"),
+                            add(1e-8 / s, 0)),
+        "nonlinear_ratio": (("temperature_K", "tau_fs", "mu_eV", "current_angle_deg"), add(ratio, 0)),
+        "sigma_bar": (("temperature_K", "tau_fs", "mu_eV", "current_angle_deg", "i", "j"), add(sig, 1)),
+        "chi_bar": (("temperature_K", "tau_fs", "mu_eV", "current_angle_deg", "i", "j", "k"), add(chi, 1)),
+        "error_sigma": (("temperature_K", "tau_fs", "mu_eV", "i", "j"), 1e-9 * sig[:, None]),
+        "error_chi": (("temperature_K", "tau_fs", "mu_eV", "i", "j", "k"), 1e-9 * np.abs(chi[:, None])),
+    }, coords={"temperature_K": ("temperature_K", T, {"units": "K", "long_name": "temperature"}),
+               "tau_fs": ("tau_fs", [100.0], {"units": "fs", "long_name": "relaxation time"}),
+               "mu_eV": ("mu_eV", mu, {"units": "eV", "long_name": "chemical potential"}),
+               "current_angle_deg": ("current_angle_deg", [0.0], {"units": "deg"})})
+    return ds, s, ratio
+
+
+def test_scaling_coefficients_weighted_exact_and_degenerate():
+    """E⊥/E∥² = C0 + C1σ + C2σ² (Du, Wang, Li, Lu, Xie, Nat. Commun. 10, 3047 (2019))."""
+    from crosswind.solver.reporting.report import scaling_coefficients
+    x = np.array([1.0, 2.0, 4.0, 7.0])
+    y = 2.0 + 0.5 * x - 0.1 * x * x
+    c, e, how = scaling_coefficients(x, y, np.full(4, 1e-3))
+    assert how == "error estimates" and np.allclose(c, [2.0, 0.5, -0.1], rtol=1e-10)
+    # absolute weights: the covariance is (AᵀWA)⁻¹ (independent of the residuals)
+    A = np.stack([np.ones(4), x, x * x], 1) / 1e-3
+    assert np.allclose(e, np.sqrt(np.diag(np.linalg.inv(A.T @ A))), rtol=1e-8)
+    c3, e3, how3 = scaling_coefficients(x[:3], y[:3], np.full(3, np.nan))
+    assert how3 is None and np.allclose(c3, [2.0, 0.5, -0.1]) and np.all(np.isnan(e3))
+    assert scaling_coefficients(np.ones(4), y)[2] == "degenerate"
+
+
+def test_scaling_figure_draws_the_fit_labels_every_series_and_starts_at_zero(monkeypatch, tmp_path):
+    """The scaling figure used to promise C0 + C1σ + C2σ² without drawing a fit, label 5 of 12 series
+    and zoom its y axis so that an 8 % drift looked like strong scaling."""
+    import re as _re
+
+    from crosswind.solver.reporting import report
+    figs = _capture(monkeypatch)
+    ds, s, ratio = _scaling_dataset()
+    idx = report.peak_index(ds)
+    assert report.plot_scaling(ds, idx, tmp_path / "scaling.png")
+    fig = figs["scaling.png"]
+    ax, cax = fig.axes
+    fits = [ln for ln in ax.get_lines() if ln.get_gid() == "scaling-fit"]
+    assert len(fits) == 3                                           # one fit per density
+    assert cax.get_ylabel() == "chemical potential [eV]"            # every series labelled by the colour bar
+    lo, hi = ax.get_ylim()
+    assert lo <= 0.0 < hi                                           # a flat line looks flat
+    legend = [t.get_text() for t in ax.get_legend().get_texts()]
+    peak_mu = float(ds["mu_eV"].values[idx["mu_eV"]])
+    assert legend[0].startswith(f"fit at chemical potential = {peak_mu:.3g} eV (peak")
+    got = [float(_re.search(rf"C{j} = \(([-0-9.e+]+) ± ", legend[j + 1]).group(1)) for j in range(3)]
+    assert got == pytest.approx([1.0, 0.04, -0.0015], rel=1e-3)     # pm/V, pm/V per e²/h, per (e²/h)²
+    assert "pm/V per (e²/h)²" in legend[3]
+    change = np.max(np.ptp(ratio, axis=0) / np.max(np.abs(ratio), axis=0))
+    caption = " ".join(t.get_text() for t in fig.texts).replace("\n", " ")
+    assert f"largest relative change of E⊥/E∥² within one chemical potential series: {change:.1%}" in caption
+    assert "Du, Wang, Li, Lu, Xie, Nat. Commun. 10, 3047 (2019)" in caption
+    assert "integration-error estimates" in caption
+
+
+# ------------------------------------------------------------------ k·p validity in the summary --
+def test_summary_states_results_outside_the_kp_validity_window():
+    """μ beyond the energies a k·p model reaches within |k|a ≤ 1 (here massive-dirac, a = 3.2 Å by
+    default: ±1.14 eV) is flagged, and the peak point outside the window gets a warning first."""
+    import xarray as xr
+
+    from crosswind.models import build
+    from crosswind.solver.reporting.report import _validity_lines
+    model = build("massive-dirac", velocity=5e5, tilt=5e4, mass=0.1, valleys=2)
+    ds = xr.Dataset({"mu": (("mu_eV",), np.array([0.13, 1.5]))})
+    top, assumed, cautions = _validity_lines(ds, {"mu_eV": 0}, model, "massive-dirac")
+    assert top == [] and assumed == []
+    assert cautions[0].startswith("- **Outside the model's validity window**: μ at 1 of 2 grid points "
+                                  "(up to μ = 1.5 eV)")
+    assert "results there extrapolate the k·p model beyond its validity" in cautions[0]
+    top, _, _ = _validity_lines(ds, {"mu_eV": 1}, model, "massive-dirac")
+    assert top[0].startswith("> **WARNING: the peak point lies outside the validity window of the k·p model**")
+    inside = xr.Dataset({"mu": (("mu_eV",), np.array([0.13, 0.15]))})
+    top, assumed, cautions = _validity_lines(inside, {"mu_eV": 0}, model, "massive-dirac")
+    assert top == [] == cautions and assumed[0].startswith("- k·p validity: every μ of the sweep (0.13 … 0.15 eV)")
+
+
+def test_demo_summary_says_the_kp_model_is_used_inside_its_window(demo):
+    summary = demo[0]
+    assert "- k·p validity: every μ of the sweep" in _section(summary, "Assumptions")
+    assert "Outside the model's validity window" not in summary and "Scenario check" not in summary

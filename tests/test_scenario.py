@@ -1,5 +1,6 @@
 """Scenario files, sweep runs with checkpoints/resume and the labeled dataset."""
 import json
+import re
 
 import numpy as np
 import pytest
@@ -8,7 +9,7 @@ from crosswind.models import build
 from crosswind.solver import response
 from crosswind.solver.study import sweep as run_mod
 from crosswind.solver.study.sweep import RunError, open_results, run_scenario
-from crosswind.solver.study.scenario import ScenarioError, load_scenario, parse_scenario
+from crosswind.solver.study.scenario import ScenarioError, ScenarioWarning, load_scenario, parse_scenario
 
 GOOD = """
 [material]
@@ -158,3 +159,88 @@ def test_density_axis_goes_through_mu_from_density(tmp_path):
     ds = run_scenario(parse_scenario(text, "dens.toml", base=tmp_path), progress=False)
     # the density computed at the solved μ reproduces the requested density (per point)
     assert np.allclose(ds["density"].values.reshape(-1), [2e16, 3e16], rtol=2e-3)
+
+
+# ------------------------------------------------------------------ plausibility: unit slips --
+def _demo_with(old, new):
+    from crosswind.solver.demo import SCENARIO
+    assert old in SCENARIO
+    return SCENARIO.replace(old, new)
+
+
+DEMO_GATES = "gate_V = {start = 6.0, stop = 60.0, num = 12}"
+
+
+@pytest.mark.parametrize("text, match", [
+    # meV typed as eV: the tmd k·p model reaches 110 eV only far outside any Brillouin zone
+    (lambda: _demo_with(DEMO_GATES, "mu_eV = [110, 150]"),
+     r"s\.toml: \[conditions\] key 'mu_eV': μ = 110 eV is reached by the k·p model `tmd` only at wavevectors "
+     r"beyond 1\.70 1/Å.*Did you mean 0\.11 eV \(110 meV\)\?"),
+    # ps typed as fs: ħ/τ = 3.3 eV
+    (lambda: GOOD.replace("tau_fs = 100", "tau_fs = 0.2"),
+     r"s\.toml: \[conditions\] key 'tau_fs': 0\.2 fs is not a physically possible relaxation time: the level "
+     r"broadening ħ/τ.*Did you mean 200 fs \(0\.2 ps\)\? Allowed: 1 … 1e\+06 fs"),
+    (lambda: _demo_with("tau_impurity_fs = 400.0", "tau_impurity_fs = 0.4"),
+     r"\[conditions\.scattering\] key 'tau_impurity_fs': 0\.4 fs .*Did you mean 400 fs \(0\.4 ps\)\?"),
+    # m^-2 typed into a cm^-2 key: more carriers than unit cells
+    (lambda: _demo_with(DEMO_GATES, "density_cm2 = [1e16, 3e16]"),
+     r"\[conditions\] key 'density_cm2': 1e\+16 cm\^-2 is not a physically possible carrier density.*"
+     r"Did you mean 1e\+12 cm\^-2 \(1e\+16 m\^-2\)\?"),
+    (lambda: _demo_with(DEMO_GATES, "gate_V = [10, 800]"),
+     r"\[conditions\] key 'gate_V': 800 V across 285 nm of dielectric is 2\.81 V/nm, beyond the breakdown field "
+     r"of any gate dielectric \(SiO2 breaks down near 1 V/nm \(Sze & Ng.*Allowed: \|gate_V − gate_offset_V\| up "
+     r"to 2 V/nm × dielectric_nm = 570 V"),
+    (lambda: GOOD.replace("temperature_K = [5, 20]", "temperature_K = [5, 5000]"),
+     r"\[conditions\] key 'temperature_K': 5000 K is not a physically possible temperature: no 2D crystal survives"),
+])
+def test_unit_slips_are_refused_naming_the_likely_unit(tmp_path, text, match):
+    """Values a unit slip produces (meV typed as eV, ps as fs, m⁻² as cm⁻²) used to run; mu_eV = [110, 150]
+    reported 1.8e18 cm⁻² from a k·p model valid near its valleys only.  Ranges and their sources:
+    crosswind.solver.vocabulary (plausibility section)."""
+    p = write(tmp_path, text())
+    with pytest.raises(ScenarioError, match=match):
+        load_scenario(p)
+    assert not (tmp_path / "out").exists()
+
+
+@pytest.mark.parametrize("edit, match", [
+    (("tau_fs = 100", "tau_fs = 5"), r"\[conditions\] key 'tau_fs': 5 fs is an unusual relaxation time \(usual: "
+                                     r"10 … 1e\+05 fs; the level broadening"),
+    (("mu_eV = [0.13, 0.15]", "mu_eV = [0.13, 1.5]"),
+     r"\[conditions\] key 'mu_eV': μ = 1\.5 eV lies outside the validity window -1\.1\d+ … 1\.1\d+ eV of the k·p "
+     r"model \(the energies its bands reach within \|k\| ≤ 0\.312 1/Å of the valley centre, \|k\|a ≤ 1\) of "
+     r"`massive-dirac`; results there extrapolate"),
+    (("temperature_K = [5, 20]", "temperature_K = [5, 2000]"), r"2000 K is an unusual temperature"),
+])
+def test_implausible_values_load_with_a_warning_kept_on_the_scenario(tmp_path, edit, match):
+    p = write(tmp_path, GOOD.replace(*edit))
+    with pytest.warns(ScenarioWarning, match=match):
+        scn = load_scenario(p)
+    assert len(scn.cautions) == 1 and re.search(match, scn.cautions[0]) and str(p) in scn.cautions[0]
+
+
+def test_gate_near_breakdown_warns_with_the_field(tmp_path):
+    with pytest.warns(ScenarioWarning, match=r"key 'gate_V': 200 V across 285 nm of dielectric is 0\.702 V/nm, "
+                                             r"within a factor 2 of dielectric breakdown"):
+        load_scenario(write(tmp_path, _demo_with(DEMO_GATES, "gate_V = [10, 200]")))
+
+
+def test_normal_scenarios_load_silently(tmp_path):
+    """GOOD, the demo and the demo fit scenario: no warning of any kind, no cautions."""
+    import warnings
+
+    from crosswind.solver.demo import FIT_SCENARIO, SCENARIO
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        for text in (GOOD, SCENARIO, FIT_SCENARIO):
+            assert parse_scenario(text, "s.toml", base=tmp_path).cautions == ()
+
+
+def test_model_window_of_a_lattice_is_its_band_range():
+    """Haldane model (Haldane, PRL 61, 2015 (1988)) at φ = 0, M = 0: graphene's bands, ±3t at Γ."""
+    from crosswind.solver.study.scenario import model_window
+    m = build("haldane", t2=0.0, mass=0.0)
+    t = float(m.params["t1"])
+    win = model_window(m)
+    assert win.kind == "lattice" and win.valid == pytest.approx((-3 * t, 3 * t), rel=1e-9)
+    assert win.possible == pytest.approx((-9 * t, 9 * t), rel=1e-9)

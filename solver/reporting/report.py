@@ -19,8 +19,10 @@ every number in it is computed from the dataset.
 """
 from __future__ import annotations
 
+import functools
 import json
 import textwrap
+from dataclasses import replace
 from pathlib import Path
 
 import numpy as np
@@ -39,6 +41,7 @@ from crosswind.solver.engine.occupation import fermi, thermal_energy
 from crosswind.solver.engine.response import neutral_filling
 from crosswind.solver.reporting.plotting import pyplot
 from crosswind.solver.study.files import atomic_figure, atomic_text
+from crosswind.solver.study.scenario import model_window
 from crosswind.solver.vocabulary import CARRIERS, SCATTERING
 
 E2H = E_CHARGE ** 2 / 6.62607015e-34  # e²/h in S
@@ -251,7 +254,14 @@ def fmt_volts(v) -> str:
 
 
 # ----------------------------------------------------------------------------- figures --------
-def _kpath(model, mu):
+def _fmt_k(p) -> str:
+    return "(" + ", ".join(f"{float(x):.3g}" if abs(float(x)) > 1e-12 else "0" for x in p[:2]) + ")"
+
+
+def _band_path(model, mu):
+    """The k path of ``bands.png`` (1/Å): Γ–M–corner–Γ for a lattice, for a continuum model cuts along
+    k_x then k_y through the first valley centre c.  Returns (k points (n, 2), distance along the path
+    x, x label, tick positions, tick labels naming each point with its (k_x, k_y))."""
     if isinstance(model.domain, Lattice):
         b = np.asarray(model.reciprocal_vectors())
         b1, b2 = b[0], b[1]
@@ -261,26 +271,87 @@ def _kpath(model, mu):
         A = 2 * np.array([b1, b2])
         corner = np.linalg.solve(A, np.array([b1 @ b1, b2 @ b2]))
         hexa = abs(abs(np.dot(b1, b2)) / (np.linalg.norm(b1) * np.linalg.norm(b2)) - 0.5) < 1e-6
-        pts = [np.zeros(2), b1 / 2, corner, np.zeros(2)]
-        labels = ["Γ", "M", "K" if hexa else "corner", "Γ"]
-        ks, ticks, s0 = [], [0.0], 0.0
-        for p, q in zip(pts[:-1], pts[1:]):
-            t = np.linspace(0, 1, 120, endpoint=False)
-            ks.append(p[None, :] + t[:, None] * (q - p)[None, :])
-            s0 += float(np.linalg.norm(q - p))
-            ticks.append(s0)
-        ks.append(pts[-1][None, :])
-        k = np.concatenate(ks)
-        s = np.concatenate([[0.0], np.cumsum(np.linalg.norm(np.diff(k, axis=0), axis=1))])
-        return k, s, ticks, labels
-    c = np.asarray(model.domain.centers[0], dtype=float)
-    kmax = _continuum_extent(model, mu)
-    t = np.linspace(-kmax, kmax, 241)
-    kx = np.stack([c[0] + t, np.full_like(t, c[1])], -1)
-    ky = np.stack([np.full_like(t, c[0]), c[1] + t], -1)
-    k = np.concatenate([kx, ky])
-    s = np.concatenate([t + kmax, 2 * kmax + (t + kmax)])
-    return k, s, [0.0, kmax, 2 * kmax, 3 * kmax, 4 * kmax], ["−k_x", "centre", "+k_x | −k_y", "centre", "+k_y"]
+        pts = [np.zeros(2), b1[:2] / 2, corner[:2], np.zeros(2)]
+        names = ["Γ", "M", "K" if hexa else "corner", "Γ"]
+        segments = [(p, q) for p, q in zip(pts[:-1], pts[1:])]
+        tick_pts = [[p] for p in pts]
+        xlabel = "distance along Γ–M–K–Γ [1/Å]" if hexa else "distance along Γ–M–corner–Γ [1/Å]"
+    else:
+        c = np.asarray(model.domain.centers[0], dtype=float)[:2]
+        kmax = _continuum_extent(model, mu)
+        ex, ey = np.array([kmax, 0.0]), np.array([0.0, kmax])
+        segments = [(c - ex, c), (c, c + ex), (c - ey, c), (c, c + ey)]
+        names = ["", "c", "", "c", ""]
+        tick_pts = [[c - ex], [c], [c + ex, c - ey], [c], [c + ey]]
+        xlabel = "k along the cuts [1/Å]: $k_x$ through the valley centre c, then $k_y$"
+    ks, x, ticks, s0 = [], [], [0.0], 0.0
+    for p, q in segments:              # each point once: a segment's end is the next one's start
+        t = np.linspace(0, 1, 120, endpoint=False)
+        ks.append(p[None, :] + t[:, None] * (q - p)[None, :])
+        x.append(s0 + t * float(np.linalg.norm(q - p)))
+        s0 += float(np.linalg.norm(q - p))
+        ticks.append(s0)
+    ks.append(segments[-1][1][None, :])
+    x.append(np.array([s0]))
+    labels = [(f"{n}\n" if n else "") + " | ".join(_fmt_k(p) for p in tp) for n, tp in zip(names, tick_pts)]
+    return np.concatenate(ks), np.concatenate(x), xlabel, ticks, labels
+
+
+@functools.cache
+def _block_functions(hamiltonian, dvector, block: int):
+    """Hamiltonian (and d-vector) of one block alone, with a stable identity per (model function,
+    block) so that JAX compiles each once per process."""
+    def h(k, p):
+        return hamiltonian(k, p)[block:block + 1]
+    if dvector is None:
+        return h, None
+
+    def d(k, p):
+        d0, dv = dvector(k, p)
+        return d0[block:block + 1], dv[block:block + 1]
+    return h, d
+
+
+#: a continuum model with 2 … MAX_SECTOR_PANELS blocks gets one band panel per block
+MAX_SECTOR_PANELS = 4
+
+
+def _sectors(model) -> list:
+    """The models drawn in separate panels: each block of a k·p model with several blocks (valleys and
+    spins all measured from one k origin, so time-reversed partners fold onto each other), else the
+    model itself."""
+    if isinstance(model.domain, Lattice) or not 1 < model.blocks <= MAX_SECTOR_PANELS:
+        return [model]
+    out = []
+    for b in range(model.blocks):
+        h, d = _block_functions(model.hamiltonian, model.dvector, b)
+        out.append(replace(model, hamiltonian=h, dvector=d, blocks=1, jet=None))
+    return out
+
+
+def merge_coincident(energies, curvature, tol):
+    """Bands that coincide in energy at one k-point (sorted energies closer than ``tol`` eV, chained)
+    as one point: returns (k index, group mean energy, summed curvature, multiplicity), flattened over
+    all groups.  Degenerate partners (valleys K and K', spin) have opposite curvature: drawn one on
+    top of the other their colour depended on the drawing order; summed they show the net curvature
+    of the states at that energy (what the Fermi-surface kernels integrate)."""
+    e = np.asarray(energies, dtype=float)
+    om = np.asarray(curvature, dtype=float)
+    order = np.argsort(e, axis=1)
+    e = np.take_along_axis(e, order, axis=1)
+    om = np.take_along_axis(om, order, axis=1)
+    start = np.concatenate([np.ones((e.shape[0], 1), dtype=bool), np.diff(e, axis=1) > tol], axis=1)
+    group = np.cumsum(start, axis=1) - 1
+    n_groups = group[:, -1] + 1
+    flat = (group + np.concatenate([[0], np.cumsum(n_groups)[:-1]])[:, None]).ravel()
+    size = int(n_groups.sum())
+    count = np.bincount(flat, minlength=size)
+    return (np.repeat(np.arange(e.shape[0]), n_groups), np.bincount(flat, e.ravel(), size) / count,
+            np.bincount(flat, om.ravel(), size), count)
+
+
+#: bands closer than this fraction of the plotted energy range coincide on the figure (a marker's size)
+COINCIDE_FRACTION = 0.005
 
 
 def _continuum_extent(model, mu):
@@ -299,32 +370,85 @@ def _continuum_extent(model, mu):
 
 
 def plot_bands(model, mu, path: Path):
+    """Bands along :func:`_band_path` coloured by Berry curvature.  A k·p model with several blocks
+    gets one panel per block (valley/spin sector); within a panel, bands that coincide on the figure
+    (closer than COINCIDE_FRACTION of the energy range) are drawn once with their summed curvature."""
     from matplotlib.colors import SymLogNorm
     plt = pyplot()
-    k, s, ticks, labels = _kpath(model, mu)
-    g = band_geometry(model, k)
-    e, om = np.asarray(g.energies), np.asarray(g.berry_curvature)
-    vmax = float(np.percentile(np.abs(om), 99)) or 1.0
-    fig, ax = plt.subplots(figsize=(6, 4.5))
-    norm = SymLogNorm(linthresh=vmax * 1e-3, vmin=-vmax, vmax=vmax)
-    for n in range(e.shape[1]):
-        sc = ax.scatter(s, e[:, n], c=om[:, n], s=3, cmap="coolwarm", norm=norm)
-    ax.axhline(mu, color="k", lw=0.6, ls="--", label=f"μ = {mu:.4g} eV (peak point)")
-    ax.set_xticks(ticks)
-    ax.set_xticklabels(labels)
-    ax.set_ylabel("energy [eV]")
-    ax.set_title(f"{model.name}: bands coloured by Berry curvature")
-    ax.legend(loc="best", fontsize=8)
-    cb = fig.colorbar(sc, ax=ax, label="Berry curvature Ω [Å²] (symmetric-log scale)", ticks=[-vmax, -vmax * 1e-2, 0.0, vmax * 1e-2, vmax])
-    cb.ax.set_yticklabels([f"{t:.2g}" for t in (-vmax, -vmax * 1e-2, 0.0, vmax * 1e-2, vmax)])
+    k, x, xlabel, ticks, labels = _band_path(model, mu)
+    sectors = _sectors(model)
+    geo = [band_geometry(m, k) for m in sectors]
+    e_all = np.concatenate([np.asarray(g.energies) for g in geo], axis=1)
     lo, hi = mu - 0.5 * max(abs(mu), 0.2), mu + 0.5 * max(abs(mu), 0.2)
     filled = neutral_filling(model)
     if filled > 0:   # show the top of the filled bands too, so the gap is visible
-        top = float(np.max(e[:, :filled]))
+        top = float(np.max(np.sort(e_all, axis=1)[:, :filled]))
         lo = min(lo, top - 0.15 * (hi - min(lo, top)))
-    if np.any((e > lo) & (e < hi)):
-        ax.set_ylim(min(lo, float(np.min(e))) if model.domain.periodic else lo, hi)
-    fig.tight_layout()
+    if not np.any((e_all > lo) & (e_all < hi)):
+        lo, hi = float(np.min(e_all)), float(np.max(e_all))
+    elif model.domain.periodic:
+        lo = min(lo, float(np.min(e_all)))
+    tol = COINCIDE_FRACTION * (hi - lo)
+    merged = [merge_coincident(g.energies, g.berry_curvature, tol) for g in geo]
+    shown = np.concatenate([m[2][(m[1] >= lo) & (m[1] <= hi)] for m in merged])
+    single = np.abs(np.concatenate([np.asarray(g.berry_curvature).ravel() for g in geo]))
+    scale_single = float(np.percentile(single, 99)) if single.size else 0.0
+    vmax = float(np.percentile(np.abs(shown), 99)) if shown.size else 0.0
+    cancel = scale_single > 0 and vmax <= 1e-6 * scale_single     # coincident partners cancel everywhere
+    vmax = vmax if vmax > 0 and not cancel else (scale_single or 1.0)
+    norm = SymLogNorm(linthresh=vmax * 1e-3, vmin=-vmax, vmax=vmax)
+    win = None if model.domain.periodic else model_window(model)
+    beyond = (np.linalg.norm(k - np.asarray(model.domain.centers[0], dtype=float)[None, :2], axis=1) > win.k_valid
+              if win is not None else np.zeros(len(k), dtype=bool))
+    n = len(sectors)
+    rows, cols = (2, 2) if n > 2 else (1, n)
+    height = 1.7 + 3.2 * rows
+    fig, axs = plt.subplots(rows, cols, figsize=(3.2 + 3.4 * cols, height), sharey=True, squeeze=False)
+    for b, (ax, (ki, e, om, _)) in enumerate(zip(axs.ravel(), merged)):
+        sc = ax.scatter(x[ki], e, c=om, s=3, cmap="coolwarm", norm=norm, rasterized=True)
+        ax.axhline(mu, color="k", lw=0.6, ls="--", label=f"μ = {mu:.4g} eV (peak point)")
+        for t in ticks:
+            ax.axvline(t, color="0.8", lw=0.5, zorder=0)
+        if beyond.any():
+            ax.fill_between(x, 0, 1, where=beyond, transform=ax.get_xaxis_transform(), color="0.92", lw=0, zorder=0)
+        ax.set_xticks(ticks)
+        ax.set_xticklabels(labels, fontsize=7)
+        tl = ax.get_xticklabels()
+        tl[0].set_horizontalalignment("left")       # the end labels stay inside their panel
+        tl[-1].set_horizontalalignment("right")
+        ax.set_xlim(float(x[0]), float(x[-1]))
+        ax.set_ylim(lo, hi)
+        if n > 1:
+            ax.set_title(f"block {b + 1} of {n}", fontsize=9)
+        if ax in axs[-1]:
+            ax.set_xlabel(xlabel, fontsize=8)
+        if ax in axs[:, 0]:
+            ax.set_ylabel("energy [eV]")
+    for ax in axs.ravel()[n:]:
+        ax.set_visible(False)
+    axs[0, 0].legend(loc="best", fontsize=7)
+    fig.suptitle(f"{model.name}: bands coloured by Berry curvature"
+                 + (f"\n{model.description}" if n > 1 and model.description else ""), fontsize=10)
+    cticks = [-vmax, -vmax * 1e-2, 0.0, vmax * 1e-2, vmax]
+    left, bottom, top = 0.08 + 0.04 / cols, 1.25 / height, 1 - 0.75 / height
+    fig.subplots_adjust(left=left, right=0.8, bottom=bottom, top=top, wspace=0.08, hspace=0.45)
+    cb = fig.colorbar(sc, cax=fig.add_axes((0.82, bottom, 0.022, top - bottom)), ticks=cticks)
+    cb.set_label("Berry curvature Ω [Å²]" + (", summed over coincident bands" if n == 1 else "")
+                 + f"\nsymmetric log scale (linear within ±{vmax * 1e-3:.2g} Å²)", fontsize=8)
+    cb.ax.set_yticklabels([f"{t:.3g}" for t in cticks])
+    note = ("One panel per block (valley/spin sector) of this k·p model: its valleys are all measured from the "
+            "same k origin, so drawn together time-reversed partners would overlap with opposite curvature. "
+            if n > 1 else "")
+    note += (f"Bands that coincide on the figure (closer than {COINCIDE_FRACTION:.1%} of the energy range"
+             + (", e.g. valley or spin partners" if n == 1 else "") + ") are drawn once, coloured by their "
+             "summed curvature.")
+    if beyond.any():
+        note += (f" Grey: |k − c| > {win.k_valid:.3g} 1/Å, beyond the k·p model's validity (|k|a ≤ 1).")
+    if cancel:
+        note += " Here coincident partners cancel everywhere (white): time-reversed partners carry opposite Ω."
+    elif scale_single == 0:
+        note += " Ω vanishes along this path."
+    fig.text(0.01, 0.01, textwrap.fill(note, 45 + 40 * cols), fontsize=7, va="bottom")
     atomic_figure(fig, path, dpi=120)
     plt.close(fig)
 
@@ -508,31 +632,126 @@ def scaling_axes(ds):
     return [d for d in cand if d in ds.dims and ds.sizes[d] > 1]
 
 
+SCALING_SOURCE = "Du, Wang, Li, Lu, Xie, Nat. Commun. 10, 3047 (2019)"
+
+
+def scaling_coefficients(sigma, ratio, ratio_err=None):
+    """Weighted least squares of E⊥/E∥² = C0 + C1 σ + C2 σ² (the scaling form of Du et al., Nat.
+    Commun. 10, 3047 (2019); docs/theory.md §12.2).  Returns (C0, C1, C2), their standard errors and
+    where the errors come from: the ``ratio_err`` estimates (absolute weights) when they are all
+    positive and finite, else the scatter about the fit (more than 3 points), else ``None`` (NaN errors:
+    three points fix three coefficients exactly); ``"degenerate"`` (NaN coefficients) when fewer than
+    three distinct conductivities (or a singular design) cannot fix them."""
+    x = np.asarray(sigma, dtype=float)
+    y = np.asarray(ratio, dtype=float)
+    err = None if ratio_err is None else np.asarray(ratio_err, dtype=float)
+    weighted = err is not None and bool(np.all(np.isfinite(err)) and np.all(err > 0))
+    w = 1.0 / err if weighted else np.ones_like(y)
+    design = np.stack([np.ones_like(x), x, x * x], axis=1) * w[:, None]
+    u, sv, vt = np.linalg.svd(design, full_matrices=False)
+    if x.size < 3 or np.unique(x).size < 3 or sv[-1] <= 1e-12 * sv[0]:
+        return np.full(3, np.nan), np.full(3, np.nan), "degenerate"
+    coef = vt.T @ ((u.T @ (y * w)) / sv)
+    cov = (vt.T / sv ** 2) @ vt
+    if weighted:
+        how = "error estimates"
+    elif x.size > 3:
+        resid = y * w - design @ coef
+        cov = cov * float(resid @ resid) / (x.size - 3)
+        how = "scatter"
+    else:
+        cov, how = np.full((3, 3), np.nan), None
+    return coef, np.sqrt(np.abs(np.diag(cov))), how
+
+
+def _fmt_pm(v, e, unit):
+    if not np.isfinite(e):
+        return f"{v:.3g} {unit}".rstrip()
+    return f"({v:.4g} ± {e:.2g}) {unit}".rstrip()
+
+
 def plot_scaling(ds, idx, path: Path):
+    """E⊥/E∥² against σ'_xx as temperature (or τ) varies, one series per carrier value (colour bar),
+    each with its fit C0 + C1σ + C2σ² (Du et al. 2019); the coefficients of the peak's series with
+    their uncertainties in the legend; the y axis starts at zero and the largest relative change of a
+    series is printed, so a flat line looks flat."""
     plt = pyplot()
+    from matplotlib import cm
+    from matplotlib.colors import Normalize
     axes = scaling_axes(ds)
     if not axes:
         return False
     name = axes[0]
     carrier = [d for d in grid_axes(ds) if d in CARRIERS][0]
-    fig, ax = plt.subplots(figsize=(5.5, 4.2))
-    n = ds.sizes[carrier]
-    picks = sorted(set(np.linspace(0, n - 1, min(n, 5)).round().astype(int)))
     fr, ur = eng_scale(ds["nonlinear_ratio"].values, "m/V")
-    for ci in picks:
+    cvals = ds[carrier].values
+    norm = Normalize(float(np.min(cvals)), float(np.max(cvals)) if len(cvals) > 1 else float(cvals[0]) + 1)
+    cmap = plt.get_cmap("viridis")
+    fig, ax = plt.subplots(figsize=(6.4, 5.4))
+    ang = float(ds["current_angle_deg"].values[idx["current_angle_deg"]])
+    spans, sig_spans, fits = [], [], {}
+    for ci in range(len(cvals)):
         sel = {d: i for d, i in idx.items() if d not in (name, carrier)}
         sel[carrier] = ci
-        sxx = ds["sigma_bar"].isel(sel).values[..., 0, 0]
-        ratio = ds["nonlinear_ratio"].isel(sel).values
-        ax.plot(sxx / E2H, ratio / fr, "o-", ms=3,
-                label=f"{ds[carrier].attrs.get('long_name', carrier)} = {ds[carrier].values[ci]:.3g} "
-                      f"{ds[carrier].attrs.get('units', '')}")
+        sxx = ds["sigma_bar"].isel(sel).values[..., 0, 0] / E2H
+        syy = ds["sigma_bar"].isel(sel).values[..., 1, 1]
+        chi = ds["chi_bar"].isel(sel).values[..., 1, 0, 0]
+        ratio = ds["nonlinear_ratio"].isel(sel).values / fr
+        ok = np.isfinite(sxx) & np.isfinite(ratio)
+        if ok.sum() < 2:
+            continue
+        sel_pt = {d: i for d, i in sel.items() if d != "current_angle_deg"}
+        e_chi = np.array([_rotated_error(ds["error_chi"].isel({**sel_pt, name: t}).values, ang)[1, 0, 0]
+                          for t in range(ds.sizes[name])])
+        e_sig = ds["error_sigma"].isel(sel_pt).values.reshape(ds.sizes[name], -1).max(axis=1)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            err = np.abs(ratio) * (e_chi / np.abs(chi) + e_sig / np.abs(syy))
+        colour = cmap(norm(float(cvals[ci])))
+        peak = ci == idx[carrier]
+        ax.plot(sxx[ok], ratio[ok], "o", ms=5 if peak else 3.5, color=colour, mec="k" if peak else colour,
+                zorder=3)
+        spans.append(float(np.ptp(ratio[ok]) / np.max(np.abs(ratio[ok]))))
+        sig_spans.append(float(np.max(sxx[ok]) / np.min(sxx[ok])))
+        c, e, how = scaling_coefficients(sxx[ok], ratio[ok], err[ok])
+        if how != "degenerate":
+            xs = np.linspace(0.0, 1.05 * float(np.max(sxx[ok])), 100)
+            ax.plot(xs, c[0] + c[1] * xs + c[2] * xs * xs, "--", lw=1.4 if peak else 0.7, color=colour, zorder=2,
+                    gid="scaling-fit")
+            fits[ci] = (c, e, how)
+    ax.set_xlim(left=0.0)
+    lo, hi = ax.get_ylim()
+    ax.set_ylim(min(lo * 1.05, 0.0), max(hi * 1.05, 0.0))        # from zero: a flat line looks flat
+    unit = {"deg": "°", "1": ""}.get(ds[carrier].attrs.get("units", ""), ds[carrier].attrs.get("units", ""))
+    cname = ds[carrier].attrs.get("long_name", carrier)
+    cb = fig.colorbar(cm.ScalarMappable(norm=norm, cmap=cmap), ax=ax, pad=0.02)
+    cb.set_label(f"{cname} [{unit}]" if unit else cname)
+    if fits:
+        shown = idx[carrier] if idx[carrier] in fits else min(fits)
+        c, e, how = fits[shown]
+        which = "peak, black edge" if shown == idx[carrier] else "the peak's series has no fit"
+        ax.plot([], [], "o--", color="k", mfc="none",
+                label=f"fit at {cname} = {float(cvals[shown]):.3g} {unit} ({which}):".replace("  ", " "))
+        for j, txt in enumerate((_fmt_pm(c[0], e[0], f"{ur}"), _fmt_pm(c[1], e[1], f"{ur} per e²/h"),
+                                 _fmt_pm(c[2], e[2], f"{ur} per (e²/h)²"))):
+            ax.plot([], [], " ", label=f"C{j} = {txt}")
+        ax.legend(fontsize=7, loc="lower right", handlelength=2.5)
+        errs = {"error estimates": "uncertainties from the integration-error estimates",
+                "scatter": "uncertainties from the scatter about the fit",
+                None: "3 points fix the 3 coefficients exactly: no uncertainty"}[how]
+    else:
+        errs = "no fit: a series needs 3 distinct values of σ'_xx"
     ax.set_xlabel(f"$\\sigma'_{{xx}}$ [$e^2/h$], varied through {ds[name].attrs.get('long_name', name)}")
     ax.set_ylabel(f"$E_\\perp/E_\\parallel^2 = \\chi'_{{yxx}}/\\sigma'_{{yy}}$ [{ur}]")
     ax.ticklabel_format(axis="y", style="plain", useOffset=False)
-    ax.set_title("scaling: E⊥/E∥² = C0 + C1 σ + C2 σ² separates mechanisms", fontsize=9)
-    ax.legend(fontsize=7)
-    fig.tight_layout()
+    ax.set_title(f"scaling: E⊥/E∥² = C0 + C1 σ + C2 σ² ({SCALING_SOURCE.split(',')[0]} et al. 2019)",
+                 fontsize=9)
+    change = (f"largest relative change of E⊥/E∥² within one {cname} series: {max(spans):.1%} while σ'_xx "
+              f"changes up to ×{max(sig_spans):.2g}" if spans else "")
+    cap = (f"{change}. Colour: {cname}; dashed: fit per series ({errs}; form of {SCALING_SOURCE}). "
+           "C0: τ-independent (Berry-curvature dipole, side jump); C1, C2: ∝ σ, σ² (nonlinear Drude, skew "
+           "scattering; docs/theory.md §12.2).")
+    fig.text(0.01, 0.01, textwrap.fill(cap, 110), fontsize=7, va="bottom")
+    fig.subplots_adjust(left=0.13, right=0.95, bottom=0.25, top=0.93)
     atomic_figure(fig, path, dpi=110)
     plt.close(fig)
     return True
@@ -682,6 +901,8 @@ def summary_markdown(ds, scn, idx, angle_info=None, info=None, sections=()) -> s
     dev = scn.device
     vxx = abs(complex(g("v_xx")))
     jd, pd = float(g("current_density")), float(g("power_density"))
+    name = scn.material.model or scn.material.tight_binding.name
+    validity_top, validity_assumed, validity_cautions = _validity_lines(ds, idx, info["model"], name)
     lines = [
         "# Crosswind summary",
         "",
@@ -689,6 +910,7 @@ def summary_markdown(ds, scn, idx, angle_info=None, info=None, sections=()) -> s
         f"crosswind {ds.attrs.get('crosswind_version', '?')}.",
         "",
         *_non_finite_warning(ds),
+        *validity_top,
         "## Where the second-harmonic signal peaks",
         "",
         *_headline(ds, scn, idx, info, amp, rms, phase, mu, dens),
@@ -771,6 +993,7 @@ def summary_markdown(ds, scn, idx, angle_info=None, info=None, sections=()) -> s
         "- Uniform fields in an ideal Hall bar driven by an ideal current source (no 2ω or dc current), "
         "contacts and probe geometry ignored.",
         f"- Model limits: {_model_limits(scn)}",
+        *validity_assumed,
         "",
         "## Numerical accuracy",
         "",
@@ -792,6 +1015,8 @@ def summary_markdown(ds, scn, idx, angle_info=None, info=None, sections=()) -> s
         f"- Current heating: the drive is {jd:.3g} A/m of sheet current and dissipates {pd:.3g} W/m² "
         f"(time average) at the peak point; at low temperature this can heat the electrons above the bath — "
         "check that V_2ω scales as I² before trusting a number.",
+        *validity_cautions,
+        *(f"- Scenario check: {c}" for c in getattr(scn, "cautions", ())),
     ]
     if scn.carrier == "gate_V":
         vmax = float(np.max(np.abs(np.asarray(scn.axis("gate_V").values) - dev.gate_offset_V)))
@@ -807,6 +1032,48 @@ def summary_markdown(ds, scn, idx, angle_info=None, info=None, sections=()) -> s
         "",
     ]
     return "\n".join(lines)
+
+
+def model_validity(ds, idx, model) -> dict:
+    """Where the sweep's chemical potentials lie against the model's window
+    (:func:`crosswind.solver.study.scenario.model_window`): ``outside`` (how many of ``total`` grid
+    points lie outside it), ``peak_outside``, the μ range and the window's description; empty when
+    the model's bands are not finite."""
+    win = model_window(model)
+    if win is None:
+        return {}
+    mu = np.asarray(ds["mu"].values, dtype=float)
+    lo, hi = win.valid
+    out = ~((mu >= lo) & (mu <= hi))
+    sel = {d: i for d, i in idx.items() if d in ds["mu"].dims}
+    mu_peak = float(ds["mu"].isel(sel).values)
+    return {"window": win, "outside": int(np.count_nonzero(out)), "total": int(mu.size),
+            "peak_outside": not lo <= mu_peak <= hi, "mu_range": (float(np.nanmin(mu)), float(np.nanmax(mu))),
+            "worst": float(mu.ravel()[np.argmax(np.where(out, np.maximum(lo - mu, mu - hi), -np.inf))])
+            if out.any() else None}
+
+
+def _validity_lines(ds, idx, model, name) -> tuple:
+    """(warning block before the headline, bullets for Assumptions, bullets for Cautions)."""
+    v = model_validity(ds, idx, model)
+    if not v:
+        return [], [], []
+    win, (a, b) = v["window"], v["mu_range"]
+    kp = win.kind == "k·p"
+    if not v["outside"]:
+        return [], ([f"- k·p validity: every μ of the sweep ({a:.4g} … {b:.4g} eV) lies inside {win.describe()}."]
+                    if kp else []), []
+    what = ("results there extrapolate the k·p model beyond its validity" if kp else
+            "every band is full or empty there, so nothing but thermal tails carries the response")
+    bullet = (f"- **Outside the model's {'validity window' if kp else 'band range'}**: μ at {v['outside']} of "
+              f"{v['total']} grid points (up to μ = {v['worst']:.4g} eV) lies outside {win.describe()} of `{name}`; "
+              f"{what}.")
+    top = []
+    if v["peak_outside"]:
+        region = "validity window of the k·p model" if kp else "band range of the model"
+        top = [f"> **WARNING: the peak point lies outside the {region}** `{name}` (μ there outside "
+               f"{win.valid[0]:.4g} … {win.valid[1]:.4g} eV): {what}. See Cautions.", ""]
+    return top, [], [bullet]
 
 
 def _model_limits(scn) -> str:

@@ -22,31 +22,62 @@ Every numeric condition is a value, a list of values, or a sweep {start, stop, n
 "linear" | "log"]}; the grid is the outer product of all axes.  Loading checks everything (keys,
 types, ranges, the model and its parameters) before anything is written; errors are
 :class:`ScenarioError` naming the file, the table and the key, and saying what is allowed.
+
+Plausibility (after the valid ranges): relaxation times, temperatures, densities and the gate field
+are compared with the physical ranges of :mod:`crosswind.solver.vocabulary`, a chemical potential
+with the model's own energy window (:func:`model_window`: the band range of a lattice model, the
+validity window of a k·p model).  A clearly impossible value — most often a unit slip, ``mu_eV =
+110`` for 110 meV or ``tau_fs = 0.2`` for 0.2 ps — is refused with the likely slip named ("Did you
+mean 0.11 eV (110 meV)?"); an implausible one loads with a :class:`ScenarioWarning`, kept in
+``Scenario.cautions`` for the summary.
 """
 from __future__ import annotations
 
 import difflib
 import math
 import tomllib
+import warnings
 from dataclasses import dataclass
 from dataclasses import replace as _replace
 from pathlib import Path
 
+import jax
+import jax.numpy as jnp
 import numpy as np
+from scipy import constants
 
 from crosswind.models import build, catalogue, load_tight_binding
+from crosswind.models.domain import Lattice
 from crosswind.models.strain import uniaxial
+from crosswind.solver.study.chain import gate_capacitance
 from crosswind.solver.study.knobs import (
     KnobError,
     base_model,
     check_knob,
     scenario_knobs,
 )
-from crosswind.solver.vocabulary import CARRIERS, KNOBS, SCATTERING, SCATTERING_DEFAULTS
+from crosswind.solver.vocabulary import (
+    CARRIERS,
+    GATE_FIELD_REFUSE_V_PER_NM,
+    GATE_FIELD_SOURCE,
+    GATE_FIELD_UNIT,
+    GATE_FIELD_WARN_V_PER_NM,
+    K_UNIT,
+    KNOBS,
+    KP_DEFAULT_LATTICE_A,
+    KP_K_MAX,
+    SCATTERING,
+    SCATTERING_DEFAULTS,
+)
 
 
 class ScenarioError(ValueError):
     """A scenario file is malformed; the message names the file, table and key."""
+
+
+class ScenarioWarning(UserWarning):
+    """A scenario value is implausible but loads (a 5 fs relaxation time, μ outside a k·p model's
+    validity window); the message names the file, table and key like a :class:`ScenarioError`."""
 
 
 @dataclass(frozen=True)
@@ -138,6 +169,7 @@ class Scenario:
     figures: bool
     sensitivities: "SensitivitySpec | None" = None
     fit: "FitSpec | None" = None
+    cautions: tuple = ()         # plausibility warnings (file: [table] key 'k': ...), also issued as ScenarioWarning
 
     def axis(self, name: str) -> Axis:
         for a in self.axes:
@@ -177,13 +209,20 @@ _FIT_QUANTITIES = ("V2w", "Vxx", "sigma_xx", "ratio")
 class _Ctx:
     def __init__(self, source: str):
         self.source = source
+        self.cautions: list[str] = []
+
+    def _where(self, table: str, key: str | None) -> str:
+        return f"{self.source}: [{table}]" + (f" key '{key}'" if key else "")
 
     def fail(self, table: str, key: str | None, problem: str, allowed: str = ""):
-        where = f"[{table}]" + (f" key '{key}'" if key else "")
-        msg = f"{self.source}: {where}: {problem}"
+        msg = f"{self._where(table, key)}: {problem}"
         if allowed:
             msg += f" Allowed: {allowed}."
         raise ScenarioError(msg)
+
+    def warn(self, table: str, key: str | None, problem: str):
+        """An implausible value: kept for ``Scenario.cautions`` (issued when loading finishes)."""
+        self.cautions.append(f"{self._where(table, key)}: {problem}")
 
     def check_keys(self, table: str, data: dict, allowed: tuple):
         for key in data:
@@ -345,7 +384,7 @@ def _material(ctx, data, base: Path):
     if probe.dim != 2:
         ctx.fail("material", "model" if has_m else "tight_binding",
                  f"the device layer handles 2D sheets; this model is {probe.dim}D.", "a 2D model")
-    return mat, axis
+    return mat, axis, probe
 
 
 def _device(ctx, data):
@@ -384,6 +423,7 @@ def _conditions(ctx, data, dev: Device, device_angle):
     if "temperature_K" not in t:
         ctx.fail("conditions", "temperature_K", "missing.", "a value, list or sweep in K (>= 0)")
     temps = _values(ctx, "conditions", "temperature_K", t["temperature_K"], nonneg=True)
+    _plausible(ctx, "conditions", "temperature_K", temps)
     axes_scat = []
     if "tau_fs" in t and "scattering" in t:
         ctx.fail("conditions", "tau_fs", "give either tau_fs or [conditions.scattering], not both.")
@@ -405,19 +445,168 @@ def _conditions(ctx, data, dev: Device, device_angle):
                 ctx.fail("conditions.scattering", key, f"|{key}| must be <= {knob.high:g}, got "
                          f"{max(vals, key=abs):g} (tau would overflow across the band).",
                          "exponents of order 1, e.g. -0.5 (acoustic phonons) or 1 (charged impurities)")
+            if KNOBS[key].why:
+                _plausible(ctx, "conditions.scattering", key, vals)
             axes_scat.append(_axis(key, vals))
     else:
         kind = "constant"
         if "tau_fs" not in t:
             ctx.fail("conditions", "tau_fs", "missing.", "tau_fs (fs) or a [conditions.scattering] table")
-        axes_scat.append(_axis("tau_fs", _values(ctx, "conditions", "tau_fs", t["tau_fs"], positive=True)))
+        taus = _values(ctx, "conditions", "tau_fs", t["tau_fs"], positive=True)
+        _plausible(ctx, "conditions", "tau_fs", taus)
+        axes_scat.append(_axis("tau_fs", taus))
     if "current_angle_deg" in t and device_angle is not None:
         ctx.fail("conditions", "current_angle_deg", "also given in [device]; give it in one place.")
     angle = (_values(ctx, "conditions", "current_angle_deg", t["current_angle_deg"])
              if "current_angle_deg" in t else (device_angle or (0.0,)))
     cvals = _values(ctx, "conditions", carrier, t[carrier])
+    if carrier == "density_cm2":
+        _plausible(ctx, "conditions", carrier, cvals)
+    elif carrier == "gate_V":
+        _plausible_gate(ctx, dev, cvals)
     axes = [_axis("temperature_K", temps)] + axes_scat + [_axis(carrier, cvals)]
     return carrier, kind, axes, _axis("current_angle_deg", angle)
+
+
+# ----------------------------------------------------------------------------- plausibility ---
+def _range_text(low: float, high: float, unit: str) -> str:
+    if math.isinf(low) and math.isinf(high):
+        return "any value"
+    if math.isinf(low):
+        return f"up to {high:.3g} {unit}"
+    if math.isinf(high):
+        return f"from {low:.3g} {unit}"
+    if low == -high:
+        return f"|value| up to {high:.3g} {unit}"
+    return f"{low:.3g} … {high:.3g} {unit}"
+
+
+def _plausible(ctx, table: str, key: str, values, knob=None) -> None:
+    """Refuse values outside the knob's ``refuse`` range (naming the likely unit slip), warn about
+    values outside its ``warn`` range (ranges and reasons: :mod:`crosswind.solver.vocabulary`)."""
+    k = knob or KNOBS[key]
+    usual = _range_text(k.warn_low, k.warn_high, k.unit)
+    bad = [v for v in values if not k.refuse_low <= v <= k.refuse_high]
+    if bad:
+        ctx.fail(table, key, f"{bad[0]:g} {k.unit} is not a physically possible {k.long_name}: {k.why}."
+                 f"{k.slip_hint(bad[0])}", f"{_range_text(k.refuse_low, k.refuse_high, k.unit)}; outside {usual} "
+                 "it loads with a warning")
+    odd = [v for v in values if not k.warn_low <= v <= k.warn_high]
+    if odd:
+        ctx.warn(table, key, f"{odd[0]:g} {k.unit} is an unusual {k.long_name} (usual: {usual}; {k.why}); "
+                 "check the value and its unit.")
+
+
+@dataclass(frozen=True)
+class ModelWindow:
+    """The energies (eV) where a model describes a crystal.  ``valid``: the band range of a lattice
+    model (coarse k grid over the zone), or for a continuum (k·p) model the energies its bands reach
+    within |k| ≤ ``k_valid`` (1/Å) of the valley centres; ``possible``: beyond it by the window's
+    width (a lattice) or reached only beyond every Brillouin zone, |k| > KP_K_MAX (a k·p model)."""
+
+    kind: str                    # "lattice" | "k·p"
+    valid: tuple                 # (low, high) eV
+    possible: tuple              # (low, high) eV
+    k_valid: float | None = None
+
+    def describe(self) -> str:
+        lo, hi = self.valid
+        if self.kind == "lattice":
+            return f"the band range {lo:.4g} … {hi:.4g} eV of the lattice model (every band full or empty outside it)"
+        return (f"the validity window {lo:.4g} … {hi:.4g} eV of the k·p model (the energies its bands reach within "
+                f"|k| ≤ {self.k_valid:.3g} {K_UNIT} of the valley centre, |k|a ≤ 1)")
+
+
+@jax.jit
+def _hamiltonians(model, k):
+    return jax.vmap(model.hamiltonian, in_axes=(0, None))(k, model.params)
+
+
+def _energies(model, k) -> np.ndarray:
+    h = np.asarray(_hamiltonians(model, jnp.asarray(k, dtype=jnp.float64)))
+    if not np.all(np.isfinite(h)):
+        return np.full((len(k), 1), np.nan)
+    return np.linalg.eigvalsh(h).reshape(len(k), -1)
+
+
+def _disc(centers, radius: float, n_r: int = 12, n_phi: int = 24) -> np.ndarray:
+    r = np.linspace(0.0, radius, n_r)
+    phi = np.linspace(0.0, 2 * np.pi, n_phi, endpoint=False)
+    ring = (r[:, None, None] * np.stack([np.cos(phi), np.sin(phi)], -1)[None]).reshape(-1, 2)
+    return np.concatenate([np.asarray(c, dtype=float)[None, :2] + ring for c in centers])
+
+
+def model_window(model) -> ModelWindow | None:
+    """The :class:`ModelWindow` of a 2D model (None when its bands are not finite there).  A k·p
+    model is trusted within |k| ≤ max(1/a, its curvature scale), a = its ``lattice_constant`` or
+    KP_DEFAULT_LATTICE_A (vocabulary)."""
+    if isinstance(model.domain, Lattice):
+        b = np.asarray(model.reciprocal_vectors())[:2, :2]
+        u = np.linspace(-0.5, 0.5, 25)                  # holds Γ, M and (multiples of 1/3) K
+        e = _energies(model, np.stack(np.meshgrid(u, u), -1).reshape(-1, 2) @ b)
+        if not np.all(np.isfinite(e)):
+            return None
+        lo, hi = float(e.min()), float(e.max())
+        width = hi - lo
+        return ModelWindow("lattice", (lo, hi), (lo - width, hi + width))
+    dom = model.domain
+    a = float(model.params["lattice_constant"]) if "lattice_constant" in model.params else KP_DEFAULT_LATTICE_A
+    scale = float(dom.scale_for(model.params) if hasattr(dom, "scale_for") else dom.scale)
+    k_valid = max(1.0 / a, scale)
+    e_valid = _energies(model, _disc(dom.centers, k_valid))
+    e_max = _energies(model, _disc(dom.centers, max(KP_K_MAX, k_valid)))
+    if not (np.all(np.isfinite(e_valid)) and np.all(np.isfinite(e_max))):
+        return None
+    lo, hi = float(e_valid.min()), float(e_valid.max())
+    width = hi - lo
+    return ModelWindow("k·p", (lo, hi), (float(e_max.min()) - width, float(e_max.max()) + width), k_valid)
+
+
+def _plausible_mu(ctx, model, values) -> None:
+    """μ against the model's window: refused beyond ``possible``, a warning outside ``valid``."""
+    win = model_window(model)
+    if win is None:
+        return
+    k = KNOBS["mu_eV"]
+    (vlo, vhi), (plo, phi) = win.valid, win.possible
+    bad = [v for v in values if not plo <= v <= phi]
+    if bad:
+        v = bad[0]
+        where = (f"beyond the band range {vlo:.4g} … {vhi:.4g} eV of `{model.name}` by more than its width: every "
+                 "band is full or empty there" if win.kind == "lattice" else
+                 f"reached by the k·p model `{model.name}` only at wavevectors beyond {KP_K_MAX:.2f} {K_UNIT} from "
+                 "its valley centre, outside the Brillouin zone of any 2D crystal")
+        ctx.fail("conditions", "mu_eV", f"μ = {v:g} eV is {where}.{k.slip_hint(v, vlo, vhi)}",
+                 f"{plo:.4g} … {phi:.4g} eV; outside {win.describe()} it loads with a warning")
+    odd = [v for v in values if not vlo <= v <= vhi]
+    if odd:
+        ctx.warn("conditions", "mu_eV", f"μ = {odd[0]:g} eV lies outside {win.describe()} of `{model.name}`; "
+                 "results there extrapolate the model beyond its validity.")
+
+
+def _plausible_gate(ctx, dev, values) -> None:
+    """The gate field |V − V0|/d against dielectric breakdown and the induced density against the
+    density ranges (parallel plate, as the chain computes it)."""
+    dv = max(abs(v - dev.gate_offset_V) for v in values)
+    if dev.dielectric_nm is not None:
+        f = dv / dev.dielectric_nm
+        allowed = (f"|gate_V − gate_offset_V| up to {GATE_FIELD_REFUSE_V_PER_NM:g} {GATE_FIELD_UNIT} × dielectric_nm "
+                   f"= {GATE_FIELD_REFUSE_V_PER_NM * dev.dielectric_nm:g} V")
+        text = (f"{dv:g} V across {dev.dielectric_nm:g} nm of dielectric is {f:.3g} {GATE_FIELD_UNIT}")
+        if f > GATE_FIELD_REFUSE_V_PER_NM:
+            ctx.fail("conditions", "gate_V", f"{text}, beyond the breakdown field of any gate dielectric "
+                     f"({GATE_FIELD_SOURCE}). Check gate_V and [device] dielectric_nm (nm).", allowed)
+        if f > GATE_FIELD_WARN_V_PER_NM:
+            ctx.warn("conditions", "gate_V", f"{text}, within a factor 2 of dielectric breakdown "
+                     f"({GATE_FIELD_SOURCE}); check gate_V and [device] dielectric_nm.")
+    n_cm2 = float(gate_capacitance(dev)) * dv / constants.e * 1e-4
+    k = KNOBS["density_cm2"]
+    if n_cm2 > k.refuse_high:
+        ctx.fail("conditions", "gate_V", f"the gate induces {n_cm2:.3g} {k.unit}: {k.why}. Check gate_V and the "
+                 "[device] capacitance.", f"an induced |density| up to {k.refuse_high:g} {k.unit}")
+    if n_cm2 > k.warn_high:
+        ctx.warn("conditions", "gate_V", f"the gate induces {n_cm2:.3g} {k.unit}, an unusual density (usual: up to "
+                 f"{k.warn_high:g} {k.unit}; {k.why}); check gate_V and the [device] capacitance.")
 
 
 def _axis(knob: str, values) -> Axis:
@@ -461,7 +650,18 @@ def _output(ctx, data, base: Path):
 
 def parse_scenario(text: str, source: str = "<string>", base: Path | str | None = None) -> Scenario:
     """A :class:`Scenario` from TOML text; ``base`` is the folder relative paths refer to.  Every
-    problem is a :class:`ScenarioError` naming the file (never another exception type)."""
+    problem is a :class:`ScenarioError` naming the file (never another exception type); every
+    implausible value a :class:`ScenarioWarning` (also kept in ``Scenario.cautions``)."""
+    return _issue_cautions(_parse_checked(text, source, base))
+
+
+def _issue_cautions(scn: Scenario) -> Scenario:
+    for text in scn.cautions:       # stack: here, parse_scenario / load_scenario, their caller
+        warnings.warn(ScenarioWarning(text), stacklevel=3)
+    return scn
+
+
+def _parse_checked(text: str, source: str, base: Path | str | None) -> Scenario:
     try:
         return _parse_scenario(text, source, base)
     except ScenarioError:
@@ -487,9 +687,11 @@ def _parse_scenario(text: str, source: str, base: Path | str | None) -> Scenario
     for need in ("material", "device", "conditions"):
         if need not in data:
             ctx.fail(need, None, "missing table.", "[material], [device], [conditions], [numerics], [output]")
-    material, strain_axis = _material(ctx, data["material"], base)
+    material, strain_axis, probe = _material(ctx, data["material"], base)
     device, dev_angle = _device(ctx, data["device"])
     carrier, kind, axes, angle_axis = _conditions(ctx, data["conditions"], device, dev_angle)
+    if carrier == "mu_eV":
+        _plausible_mu(ctx, probe, axes[-1].values)
     numerics = _numerics(ctx, data.get("numerics", {}))
     folder, figs = _output(ctx, data.get("output", {}), base)
     all_axes = ([strain_axis] if strain_axis else []) + axes + [angle_axis]
@@ -498,7 +700,7 @@ def _parse_scenario(text: str, source: str, base: Path | str | None) -> Scenario
                    figures=figs)
     sens = _sensitivities(ctx, data["sensitivities"], scn) if "sensitivities" in data else None
     fit = _fit(ctx, data["fit"], scn, base) if "fit" in data else None
-    return _replace(scn, sensitivities=sens, fit=fit)
+    return _replace(scn, sensitivities=sens, fit=fit, cautions=tuple(ctx.cautions))
 
 
 def _level(ctx, table, key, v, default):
@@ -610,4 +812,4 @@ def load_scenario(path) -> Scenario:
     except UnicodeDecodeError as exc:
         raise ScenarioError(f"{p}: not UTF-8 text (byte 0x{exc.object[exc.start]:02x} at position {exc.start}); "
                             "save the scenario file as UTF-8.") from exc
-    return parse_scenario(text, str(p), base=p.resolve().parent)
+    return _issue_cautions(_parse_checked(text, str(p), base=p.resolve().parent))
