@@ -60,7 +60,8 @@ DESIGN_KNOBS = ("strain", "strain_angle_deg", "current_angle_deg", "gate_V", "de
 #: objective → (what it is, the vocabulary entry of its unit)
 OBJECTIVES = {"snr": "signal-to-noise ratio of |V_y^2ω| (rms) at the lock-in time constant",
               "amplitude": "transverse 2ω voltage amplitude |V_y^2ω|",
-              "dipole_ratio": "|χ'_dipole / χ'_drude| of χ'_yxx (bar frame)"}
+              "dipole_ratio": "|χ'_dipole / χ'_drude| of χ'_yxx (bar frame; at most 1e6: a smaller Drude part "
+                              "counts as zero)"}
 _OBJECTIVE_UNIT = {"snr": DEVICE_FIELDS["snr_v2w_y"].unit_2d, "amplitude": OUTPUTS["V2w"].unit_2d,
                    "dipole_ratio": DEVICE_FIELDS["snr_v2w_y"].unit_2d}
 #: [design.limits] key → knob of the vocabulary
@@ -74,6 +75,8 @@ _TABLE = ("objective", "knobs", "at", "limits", "starts", "resolution", "map_poi
 _KNOB_SPEC = ("initial", "bounds")
 _DEFAULT_DIELECTRIC_NM = 285.0       # thermal path when the scenario has no gate dielectric (Si/SiO2)
 _ACTIVE = 1e-5                       # a constraint g = 1 − value/limit below this is active
+_AT_BOUND = 1e-6                     # a knob within this fraction of its range from a bound sits on it
+ZERO_SHARE = 1e-6                    # dipole_ratio: a Drude part below this share of Σ|parts| is zero
 _SEED = 2024
 DIMENSIONLESS = DEVICE_FIELDS["snr_v2w_y"].unit_2d
 #: colour-bar label of each objective in the map
@@ -253,9 +256,10 @@ def _point(scn, resolution, settings, vals: dict, objective: str) -> DesignPoint
     L, d_m = d.length_um * 1e-6, dielectric_m(d)
     m = noise.assess(out.sigma_bar[0], v2y, v2x, p, T, width_m=W * 1e-6, length_m=L, dielectric_m=d_m,
                      settings=settings, seebeck_bar=seebeck)
-    dip = rotate_chi(r.chi_parts["dipole"][0], angle)[1, 0, 0].real
-    dru = rotate_chi(r.chi_parts["drude"][0], angle)[1, 0, 0].real
-    ratio = jnp.abs(dip) / jnp.maximum(jnp.abs(dru), 1e-300)
+    dip, dru, intr = (jnp.abs(rotate_chi(r.chi_parts[k][0], angle)[1, 0, 0].real)
+                      for k in ("dipole", "drude", "intrinsic"))
+    # a Drude part below ZERO_SHARE of the total counts as zero (the ratio saturates at 1/ZERO_SHARE)
+    ratio = dip / jnp.maximum(dru, ZERO_SHARE * (dip + dru + intr) + 1e-300)
     amp = jnp.abs(v2y)
     gate = (jnp.abs(jnp.asarray(vals["gate_V"], dtype=jnp.float64).reshape(())) / d_m
             if "gate_V" in vals else jnp.asarray(0.0))
@@ -447,10 +451,10 @@ def _multipliers(prob: _Problem, u):
             cols.append(jac[1 + i])
             tags.append(("limit", i))
     for j in range(len(u)):
-        if u[j] <= 1e-7:
+        if u[j] <= _AT_BOUND:
             cols.append(np.eye(len(u))[j])
             tags.append(("low", j))
-        elif u[j] >= 1 - 1e-7:
+        elif u[j] >= 1 - _AT_BOUND:
             cols.append(-np.eye(len(u))[j])
             tags.append(("high", j))
     if not cols:
@@ -495,7 +499,7 @@ def design(scn, spec: DesignSpec | None = None, *, settings: noise.NoiseSettings
     span = prob.hi - prob.lo
     knobs = []
     for j, name in enumerate(prob.names):
-        bound = "low" if ("low", j) in lam else ("high" if ("high", j) in lam else "")
+        bound = "low" if u[j] <= _AT_BOUND else ("high" if u[j] >= 1 - _AT_BOUND else "")
         dlog = jac[0, j]
         knobs.append(KnobResult(name=name, unit=KNOBS[name].unit, value=float(prob.x(u)[j]), low=float(prob.lo[j]),
                                 high=float(prob.hi[j]), at_bound=bound,
