@@ -12,16 +12,18 @@ respect to J — the multiplier of that limit — is exactly 2.
 import json
 import math
 import tomllib
+from pathlib import Path
 
 import jax
 import numpy as np
 import pytest
 
+from crosswind.solver.cli import main
 from crosswind.solver.engine import noise
 from crosswind.solver.study import design as dz
 from crosswind.solver.study.chain import evaluate
 from crosswind.solver.study.knobs import base_values
-from crosswind.solver.study.scenario import ScenarioError, _Ctx, parse_scenario
+from crosswind.solver.study.scenario import ScenarioError, _Ctx, load_scenario, parse_scenario
 from crosswind.solver.study.sweep import run_scenario
 
 SCN = """
@@ -212,3 +214,53 @@ def test_measurability_of_a_sweep_dataset(folder):
     assert lines[0].startswith(f"**{noise.VERDICTS[code].capitalize()}** at the chosen settings (at the 2ω peak")
     assert "SNR 10 after" in lines[0] and "Over the sweep:" in lines[2]
     assert any(line.startswith("- Joule heating at the peak") for line in lines)
+
+
+DESIGN = """
+[design]
+objective = "amplitude"
+starts = 1
+map_points = 0
+knobs = {current_angle_deg = {initial = 20.0, bounds = [-45.0, 45.0]}}
+at = {width_um = 5.0}
+[design.limits]
+current_density_A_m = 3.0
+"""
+SETTINGS = "current_uA = 10\ntime_constant_ms = 300\nfilter_slope_dB_oct = 12\nprobe_width_um = 0.8\n"
+
+
+def test_a_scenario_file_with_a_design_table_and_measurement_keys(folder):
+    text = SCN.format(density="3e12").replace("current_uA = 10\n", SETTINGS) + DESIGN
+    scn = parse_scenario(text, source="d.toml", base=folder)
+    assert scn.design.objective == "amplitude" and scn.design.knobs == (("current_angle_deg", 20.0, -45.0, 45.0),)
+    assert scn.design.at == (("width_um", 5.0),) and scn.design.limits == (("current_density_A_m", 3.0),)
+    s = dz.noise_settings(scn.device)
+    assert (s.time_constant_ms, s.filter_slope_dB_oct, s.probe_width_um, s.amplifier_noise_nV_rtHz) == (300, 12, 0.8, 4)
+    with pytest.raises(ScenarioError, match=r"\[device\] key 'time_constant_s': unknown key. Did you mean "
+                                            r"'time_constant_ms'\?"):
+        parse_scenario(text.replace("time_constant_ms", "time_constant_s"), source="d.toml", base=folder)
+    with pytest.raises(ScenarioError, match=r"\[device\] key 'filter_slope_dB_oct': got 9. Allowed: 6, 12, 18 or 24"):
+        parse_scenario(text.replace("filter_slope_dB_oct = 12", "filter_slope_dB_oct = 9"), source="d.toml",
+                       base=folder)
+    with pytest.raises(ScenarioError, match=r"\[design\] key 'objectif': unknown key"):
+        parse_scenario(text.replace('objective = "amplitude"', 'objectif = "snr"'), source="d.toml", base=folder)
+
+
+def test_the_documented_example_loads():
+    scn = load_scenario(Path(__file__).resolve().parents[1] / "docs" / "design" / "wse2_design.toml")
+    assert scn.design.objective == "snr" and [k[0] for k in scn.design.knobs] == [
+        "current_angle_deg", "gate_V", "width_um", "current_uA", "strain"]
+    assert dict(scn.design.limits) == {"current_density_A_m": 20.0, "temperature_rise_K": 0.5,
+                                       "gate_field_V_nm": 0.3, "strain": 0.015}
+    assert dz.noise_settings(scn.device).dielectric_conductivity_W_mK == 0.2
+
+
+def test_the_design_command(folder, capsys):
+    path = folder / "cmd.toml"
+    path.write_text(SCN.format(density="3e12") + DESIGN, encoding="utf-8")
+    rc = main(["design", str(path), "--output", str(folder / "cmd-out"), "--no-progress"])
+    out = capsys.readouterr().out
+    assert rc == 0, out
+    assert "design_summary.md, design.json, optimal_scenario.toml" in out
+    assert (folder / "cmd-out" / "optimal_scenario.toml").is_file()
+    assert main(["design", str(folder / "missing.toml")]) == 2

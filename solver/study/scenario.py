@@ -9,7 +9,11 @@ Tables and keys (units in the key names):
                           magnitude, angle_deg, poisson (uniaxial; ``magnitude`` may be a sweep)
     [device]              width_um, length_um, current_uA (amplitude of I0 sin ωt), frequency_Hz,
                           current_angle_deg, dielectric_nm, permittivity | capacitance_nF_cm2,
-                          gate_offset_V
+                          gate_offset_V; measurement and thermal settings (docs/theory.md §15):
+                          probe_width_um, probe_misalignment, thermal_asymmetry,
+                          amplifier_noise_nV_rtHz, time_constant_ms, filter_slope_dB_oct,
+                          averaging_limit_min, substrate_um, substrate_conductivity_W_mK,
+                          dielectric_conductivity_W_mK
     [conditions]          exactly one of gate_V, density_cm2, mu_eV; temperature_K;
                           tau_fs | [conditions.scattering]; current_angle_deg
     [conditions.scattering]  kind = "constant" (tau_fs) | "power-law" (tau0_fs, exponent,
@@ -17,6 +21,8 @@ Tables and keys (units in the key names):
                           tau_phonon_fs, reference_temperature_K)
     [numerics]            rtol, resolution ("auto" or a level 0..4), intrinsic, density_resolution
     [output]              folder (relative to the scenario file), figures
+    [design]              objective, knobs {name = {initial, bounds}}, at, limits, starts, resolution,
+                          map_points (``crosswind design``; :func:`crosswind.solver.study.design.parse_design`)
 
 Every numeric condition is a value, a list of values, or a sweep {start, stop, num[, spacing =
 "linear" | "log"]}; the grid is the outer product of all axes.  Loading checks everything (keys,
@@ -50,6 +56,7 @@ from crosswind.models import build, catalogue, load_tight_binding
 from crosswind.models.domain import Lattice
 from crosswind.models.strain import uniaxial
 from crosswind.solver.study.chain import gate_capacitance
+from crosswind.solver.study.design import SETTINGS_KEYS, DesignSpec, parse_design
 from crosswind.solver.study.knobs import (
     KnobError,
     base_model,
@@ -125,6 +132,17 @@ class Device:
     permittivity: float | None
     capacitance_nF_cm2: float | None
     gate_offset_V: float
+    # measurement and thermal settings (engine/noise.py); None: the default of NoiseSettings
+    probe_width_um: float | None = None
+    probe_misalignment: float | None = None
+    thermal_asymmetry: float | None = None
+    amplifier_noise_nV_rtHz: float | None = None
+    time_constant_ms: float | None = None
+    filter_slope_dB_oct: float | None = None
+    averaging_limit_min: float | None = None
+    substrate_um: float | None = None
+    substrate_conductivity_W_mK: float | None = None
+    dielectric_conductivity_W_mK: float | None = None
 
 
 @dataclass(frozen=True)
@@ -169,6 +187,7 @@ class Scenario:
     figures: bool
     sensitivities: "SensitivitySpec | None" = None
     fit: "FitSpec | None" = None
+    design: DesignSpec | None = None
     cautions: tuple = ()         # plausibility warnings (file: [table] key 'k': ...), also issued as ScenarioWarning
 
     def axis(self, name: str) -> Axis:
@@ -187,12 +206,12 @@ class Scenario:
 
 
 # ----------------------------------------------------------------------------- schema ---------
-_TOP = ("material", "device", "conditions", "numerics", "output", "sensitivities", "fit")
+_TOP = ("material", "device", "conditions", "numerics", "output", "sensitivities", "fit", "design")
 _MATERIAL = ("model", "tight_binding", "parameters", "strain")
 _STRAIN_TENSOR = ("xx", "yy", "xy")
 _STRAIN_UNIAXIAL = ("magnitude", "angle_deg", "poisson")
 _DEVICE = ("width_um", "length_um", "current_uA", "frequency_Hz", "current_angle_deg", "dielectric_nm",
-           "permittivity", "capacitance_nF_cm2", "gate_offset_V")
+           "permittivity", "capacitance_nF_cm2", "gate_offset_V") + SETTINGS_KEYS
 _CARRIERS = CARRIERS
 _SCATTERING = SCATTERING
 _SCAT_DEFAULTS = SCATTERING_DEFAULTS
@@ -402,9 +421,24 @@ def _device(ctx, data):
                  frequency_Hz=g("frequency_Hz", nonneg=True) if "frequency_Hz" in t else 17.0,
                  dielectric_nm=g("dielectric_nm", positive=True), permittivity=g("permittivity", positive=True),
                  capacitance_nF_cm2=g("capacitance_nF_cm2", positive=True),
-                 gate_offset_V=g("gate_offset_V") or 0.0)
+                 gate_offset_V=g("gate_offset_V") or 0.0, **_settings(ctx, t))
     angle = _values(ctx, "device", "current_angle_deg", t["current_angle_deg"]) if "current_angle_deg" in t else None
     return dev, angle
+
+
+def _settings(ctx, t) -> dict:
+    """The measurement and thermal keys of [device], checked against their vocabulary ranges."""
+    out = {}
+    for k in SETTINGS_KEYS:
+        if k in t:
+            v = _number(ctx, "device", k, t[k])
+            problem = KNOBS[k].check(v)
+            if problem:
+                ctx.fail("device", k, problem + ".")
+            if k == "filter_slope_dB_oct" and v not in (6, 12, 18, 24):
+                ctx.fail("device", k, f"got {v:g}.", "6, 12, 18 or 24 (dB/oct)")
+            out[k] = v
+    return out
 
 
 def _conditions(ctx, data, dev: Device, device_angle):
@@ -700,7 +734,8 @@ def _parse_scenario(text: str, source: str, base: Path | str | None) -> Scenario
                    figures=figs)
     sens = _sensitivities(ctx, data["sensitivities"], scn) if "sensitivities" in data else None
     fit = _fit(ctx, data["fit"], scn, base) if "fit" in data else None
-    return _replace(scn, sensitivities=sens, fit=fit, cautions=tuple(ctx.cautions))
+    design = parse_design(ctx, data["design"], scn) if "design" in data else None
+    return _replace(scn, sensitivities=sens, fit=fit, design=design, cautions=tuple(ctx.cautions))
 
 
 def _level(ctx, table, key, v, default):
