@@ -40,6 +40,7 @@ from crosswind.solver.engine.device import (
 from crosswind.solver.engine.occupation import fermi, thermal_energy
 from crosswind.solver.engine.response import neutral_filling
 from crosswind.solver.reporting.plotting import pyplot
+from crosswind.solver.study.design import measurability_lines
 from crosswind.solver.study.files import atomic_figure, atomic_text
 from crosswind.solver.study.scenario import model_window
 from crosswind.solver.vocabulary import CARRIERS, SCATTERING
@@ -909,6 +910,9 @@ def summary_markdown(ds, scn, idx, angle_info=None, info=None, sections=()) -> s
         f"Scenario: `{Path(str(scn.path)).name}` — model `{scn.material.model or scn.material.tight_binding.name}`, "
         f"crosswind {ds.attrs.get('crosswind_version', '?')}.",
         "",
+        "## Measurability",      # leads the summary: verdict, SNR and averaging time at the peak (docs/design.md)
+        "",
+        *measurability_lines(ds, scn, idx),
         *_non_finite_warning(ds),
         *validity_top,
         "## Where the second-harmonic signal peaks",
