@@ -256,8 +256,9 @@ def _point(scn, resolution, settings, vals: dict, objective: str) -> DesignPoint
     L, d_m = d.length_um * 1e-6, dielectric_m(d)
     m = noise.assess(out.sigma_bar[0], v2y, v2x, p, T, width_m=W * 1e-6, length_m=L, dielectric_m=d_m,
                      settings=settings, seebeck_bar=seebeck)
-    dip, dru, intr = (jnp.abs(rotate_chi(r.chi_parts[k][0], angle)[1, 0, 0].real)
-                      for k in ("dipole", "drude", "intrinsic"))
+    # the parts by name (a mapping or a typed record of the engine's Response)
+    part = lambda k: r.chi_parts[k] if isinstance(r.chi_parts, dict) else getattr(r.chi_parts, k)
+    dip, dru, intr = (jnp.abs(rotate_chi(part(k)[0], angle)[1, 0, 0].real) for k in ("dipole", "drude", "intrinsic"))
     # a Drude part below ZERO_SHARE of the total counts as zero (the ratio saturates at 1/ZERO_SHARE)
     ratio = dip / jnp.maximum(dru, ZERO_SHARE * (dip + dru + intr) + 1e-300)
     amp = jnp.abs(v2y)
