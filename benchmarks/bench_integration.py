@@ -67,10 +67,10 @@ def run(n_mu=200, n_t=20, resolution=1, model=HARD, mu_range=(0.28, 0.32), t_ran
     sweep = dict(mu=mu_grid, temperature=t_grid, tau=50.0, resolution=resolution)
     rows = []
     r1 = _block(response(model, engine="ladder", **one))
-    plan = dict(r1.resolution)["plan"]
+    plan = r1.resolution.plan
     t_one = _warm(lambda: _block(response(model, engine="ladder", plan=plan, **one)))
     rs = _block(response(model, engine="ladder", **sweep))
-    t_sweep = _warm(lambda: _block(response(model, engine="ladder", plan=dict(rs.resolution)["plan"], **sweep)))
+    t_sweep = _warm(lambda: _block(response(model, engine="ladder", plan=rs.resolution.plan, **sweep)))
     rows.append(("sweep ladder", f"{n_mu * n_t} conditions / 1", t_sweep / t_one, f"{t_sweep:.2f} s / {t_one:.2f} s"))
     m_one = dict(one, resolution=min(resolution + 1, 5))
     m_sweep = dict(mu=mus[:8], temperature=float(temps[0]), tau=50.0, resolution=m_one["resolution"])
@@ -110,10 +110,10 @@ def run_continuum(n_mu=200, n_t=20, model=TMD, mu_range=(0.84, 0.88), t_range=(1
     t_one = _warm(lambda: _block(response(model, **one)))
     rs = _block(response(model, **sweep))
     t_sweep = _warm(lambda: _block(response(model, **sweep)))
-    i1, i_s = dict(r1.resolution), dict(rs.resolution)
+    i1, i_s = r1.resolution, rs.resolution
     rows.append(("sweep rays", f"{n_mu * n_t} conditions / 1 (rtol {rtol:g})", t_sweep / t_one,
-                 f"{t_sweep:.2f} s / {t_one:.2f} s; levels {i_s['level']} / {i1['level']}; "
-                 f"k-points {i_s['k_points']} / {i1['k_points']}"))
+                 f"{t_sweep:.2f} s / {t_one:.2f} s; levels {i_s.level} / {i1.level}; "
+                 f"k-points {i_s.k_points} / {i1.k_points}"))
     lev = 2
     m_one = dict(mu=one["mu"], temperature=one["temperature"], tau=50.0, resolution=lev)
     m_sweep = dict(mu=mus[:8], temperature=float(temps[0]), tau=50.0, resolution=lev)

@@ -39,7 +39,7 @@ def main(n=4096):
     dt = time.time() - t
     peak = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 2 ** 20  # KiB -> GiB
     print(f"mesh {n}x{n} ({total} k-points), {m.n_bands} bands: {dt:.1f} s, peak RSS {peak:.2f} GiB, "
-          f"density {float(out['density'][0]):.4e} 1/Å², target < 2 GiB: {'met' if peak < 2 else 'MISSED'}")
+          f"density {float(out.density[0]):.4e} 1/Å², target < 2 GiB: {'met' if peak < 2 else 'MISSED'}")
 
 
 if __name__ == "__main__":

@@ -99,11 +99,11 @@ def run(max_n=16384):
     r = response(model, mu=0.3, temperature=10.0, tau=100.0)
     jax.block_until_ready(r.dipole)
     t_warm = time.perf_counter() - t0
-    info = dict(r.resolution)
+    info = r.resolution
     err_cw = abs(float(r.dipole[0]) / (REFERENCE_DX * 1e-10 * model.degeneracy) - 1)
     print("numpy doubling:", ", ".join(f"n={a}: {e:.1e}" for a, e in rows))
     print(f"numpy uniform grid  n = {n} ({n * n:.2e} k-points): D_x error {err_np:.1e}, {t_np:.1f} s")
-    print(f"crosswind response  engine {info['engine']}, {info['k_points']:.2e} k-points: D_x error "
+    print(f"crosswind response  engine {info.engine}, {info.k_points:.2e} k-points: D_x error "
           f"{err_cw:.1e}, first call {t_first:.1f} s, warm {t_warm:.1f} s")
     print(f"ratio numpy / crosswind: {t_np / t_first:.1f} (first call), {t_np / t_warm:.1f} (warm)")
     return t_np, t_first, t_warm, n, err_np, err_cw

@@ -4,6 +4,7 @@ naming the argument (or file entry) and the fix.  Error paths only: nothing here
 import math
 import os
 
+import jax
 import jax.numpy as jnp
 import numpy as np
 import pytest
@@ -367,10 +368,10 @@ def test_api_level_0_error_is_unavailable_not_zero(dirac):
     compared); it is NaN (unavailable) now, and level 1 still gives a finite comparison."""
     r0 = response(dirac, mu=0.15, temperature=10.0, tau=100.0, resolution=0)
     r1 = response(dirac, mu=0.15, temperature=10.0, tau=100.0, resolution=1)
-    for name, e in r0.error.items():
-        assert np.all(np.isnan(np.asarray(e))), name
+    for path, e in jax.tree_util.tree_flatten_with_path(r0.error)[0]:
+        assert np.all(np.isnan(np.asarray(e))), jax.tree_util.keystr(path)
     assert np.all(np.isfinite(np.asarray(r0.sigma))) and float(r0.sigma[0, 0].real) > 0
-    assert float(r1.error["sigma"][0, 0]) > 0 and np.isfinite(float(r1.error["sigma"][0, 0]))
+    assert float(r1.error.sigma[0, 0]) > 0 and np.isfinite(float(r1.error.sigma[0, 0]))
 
 
 # ------------------------------------------------------------------ fingerprints -------------
@@ -631,18 +632,21 @@ def test_lattice_node_quadrature_at_zero_temperature_is_right_or_says_so():
     with pytest.warns(RuntimeWarning, match=r"thermal window .* error = inf\. Use engine='ladder'"):
         r = response(m, mu=0.3, temperature=0.0, tau=100.0, resolution=2)
     ladder = 3.139053e-3      # engine="ladder" (automatic resolution), error estimate 1e-7 S
-    assert abs(float(r.sigma[0, 0].real) - ladder) <= max(float(r.error["sigma"][0, 0]), 1e-2 * ladder)
-    info = dict(r.resolution)
-    assert info["converged"] is False and info["window_unresolved"] == 1 and info["window_ratio"] > 1e3
-    assert {"sigma", "chi"} <= set(info["unconverged_fields"])
-    for name in ("sigma", "sigma_drude", "dipole", "chi", "chi_dc", "dos", "chi_dipole"):
-        assert np.all(np.isposinf(np.asarray(r.error[name]))), name
+    assert abs(float(r.sigma[0, 0].real) - ladder) <= max(float(r.error.sigma[0, 0]), 1e-2 * ladder)
+    info = r.resolution
+    assert info.converged is False and info.window_unresolved == 1 and info.window_ratio > 1e3
+    assert {"sigma", "chi"} <= set(info.unconverged_fields)
+    e = r.error
+    for name, v in (("sigma", e.sigma), ("sigma_drude", e.sigma_drude), ("dipole", e.dipole), ("chi", e.chi),
+                    ("chi_dc", e.chi_dc), ("dos", e.dos), ("chi_parts.dipole", e.chi_parts.dipole),
+                    ("chi_dc_parts.drude", e.chi_dc_parts.drude)):
+        assert np.all(np.isposinf(np.asarray(v))), name
     for name in ("density", "sigma_anomalous"):
-        assert np.all(np.isfinite(np.asarray(r.error[name]))), name
+        assert np.all(np.isfinite(np.asarray(getattr(r.error, name)))), name
     # a window the nodes resolve (100 K) is not flagged
     warm = response(m, mu=0.3, temperature=100.0, tau=100.0, resolution=2)
-    assert dict(warm.resolution)["window_unresolved"] == 0
-    assert np.isfinite(float(warm.error["sigma"][0, 0]))
+    assert warm.resolution.window_unresolved == 0 and warm.resolution.window_ratio is None
+    assert np.isfinite(float(warm.error.sigma[0, 0]))
 
 
 # ------------------------------------------------------------------ bounded memory -----------
@@ -660,7 +664,7 @@ response(m, mu=mu(300), temperature=T, tau=100.0, resolution=0, memory_gib=gib) 
 warm = rss()
 r = response(m, mu=mu(P), temperature=T, tau=100.0, resolution=0, memory_gib=gib)
 ok = bool(np.all(np.isfinite(np.asarray(r.sigma))))
-print(json.dumps(dict(base=base, warm=warm, peak=rss(), block=dict(r.resolution)["condition_block"], ok=ok)))
+print(json.dumps(dict(base=base, warm=warm, peak=rss(), block=r.resolution.condition_block, ok=ok)))
 """
 
 
@@ -706,7 +710,7 @@ def test_memory_budget_setting_is_checked(dirac, monkeypatch):
     mus = np.linspace(0.12, 0.3, 7)
     one = response(dirac, mu=mus, temperature=10.0, tau=100.0, resolution=0)
     tiny = response(dirac, mu=mus, temperature=10.0, tau=100.0, resolution=0, memory_gib=0.01)
-    assert dict(one.resolution)["condition_block"] == 7 and dict(tiny.resolution)["condition_block"] == 1
+    assert one.resolution.condition_block == 7 and tiny.resolution.condition_block == 1
     np.testing.assert_allclose(np.asarray(tiny.chi), np.asarray(one.chi), rtol=1e-12, atol=0)
 
 

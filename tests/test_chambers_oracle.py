@@ -237,10 +237,10 @@ OMEGA_TAU = (0.7, 0.0)
 SOLVER_FIELD = {
     "drude": lambda r: r.sigma_drude,
     "anomalous": lambda r: r.sigma_anomalous,
-    "nd_2w": lambda r: r.chi_parts["drude"],
-    "nd_dc": lambda r: r.chi_dc_parts["drude"].real,    # j⁽⁰⁾ = Re[χ^dc E E*], E real
-    "bcd_2w": lambda r: r.chi_parts["dipole"],
-    "bcd_dc": lambda r: r.chi_dc_parts["dipole"].real,
+    "nd_2w": lambda r: r.chi_parts.drude,
+    "nd_dc": lambda r: r.chi_dc_parts.drude.real,    # j⁽⁰⁾ = Re[χ^dc E E*], E real
+    "bcd_2w": lambda r: r.chi_parts.dipole,
+    "bcd_dc": lambda r: r.chi_dc_parts.dipole.real,
 }
 POINTWISE = ("drude", "anomalous", "bcd_2w", "bcd_dc")
 

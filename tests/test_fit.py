@@ -265,7 +265,7 @@ def _device_signals(p):
     # Hall-bar voltages, docs/theory.md §10: V_xx = I L/(W σ_xx), V_y^{2ω} = χ_yxx I²/(W σ_xx² σ_yy)
     vxx = CURRENT * LENGTH / (WIDTH * sxx)
     v2w = r.chi[:, 1, 0, 0].real * CURRENT ** 2 / (WIDTH * sxx ** 2 * syy)
-    return vxx, v2w, r.chi_parts["dipole"][:, 1, 0, 0].real
+    return vxx, v2w, r.chi_parts.dipole[:, 1, 0, 0].real
 
 
 @pytest.mark.slow

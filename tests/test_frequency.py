@@ -23,6 +23,7 @@ import pytest
 
 from crosswind.models import build
 from crosswind.solver import response
+from crosswind.solver.pytrees import as_dict
 
 TAU = 100.0                     # fs
 MU, TEMPERATURE = 0.15, 20.0    # eV, K
@@ -36,8 +37,8 @@ def solved(omega_tau):
     frequency = omega_tau / TAU * 1e15 / (2 * np.pi)           # Hz
     r = response(model, MU, TEMPERATURE, TAU, frequency, resolution=LEVEL)
     return {"sigma_drude": np.asarray(r.sigma_drude), "sigma_anomalous": np.asarray(r.sigma_anomalous),
-            **{f"chi_{k}": np.asarray(v) for k, v in r.chi_parts.items()},
-            **{f"chi_dc_{k}": np.asarray(v) for k, v in r.chi_dc_parts.items()}}
+            **{f"chi_{k}": np.asarray(v) for k, v in as_dict(r.chi_parts).items()},
+            **{f"chi_dc_{k}": np.asarray(v) for k, v in as_dict(r.chi_dc_parts).items()}}
 
 
 def factor(kind, wt):

@@ -1,5 +1,7 @@
 """Interface properties of ``response``: shapes, broadcasting, no recompilation on new sweep
 values, differentiability at a fixed mesh, error messages."""
+import dataclasses
+
 import jax
 import jax.numpy as jnp
 import numpy as np
@@ -7,7 +9,8 @@ import pytest
 
 from crosswind.models import build
 from crosswind.solver import response
-from crosswind.solver.engine.response import _moments_at
+from crosswind.solver.engine.response import ChiParts, Resolution, Response, _moments_at
+from crosswind.solver.pytrees import as_dict
 
 DIRAC = dict(velocity=5e5, mass=0.1, tilt=5e4)
 
@@ -20,10 +23,36 @@ def test_shapes_follow_broadcast_of_conditions():
     assert r.sigma.shape == (2, 3, 2, 2)
     assert r.dipole.shape == (2, 3, 2)
     assert r.chi.shape == (2, 3, 2, 2, 2)
-    assert set(r.chi_parts) == {"dipole", "drude", "intrinsic"}
+    assert set(as_dict(r.chi_parts)) == {"dipole", "drude", "intrinsic"}
     for k in ("sigma", "dipole", "chi", "density"):
-        assert r.error[k].shape == getattr(r, k).shape
-    np.testing.assert_allclose(sum(r.chi_parts.values()), r.chi, rtol=1e-14, atol=0)
+        assert getattr(r.error, k).shape == getattr(r, k).shape
+    np.testing.assert_allclose(sum(as_dict(r.chi_parts).values()), r.chi, rtol=1e-14, atol=0)
+    np.testing.assert_allclose(sum(as_dict(r.chi_dc_parts).values()), r.chi_dc, rtol=1e-14, atol=0)
+
+
+def test_response_is_a_typed_pytree_and_its_error_has_its_structure():
+    """Response, its χ parts and its error estimate are typed pytrees: ``r.error`` mirrors ``r`` (one
+    real array per field and χ part), ``r.resolution`` is static metadata, and jit/tree_map keep the
+    types."""
+    m = build("massive-dirac", **DIRAC)
+    r = response(m, mu=jnp.array([0.12, 0.15]), temperature=10.0, tau=100.0, resolution=1)
+    assert isinstance(r.chi_parts, ChiParts) and isinstance(r.chi_dc_parts, ChiParts)
+    assert isinstance(r.error, Response) and isinstance(r.error.chi_parts, ChiParts)
+    assert r.error.error is None and r.error.resolution is None and r.error.units == r.units
+    values, errors = jax.tree_util.tree_leaves(dataclasses.replace(r, error=None)), jax.tree_util.tree_leaves(r.error)
+    assert len(values) == len(errors) == 21
+    for v, e in zip(values, errors):
+        assert v.shape == e.shape and not np.iscomplexobj(np.asarray(e))
+    assert np.all(np.isfinite(np.asarray(r.error.sigma))) and np.all(np.isfinite(np.asarray(r.error.chi_parts.drude)))
+    res = r.resolution
+    assert isinstance(res, Resolution) and res.engine == "mesh" and res.level == 1 and res.converged is None
+    assert res.nodes_per_condition > 0 and res.condition_block >= 1 and res.window_unresolved == 0
+    assert res.plan is None and res.attempts is None and res.levels is None
+    hash(jax.tree_util.tree_structure(r))             # static metadata is hashable (jit arguments)
+    assert r.units["sigma"] == "S" and dict(r.units) == r.units
+    doubled = jax.jit(lambda x: jax.tree_util.tree_map(lambda a: 2 * a, x))(r)
+    assert isinstance(doubled, Response) and doubled.resolution == res
+    np.testing.assert_array_equal(np.asarray(doubled.chi_parts.drude), 2 * np.asarray(r.chi_parts.drude))
 
 
 def test_new_sweep_values_do_not_recompile():
@@ -108,5 +137,6 @@ def test_skipping_the_error_estimate_keeps_values():
     a = response(m, mu=0.15, temperature=10.0, tau=100.0, resolution=1)
     b = response(m, mu=0.15, temperature=10.0, tau=100.0, resolution=1, estimate_error=False)
     np.testing.assert_array_equal(np.asarray(a.chi), np.asarray(b.chi))
-    assert np.all(np.isnan(np.asarray(b.error["chi"])))
-    assert np.all(np.isfinite(np.asarray(a.error["chi"])))
+    assert np.all(np.isnan(np.asarray(b.error.chi)))
+    assert np.all(np.isnan(np.asarray(b.error.chi_parts.dipole)))
+    assert np.all(np.isfinite(np.asarray(a.error.chi)))

@@ -8,6 +8,8 @@ Berry-curvature-dipole nonlinear Hall effect and its τ-independent E⊥/E∥² 
 PRL 115, 216806 (2015) and docs/theory.md §5.5, §5.7, §6.  Check numbers (#n) refer to the
 check-value table of docs/theory.md.
 """
+import dataclasses
+
 import jax
 import jax.numpy as jnp
 import numpy as np
@@ -18,7 +20,6 @@ from scipy.special import expit
 
 from crosswind.models import build
 from crosswind.solver import ConstantTau, MatthiessenTau, PowerLawTau, response
-from crosswind.solver.engine.response import ARRAY_FIELDS
 
 KB = sc.k / sc.e                      # eV/K
 MSTAR = 0.5
@@ -112,9 +113,10 @@ def power_law(band):
 def test_power_law_exponent_zero_is_constant_tau(band, power_law):
     """PowerLawTau with r = 0 is ConstantTau(τ0): every field agrees to rounding."""
     const = response(band, mu=MU, temperature=TEMP, tau=ConstantTau(TAU0), resolution=2)
-    for name in ARRAY_FIELDS:
-        a = np.asarray(getattr(power_law, name))[:2]
-        b = np.asarray(getattr(const, name))[:2]
+    leaves = lambda r: jax.tree_util.tree_flatten_with_path(dataclasses.replace(r, error=None))[0]
+    for (path, a), (_, b) in zip(leaves(power_law), leaves(const)):
+        name = jax.tree_util.keystr(path)                  # every field and every χ part
+        a, b = np.asarray(a)[:2], np.asarray(b)[:2]
         scale = np.nanmax(np.abs(b)) if np.any(np.isfinite(b)) else 0.0
         np.testing.assert_allclose(a, b, rtol=1e-12, atol=1e-13 * scale, err_msg=name, equal_nan=True)
 
@@ -190,11 +192,11 @@ def test_dipole_chi_value_and_tau_scaling(tilted_pair):
     docs/theory.md §6).  χ^BCD ∝ τ; the nonlinear Drude and intrinsic parts vanish by
     time reversal (docs/theory.md §5.6)."""
     r = tilted_pair
-    dip = np.asarray(r.chi_parts["dipole"][:, 1, 0, 0])
+    dip = np.asarray(r.chi_parts.dipole[:, 1, 0, 0])
     np.testing.assert_allclose(float(r.chi[1][1, 0, 0].real), 3.5759e-13, rtol=1e-3)
     np.testing.assert_allclose(dip.real / TAUS, np.full(3, dip[1].real / 100.0), rtol=1e-12)
     for part in ("drude", "intrinsic"):
-        assert np.max(np.abs(np.asarray(r.chi_parts[part]))) < 1e-9 * abs(dip[1])
+        assert np.max(np.abs(np.asarray(getattr(r.chi_parts, part)))) < 1e-9 * abs(dip[1])
     # D_x of the pair: 2 × (−0.096696 Å) (check #17)
     np.testing.assert_allclose(float(r.dipole[1][0]), 2 * -0.096696e-10, rtol=1e-3)
 
@@ -204,7 +206,7 @@ def test_transverse_field_ratio_is_tau_independent(tilted_pair):
     ∝ τ (check #22; Sodemann & Fu 2015; docs/theory.md §5.7).  σ_xx, σ_yy of the tilted pair:
     2 × 2.46999e-4 S and 2 × 2.48794e-4 S at τ = 100 fs (docs/theory.md §6)."""
     r = tilted_pair
-    ratio = np.asarray(r.chi_parts["dipole"][:, 1, 0, 0].real / r.sigma[:, 1, 1].real)
+    ratio = np.asarray(r.chi_parts.dipole[:, 1, 0, 0].real / r.sigma[:, 1, 1].real)
     np.testing.assert_allclose(ratio, np.full(3, 7.186e-10), rtol=2e-3)
     np.testing.assert_allclose(ratio, np.full(3, ratio[1]), rtol=1e-12)
     np.testing.assert_allclose(float(r.sigma[1][0, 0].real), 2 * 2.46999e-4, rtol=1e-4)

@@ -4,6 +4,8 @@ table, forward/reverse agreement and vmap.
 
 All default-tier tests share one model structure (massive-dirac, one valley), one condition per
 call and one mesh level, so they reuse two compiled programs (the response and its JVP)."""
+import dataclasses
+
 import jax
 import jax.numpy as jnp
 import numpy as np
@@ -12,8 +14,9 @@ import pytest
 from crosswind.models import build
 from crosswind.models.units import ANGSTROM, E2_OVER_H, HBAR_EVS
 from crosswind.solver import MatthiessenTau, response
-from crosswind.solver.engine.response import ARRAY_FIELDS
+from crosswind.solver.engine.response import ChiParts, Response
 from crosswind.solver.engine.sensitivity import gradient, sensitivities, sensitivity_table
+from crosswind.solver.pytrees import as_dict
 
 LEVEL = 2            # converged for derivative integrands too (level 1 is not, for ∂/∂velocity)
 PARAMS = dict(velocity=5e5, mass=0.1, tilt=5e4)          # docs/theory.md §6 set
@@ -35,10 +38,9 @@ def _shifted(name, h, params=None, cond=None):
 
 
 def _leaves(r):
-    out = {f: np.asarray(getattr(r, f)) for f in ARRAY_FIELDS}
-    out.update({f"chi_parts.{k}": np.asarray(v) for k, v in r.chi_parts.items()})
-    out.update({f"chi_dc_parts.{k}": np.asarray(v) for k, v in r.chi_dc_parts.items()})
-    return out
+    """{"sigma": ..., "chi_parts.dipole": ..., ...}: every array of a Response except its error."""
+    flat, _ = jax.tree_util.tree_flatten_with_path(dataclasses.replace(r, error=None))
+    return {".".join(k.name for k in path): np.asarray(v) for path, v in flat}
 
 
 @pytest.fixture(scope="module")
@@ -80,9 +82,17 @@ def test_units_and_shapes(base):
     assert sens["tau"].units["sigma"] == "(S) / (fs)"
     assert sens["mass"].units["chi"] == "(A m V^-2) / (eV)"
     assert sens["temperature"].units["dipole"] == "(m) / (K)"
-    for f in ARRAY_FIELDS:
-        assert np.shape(getattr(sens["mu"], f)) == np.shape(getattr(value, f))
-    assert set(sens["mu"].chi_parts) == {"dipole", "drude", "intrinsic"}
+    leaves, values = _leaves(sens["mu"]), _leaves(value)
+    assert set(leaves) == set(values) and len(leaves) == 21      # 15 arrays + 2 × 3 χ parts
+    for f, a in leaves.items():
+        assert np.shape(a) == np.shape(values[f]), f
+    assert isinstance(sens["mu"], Response) and isinstance(sens["mu"].chi_parts, ChiParts)
+    assert set(as_dict(sens["mu"].chi_parts)) == {"dipole", "drude", "intrinsic"}
+    # the error estimate has the structure of the response: |∂(error)/∂mu| per field, real
+    err = sens["mu"].error
+    assert isinstance(err, Response) and err.error is None and err.resolution is None
+    assert err.chi_parts.dipole.shape == value.chi_parts.dipole.shape
+    assert not np.iscomplexobj(np.asarray(err.sigma)) and err.units["sigma"] == "(S) / (eV)"
     assert np.all(np.isnan(np.asarray(sens["mu"].dipole_sea)))     # dipole_route="surface": not computed
 
 
@@ -97,12 +107,12 @@ def test_drude_and_dipole_are_linear_in_tau(base):
 
     np.testing.assert_allclose(d.sigma[0, 0], value.sigma[0, 0] / tau, rtol=1e-12)
     same(d.sigma_drude, value.sigma_drude / tau)
-    same(d.chi_parts["dipole"], value.chi_parts["dipole"] / tau)
-    same(d.chi_parts["drude"], 2 * value.chi_parts["drude"] / tau)
+    same(d.chi_parts.dipole, value.chi_parts.dipole / tau)
+    same(d.chi_parts.drude, 2 * value.chi_parts.drude / tau)
     same(d.dipole, 0.0 * value.dipole)
     np.testing.assert_allclose(d.sigma_anomalous, 0.0, atol=1e-30)
-    np.testing.assert_allclose(d.chi_parts["intrinsic"], 0.0, atol=1e-30)
-    assert abs(value.chi_parts["dipole"][1, 0, 0]) > 0
+    np.testing.assert_allclose(d.chi_parts.intrinsic, 0.0, atol=1e-30)
+    assert abs(value.chi_parts.dipole[1, 0, 0]) > 0
 
 
 def test_tilted_dirac_dipole_linear_in_tilt_and_first_order_slope():

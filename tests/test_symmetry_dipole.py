@@ -22,7 +22,7 @@ def honeycomb_pair():
 def test_c3_symmetric_honeycomb_has_no_dipole(honeycomb_pair):
     r0, r1 = honeycomb_pair
     d0 = np.abs(np.asarray(r0.dipole))
-    err0 = np.asarray(r0.error["dipole"])
+    err0 = np.asarray(r0.error.dipole)
     scale = np.abs(np.asarray(r1.dipole)).max()
     assert scale > 1e-14                       # the strained value is a real, finite dipole (m)
     # C3 forces D = 0: the unstrained value vanishes within its own integration error, and that
@@ -36,14 +36,14 @@ def test_uniaxial_strain_dipole_is_perpendicular_to_the_mirror_line(honeycomb_pa
     dx, dy = np.asarray(r1.dipole)
     # mirror x → −x (mirror line = y axis): D_x even, D_y odd → D ∥ x, perpendicular to the line
     assert abs(dy) < 1e-8 * abs(dx)
-    assert float(np.asarray(r1.error["dipole"]).max()) < 1e-2 * abs(dx)
+    assert float(np.asarray(r1.error.dipole).max()) < 1e-2 * abs(dx)
 
 
 def test_dipole_current_is_perpendicular_to_the_field():
     """2D dipole current j = −(e³τ/2ħ²)(D·E) ẑ × E is transverse for every field direction."""
     m = build("massive-dirac", velocity=5e5, mass=0.1, tilt=5e4, valleys=2)
     r = response(m, mu=0.15, temperature=10.0, tau=100.0, resolution=1)
-    chi = np.asarray(r.chi_parts["dipole"]).real
+    chi = np.asarray(r.chi_parts.dipole).real
     rng = np.random.default_rng(0)
     for _ in range(5):
         e = rng.normal(size=2)

@@ -55,9 +55,10 @@ def test_band_density_and_dos_of_a_lattice_model():
                                type(scat).evaluate, tau_arr, 0.0, 1, False)
     c = tm.moments_from_tables(tab["coarse"], tab["layout"], tab["vol"], mu, kt, T,
                                type(scat).evaluate, tau_arr, 0.0, 1, False)
-    assert np.all(np.asarray(f["dos"]) > 0)
-    np.testing.assert_allclose(np.asarray(f["dos"]), np.asarray(c["dos"]), rtol=5e-2)
-    assert np.all(np.diff(np.asarray(f["density"])) > 0)
+    assert np.all(np.asarray(f.dos) > 0)
+    np.testing.assert_allclose(np.asarray(f.dos), np.asarray(c.dos), rtol=5e-2)
+    assert np.all(np.diff(np.asarray(f.density)) > 0)
+    assert f.dipole_sea is None                    # the Fermi-sea dipole only when requested
     # cells in the window beyond the refinement budget are reported as lost weight, never dropped
     if int(info["flagged"]) <= lev.budget:
         assert float(jnp.max(tab["lost"])) == 0.0

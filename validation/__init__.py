@@ -29,7 +29,7 @@ def _pick(r, quantity):
     name, part, idx = m.groups()
     val = getattr(r, name)
     if part:
-        val = val[part]
+        val = getattr(val, part)          # a χ part: "chi_parts.drude"
     val = np.asarray(val)
     if idx:
         val = val[tuple(int(i) for i in idx.split(","))]

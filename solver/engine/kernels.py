@@ -1,7 +1,8 @@
 """Brillouin-zone sums of the relaxation-time Boltzmann kernels (natural units: eV, Å, fs).
 
 For nodes k with weights w (Σ w ≈ ∫[dk]) and P conditions (μ_p, T_p, τ_p), the function
-:func:`moments` returns, summed over bands (degeneracy not yet applied), with
+:func:`moments` returns a :class:`Moments` with these fields, summed over bands (degeneracy not yet
+applied), with
 F = −∂f0/∂ε (1/eV), g_a = ∂_aε (eV Å), h_ab = ∂_a∂_bε (eV Å²), Ω (Å²), G (Å²/eV),
 τ̃_ν(ε) = τ(ε)/(1 + iντ(ε)) and τ̃' = dτ̃/dε:
 
@@ -27,13 +28,73 @@ they avoid boundary terms).  For constant τ they reduce to
 """
 from __future__ import annotations
 
+from typing import Any
+
 import jax
 import jax.numpy as jnp
+
 from crosswind.models.geometry import geometry_at
 from crosswind.solver.engine.occupation import entropy_density, fermi, minus_dfermi
+from crosswind.solver.pytrees import pytree_dataclass
 
 FIELDS = ("density", "dos", "drude", "ahe", "dipole", "dipole_tau", "drude2_2w", "drude2_0",
           "bcp", "lorentz", "thermo1", "thermo2", "nernst")
+
+
+@pytree_dataclass
+class Moments:
+    """Kernel sums of P conditions (natural units eV, Å, fs; summed over bands, degeneracy not
+    yet applied), every field with the P conditions in front; the formulas are in the module
+    docstring.  Returned by :func:`moments`, :func:`moments_indexed`, the ladder
+    (:func:`crosswind.solver.engine.ladder.ladder_moments`), the shared rays
+    (:func:`crosswind.solver.engine.rays.ray_moments`) and the triangles
+    (:func:`crosswind.solver.engine.trimesh.moments_from_tables`).
+
+    Physics (2D shapes; 3D adds the curvature index c where Ω is a vector):
+
+    * ``density`` (P,) Å^-d relative to neutrality; ``dos`` (P,) 1/(eV Å^d);
+    * ``drude`` (P, d, d) complex, fs eV Å^{2-d}: Σ F τ̃_ω g_a g_b;
+    * ``ahe`` (P,) [3D (P, 3)] Å^{2-d}: Σ f0 Ω;
+    * ``dipole`` (P, d) [(P, d, 3)] Å^{3-d}: Σ F g_b Ω_c; ``dipole_tau`` the same with τ̃_ω (complex, fs Å^{3-d});
+    * ``drude2_2w``, ``drude2_0`` (P, d, d, d) complex, fs² eV Å^{3-d}: the nonlinear Drude kernels at 2ω and dc;
+    * ``bcp`` (P, d, d, d) Å^{3-d}/eV: the Berry-connection polarizability kernel;
+    * ``lorentz`` (P, d, d) fs² eV² Å^{4-d}: Σ F τ² g_a ε_cd g_d h_cb (zero in 3D);
+    * ``thermo1``, ``thermo2`` (P, d, d) fs eV^{2,3} Å^{2-d}: Σ F (ε−μ)^{1,2} τ g_a g_b;
+    * ``nernst`` (P,) [(P, 3)] Å^{2-d}: Σ s(ε) Ω;
+    * ``drude0`` (P, d, d) fs eV Å^{2-d}: Σ F τ g_a g_b (dc);
+    * ``dipole_sea`` (P, d) [(P, d, 3)] Å^{3-d}: Σ [f0 − θ] ∂_bΩ_c, the Fermi-sea route to the
+      dipole; ``None`` unless requested (``sea=True``).
+
+    Integrand magnitudes (scales of the convergence test, not physics; (P,) each):
+    ``scale_ahe`` Σ f0 |Ω|, ``scale_dipole`` Σ F |g||Ω|, ``scale_drude2`` Σ F |h||g| τ²,
+    ``scale_bcp`` Σ F |g||G|.
+    """
+
+    density: Any
+    dos: Any
+    drude: Any
+    ahe: Any
+    dipole: Any
+    dipole_tau: Any
+    drude2_2w: Any
+    drude2_0: Any
+    bcp: Any
+    lorentz: Any
+    thermo1: Any
+    thermo2: Any
+    nernst: Any
+    drude0: Any
+    scale_ahe: Any
+    scale_dipole: Any
+    scale_drude2: Any
+    scale_bcp: Any
+    dipole_sea: Any = None
+
+
+def map_named(fn, m):
+    """``fn(name, array)`` applied to every field of a pytree dataclass (a :class:`Moments`);
+    ``None`` fields stay ``None``."""
+    return jax.tree_util.tree_map_with_path(lambda path, v: fn(path[0].name, v), m)
 
 
 def _tilde(tau, dtau, nu):
@@ -50,7 +111,7 @@ def _eps2(dim):
 
 
 def point_kernels(model, params, k, mu, kt, temp, tau_eval, tau_arr, omega, filled, sea=False):
-    """All kernels at one k for P conditions: returns dict of arrays with leading P."""
+    """All kernels at one k for P conditions: a :class:`Moments` of arrays with leading P."""
     e, g, h, om, _mom, _met, G = geometry_at(model, k, params)
     dim = model.dim
     E = e[None, :]                                # (1, nb)
@@ -109,7 +170,7 @@ def point_kernels(model, params, k, mu, kt, temp, tau_eval, tau_arr, omega, fill
             out["dipole_sea"] = jnp.einsum("pn,nb->pb", f0 - below, dom)
         else:
             out["dipole_sea"] = jnp.einsum("pn,ncb->pbc", f0 - below, dom)
-    return out
+    return Moments(**out)
 
 
 SEA_KERNELS = ("density", "ahe", "scale_ahe", "dipole_sea")
@@ -134,8 +195,8 @@ def moments_indexed(model, params, n, node_fn, mu, kt, temp, tau_eval, tau_arr, 
         wsea = out[2] if len(out) > 2 else ws
         ws, wsea = jnp.where(idx < n, ws, 0.0), jnp.where(idx < n, wsea, 0.0)
         vals = jax.vmap(one)(kk)
-        part = {key: jnp.tensordot((wsea if key in SEA_KERNELS else ws).astype(v.dtype), v, axes=(0, 0))
-                for key, v in vals.items()}
+        part = map_named(lambda key, v: jnp.tensordot((wsea if key in SEA_KERNELS else ws).astype(v.dtype), v,
+                                                      axes=(0, 0)), vals)
         return jax.tree_util.tree_map(jnp.add, acc, part), None
 
     k0 = node_fn(jnp.zeros((1,), dtype=jnp.int64))[0]

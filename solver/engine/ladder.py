@@ -38,21 +38,23 @@ energy sums.
 """
 from __future__ import annotations
 
+import dataclasses
 from dataclasses import dataclass
 
 import jax
 import jax.numpy as jnp
 import numpy as np
+from scipy.optimize import minimize
+
 from crosswind.models.geometry import geometry_at
 from crosswind.models.units import KB_EVK as KB
-from crosswind.solver.engine.kernels import _tilde
+from crosswind.solver.engine.kernels import Moments, _tilde
 from crosswind.solver.engine.occupation import (
     T_FLOOR,
     entropy_density,
     fermi,
     minus_dfermi,
 )
-from scipy.optimize import minimize
 
 W = 20.0                   # window half-width in k_BT: neglected weight ~ e^-20 ≈ 2e-9
 SLACK = 1.5                # cell-size reach in units of |∇ε|·(half diagonal)
@@ -363,23 +365,22 @@ def _kernel_sums_dc(vals, occ, E, mu, tau, dtau, layout, sea):
     de = E - jnp.broadcast_to(mu[:, None], E.shape)
     drude0 = s("gg", Ft)
     second = s("hg", Ft * tau) + s("ggg", Ft * dtau)
-    out = {"density": s("one", f0), "dos": s("one", F), "drude": c(drude0),
-           "ahe": s("om", f0), "dipole": s("gom", F), "dipole_tau": c(s("gom", Ft)),
-           "drude2_2w": c(second), "drude2_0": c(second),
-           "bcp": s("bcp", F), "lorentz": s("lor", Ft * tau),
-           "thermo1": s("gg", Ft * de), "thermo2": s("gg", Ft * de * de),
-           "drude0": drude0, "nernst": s("om", occ["s"]),
-           "scale_ahe": s("abs_om", f0), "scale_dipole": s("sc_dip", F),
-           "scale_drude2": s("sc_dr2", Ft * tau), "scale_bcp": s("sc_bcp", F)}
-    if sea:
-        out["dipole_sea"] = s("dom", f0)
-    return out
+    return Moments(density=s("one", f0), dos=s("one", F), drude=c(drude0),
+                   ahe=s("om", f0), dipole=s("gom", F), dipole_tau=c(s("gom", Ft)),
+                   drude2_2w=c(second), drude2_0=c(second),
+                   bcp=s("bcp", F), lorentz=s("lor", Ft * tau),
+                   thermo1=s("gg", Ft * de), thermo2=s("gg", Ft * de * de),
+                   drude0=drude0, nernst=s("om", occ["s"]),
+                   scale_ahe=s("abs_om", f0), scale_dipole=s("sc_dip", F),
+                   scale_drude2=s("sc_dr2", Ft * tau), scale_bcp=s("sc_bcp", F),
+                   dipole_sea=s("dom", f0) if sea else None)
 
 
 def _kernel_sums(vals, occ, E, mu, temp, tau_eval, tau_arr, omega, layout, sea):
-    """The kernel sums of :func:`crosswind.solver.engine.kernels.point_kernels` (same keys, natural
-    units, degeneracy not applied) from knot values ``vals`` (P, Q, nc) and occupation weights
-    ``occ`` (each (P, Q)); ``E`` (P, Q) the knot energies.  ``omega=None`` marks a static field
+    """The kernel sums of :func:`crosswind.solver.engine.kernels.point_kernels` (a
+    :class:`~crosswind.solver.engine.kernels.Moments`, natural units, degeneracy not applied) from
+    knot values ``vals`` (P, Q, nc) and occupation weights ``occ`` (each (P, Q)); ``E`` (P, Q) the
+    knot energies.  ``omega=None`` marks a static field
     (the real-arithmetic path of :func:`_kernel_sums_dc`)."""
     P = vals.shape[0]
     tau, dtau = tau_eval(tau_arr, E, jnp.broadcast_to(temp[:, None], E.shape))
@@ -403,18 +404,16 @@ def _kernel_sums(vals, occ, E, mu, temp, tau_eval, tau_arr, omega, layout, sea):
 
     Fc = F.astype(jnp.complex128)
     de = E - jnp.broadcast_to(mu[:, None], E.shape)
-    out = {"density": s("one", f0), "dos": s("one", F), "drude": s("gg", Fc * t1),
-           "ahe": s("om", f0), "dipole": s("gom", F), "dipole_tau": s("gom", Fc * t1),
-           "drude2_2w": s("hg", Fc * t1 * t2) + s("ggg", Fc * t1 * dt2),
-           "drude2_0": s("hg", Fc * t1 * tauc) + s("ggg", Fc * t1 * dtauc),
-           "bcp": s("bcp", F), "lorentz": s("lor", F * tau * tau),
-           "thermo1": s("gg", F * de * tau), "thermo2": s("gg", F * de * de * tau),
-           "drude0": s("gg", F * tau), "nernst": s("om", occ["s"]),
-           "scale_ahe": s("abs_om", f0), "scale_dipole": s("sc_dip", F),
-           "scale_drude2": s("sc_dr2", F * tau * tau), "scale_bcp": s("sc_bcp", F)}
-    if sea:
-        out["dipole_sea"] = s("dom", f0)
-    return out
+    return Moments(density=s("one", f0), dos=s("one", F), drude=s("gg", Fc * t1),
+                   ahe=s("om", f0), dipole=s("gom", F), dipole_tau=s("gom", Fc * t1),
+                   drude2_2w=s("hg", Fc * t1 * t2) + s("ggg", Fc * t1 * dt2),
+                   drude2_0=s("hg", Fc * t1 * tauc) + s("ggg", Fc * t1 * dtauc),
+                   bcp=s("bcp", F), lorentz=s("lor", F * tau * tau),
+                   thermo1=s("gg", F * de * tau), thermo2=s("gg", F * de * de * tau),
+                   drude0=s("gg", F * tau), nernst=s("om", occ["s"]),
+                   scale_ahe=s("abs_om", f0), scale_dipole=s("sc_dip", F),
+                   scale_drude2=s("sc_dr2", F * tau * tau), scale_bcp=s("sc_bcp", F),
+                   dipole_sea=s("dom", f0) if sea else None)
 
 
 def _window_values(acc, e_lo, delta, start, Q):
@@ -444,13 +443,15 @@ def _level_sums(acc, e_lo, delta, mu, kt_hi, kt_lo, kt_win, temp, tau_eval, tau_
         table, below = acc
         csum = jnp.concatenate([jnp.zeros((1, table.shape[1])), jnp.cumsum(table, axis=0)])
         pre = below[None, :] + csum[jnp.clip(start, 0, table.shape[0])]            # (P, nc)
+        add = {}
         for key, name in (("density", "one"), ("ahe", "om"), ("scale_ahe", "abs_om"),
                           ("dipole_sea", "dom")):
-            if key in out:
+            if getattr(out, key) is not None:
                 st, shape = layout[name]
                 size = int(np.prod(shape)) if shape else 1
-                out[key] = out[key] + pre[:, st:st + size].reshape((mu.shape[0],) + shape)
-        out["density"] = out["density"] - filled_vol
+                add[key] = getattr(out, key) + pre[:, st:st + size].reshape((mu.shape[0],) + shape)
+        add["density"] = add["density"] - filled_vol
+        out = dataclasses.replace(out, **add)
     return out
 
 

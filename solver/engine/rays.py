@@ -38,12 +38,14 @@ slots or knot window do not hold the conditions reports an infinite error (``ove
 """
 from __future__ import annotations
 
+import dataclasses
 from dataclasses import dataclass
 from functools import partial
 
 import jax
 import jax.numpy as jnp
 import numpy as np
+
 from crosswind.models.band_model import BandModel
 from crosswind.models.domain import Lattice
 from crosswind.models.units import KB_EVK as KB
@@ -55,6 +57,7 @@ from crosswind.solver.engine.ladder import (
     point_factors,
 )
 from crosswind.solver.engine.mesh import energies_at
+from crosswind.solver.pytrees import pytree_dataclass
 
 W = 20.0                     # window half-width in k_BT (neglected weight ~ e^-20)
 PROBE = 160                  # probe points per ray for bracketing crossings
@@ -97,7 +100,7 @@ class RayPlan:
         return centres * self.angles * self.nodes_per_ray()
 
 
-@dataclass(frozen=True)
+@pytree_dataclass
 class RayGrid:
     """The placement arrays of a plan (leaves; new values never recompile): energy breakpoints
     (levels,), the first knot ``e_lo`` and the finest knot spacing ``delta`` (eV)."""
@@ -105,10 +108,6 @@ class RayGrid:
     breakpoints: jax.Array
     e_lo: jax.Array
     delta: jax.Array
-
-
-jax.tree_util.register_pytree_node(
-    RayGrid, lambda g: ((g.breakpoints, g.e_lo, g.delta), None), lambda _, c: RayGrid(*c))
 
 
 def _gauss(n):
@@ -410,7 +409,8 @@ def _tapered(occ, E, mu, kt):
 
 
 def _sums_at(tabs, plan, grid, layout, mu, kt_occ, temp, tau_eval, tau_arr, omega, sea):
-    """Kernel sums for conditions (P,) at occupation temperatures ``kt_occ`` (P,)."""
+    """Kernel sums (:class:`~crosswind.solver.engine.kernels.Moments`) for conditions (P,) at
+    occupation temperatures ``kt_occ`` (P,), and whether each condition's window fits the tables."""
     tables, below, above = tabs
     R, M = plan.tables, plan.knots
     Q = _window(plan)
@@ -432,20 +432,20 @@ def _sums_at(tabs, plan, grid, layout, mu, kt_occ, temp, tau_eval, tau_arr, omeg
     pre = below[r] + csum[r, jnp.clip(start, 0, M)]                             # (P, nc) below window
     post = above[r] + csum[r, M] - csum[r, jnp.clip(start + Q, 0, M)]           # (P, nc) above window
     f0 = occ["f0"]
-    for key, name in (("ahe", "om"), ("scale_ahe", "abs_om")):
-        out[key] = out[key] + _cols(pre, layout, name)
+    new = {key: getattr(out, key) + _cols(pre, layout, name)
+           for key, name in (("ahe", "om"), ("scale_ahe", "abs_om"))}
     # density = Σ_upper w f0 − Σ_filled w (1 − f0)
     # the "one" and "dom" columns hold the bands empty at neutrality, the "hole" columns the
     # filled ones: n = Σ_upper w f0 − Σ_filled w (1 − f0)
     hole = _cols(vals, layout, "hole_one")
-    out["dos"] = out["dos"] + jnp.einsum("pq,pq->p", occ["F"], hole)
-    out["density"] = (jnp.einsum("pq,pq->p", f0, _cols(vals, layout, "one")) + _cols(pre, layout, "one")
+    new["dos"] = out.dos + jnp.einsum("pq,pq->p", occ["F"], hole)
+    new["density"] = (jnp.einsum("pq,pq->p", f0, _cols(vals, layout, "one")) + _cols(pre, layout, "one")
                       - jnp.einsum("pq,pq->p", 1.0 - f0, hole) - _cols(post, layout, "hole_one"))
     if sea:
         hole = _cols(vals, layout, "hole_dom")
-        out["dipole_sea"] = (jnp.einsum("pq,pqb->pb", f0, _cols(vals, layout, "dom")) + _cols(pre, layout, "dom")
+        new["dipole_sea"] = (jnp.einsum("pq,pqb->pb", f0, _cols(vals, layout, "dom")) + _cols(pre, layout, "dom")
                              - jnp.einsum("pq,pqb->pb", 1.0 - f0, hole) - _cols(post, layout, "hole_dom"))
-    return out, fits
+    return dataclasses.replace(out, **new), fits
 
 
 def _bshape(v, like):
@@ -484,7 +484,8 @@ def condition_sums(tabs, plan, grid, layout, mu, kt, temp, tau_eval, tau_arr, om
 def ray_moments(model, params, plan: RayPlan, grid: RayGrid, mu, kt, temp, tau_eval, tau_arr, omega,
                 filled, sea, condition_chunk=128):
     """Kernel sums (natural units, degeneracy not applied) for P conditions from one ray set.
-    Returns ``(sums, extrapolation_error, overflow)``."""
+    Returns ``(sums, extrapolation_error, overflow)``; ``sums`` and ``extrapolation_error`` are
+    :class:`~crosswind.solver.engine.kernels.Moments`."""
     if isinstance(model.domain, Lattice) or model.dim != 2:
         raise ValueError("rays: the shared ray rule integrates 2D continuum (k·p) models")
     tables, below, above, over, layout = build_tables(model, params, plan, grid, filled, sea)

@@ -37,14 +37,17 @@ symmetry, to the size of its integrand).
 """
 from __future__ import annotations
 
+import dataclasses
 import warnings
-from dataclasses import dataclass, field
+from collections.abc import Mapping
+from dataclasses import dataclass
 from functools import partial
 from typing import Any
 
 import jax
 import jax.numpy as jnp
 import numpy as np
+
 from crosswind.models.band_model import BandModel
 from crosswind.models.domain import Lattice
 from crosswind.models.units import ANGSTROM, E_CHARGE, HBAR_JS, KB_EVK
@@ -52,24 +55,143 @@ from crosswind.solver.engine import ladder as _ladder
 from crosswind.solver.engine import mesh as _mesh
 from crosswind.solver.engine import rays as _rays
 from crosswind.solver.engine.inputs import check_arguments
-from crosswind.solver.engine.kernels import moments, moments_indexed
+from crosswind.solver.engine.kernels import Moments, moments, moments_indexed
 from crosswind.solver.engine.memory import budget_bytes, condition_block
 from crosswind.solver.engine.occupation import T_FLOOR, thermal_energy
 from crosswind.solver.engine.scattering import as_scattering
+from crosswind.solver.pytrees import pytree_dataclass, static
 from crosswind.solver.vocabulary import units_of
 
 E = E_CHARGE
 HB = HBAR_JS
 FS = 1e-15
 
-ARRAY_FIELDS = ("density", "dos", "sigma", "sigma_drude", "sigma_anomalous", "dipole", "dipole_sea",
-                "chi", "chi_dc", "sigma_lorentz", "hall_coefficient", "seebeck",
-                "thermal_conductivity", "lorenz", "nernst")
+
+@pytree_dataclass
+class ChiParts:
+    """The three parts of a second-order coefficient χ_abc, whose sum is the coefficient itself
+    (``Response.chi_parts`` sum to ``chi`` at 2ω, ``Response.chi_dc_parts`` to the rectified
+    ``chi_dc``).  Each is complex (complex128), shaped (conditions..., d, d, d), symmetric in b, c,
+    in SI units A·m/V² for a 2D sheet (A/V² in 3D):
+
+    * ``dipole``: Berry-curvature dipole term χ^BCD = −(q³/2ħ²) ε_acd ∫[dk] F τ̃_ω ħv_b Ω_d (∝ τ);
+    * ``drude``: nonlinear Drude term χ^ND (∝ τ²; in ``chi_dc_parts`` with τ̃_2ω → τ);
+    * ``intrinsic``: Berry-connection-polarizability term (τ⁰; zero with ``intrinsic=False``).
+
+    In ``Response.error`` the same fields hold the real error estimate |fine − coarse| (same units).
+    """
+
+    dipole: Any
+    drude: Any
+    intrinsic: Any
 
 
 @dataclass(frozen=True)
+class Resolution:
+    """How a :class:`Response` was integrated: static metadata of the pytree (hashable, never
+    traced; ``jax.jit``/``jax.vmap`` treat it as part of the tree structure).
+
+    Every engine:
+
+    * ``engine`` (str): ``"mesh"`` (node quadrature), ``"ladder"`` (energy-resolved, 2D lattices)
+      or ``"rays"`` (energy-resolved, 2D continuum models);
+    * ``level`` (int): refinement level of the returned values (index into the engine's resolutions);
+    * ``k_points`` (int): distinct k-points where the band geometry was evaluated (all passes and
+      conditions);
+    * ``converged`` (bool or None): whether every checked field met ``rtol`` with automatic
+      refinement (``resolution=None``); None at a fixed level; False whenever a thermal window is
+      unresolved;
+    * ``unconverged_fields`` (tuple of str): the fields that did not.
+
+    Node quadrature (``engine="mesh"``; None for the other engines):
+
+    * ``nodes_per_condition`` (int): nodes of the mesh at ``level`` for one condition;
+    * ``condition_block`` (int): conditions evaluated together within the memory budget;
+    * ``window_unresolved`` (int): conditions whose thermal window falls between the nodes
+      (None when traced);
+    * ``window_ratio`` (float): the largest node spacing / thermal window (only when some
+      window is unresolved, else None).
+
+    Energy-resolved engines (``"ladder"``, ``"rays"``; None for the node quadrature):
+
+    * ``plan``: the plan of the last pass (ladder: :class:`~crosswind.solver.engine.ladder.Plan`;
+      rays: ``(RayPlan, RayGrid)``); pass ``plan=r.resolution.plan`` to ``response`` under
+      ``jax.grad``/``jax.jit``;
+    * ``attempts`` (int): passes at ``level`` (a run whose budget overflowed is repeated);
+    * ``levels`` (int, ladder only): temperature levels of the plan.
+    """
+
+    engine: str
+    level: int
+    k_points: int = 0
+    converged: bool | None = None
+    unconverged_fields: tuple = ()
+    nodes_per_condition: int | None = None
+    condition_block: int | None = None
+    window_unresolved: int | None = None
+    window_ratio: float | None = None
+    plan: Any = None
+    attempts: int | None = None
+    levels: int | None = None
+
+
+class Units(Mapping):
+    """{field: SI unit} of a :class:`Response`: a read-only, hashable mapping (static metadata of
+    the pytree); compares equal to a dict with the same items."""
+
+    __slots__ = ("_items",)
+
+    def __init__(self, items=()):
+        self._items = dict(items)
+
+    def __getitem__(self, key):
+        return self._items[key]
+
+    def __iter__(self):
+        return iter(self._items)
+
+    def __len__(self):
+        return len(self._items)
+
+    def __eq__(self, other):
+        return isinstance(other, Mapping) and dict(self.items()) == dict(other.items())
+
+    def __hash__(self):
+        return hash(tuple(sorted(self._items.items())))
+
+    def __repr__(self):
+        return f"Units({self._items!r})"
+
+
+@pytree_dataclass
 class Response:
-    """Transport coefficients on the broadcast shape of (mu, temperature, tau)."""
+    """Transport coefficients on the broadcast shape of (mu, temperature, tau): every array field
+    carries that shape in front of its tensor indices (d = model dimension).  SI units for a 2D
+    sheet, 3D in brackets (``units`` names every field; formulas in ``help(response)``):
+
+    * ``density`` [m⁻² (m⁻³)] relative to neutrality; ``dos`` [J⁻¹m⁻² (J⁻¹m⁻³)];
+    * ``sigma`` = ``sigma_drude`` + ``sigma_anomalous`` (…, d, d) [S (S/m)], complex;
+    * ``dipole`` (…, d) [m (1); 3D (…, d, 3)], the Berry-curvature dipole, and ``dipole_sea`` its
+      Fermi-sea form (NaN unless ``dipole_route="both"``);
+    * ``chi`` (2ω) and ``chi_dc`` (rectified) (…, d, d, d) [A·m/V² (A/V²)], complex, with their
+      parts ``chi_parts`` and ``chi_dc_parts`` (:class:`ChiParts`: ``dipole``, ``drude``, ``intrinsic``);
+    * ``sigma_lorentz`` (…, d, d) [S/T (S/(m·T))]; ``hall_coefficient`` [Ω/T (m³/C); NaN in 3D];
+      ``seebeck`` (…, d, d) [V/K]; ``thermal_conductivity`` (…, d, d) [W/K (W/(K·m))];
+      ``lorenz`` [W·Ω/K²]; ``nernst`` (…, d, d) [A/K (A/(K·m))].
+
+    ``error``: a Response of the same structure holding the absolute error estimate of every
+    field and every χ part (``r.error.sigma``, ``r.error.chi_parts.dipole``), real, in the same
+    units: |fine − coarse| of two mesh levels, the returned (fine) level and a coarser one (the
+    node quadrature: the next coarser level; the ladder: the nested sub-grid of the same pass;
+    docs/theory.md §14, docs/error-estimates.md), plus for the energy-resolved engines the
+    spread of their T² extrapolation, and with ``dipole_route="both"`` the disagreement of the
+    two dipole routes in ``error.dipole``.  ``inf`` where a budget overflowed or a thermal window
+    is unresolved; NaN where no estimate exists (``estimate_error=False``, the node quadrature at
+    level 0, fields not computed).  Its own ``error`` and ``resolution`` are None.
+
+    ``resolution``: :class:`Resolution`, how the values were integrated (engine, level,
+    convergence, k-points, plan; static metadata).  ``units``: :class:`Units`, {field: SI unit}.
+    """
 
     density: Any
     dos: Any
@@ -80,35 +202,21 @@ class Response:
     dipole_sea: Any
     chi: Any
     chi_dc: Any
-    chi_parts: dict
-    chi_dc_parts: dict
+    chi_parts: ChiParts
+    chi_dc_parts: ChiParts
     sigma_lorentz: Any
     hall_coefficient: Any
     seebeck: Any
     thermal_conductivity: Any
     lorenz: Any
     nernst: Any
-    error: dict
-    resolution: Any = None
-    units: dict = field(default_factory=dict)
+    error: Response | None = None
+    resolution: Resolution | None = static(None)
+    units: Units = static(default_factory=Units)
 
 
 UNITS_2D = units_of(2)     # SI units of every field (crosswind.solver.vocabulary)
 UNITS_3D = units_of(3)
-
-
-def _resp_flatten(r: Response):
-    arrays = tuple(getattr(r, f) for f in ARRAY_FIELDS)
-    return (arrays, r.chi_parts, r.chi_dc_parts, r.error), (r.resolution, tuple(sorted(r.units.items())))
-
-
-def _resp_unflatten(aux, children):
-    arrays, cp, cdp, err = children
-    kw = dict(zip(ARRAY_FIELDS, arrays))
-    return Response(**kw, chi_parts=cp, chi_dc_parts=cdp, error=err, resolution=aux[0], units=dict(aux[1]))
-
-
-jax.tree_util.register_pytree_node(Response, _resp_flatten, _resp_unflatten)
 
 
 def _levels(model):
@@ -163,53 +271,54 @@ def _sym(chi):
     return 0.5 * (chi + jnp.swapaxes(chi, -1, -2))
 
 
-def _to_si(mom, model, temp, intrinsic):
+def _to_si(mom: Moments, model, temp, intrinsic) -> Response:
+    """SI fields (a :class:`Response` without error and metadata) from the kernel sums."""
     d = model.dim
     L = ANGSTROM
     g = model.degeneracy
-    m = {k: v * g for k, v in mom.items()}
+    m = jax.tree_util.tree_map(lambda v: v * g, mom)
     eps = _eps(d)
     out = {}
-    out["density"] = m["density"] * L ** (-d)
-    out["dos"] = m["dos"] / E * L ** (-d)
-    sd = m["drude"] * (E ** 3 * FS * L ** (2 - d) / HB ** 2)
+    out["density"] = m.density * L ** (-d)
+    out["dos"] = m.dos / E * L ** (-d)
+    sd = m.drude * (E ** 3 * FS * L ** (2 - d) / HB ** 2)
     if d == 2:
-        sxy = -(E ** 2 / HB) * m["ahe"]
+        sxy = -(E ** 2 / HB) * m.ahe
         z = jnp.zeros_like(sxy)
         sa = jnp.stack([jnp.stack([z, sxy], -1), jnp.stack([-sxy, z], -1)], -2)
-        out["dipole"] = m["dipole"] * L
-        bcd = (E ** 3 * FS * L / (2 * HB ** 2)) * jnp.einsum("ac,pb->pabc", eps.astype(jnp.complex128), m["dipole_tau"])
-        out["nernst"] = jnp.einsum("ab,p->pab", eps, m["nernst"]) * (E * KB_EVK * E / HB)
-        if "dipole_sea" in m:
-            out["dipole_sea"] = m["dipole_sea"] * L
+        out["dipole"] = m.dipole * L
+        bcd = (E ** 3 * FS * L / (2 * HB ** 2)) * jnp.einsum("ac,pb->pabc", eps.astype(jnp.complex128), m.dipole_tau)
+        out["nernst"] = jnp.einsum("ab,p->pab", eps, m.nernst) * (E * KB_EVK * E / HB)
+        if m.dipole_sea is not None:
+            out["dipole_sea"] = m.dipole_sea * L
     else:
-        sa = -(E ** 2 / HB) * jnp.einsum("abc,pc->pab", eps, m["ahe"]) / L
-        out["dipole"] = m["dipole"]
-        bcd = (E ** 3 * FS / (2 * HB ** 2)) * jnp.einsum("acd,pbd->pabc", eps.astype(jnp.complex128), m["dipole_tau"])
-        out["nernst"] = jnp.einsum("abc,pc->pab", eps, m["nernst"]) * (E * KB_EVK * E / HB) / L
-        if "dipole_sea" in m:
-            out["dipole_sea"] = m["dipole_sea"]
+        sa = -(E ** 2 / HB) * jnp.einsum("abc,pc->pab", eps, m.ahe) / L
+        out["dipole"] = m.dipole
+        bcd = (E ** 3 * FS / (2 * HB ** 2)) * jnp.einsum("acd,pbd->pabc", eps.astype(jnp.complex128), m.dipole_tau)
+        out["nernst"] = jnp.einsum("abc,pc->pab", eps, m.nernst) * (E * KB_EVK * E / HB) / L
+        if m.dipole_sea is not None:
+            out["dipole_sea"] = m.dipole_sea
     out["sigma_drude"] = sd
     out["sigma_anomalous"] = sa.astype(jnp.complex128)
     out["sigma"] = sd + sa.astype(jnp.complex128)
     nd_fac = -(E ** 4 * FS ** 2 * L ** (3 - d) / (2 * HB ** 3))
-    nd2 = _sym(m["drude2_2w"] * nd_fac)
-    nd0 = _sym(m["drude2_0"] * nd_fac)
+    nd2 = _sym(m.drude2_2w * nd_fac)
+    nd0 = _sym(m.drude2_0 * nd_fac)
     bcd = _sym(bcd)
     if intrinsic:
-        cint = (-(E ** 2) * L ** (3 - d) / (2 * HB)) * m["bcp"]
+        cint = (-(E ** 2) * L ** (3 - d) / (2 * HB)) * m.bcp
     else:
-        cint = jnp.zeros_like(m["bcp"])
+        cint = jnp.zeros_like(m.bcp)
     cint = _sym(cint).astype(jnp.complex128)
-    out["chi_parts"] = {"dipole": bcd, "drude": nd2, "intrinsic": cint}
-    out["chi_dc_parts"] = {"dipole": bcd, "drude": nd0, "intrinsic": cint}
+    out["chi_parts"] = ChiParts(dipole=bcd, drude=nd2, intrinsic=cint)
+    out["chi_dc_parts"] = ChiParts(dipole=bcd, drude=nd0, intrinsic=cint)
     out["chi"] = bcd + nd2 + cint
     out["chi_dc"] = bcd + nd0 + cint
     # Lorentz Hall term and thermoelectric tensors (dc Drude part)
-    out["sigma_lorentz"] = m["lorentz"] * (E ** 5 * FS ** 2 * L ** (4 - d) / HB ** 4)
-    s0 = m["drude0"] * (E ** 3 * FS * L ** (2 - d) / HB ** 2)
-    l1 = m["thermo1"] * (E ** 4 * FS * L ** (2 - d) / HB ** 2)
-    l2 = m["thermo2"] * (E ** 5 * FS * L ** (2 - d) / HB ** 2)
+    out["sigma_lorentz"] = m.lorentz * (E ** 5 * FS ** 2 * L ** (4 - d) / HB ** 4)
+    s0 = m.drude0 * (E ** 3 * FS * L ** (2 - d) / HB ** 2)
+    l1 = m.thermo1 * (E ** 4 * FS * L ** (2 - d) / HB ** 2)
+    l2 = m.thermo2 * (E ** 5 * FS * L ** (2 - d) / HB ** 2)
     T = jnp.maximum(temp, T_FLOOR)[:, None, None]
     s0inv = jnp.linalg.inv(s0)
     out["seebeck"] = -(s0inv @ l1) / (E * T)
@@ -222,7 +331,7 @@ def _to_si(mom, model, temp, intrinsic):
         out["hall_coefficient"] = jnp.full(temp.shape, jnp.nan)
     if "dipole_sea" not in out:
         out["dipole_sea"] = jnp.full(out["dipole"].shape, jnp.nan)
-    return out
+    return Response(**out)
 
 
 def _is_traced(*xs):
@@ -234,7 +343,7 @@ def _floors(mom, model, tau_max):
     """Integrand magnitudes in SI: the size a field would have without cancellations.  A field
     that vanishes by symmetry is judged against 1e-2 of this instead of its own (zero) size."""
     L, g, d = ANGSTROM, model.degeneracy, model.dim
-    mx = lambda key: float(np.max(np.asarray(mom[key]))) * g
+    mx = lambda key: float(np.max(np.asarray(getattr(mom, key)))) * g
     dip = mx("scale_dipole")
     chi = (dip * E ** 3 * FS * tau_max * L ** (3 - d) / (2 * HB ** 2)
            + mx("scale_drude2") * E ** 4 * FS ** 2 * L ** (3 - d) / (2 * HB ** 3)
@@ -249,7 +358,7 @@ def _converged(fine, err, mom_fine, rtol, model, tau_max):
     bad = []
     floors = _floors(mom_fine, model, tau_max)
     for name in ("density", "sigma", "sigma_anomalous", "dipole", "chi", "chi_dc"):
-        a, e = np.asarray(fine[name]), np.asarray(err[name])
+        a, e = np.asarray(getattr(fine, name)), np.asarray(getattr(err, name))
         size = float(np.max(np.abs(a))) if a.size else 0.0
         floor = floors.get(name, 0.0) * 1e-2
         diff = float(np.max(e)) if e.size else 0.0
@@ -258,12 +367,9 @@ def _converged(fine, err, mom_fine, rtol, model, tau_max):
     return bad
 
 
-def _field_errors(a, b):
-    """|a − b| for every response field and every χ part (SI dicts of :func:`_to_si`)."""
-    err = {name: jnp.abs(a[name] - b[name]) for name in ARRAY_FIELDS}
-    for part in ("dipole", "drude", "intrinsic"):
-        err[f"chi_{part}"] = jnp.abs(a["chi_parts"][part] - b["chi_parts"][part])
-    return err
+def _field_errors(a: Response, b: Response) -> Response:
+    """|a − b| for every response field and every χ part (SI fields of :func:`_to_si`)."""
+    return jax.tree_util.tree_map(lambda x, y: jnp.abs(x - y), a, b)
 
 
 @partial(jax.jit, static_argnames=("plan", "tau_eval", "filled", "sea"))
@@ -308,13 +414,13 @@ def _ladder_errors(fine_m, coarse_m, ex_m, over, model, temp, intrinsic):
 SEA_FIELDS = ("density", "sigma_anomalous", "dipole_sea")
 
 
-def _window_errors(err, unresolved):
+def _window_errors(err: Response, unresolved) -> Response:
     """inf for the Fermi-window fields of the conditions whose thermal window the nodes miss."""
-    def mark(key, e):
-        if key in SEA_FIELDS:
+    def mark(path, e):
+        if path[0].name in SEA_FIELDS:
             return e
         return jnp.where(unresolved.reshape(unresolved.shape + (1,) * (e.ndim - 1)), jnp.inf, e)
-    return {key: mark(key, e) for key, e in err.items()}
+    return jax.tree_util.tree_map_with_path(mark, err)
 
 
 def _mesh_path(model, muf, kt, Tf, tauf, omega, kw, rtol, resolution, max_level, intrinsic,
@@ -401,7 +507,7 @@ def _ladder_path(model, muf, kt, Tf, tauf, omega, kw, rtol, resolution, max_leve
     nres = len(_ladder.RESOLUTIONS)
     if traced and plan is None:
         raise ValueError("response: with engine='ladder' under jax.grad/jit pass plan=..., the plan of "
-                         "a concrete call: dict(response(...).resolution)['plan']")
+                         "a concrete call: response(...).resolution.plan")
     bad = None
     k_points = 0
     if resolution is None:
@@ -465,7 +571,7 @@ def _rays_path(model, muf, kt, Tf, tauf, omega, kw, rtol, resolution, max_level,
     nres = len(_rays.RESOLUTIONS)
     if traced and plan is None:
         raise ValueError("response: with engine='rays' under jax.grad/jit pass plan=..., the plan of "
-                         "a concrete call: dict(response(...).resolution)['plan']")
+                         "a concrete call: response(...).resolution.plan")
     k_points = 0
     centres = len(model.domain.centers)
     runs, attempts = {}, {}
@@ -530,7 +636,7 @@ def _refuse_non_finite(fine, info):
     the mesh (a user Hamiltonian that divides by zero, takes a square root of a negative number, ...
     away from the build-time check points): refuse it rather than return NaN."""
     for name in FINITE_FIELDS:
-        a = np.asarray(fine[name])
+        a = np.asarray(getattr(fine, name))
         bad = ~np.isfinite(a.reshape(a.shape[0], -1)).all(axis=1) if a.size else np.zeros(0, bool)
         if bad.any():
             raise ValueError(
@@ -577,7 +683,7 @@ def response(model: BandModel, mu, temperature, tau, frequency=0.0, *, rtol: flo
     ``resolution`` fixes the refinement level (required under ``jax.grad``/``jit``); ``None``
     chooses it automatically for ``rtol``.  ``dipole_route="both"`` also evaluates the Fermi-sea
     integral ∫f0 ∂Ω (``dipole_sea``) and folds the disagreement of the two routes into
-    ``error["dipole"]``.  With a fixed ``resolution``, ``estimate_error=False`` skips the coarser
+    ``error.dipole``.  With a fixed ``resolution``, ``estimate_error=False`` skips the coarser
     pass (half the cost, e.g. inside fits); ``error`` is then NaN.  The node quadrature at
     ``resolution=0`` has no coarser level to compare with: its ``error`` is NaN (unavailable), never 0.
 
@@ -613,7 +719,7 @@ def response(model: BandModel, mu, temperature, tau, frequency=0.0, *, rtol: flo
     conditions (sweeps over μ, T, τ and ω cost energy sums, not k-points) on shells around the
     Fermi contours that narrow with temperature, and T below its deepest level is reached by T²
     extrapolation.  ``resolution`` then indexes ``ladder.RESOLUTIONS``; under ``jax.grad``/``jit``
-    also pass ``plan=dict(r.resolution)["plan"]`` from a concrete call.  ``resolution`` metadata
+    also pass ``plan=r.resolution.plan`` from a concrete call.  ``resolution`` metadata
     always includes ``k_points``, the distinct k-points where the band geometry was evaluated
     (all passes and conditions).
     """
@@ -679,10 +785,10 @@ def response(model: BandModel, mu, temperature, tau, frequency=0.0, *, rtol: flo
                                           resolution, max_level, intrinsic, estimate_error, tau_max, P,
                                           budget)
     if dipole_route == "both":
-        err["dipole"] = jnp.maximum(err["dipole"], jnp.abs(fine["dipole"] - fine["dipole_sea"]))
+        err = dataclasses.replace(err, dipole=jnp.maximum(err.dipole, jnp.abs(fine.dipole - fine.dipole_sea)))
     if resolution is not None and not estimate_error:
         # no estimate was asked for: NaN, except where the engine knows the value is unresolved (inf)
-        err = {key: jnp.where(jnp.isposinf(v), v, jnp.nan) for key, v in err.items()}
+        err = jax.tree_util.tree_map(lambda v: jnp.where(jnp.isposinf(v), v, jnp.nan), err)
     if not _is_traced(fine):
         _refuse_non_finite(fine, info)
     reshape = lambda x: x.reshape(shape + x.shape[1:])
@@ -701,7 +807,6 @@ def response(model: BandModel, mu, temperature, tau, frequency=0.0, *, rtol: flo
             "error = inf. Use engine='ladder' (the default for 2D lattices with resolution=None), a finer "
             "resolution, or a higher temperature.", RuntimeWarning, stacklevel=2)
     info.update({"converged": converged, "unconverged_fields": unconverged})
-    units = UNITS_2D if model.dim == 2 else UNITS_3D
-    return Response(**{k: fine[k] for k in ARRAY_FIELDS}, chi_parts=fine["chi_parts"],
-                    chi_dc_parts=fine["chi_dc_parts"], error=err, resolution=tuple(sorted(info.items())),
-                    units=dict(units))
+    units = Units(UNITS_2D if model.dim == 2 else UNITS_3D)
+    return dataclasses.replace(fine, error=dataclasses.replace(err, units=units), resolution=Resolution(**info),
+                               units=units)

@@ -27,8 +27,9 @@ How it is computed (docs/theory.md §A3, §A6):
   array is the derivative of each sweep point with respect to its own value (sweep points are
   independent).
 * Units: ``units[field]`` of each returned Response reads ``"(field unit) / (input unit)"``.
-  ``error[field]`` is |∂(error estimate)/∂name|: for real fields this is exactly the difference
-  of the derivative between the two mesh levels, for complex fields a lower estimate of it.
+  ``error.<field>`` (``error.sigma``, ``error.chi_parts.dipole``, …) is |∂(error estimate)/∂name|:
+  for real fields this is exactly the difference of the derivative between the two mesh levels,
+  for complex fields a lower estimate of it.
   Fields the solver did not compute (NaN, e.g. ``dipole_sea`` without ``dipole_route="both"``)
   have NaN derivatives.
 
@@ -37,17 +38,21 @@ each knob (per 0.1 % strain, per kelvin, per femtosecond, …) for reports.
 """
 from __future__ import annotations
 
+import dataclasses
 import difflib
 from typing import Callable, Iterable, Mapping, NamedTuple
 
 import jax
 import jax.numpy as jnp
 import numpy as np
-from crosswind.models.band_model import BandModel
-from crosswind.solver.engine.response import ARRAY_FIELDS, Response, response
-from crosswind.solver.engine.scattering import ConstantTau, as_scattering
 
-CONDITIONS = {"mu": "eV", "temperature": "K", "tau": "fs"}
+from crosswind.models.band_model import BandModel
+from crosswind.solver.engine.response import Response, Units, response
+from crosswind.solver.engine.scattering import ConstantTau, as_scattering
+from crosswind.solver.vocabulary import KNOBS
+
+# the conditions one may differentiate by, with their units (those of the scenario knobs)
+CONDITIONS = {"mu": KNOBS["mu_eV"].unit, "temperature": KNOBS["temperature_K"].unit, "tau": KNOBS["tau_fs"].unit}
 
 
 # --------------------------------------------------------------------------------------------
@@ -135,14 +140,12 @@ def _tidy(primal: Response, tangent: Response, model, name) -> Response:
     def fix(p, t):
         return jnp.where(jnp.isnan(p), jnp.nan, t)
 
-    arrays = {f: fix(getattr(primal, f), getattr(tangent, f)) for f in ARRAY_FIELDS}
-    parts = {k: fix(primal.chi_parts[k], v) for k, v in tangent.chi_parts.items()}
-    dc_parts = {k: fix(primal.chi_dc_parts[k], v) for k, v in tangent.chi_dc_parts.items()}
-    err = {k: jnp.where(primal.error[k] == 0, 0.0, jnp.abs(v)) for k, v in tangent.error.items()}
+    bare = lambda r: dataclasses.replace(r, error=None)
+    values = jax.tree_util.tree_map(fix, bare(primal), bare(tangent))
+    err = jax.tree_util.tree_map(lambda p, t: jnp.where(p == 0, 0.0, jnp.abs(t)), primal.error, tangent.error)
     u = _unit_of(model, name)
-    units = {k: f"({v}) / ({u})" for k, v in primal.units.items()}
-    return Response(**arrays, chi_parts=parts, chi_dc_parts=dc_parts, error=err,
-                    resolution=primal.resolution, units=units)
+    units = Units({k: f"({v}) / ({u})" for k, v in primal.units.items()})
+    return dataclasses.replace(values, error=dataclasses.replace(err, units=units), units=units)
 
 
 # --------------------------------------------------------------------------------------------

@@ -40,8 +40,9 @@ from dataclasses import dataclass
 import jax
 import jax.numpy as jnp
 import numpy as np
+
 from crosswind.solver.engine import ladder as _ladder
-from crosswind.solver.engine.kernels import _tilde
+from crosswind.solver.engine.kernels import Moments, _tilde
 from crosswind.solver.engine.mesh import energies_at
 
 WINDOW_X = 40.0          # Fermi window half-width in k_BT (neglected weight ~ e^-40)
@@ -371,8 +372,9 @@ def energy_nodes(mu, kt, e_lo, delta, M):
 
 
 def moments_from_tables(table, layout, vol, mu, kt, temp, tau_eval, tau_arr, omega, filled, sea):
-    """The kernel sums of :func:`crosswind.solver.engine.kernels.point_kernels` (same keys and units) for
-    P conditions from one transport table ``(C, S, E_lo, δ)``."""
+    """The kernel sums of :func:`crosswind.solver.engine.kernels.point_kernels` (a
+    :class:`~crosswind.solver.engine.kernels.Moments`, same units) for P conditions from one
+    transport table ``(C, S, E_lo, δ)``."""
     C, S, e_lo, delta = table
     M = C.shape[0]
     x, wq = energy_nodes(mu, kt, e_lo, delta, M)                     # (P, Q)
@@ -423,4 +425,4 @@ def moments_from_tables(table, layout, vol, mu, kt, temp, tau_eval, tau_arr, ome
     out["scale_bcp"] = fs("sc_bcp")
     if sea:
         out["dipole_sea"] = sea_("dom")
-    return out
+    return Moments(**out)

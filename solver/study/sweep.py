@@ -245,17 +245,21 @@ def compute_batch(scn: Scenario, values: dict) -> dict:
     out = {"mu": np.asarray(got.mu), "density": np.asarray(r.density)}
     for k in ("sigma", "sigma_drude", "sigma_anomalous", "dipole", "chi", "chi_dc"):
         out[k] = np.asarray(getattr(r, k))
-    for part, v in r.chi_parts.items():
+    parts = as_dict(r.chi_parts)
+    for part, v in parts.items():
         out[f"chi_{part}"] = np.asarray(v)
-    info = dict(r.resolution)
-    compared = error_available(info)
+    res = r.resolution
+    compared = error_available(as_dict(res))
     for k in ERROR_FIELDS:
-        e = np.asarray(r.error[k])
+        # "chi_dipole", ... name the χ parts (r.error.chi_parts.dipole, ...)
+        e = np.asarray(getattr(r.error.chi_parts, k[4:]) if k.startswith("chi_") and k[4:] in parts
+                       else getattr(r.error, k))
         out[f"error_{k}"] = e if compared else np.full(e.shape, np.nan)
     out["has_error_estimate"] = np.full(P, int(compared))
-    out["resolution_level"] = np.full(P, int(info["level"]))
-    out["converged"] = np.full(P, -1 if info["converged"] is None else int(bool(info["converged"])))
-    out["nodes_per_condition"] = np.full(P, int(info.get("nodes_per_condition", -1)))   # -1: energy engines
+    out["resolution_level"] = np.full(P, int(res.level))
+    out["converged"] = np.full(P, -1 if res.converged is None else int(bool(res.converged)))
+    nodes = -1 if res.nodes_per_condition is None else int(res.nodes_per_condition)   # -1: energy engines
+    out["nodes_per_condition"] = np.full(P, nodes)
     for k, v in as_dict(got.reading).items():
         out[f"dev_{k}"] = np.asarray(v)
     out["dev_sigma_bar"] = np.asarray(got.sigma_bar)
