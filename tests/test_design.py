@@ -214,6 +214,14 @@ def test_measurability_of_a_sweep_dataset(folder):
     assert lines[0].startswith(f"**{noise.VERDICTS[code].capitalize()}** at the chosen settings (at the 2ω peak")
     assert "SNR 10 after" in lines[0] and "Over the sweep:" in lines[2]
     assert any(line.startswith("- Joule heating at the peak") for line in lines)
+    # the sweep's own dataset carries the same fields; measurement settings are not part of the run's
+    # fingerprint: a rerun with another time constant resumes every batch and recomputes the SNR
+    np.testing.assert_allclose(ds["snr_v2w_y"].values, m["snr_v2w_y"].values, rtol=1e-14)
+    slower = parse_scenario(SCN.format(density="[2e12, 4e12]").replace("current_uA = 10\n", "current_uA = 10\n"
+                            "time_constant_ms = 4000\n"), source=str(folder / "m.toml"), base=folder)
+    again = run_scenario(slower, folder / "sweep", progress=False)
+    assert json.loads(again.attrs["batches_computed_this_run"]) == []
+    np.testing.assert_allclose(again["snr_v2w_y"].values, 2.0 * ds["snr_v2w_y"].values, rtol=1e-12)
 
 
 DESIGN = """

@@ -49,6 +49,7 @@ import numpy as np
 
 from crosswind.solver.pytrees import as_dict
 from crosswind.solver.study.chain import evaluate
+from crosswind.solver.study.design import SETTINGS_KEYS, measurability
 from crosswind.solver.study.files import atomic_text, atomic_write, check_free_space
 from crosswind.solver.study.knobs import base_values
 from crosswind.solver.study.scenario import Scenario
@@ -73,14 +74,17 @@ def _sha(data: bytes) -> str:
 
 
 # tables that do not change the sweep's numbers: where results go, figures, later analyses
-_NOT_IN_RESULTS = ("output", "sensitivities", "fit")
+_NOT_IN_RESULTS = ("output", "sensitivities", "fit", "design")
 
 
 def fingerprint_parts(scn: Scenario) -> dict:
     """A hash per input the sweep's numbers depend on: the parsed scenario (so a comment-only edit
-    changes nothing; [output], [sensitivities] and [fit] are left out), the content of every file
-    it reads (the tight-binding definition) and the package version."""
+    changes nothing; [output], [sensitivities], [fit] and [design] are left out, and so are the
+    measurement settings of [device], whose measurability fields are recomputed on every run), the
+    content of every file it reads (the tight-binding definition) and the package version."""
     data = {k: v for k, v in tomllib.loads(scn.text).items() if k not in _NOT_IN_RESULTS}
+    if isinstance(data.get("device"), dict):
+        data["device"] = {k: v for k, v in data["device"].items() if k not in SETTINGS_KEYS}
     parts = {"scenario": _sha(json.dumps(data, sort_keys=True, default=str).encode()),
              "package version": package_version()}
     tb = scn.material.tight_binding
@@ -373,6 +377,10 @@ def _run_locked(scn: Scenario, folder: Path, progress: bool, after_batch):
     finally:
         prog.close()
     ds = assemble(scn, results, inner, outer, combos)
+    # noise floor, verdict and artefacts per point (docs/theory.md §15; cheap, from the device fields)
+    m = measurability(ds, scn.device)
+    ds = ds.merge(m)
+    ds.attrs.update(noise_settings=m.attrs["noise_settings"], measurability_codes=m.attrs["verdicts"])
     ds.attrs["batches_computed_this_run"] = json.dumps(computed)
     ds.attrs["wall_time_s_this_run"] = round(time.time() - t0, 3)
     write_results(ds, folder)
