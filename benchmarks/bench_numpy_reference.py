@@ -88,6 +88,7 @@ def run(max_n=16384):
     err_np = abs(dx / REFERENCE_DX - 1)
 
     import jax
+
     from crosswind.models import build
     from crosswind.solver import response
     model = build("honeycomb", staggered=0.2, strain_xx=0.01)

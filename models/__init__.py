@@ -10,6 +10,7 @@ from .runtime import configure as _configure
 
 _configure()
 
+from . import builtin  # noqa: E402,F401  (its modules register the catalogue entries)
 from .band_model import BandModel  # noqa: E402
 from .custom import from_function  # noqa: E402
 from .domain import Continuum, Lattice  # noqa: E402
@@ -17,7 +18,6 @@ from .geometry import BandGeometry, band_geometry, geometry_at  # noqa: E402
 from .params import Parameter, ParamSpec  # noqa: E402
 from .registry import build, catalogue, describe_catalogue  # noqa: E402
 from .tightbinding import load_tight_binding, parse_tight_binding  # noqa: E402
-from . import builtin  # noqa: E402,F401  (registers the catalogue; after the registry)
 
 __all__ = ["BandModel", "BandGeometry", "Continuum", "Lattice", "Parameter", "ParamSpec",
            "band_geometry", "build", "catalogue", "describe_catalogue", "geometry_at",

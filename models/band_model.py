@@ -16,8 +16,8 @@ The model is a pytree whose only leaves are the parameter values, so it can be p
 """
 from __future__ import annotations
 
+from collections.abc import Callable
 from dataclasses import dataclass, replace
-from typing import Callable, Optional
 
 import jax
 import jax.numpy as jnp
@@ -38,21 +38,21 @@ class BandModel:
     degeneracy: float = 1.0
     blocks: int = 1
     block_size: int = 2
-    dvector: Optional[Callable] = None
-    deformation: Optional[Callable] = None
+    dvector: Callable | None = None
+    deformation: Callable | None = None
     static: tuple = ()
     description: str = ""
     source: str = ""
     #: optional ``jet(k, params) -> (H, ∂H, ∂²H)`` with shapes (S, m, m), (S, m, m, d),
     #: (S, m, m, d, d): explicit Bloch sums where the hoppings are known (lattice models); without
     #: it the k-derivatives come from nested ``jax.jacfwd`` of ``hamiltonian``
-    jet: Optional[Callable] = None
+    jet: Callable | None = None
 
     @property
     def n_bands(self) -> int:
         return self.blocks * self.block_size
 
-    def with_params(self, **values) -> "BandModel":
+    def with_params(self, **values) -> BandModel:
         """A copy with some real parameter values replaced (no range checks: may be traced)."""
         unknown = set(values) - set(self.params)
         if unknown:

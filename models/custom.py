@@ -32,7 +32,8 @@ from __future__ import annotations
 
 import math
 import weakref
-from typing import Any, Callable, Mapping, Optional, Sequence
+from collections.abc import Callable, Mapping, Sequence
+from typing import Any
 
 import jax
 import jax.numpy as jnp
@@ -71,7 +72,7 @@ class _UserHamiltonian:
         return f"_UserHamiltonian({getattr(self.fn, '__name__', self.fn)!r})"
 
 
-_WRAPPERS: "weakref.WeakKeyDictionary[Callable, dict]" = weakref.WeakKeyDictionary()
+_WRAPPERS: weakref.WeakKeyDictionary[Callable, dict] = weakref.WeakKeyDictionary()
 
 
 def _wrapper_for(fn: Callable, add_axis: bool) -> _UserHamiltonian:
@@ -211,8 +212,8 @@ def _check_across_domain(wrapped, hamiltonian, domain, probe, owner: str) -> Non
 
 
 def from_function(hamiltonian: Callable, *, parameters, domain: Lattice | Continuum,
-                  values: Optional[Mapping[str, Any]] = None, degeneracy: float = 1.0,
-                  dvector: Optional[Callable] = None, name: str = "custom",
+                  values: Mapping[str, Any] | None = None, degeneracy: float = 1.0,
+                  dvector: Callable | None = None, name: str = "custom",
                   description: str = "", source: str = "") -> BandModel:
     """Wrap ``hamiltonian(k, params)`` into a :class:`BandModel` (see the module docstring).
 
@@ -255,7 +256,8 @@ def from_function(hamiltonian: Callable, *, parameters, domain: Lattice | Contin
 
     if dvector is not None:
         if m != 2:
-            raise ValueError(f"{owner}: dvector is only for two-band blocks; blocks here are {m}x{m}. Pass dvector=None.")
+            raise ValueError(f"{owner}: dvector is only for two-band blocks; blocks here are {m}x{m}. "
+                             "Pass dvector=None.")
         out = _call_checked(dvector, k0, probe, owner, "dvector")
         if not (isinstance(out, (tuple, list)) and len(out) == 2):
             raise ValueError(f"{owner}: dvector(k, params) must return (d0, d) with shapes (S,) and (S, 3).")

@@ -8,8 +8,9 @@ from __future__ import annotations
 
 import difflib
 import math
+from collections.abc import Mapping
 from dataclasses import dataclass
-from typing import Any, Mapping
+from typing import Any
 
 import jax
 import jax.numpy as jnp

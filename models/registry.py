@@ -2,8 +2,8 @@
 from __future__ import annotations
 
 import difflib
+from collections.abc import Callable
 from dataclasses import dataclass
-from typing import Callable
 
 from .band_model import BandModel
 from .params import ParamSpec

@@ -310,7 +310,7 @@ def _functions_for(defn: _Definition):
 
 # ----------------------------------------------------------------------------- parsing --------
 def _parse(data: dict, ctx: _Ctx):
-    for key, value in data.items():
+    for key in data:
         if key not in _TOP:
             close = difflib.get_close_matches(key, list(_TOP), n=1)
             hint = f" Did you mean '{close[0]}'?" if close else ""

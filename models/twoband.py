@@ -1,7 +1,7 @@
 """Helpers for two-band blocks H = d0·1 + d·σ, and for binding static lattice lengths."""
 from __future__ import annotations
 
-from functools import lru_cache
+from functools import cache
 
 import jax.numpy as jnp
 
@@ -11,10 +11,11 @@ EYE2 = jnp.eye(2, dtype=jnp.complex128)
 
 def from_dvector(d0, d):
     """Blocks (S, 2, 2) from d0 (S,) and d (S, 3)."""
-    return d0.astype(jnp.complex128)[:, None, None] * EYE2[None] + jnp.einsum("sc,cij->sij", d.astype(jnp.complex128), PAULI)
+    return (d0.astype(jnp.complex128)[:, None, None] * EYE2[None]
+            + jnp.einsum("sc,cij->sij", d.astype(jnp.complex128), PAULI))
 
 
-@lru_cache(maxsize=None)
+@cache
 def bind_length(fn, length: float):
     """``fn(k, p, length)`` as a function of (k, p), one object per (fn, length), so that models
     built twice with the same lattice share JAX's compilation cache."""
@@ -26,7 +27,7 @@ def bind_length(fn, length: float):
     return bound
 
 
-@lru_cache(maxsize=None)
+@cache
 def hamiltonian_of(dvector):
     """A Hamiltonian function built from a d-vector function (kept as a module-level object by
     the caller so that its identity, and hence JAX's compilation cache, is stable)."""

@@ -17,6 +17,7 @@ import shutil
 import sys
 import textwrap
 import time
+import warnings
 from pathlib import Path
 
 import crosswind.validation as validation
@@ -30,7 +31,7 @@ from crosswind.solver.reporting.report import write_report
 from crosswind.solver.study import design as device_design
 from crosswind.solver.study import sweep
 from crosswind.solver.study.files import OutputError, atomic_text
-from crosswind.solver.study.scenario import ScenarioError, load_scenario, parse_scenario
+from crosswind.solver.study.scenario import ScenarioError, ScenarioWarning, load_scenario, parse_scenario
 from crosswind.solver.study.sweep import RunError
 
 
@@ -69,7 +70,8 @@ def _parser() -> argparse.ArgumentParser:
     d = sub.add_parser("demo", help="run the built-in demonstration scenario",
                        description="Run a small built-in scenario (strained MoS2 Hall bar, gate and "
                                    "temperature sweep) and write results, figures and a summary.")
-    d.add_argument("--output", "-o", metavar="DIR", default="crosswind-demo", help="output folder (default: %(default)s)")
+    d.add_argument("--output", "-o", metavar="DIR", default="crosswind-demo",
+                   help="output folder (default: %(default)s)")
     d.add_argument("--no-progress", action="store_true", help="do not show progress on stderr")
     d.add_argument("--fit", action="store_true", help="also fit invented measurements (generated from the demo "
                    "model plus noise) and report the recovered parameters (adds minutes)")
@@ -139,9 +141,19 @@ def _headline_line(path: Path) -> str:
     return para.split(". ")[0] + "."
 
 
+def _load(path):
+    """Load a scenario; its plausibility warnings are printed as one ``crosswind: warning:`` line each."""
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", ScenarioWarning)
+        scn = load_scenario(path)
+    for line in scn.cautions:
+        print(f"crosswind: warning: {line}", file=sys.stderr, flush=True)
+    return scn
+
+
 def cmd_fit(args) -> int:
     try:
-        scn = load_scenario(args.scenario)
+        scn = _load(args.scenario)
     except ScenarioError as exc:
         _err(str(exc))
         return 2
@@ -155,7 +167,8 @@ def cmd_fit(args) -> int:
     if args.starts is not None and args.starts < 1:
         _err("--starts must be >= 1")
         return 2
-    folder = Path(args.output) if args.output else Path(args.scenario).resolve().parent / f"fit-{Path(args.scenario).stem}"
+    default = Path(args.scenario).resolve().parent / f"fit-{Path(args.scenario).stem}"
+    folder = Path(args.output) if args.output else default
     t0 = time.time()
     try:
         show = sys.stderr.isatty() if args.progress is None else args.progress
@@ -178,7 +191,7 @@ def cmd_fit(args) -> int:
 
 def cmd_design(args) -> int:
     try:
-        scn = load_scenario(args.scenario)
+        scn = _load(args.scenario)
     except ScenarioError as exc:
         _err(str(exc))
         return 2
@@ -209,7 +222,7 @@ def cmd_design(args) -> int:
 
 def cmd_run(args) -> int:
     try:
-        scn = load_scenario(args.scenario)
+        scn = _load(args.scenario)
     except ScenarioError as exc:
         _err(str(exc))
         return 2

@@ -92,7 +92,9 @@ folder = "crosswind-demo-fit"
 quantity = "V2w"           # transverse 2w amplitude ...
 axis = "gate_V"            # ... against gate voltage
 data = "invented_measurements.csv"
-parameters = {tilt_conduction = {initial = 0.6, bounds = [0.1, 3.0]}, gate_offset_V = {initial = 0.0, bounds = [-10.0, 10.0]}}
+[fit.parameters]
+tilt_conduction = {initial = 0.6, bounds = [0.1, 3.0]}
+gate_offset_V = {initial = 0.0, bounds = [-10.0, 10.0]}
 """
 
 

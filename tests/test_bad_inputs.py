@@ -15,8 +15,8 @@ from crosswind.models.domain import Continuum, Lattice
 from crosswind.models.tightbinding import TightBindingFileError, parse_tight_binding
 from crosswind.solver import ConstantTau, MatthiessenTau, PowerLawTau, response
 from crosswind.solver.study import sweep as run_mod
-from crosswind.solver.study.sweep import RunError, run_scenario
 from crosswind.solver.study.scenario import ScenarioError, parse_scenario
+from crosswind.solver.study.sweep import RunError, run_scenario
 
 DIRAC = {"velocity": 5e5, "mass": 0.1, "tilt": 5e4}
 NAN, INF = math.nan, math.inf
@@ -511,8 +511,8 @@ def test_unreliable_fit_sets_exit_status_summary_and_json(tmp_path, monkeypatch,
     in the summary and fit.json (the model is a stand-in: no k-space work)."""
     import json
 
-    from crosswind.solver.fitting import scenario_fit
     from crosswind.solver.cli import main
+    from crosswind.solver.fitting import scenario_fit
     monkeypatch.setattr(scenario_fit, "predictor",
                         lambda scn: ((lambda params, x: params["mass"] * 1e-20 * jnp.asarray(x)), {}))
     sp = tmp_path / "s.toml"
@@ -573,8 +573,8 @@ def test_full_disk_before_the_dataset_keeps_checkpoints_and_resumes(tmp_path, mo
 
 
 def test_full_disk_during_a_run_exits_2_with_one_line_and_no_partial_file(tmp_path, monkeypatch, capsys):
-    from crosswind.solver.study import files
     from crosswind.solver.cli import main
+    from crosswind.solver.study import files
     monkeypatch.setattr(run_mod, "compute_batch", _fake_batch([]))
     monkeypatch.setattr(files.os, "fsync", _disk_full)
     out = tmp_path / "o"

@@ -256,7 +256,7 @@ def solver_mesh(model, level, mu, kt):
     return np.asarray(k), np.asarray(w)
 
 
-@functools.lru_cache(maxsize=None)
+@functools.cache
 def comparison(level):
     """{ωτ: (oracle tensors, solver tensors)} on the level-``level`` lattice mesh."""
     model = toy_model()

@@ -3,10 +3,11 @@ import subprocess
 import sys
 from pathlib import Path
 
-import crosswind.validation
 import pytest
-from crosswind.solver.cli import main
 from test_scenario import GOOD
+
+import crosswind.validation
+from crosswind.solver.cli import main
 
 
 @pytest.mark.parametrize("argv", [["--help"], ["run", "--help"], ["demo", "--help"], ["models", "--help"],

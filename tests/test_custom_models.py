@@ -7,8 +7,16 @@ import numpy as np
 import pytest
 
 import crosswind.models.geometry as geometry_module
-from crosswind.models import (Continuum, Lattice, Parameter, band_geometry, build, from_function,
-                              load_tight_binding, parse_tight_binding)
+from crosswind.models import (
+    Continuum,
+    Lattice,
+    Parameter,
+    band_geometry,
+    build,
+    from_function,
+    load_tight_binding,
+    parse_tight_binding,
+)
 from crosswind.models.tightbinding import TightBindingFileError, data_file
 from crosswind.models.units import ANGSTROM, HBAR_EVS
 

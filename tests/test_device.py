@@ -38,7 +38,7 @@ def test_check_36_hall_bar_voltage(tilted_pair):
 
 def test_second_harmonic_scales_as_current_squared_and_inverse_width():
     # derived in docs/theory.md §10: V_y = −χ_yxx I²/(W σ_xx² σ_yy)
-    v = lambda I, W: complex(hall_bar(SIG, CHI, CHI, HallBar(W, 10.0, I)).v2w_y)
+    v = lambda current, W: complex(hall_bar(SIG, CHI, CHI, HallBar(W, 10.0, current)).v2w_y)
     assert v(20.0, 5.0) / v(10.0, 5.0) == pytest.approx(4.0, rel=1e-12)
     assert v(10.0, 10.0) / v(10.0, 5.0) == pytest.approx(0.5, rel=1e-12)
     expected = -CHI[1, 0, 0] * (10e-6) ** 2 / (5e-6 * SIG[0, 0] ** 2 * SIG[1, 1])

@@ -9,8 +9,8 @@ from scipy.optimize import least_squares
 
 from crosswind.models import build
 from crosswind.models.units import ANGSTROM, E_CHARGE, HBAR_EVS, HBAR_JS
-from crosswind.solver.fitting import fit
 from crosswind.solver import FitResult, load_measurements, response, scaling_fit
+from crosswind.solver.fitting import fit
 
 # ---------------------------------------------------------------------------------------------
 # analytic dipole signal: docs/theory.md §5.5 and §6 (first order in the tilt, T = 0)

@@ -8,14 +8,13 @@ import json
 
 import numpy as np
 import pytest
+from test_scenario import GOOD
 
 from crosswind.solver.cli import main
 from crosswind.solver.study.chain import evaluate
 from crosswind.solver.study.knobs import base_values
-from crosswind.solver.study.sweep import open_results
 from crosswind.solver.study.scenario import ScenarioError, load_scenario
-
-from test_scenario import GOOD
+from crosswind.solver.study.sweep import open_results
 
 BASE = GOOD.replace("mu_eV = [0.13, 0.15]", "mu_eV = 0.14").replace("temperature_K = [5, 20]", "temperature_K = 20") \
     .replace("current_angle_deg = [0, 90]", "current_angle_deg = 0").replace("resolution = 0", "resolution = 1")

@@ -31,7 +31,7 @@ LEVEL = 0                       # the ratios are exact on any fixed mesh
 RTOL = 1e-10
 
 
-@functools.lru_cache(maxsize=None)
+@functools.cache
 def solved(omega_tau):
     model = build("massive-dirac", velocity=5e5, mass=0.1, tilt=5e4, valleys=1)
     frequency = omega_tau / TAU * 1e15 / (2 * np.pi)           # Hz

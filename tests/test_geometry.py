@@ -13,7 +13,7 @@ import numpy as np
 import pytest
 
 from crosswind.models import Lattice, band_geometry, build, catalogue
-from crosswind.models.units import ANGSTROM, HBAR_EVS, HBAR2_OVER_ME_EVA2, M_E
+from crosswind.models.units import ANGSTROM, HBAR2_OVER_ME_EVA2, HBAR_EVS, M_E
 
 FIELDS = ("energies", "energy_gradient", "energy_hessian", "berry_curvature", "orbital_moment",
           "quantum_metric", "polarizability")

@@ -12,8 +12,8 @@ import numpy as np
 import pytest
 
 from crosswind.models import build
-from crosswind.solver.engine import ladder as ld
 from crosswind.solver import response
+from crosswind.solver.engine import ladder as ld
 from crosswind.solver.engine.occupation import thermal_energy
 from crosswind.solver.engine.scattering import as_scattering
 from crosswind.validation.fermi_contour import uniform_grid_reference
@@ -157,6 +157,7 @@ def test_tight_binding_file_against_an_independent_uniform_grid():
     curvature by the ladder (automatic, rtol 1e-3) against the numpy grid (n = 1200; unchanged at
     n = 1600), within the ladder's own estimate."""
     import importlib.resources as ir
+
     from scipy import constants as sc
 
     from crosswind.models import load_tight_binding

@@ -20,8 +20,8 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
 from crosswind.models.tightbinding import TightBindingFileError, data_file, load_tight_binding, parse_tight_binding
-from crosswind.solver.study.scenario import Scenario, ScenarioError, load_scenario, parse_scenario
 from crosswind.solver.fitting.scenario_fit import FitInputError, load_data
+from crosswind.solver.study.scenario import Scenario, ScenarioError, load_scenario, parse_scenario
 
 SETTINGS = settings(max_examples=int(os.environ.get("CROSSWIND_FUZZ_EXAMPLES", "150")), deadline=None, derandomize=True, database=None,
                     suppress_health_check=[HealthCheck.too_slow])

@@ -1,7 +1,7 @@
 """Catalogue models "tmd", "tmd-lattice" and "weyl": Hamiltonian structure, band-edge numbers,
 Berry curvature, symmetry checks, strain, and input errors.  Each check names its source."""
 from dataclasses import replace
-from functools import lru_cache
+from functools import cache
 
 import jax
 import jax.numpy as jnp
@@ -17,7 +17,7 @@ from crosswind.models.units import E2_OVER_H, E_CHARGE, HBAR_EVS
 RNG = np.random.default_rng(7)
 
 
-@lru_cache(maxsize=None)
+@cache
 def _block_dvector(dv):
     def f(k, p):
         d0, d = dv(k, p)
@@ -35,7 +35,7 @@ def block(model, i):
     return replace(model, dvector=f, hamiltonian=h, blocks=1, params=params)
 
 
-@lru_cache(maxsize=None)
+@cache
 def _batched_h(ham):
     return jax.jit(jax.vmap(ham, in_axes=(0, None)))
 

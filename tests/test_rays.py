@@ -4,14 +4,14 @@ import jax
 import jax.numpy as jnp
 import numpy as np
 import pytest
+from scipy import constants as C
+
 from crosswind.models import build
-from crosswind.solver.engine import rays
 from crosswind.solver import response
+from crosswind.solver.engine import rays
 from crosswind.solver.engine.occupation import thermal_energy
 from crosswind.solver.engine.response import _rays_at
 from crosswind.solver.engine.scattering import ConstantTau
-from scipy import constants as C
-
 from validation.references import dirac_density, tilted_dipole_quadrature
 
 TILTED = dict(velocity=5e5, mass=0.1, tilt=5e4)

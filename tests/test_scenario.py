@@ -8,8 +8,8 @@ import pytest
 from crosswind.models import build
 from crosswind.solver import response
 from crosswind.solver.study import sweep as run_mod
-from crosswind.solver.study.sweep import RunError, open_results, run_scenario
 from crosswind.solver.study.scenario import ScenarioError, ScenarioWarning, load_scenario, parse_scenario
+from crosswind.solver.study.sweep import RunError, open_results, run_scenario
 
 GOOD = """
 [material]

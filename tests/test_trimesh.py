@@ -4,9 +4,9 @@ Checks: the linear-triangle density of states and occupied area of a band are ex
 interpolant (Lehmann & Taut, phys. stat. sol. (b) 54, 469, 1972); at T → 0 the Fermi-window
 integral of a 2D parabolic band equals m/(2πħ²) (common practice); sweeps over μ share one table.
 """
-import numpy as np
 import jax
 import jax.numpy as jnp
+import numpy as np
 
 from crosswind.models import build
 from crosswind.solver.engine import trimesh as tm

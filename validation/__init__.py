@@ -11,6 +11,7 @@ import tomllib
 from importlib import resources
 
 import numpy as np
+
 from crosswind.models import build
 from crosswind.solver.engine.response import response
 

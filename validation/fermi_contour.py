@@ -52,12 +52,13 @@ from __future__ import annotations
 import math
 import time
 
-import crosswind.models  # noqa: F401  (enables float64 in JAX)
 import jax
 import jax.numpy as jnp
 import numpy as np
-from crosswind.models import build
 from scipy import optimize
+
+import crosswind.models  # noqa: F401  (enables float64 in JAX)
+from crosswind.models import build
 
 KB_EV = 8.617333262e-5  # eV/K
 
@@ -206,7 +207,7 @@ def _ray_crossings(ev, c, u, radius, mu, r_probe, e_probe, xtol):
                 continue
             if d[i + 1, b] == 0:
                 continue  # picked up at i + 1
-            f = lambda r: ev.energy1(c + r * u)[b] - mu  # noqa: E731
+            f = lambda r: ev.energy1(c + r * u)[b] - mu  # noqa: E731, B023  (used at once, inside the loop)
             r = optimize.brentq(f, r_probe[i], r_probe[i + 1], xtol=xtol, rtol=4 * np.finfo(float).eps,
                                 maxiter=200)
             out.append((r, b))
@@ -255,7 +256,7 @@ def dipole_reference(model, mu, T, centres, radius, n_theta=256, order=16, n_sub
             slope = np.abs(np.einsum("ni,ni->n", gc[ii, bi], u[[j for (j, _, _) in flat]]))
         res = dict(dipole=np.zeros(2), dos=0.0, drude=np.zeros((2, 2)))
         if kT == 0.0:
-            for q, (j, r, b) in enumerate(flat):
+            for q, (_j, r, b) in enumerate(flat):
                 wq = meas * r / slope[q]
                 gq = gc[q, b]
                 res["dipole"] = res["dipole"] + wq * gq * omc[q, b]

@@ -5,10 +5,11 @@ Nothing here calls the Crosswind solver.
 from __future__ import annotations
 
 import numpy as np
-from crosswind.models import build
 from scipy import constants as C
 from scipy import constants as sc
 from scipy import integrate
+
+from crosswind.models import build
 
 from .fermi_contour import (
     BandEvaluator,

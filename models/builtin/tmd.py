@@ -52,8 +52,9 @@ explicitly overrides the preset.
 """
 from __future__ import annotations
 
+from collections.abc import Mapping
 from dataclasses import dataclass
-from typing import Any, Mapping
+from typing import Any
 
 import jax.numpy as jnp
 

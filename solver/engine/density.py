@@ -18,13 +18,14 @@ from functools import partial
 import jax
 import jax.numpy as jnp
 import numpy as np
+from scipy import constants as _c
+
 from crosswind.models.band_model import BandModel
 from crosswind.models.domain import Lattice
 from crosswind.solver.engine import mesh as _mesh
 from crosswind.solver.engine.mesh import energies_at
 from crosswind.solver.engine.occupation import fermi, thermal_energy
 from crosswind.solver.engine.response import _levels, neutral_filling
-from scipy import constants as _c
 
 MU_TOL = 1e-12    # eV: the solve stops when a step or the bracket is below this
 

@@ -42,6 +42,7 @@ from typing import Any
 import jax
 import jax.numpy as jnp
 import numpy as np
+
 from crosswind.solver.pytrees import pytree_dataclass
 from crosswind.solver.vocabulary import DEVICE_FIELDS
 

@@ -467,18 +467,18 @@ def condition_sums(levels, info, plan: Plan, mu, kt, temp, tau_eval, tau_arr, om
     L = plan.levels
     layout, vol = info["layout"], info["vol"]
     rho = plan.rho if which == "fine" else plan.rho / 2
-    kstar = [jnp.maximum(kt, ktl[l]) for l in range(L + 1)]
+    kstar = [jnp.maximum(kt, ktl[lv]) for lv in range(L + 1)]
     partial = []
     total = None
-    for l in range(L + 1):
-        lev = levels[l]
+    for lv in range(L + 1):
+        lev = levels[lv]
         delta = lev["delta"] if which == "fine" else 2 * lev["delta"]
         acc = lev[which]
-        if l == 0:
+        if lv == 0:
             part = _level_sums(acc, lev["e_lo"], delta, mu, kstar[0], None, kstar[0], temp, tau_eval,
                                tau_arr, omega, layout, sea, rho, True, filled * vol)
         else:
-            part = _level_sums(acc, lev["e_lo"], delta, mu, kstar[l], kstar[l - 1], ktl[l - 1], temp,
+            part = _level_sums(acc, lev["e_lo"], delta, mu, kstar[lv], kstar[lv - 1], ktl[lv - 1], temp,
                                tau_eval, tau_arr, omega, layout, sea, rho, False, 0.0)
         total = part if total is None else _tree_add(total, part)
         partial.append(total)

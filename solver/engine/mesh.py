@@ -30,6 +30,7 @@ from dataclasses import dataclass
 import jax
 import jax.numpy as jnp
 import numpy as np
+
 from crosswind.models.band_model import BandModel
 from crosswind.models.domain import Lattice
 

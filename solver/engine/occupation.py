@@ -17,6 +17,7 @@ from __future__ import annotations
 
 import jax
 import jax.numpy as jnp
+
 from crosswind.models.units import KB_EVK
 
 T_FLOOR = 1e-3  # K

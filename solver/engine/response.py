@@ -442,7 +442,7 @@ def _mesh_path(model, muf, kt, Tf, tauf, omega, kw, rtol, resolution, max_level,
         for start in range(0, P, block):
             # one compiled program for every block: the last one is padded with its last condition
             idx = np.minimum(np.arange(start, start + block), P - 1)
-            out = _moments_at(model, muf[idx], kt[idx], Tf[idx], jax.tree_util.tree_map(lambda a: a[idx], tauf),
+            out = _moments_at(model, muf[idx], kt[idx], Tf[idx], jax.tree_util.tree_map(lambda a: a[idx], tauf),  # noqa: B023
                               omega, level=lev, **kw)
             if not _is_traced(out):
                 out = jax.device_get(out)           # one block in memory at a time

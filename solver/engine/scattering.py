@@ -28,6 +28,7 @@ from dataclasses import dataclass
 
 import jax.numpy as jnp
 import numpy as np
+
 from crosswind.solver.engine.inputs import first_bad, is_traced
 from crosswind.solver.vocabulary import KNOBS
 

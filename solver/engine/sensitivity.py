@@ -40,7 +40,8 @@ from __future__ import annotations
 
 import dataclasses
 import difflib
-from typing import Callable, Iterable, Mapping, NamedTuple
+from collections.abc import Callable, Iterable, Mapping
+from typing import NamedTuple
 
 import jax
 import jax.numpy as jnp
@@ -197,7 +198,7 @@ def sensitivities(model: BandModel, wrt, *, mu, temperature, tau, frequency=0.0,
         value = f(x)
         tans = jax.vmap(lambda t: jax.jvp(f, (x,), (t,))[1])(stacked)
         for i, n in enumerate(names):
-            out[n] = _tidy(value, jax.tree_util.tree_map(lambda a: a[i], tans), model, n)
+            out[n] = _tidy(value, jax.tree_util.tree_map(lambda a: a[i], tans), model, n)  # noqa: B023
     return (value, out) if with_value else out
 
 

@@ -39,6 +39,7 @@ import warnings
 import jax
 import jax.numpy as jnp
 import numpy as np
+
 from crosswind.models.band_model import BandModel
 from crosswind.models.domain import Lattice
 from crosswind.models.eigh import DEGENERACY_TOL

@@ -40,8 +40,8 @@ from __future__ import annotations
 
 import inspect
 import math
+from collections.abc import Callable, Mapping
 from dataclasses import dataclass, field
-from typing import Callable, Mapping
 
 import jax
 import jax.numpy as jnp

@@ -383,4 +383,5 @@ def _is_sweep(v: dict) -> bool:
     return "start" in v and "stop" in v
 
 
-__all__ = ["run_fit", "FitInputError", "FitReport", "ScalingReport", "predictor", "fitted_scenario_text", "dumps_toml", "AXIS_COLUMNS"]
+__all__ = ["run_fit", "FitInputError", "FitReport", "ScalingReport", "predictor",
+           "fitted_scenario_text", "dumps_toml", "AXIS_COLUMNS"]

@@ -165,7 +165,8 @@ def _remedies(model, sym) -> str:
     if sym.get("C2"):
         tips.append("break inversion: a displacement field (interlayer asymmetry)"
                     + (" — raise `asymmetry`" if "asymmetry" in params else "")
-                    + " or a sublattice mass" + (" — `staggered`/`mass`/`gap`" if params & {"staggered", "mass", "gap"} else ""))
+                    + " or a sublattice mass"
+                    + (" — `staggered`/`mass`/`gap`" if params & {"staggered", "mass", "gap"} else ""))
     if sym.get("C3") or sym.get("C2"):
         if {"strain_xx", "strain_yy", "strain_xy"} & params:
             tips.append("break C3: uniaxial strain along a named crystal axis, e.g. `[material.strain] "
@@ -546,15 +547,18 @@ def plot_responses(ds, idx, path: Path, info=None):
             label = None
             if line_axis is not None:
                 sel[line_axis] = li
-                unit = {"deg": "°", "1": ""}.get(ds[line_axis].attrs.get("units", ""), ds[line_axis].attrs.get("units", ""))
-                label = f"{ds[line_axis].attrs.get('long_name', line_axis)} = {ds[line_axis].values[li]:g} {unit}".rstrip()
+                raw = ds[line_axis].attrs.get("units", "")
+                unit = {"deg": "°", "1": ""}.get(raw, raw)
+                long_name = ds[line_axis].attrs.get("long_name", line_axis)
+                label = f"{long_name} = {ds[line_axis].values[li]:g} {unit}".rstrip()
             amp = ds["v2w_y_amplitude"].isel(sel).values / fa
             sxx = ds["sigma_bar"].isel(sel).values[..., 0, 0] / fs
             chi = ds["chi_bar"].isel(sel).values[..., 1, 0, 0] / fc
             line, = axs[0, col].plot(x, amp, "-", lw=1, label=label)
             if info is not None:
-                ok = np.asarray(info["amp_resolved"][tuple(sel.get(d, slice(None)) for d in ds["v2w_y_amplitude"].dims)])
-                bd = np.asarray(info["amp_bound"][tuple(sel.get(d, slice(None)) for d in ds["v2w_y_amplitude"].dims)]) / fa
+                at = tuple(sel.get(d, slice(None)) for d in ds["v2w_y_amplitude"].dims)
+                ok = np.asarray(info["amp_resolved"][at])
+                bd = np.asarray(info["amp_bound"][at]) / fa
                 axs[0, col].plot(x[ok], amp[ok], "o", ms=3, color=line.get_color())
                 axs[0, col].plot(x[~ok], amp[~ok], "o", ms=4, mfc="none", color=line.get_color())
                 axs[0, col].fill_between(x, 0, bd, color="0.85", lw=0, zorder=0)
@@ -979,7 +983,8 @@ def summary_markdown(ds, scn, idx, angle_info=None, info=None, sections=()) -> s
         lines.append(f"- {a.long_name or a.name} (`{a.key}`): {rng} {a.unit if a.unit != '1' else ''}".rstrip())
     if scn.carrier == "gate_V":
         if dev.capacitance_nF_cm2 is not None:
-            lines.append(f"- gate capacitance {dev.capacitance_nF_cm2:g} nF/cm² (parallel plate, no quantum capacitance)")
+            lines.append(f"- gate capacitance {dev.capacitance_nF_cm2:g} nF/cm² "
+                         "(parallel plate, no quantum capacitance)")
         else:
             lines.append(f"- gate: {dev.dielectric_nm:g} nm dielectric, εr = {dev.permittivity:g}, offset "
                          f"{dev.gate_offset_V:g} V (parallel plate, no quantum capacitance)")

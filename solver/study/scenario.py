@@ -185,8 +185,8 @@ class Scenario:
     numerics: Numerics
     output_folder: Path
     figures: bool
-    sensitivities: "SensitivitySpec | None" = None
-    fit: "FitSpec | None" = None
+    sensitivities: SensitivitySpec | None = None
+    fit: FitSpec | None = None
     design: DesignSpec | None = None
     cautions: tuple = ()         # plausibility warnings (file: [table] key 'k': ...), also issued as ScenarioWarning
 
@@ -783,7 +783,8 @@ def _fit(ctx, data, scn, base):
     if q not in _FIT_QUANTITIES:
         close = difflib.get_close_matches(str(q), _FIT_QUANTITIES, n=1)
         hint = f" Did you mean '{close[0]}'?" if close else ""
-        ctx.fail("fit", "quantity", f"unknown or missing quantity {q!r}.{hint}", ", ".join(f'"{x}"' for x in _FIT_QUANTITIES))
+        ctx.fail("fit", "quantity", f"unknown or missing quantity {q!r}.{hint}",
+                 ", ".join(f'"{x}"' for x in _FIT_QUANTITIES))
     axes_ok = (scn.carrier, "temperature_K", "current_uA") + (("sigma_xx",) if scaling else ())
     ax = t.get("axis")
     if ax not in axes_ok:
@@ -817,7 +818,8 @@ def _fit(ctx, data, scn, base):
             lo = _number(ctx, f"fit.parameters.{name}", "bounds", b[0])
             hi = _number(ctx, f"fit.parameters.{name}", "bounds", b[1])
             if not lo < init < hi:
-                ctx.fail(f"fit.parameters.{name}", "bounds", f"need low < initial < high, got {lo:g} < {init:g} < {hi:g}.")
+                ctx.fail(f"fit.parameters.{name}", "bounds",
+                         f"need low < initial < high, got {lo:g} < {init:g} < {hi:g}.")
         params.append((name, init, lo, hi))
     at = []
     for k, v in ctx.table("fit.at", t.get("at", {})).items():

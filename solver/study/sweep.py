@@ -41,9 +41,9 @@ import time
 import tomllib
 import zipfile
 import zlib
+from collections.abc import Callable
 from importlib import metadata
 from pathlib import Path
-from typing import Callable
 
 import numpy as np
 
@@ -247,7 +247,7 @@ def compute_batch(scn: Scenario, values: dict) -> dict:
     got = evaluate(scn, knobs, resolution=scn.numerics.resolution, rtol=scn.numerics.rtol, estimate_error=True)
     r = got.response
     out = {"mu": np.asarray(got.mu), "density": np.asarray(r.density)}
-    for k in ("sigma", "sigma_drude", "sigma_anomalous", "dipole", "chi", "chi_dc"):
+    for k in ("sigma", "sigma_drude", "sigma_anomalous", "dipole", "chi", "chi_dc", "seebeck"):
         out[k] = np.asarray(getattr(r, k))
     parts = as_dict(r.chi_parts)
     for part, v in parts.items():
@@ -424,7 +424,8 @@ def assemble(scn: Scenario, results, inner, outer, combos):
         else:
             data[name] = (d, v, attrs)
     ds = xr.Dataset(data, coords=coords)
-    assert ds.sizes["current_angle_deg"] == A
+    if ds.sizes["current_angle_deg"] != A:     # a bookkeeping bug, never a user error
+        raise RuntimeError(f"assemble: {ds.sizes['current_angle_deg']} current angles in the dataset, {A} expected")
     numerics = {"rtol": scn.numerics.rtol,
                 "resolution": "auto" if scn.numerics.resolution is None else scn.numerics.resolution,
                 "error_estimate": ("|fine - coarse|" if np.all(grid.get("has_error_estimate", 1) == 1) else
@@ -476,7 +477,7 @@ def write_results(ds, folder: Path):
     _atomic_write(folder / "results.csv", lambda tmp: frame.to_csv(tmp))
 
 
-def open_results(folder) -> "object":
+def open_results(folder) -> object:
     """The dataset written by :func:`run_scenario` (loaded into memory)."""
     import xarray as xr
     with xr.open_dataset(Path(folder) / "results.nc", engine="h5netcdf") as ds:
