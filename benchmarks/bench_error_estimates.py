@@ -17,7 +17,7 @@ import numpy as np
 
 from crosswind.models import build
 from crosswind.solver import response
-from crosswind.solver.engine.response import _levels
+from crosswind.solver.engine.response import mesh_levels
 
 CONTINUUM = [("massive Dirac, band edge mu = mass, T = 0", "massive-dirac",
               {"velocity": 5e5, "mass": 0.1, "tilt": 5e4}, 0.1, 0.0),
@@ -34,7 +34,7 @@ FIELDS = {"sigma_xx": lambda r: r.sigma[0, 0].real, "chi_yxx": lambda r: r.chi[1
 def levels_of(model, mu, temperature) -> list:
     """Every field at every mesh level (no error passes)."""
     out = []
-    for level in range(len(_levels(model))):
+    for level in range(len(mesh_levels(model))):
         r = response(model, mu=mu, temperature=temperature, tau=100.0, resolution=level, estimate_error=False)
         out.append({f: float(np.asarray(g(r))) for f, g in FIELDS.items()})
     return out

@@ -27,7 +27,6 @@ with respect to parameters stay finite because every division is masked first.
 """
 from __future__ import annotations
 
-from dataclasses import dataclass, fields
 from functools import partial
 
 import jax
@@ -35,13 +34,14 @@ import jax.numpy as jnp
 
 from .band_model import BandModel
 from .eigh import DEGENERACY_TOL, safe_eigh, safe_inverse_gaps
+from .pytrees import pytree_dataclass
 from .units import ANGSTROM, GRAD_TO_VELOCITY, HBAR2_OVER_ME_EVA2, HBAR_EVS
 
 # (e/ħ)·[eV Å²] expressed in eV/T: X[eV Å²]·1e-20 / ħ[eV s]
 _MOMENT_FACTOR = ANGSTROM ** 2 / HBAR_EVS
 
 
-@dataclass(frozen=True)
+@pytree_dataclass
 class BandGeometry:
     """Band-resolved geometry at ``nk`` k-points; bands in ascending energy."""
 
@@ -66,13 +66,6 @@ class BandGeometry:
     @property
     def connection_polarizability(self):
         return self.polarizability
-
-
-jax.tree_util.register_pytree_node(
-    BandGeometry,
-    lambda g: (tuple(getattr(g, f.name) for f in fields(g)), None),
-    lambda _, c: BandGeometry(*c),
-)
 
 
 def _curl_components(t, dim):

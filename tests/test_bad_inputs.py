@@ -268,8 +268,16 @@ def _fake_batch(calls):
         P, A = len(values["mu_eV"]), len(scn.axes[-1])
         return {"mu": values["mu_eV"], "sigma": np.ones((P, 2, 2), dtype=complex),
                 "resolution_level": np.zeros(P, dtype=int), "converged": np.full(P, -1),
-                "dev_v_xx": np.ones((P, A), dtype=complex)}
+                **fake_device_fields(P, A)}
     return fake
+
+
+def fake_device_fields(P, A):
+    """Hall-bar arrays of a stand-in batch (what the runner's measurability step reads)."""
+    sigma = np.broadcast_to(np.diag([1e-3, 1e-3]).astype(complex), (P, A, 2, 2)).copy()
+    return {"dev_v_xx": np.ones((P, A), dtype=complex), "dev_v2w_y": np.full((P, A), 1e-8 + 0j),
+            "dev_v2w_x": np.full((P, A), 1e-9 + 0j), "dev_v2w_y_amplitude": np.full((P, A), 1e-8),
+            "dev_power_density": np.full((P, A), 1e-3), "dev_sigma_bar": sigma}
 
 
 def _scenario_file(tmp_path):

@@ -205,7 +205,12 @@ def test_measurability_of_a_sweep_dataset(folder):
     got = m.isel(density_cm2=1, current_angle_deg=0).squeeze()
     for name in ("snr_v2w_y", "averaging_time_snr10", "temperature_rise", "pickup_v2w_y", "resistance_y"):
         assert float(got[name]) == pytest.approx(float(getattr(want, name)), rel=1e-12), name
-    assert np.isnan(float(got["thermoelectric_v2w_y"]))          # the sweep stores no Seebeck tensor
+    # the sweep stores the Seebeck tensor (crystal frame = bar frame at angle 0): the thermoelectric estimate
+    seebeck = point["seebeck"].values + (1j * point["seebeck_imag"].values if "seebeck_imag" in point else 0)
+    thermo = noise.assess(sig, v2y, v2x, float(point["power_density"]), 20.0, width_m=5e-6, length_m=10e-6,
+                          dielectric_m=285e-9, seebeck_bar=seebeck)
+    assert np.isfinite(float(got["thermoelectric_v2w_y"]))
+    assert float(got["thermoelectric_v2w_y"]) == pytest.approx(float(thermo.thermoelectric_v2w_y), rel=1e-12)
     # the lead lines of a sweep summary: the verdict at the peak first
     a = ds["v2w_y_amplitude"]
     peak = dict(zip(a.dims, (int(i) for i in np.unravel_index(int(np.nanargmax(a.values)), a.shape))))

@@ -18,6 +18,7 @@ import numpy as np
 import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
+from test_bad_inputs import fake_device_fields
 
 from crosswind.models.tightbinding import TightBindingFileError, data_file, load_tight_binding, parse_tight_binding
 from crosswind.solver.fitting.scenario_fit import FitInputError, load_data
@@ -265,7 +266,7 @@ def _fake_batch(scn, values):
     P, A = len(next(iter(values.values()))), len(scn.axes[-1])
     mu = np.asarray(values.get("mu_eV", np.zeros(P)), dtype=float)
     return {"mu": mu, "sigma": np.ones((P, 2, 2), dtype=complex), "resolution_level": np.zeros(P, dtype=int),
-            "converged": np.full(P, -1), "dev_v_xx": np.ones((P, A), dtype=complex)}
+            "converged": np.full(P, -1), **fake_device_fields(P, A)}
 
 
 @settings(SETTINGS, max_examples=min(SETTINGS.max_examples, 30),

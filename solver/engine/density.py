@@ -25,7 +25,7 @@ from crosswind.models.domain import Lattice
 from crosswind.solver.engine import mesh as _mesh
 from crosswind.solver.engine.mesh import energies_at
 from crosswind.solver.engine.occupation import fermi, thermal_energy
-from crosswind.solver.engine.response import _levels, neutral_filling
+from crosswind.solver.engine.response import mesh_levels, neutral_filling
 
 MU_TOL = 1e-12    # eV: the solve stops when a step or the bracket is below this
 
@@ -50,7 +50,7 @@ def gate_density(voltage, thickness_nm, permittivity=3.9, offset_voltage=0.0):
 
 def _density_fn(model: BandModel, resolution: int):
     """n(μ, k_BT) in m^-d on a fixed mesh (continuum meshes are placed for the given μ)."""
-    res = _levels(model)[resolution]
+    res = mesh_levels(model)[resolution]
     filled = neutral_filling(model)
 
     def n_of(params, mu, kt):

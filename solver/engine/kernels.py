@@ -97,7 +97,7 @@ def map_named(fn, m):
     return jax.tree_util.tree_map_with_path(lambda path, v: fn(path[0].name, v), m)
 
 
-def _tilde(tau, dtau, nu):
+def tau_tilde(tau, dtau, nu):
     """τ̃ = τ/(1 + iντ) and dτ̃/dε = τ'/(1 + iντ)²  (ν in 1/fs)."""
     c = jnp.complex128
     den = 1.0 + 1j * (nu * tau).astype(c)
@@ -120,8 +120,8 @@ def point_kernels(model, params, k, mu, kt, temp, tau_eval, tau_arr, omega, fill
     F = minus_dfermi(E, M, KT)
     below = (jnp.arange(e.shape[0]) < filled).astype(e.dtype)[None, :]
     tau, dtau = tau_eval(tau_arr, E, temp[:, None])   # (P, nb)
-    t1, _ = _tilde(tau, dtau, omega)
-    t2, dt2 = _tilde(tau, dtau, 2.0 * omega)
+    t1, _ = tau_tilde(tau, dtau, omega)
+    t2, dt2 = tau_tilde(tau, dtau, 2.0 * omega)
     out = {}
     out["density"] = jnp.sum(f0 - below, axis=1)
     out["dos"] = jnp.sum(F, axis=1)

@@ -48,7 +48,7 @@ from scipy.optimize import minimize
 
 from crosswind.models.geometry import geometry_at
 from crosswind.models.units import KB_EVK as KB
-from crosswind.solver.engine.kernels import Moments, _tilde
+from crosswind.solver.engine.kernels import Moments, tau_tilde
 from crosswind.solver.engine.occupation import (
     T_FLOOR,
     entropy_density,
@@ -386,8 +386,8 @@ def _kernel_sums(vals, occ, E, mu, temp, tau_eval, tau_arr, omega, layout, sea):
     tau, dtau = tau_eval(tau_arr, E, jnp.broadcast_to(temp[:, None], E.shape))
     if omega is None:
         return _kernel_sums_dc(vals, occ, E, mu, tau, dtau, layout, sea)
-    t1, _ = _tilde(tau, dtau, omega)
-    t2, dt2 = _tilde(tau, dtau, 2.0 * omega)
+    t1, _ = tau_tilde(tau, dtau, omega)
+    t2, dt2 = tau_tilde(tau, dtau, 2.0 * omega)
     tauc, dtauc = tau.astype(jnp.complex128), dtau.astype(jnp.complex128)
     F, f0 = occ["F"], occ["f0"]
 

@@ -219,7 +219,8 @@ UNITS_2D = units_of(2)     # SI units of every field (crosswind.solver.vocabular
 UNITS_3D = units_of(3)
 
 
-def _levels(model):
+def mesh_levels(model):
+    """The mesh levels of the node quadrature for this model (lattice grids or continuum rays)."""
     if isinstance(model.domain, Lattice):
         return _mesh.lattice_levels(model.dim)
     return _mesh.ray_levels()
@@ -240,7 +241,7 @@ def _moments_at(model, mu, kt, temp, tau_arr, omega, *, level, tau_eval, filled,
     """Kernel sums of one block of conditions at one level, and per condition the node spacing on
     its Fermi contour over its thermal window (above 1: unresolved; continuum rays place their
     panels on the window itself, 0)."""
-    res = _levels(model)[level]
+    res = mesh_levels(model)[level]
     p = model.params
     tau_col = jax.tree_util.tree_map(lambda a: a[:, None], tau_arr)
     if isinstance(model.domain, Lattice):
@@ -427,7 +428,7 @@ def _mesh_path(model, muf, kt, Tf, tauf, omega, kw, rtol, resolution, max_level,
                estimate_error, tau_max, P, budget):
     """Node-based quadrature (:mod:`crosswind.solver.engine.mesh`): one mesh pass per level, conditions in
     blocks sized by the memory budget (:func:`condition_block`)."""
-    levels = _levels(model)
+    levels = mesh_levels(model)
     top = len(levels) - 1 if max_level is None else min(max_level, len(levels) - 1)
     passes = []
     blocks = {}

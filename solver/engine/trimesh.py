@@ -42,7 +42,7 @@ import jax.numpy as jnp
 import numpy as np
 
 from crosswind.solver.engine import ladder as _ladder
-from crosswind.solver.engine.kernels import Moments, _tilde
+from crosswind.solver.engine.kernels import Moments, tau_tilde
 from crosswind.solver.engine.mesh import energies_at
 
 WINDOW_X = 40.0          # Fermi window half-width in k_BT (neglected weight ~ e^-40)
@@ -381,8 +381,8 @@ def moments_from_tables(table, layout, vol, mu, kt, temp, tau_eval, tau_arr, ome
     E = mu[:, None] + x * kt[:, None]
     cE, sE = _hermite(C, S, e_lo, delta, E)                          # (P, Q, nc)
     tau, dtau = tau_eval(tau_arr, E, temp[:, None])                  # (P, Q)
-    t1, _ = _tilde(tau, dtau, omega)
-    t2, dt2 = _tilde(tau, dtau, 2.0 * omega)
+    t1, _ = tau_tilde(tau, dtau, omega)
+    t2, dt2 = tau_tilde(tau, dtau, 2.0 * omega)
     tauc, dtauc = tau.astype(jnp.complex128), dtau.astype(jnp.complex128)
     P = mu.shape[0]
 

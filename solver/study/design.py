@@ -853,9 +853,19 @@ def measurability_lines(ds, scn, idx) -> list:
               f"- Probe misalignment ({settings.probe_misalignment:g} of W): 2ω pickup "
               f"{_fmt(val('pickup_v2w_y'), OUTPUTS['V2w'].unit_2d)}, signal/pickup {val('signal_to_pickup'):.3g}"
               + artefact_warning(val("signal_to_pickup")),
-              "- Thermoelectric 2ω: not estimated from a sweep (no Seebeck tensor stored); `crosswind design` "
-              "reports it.", ""]
+              _thermo_line(val, settings), ""]
     return lines
+
+
+def _thermo_line(val, settings) -> str:
+    """The thermoelectric 2ω artefact at the peak (needs the sweep's Seebeck tensor)."""
+    v = val("thermoelectric_v2w_y")
+    if not np.isfinite(v):
+        return ("- Thermoelectric 2ω: not estimated (the dataset holds no Seebeck tensor); `crosswind design` "
+                "reports it.")
+    return (f"- Thermoelectric 2ω estimate ({settings.thermal_asymmetry:g} of the temperature rise across the "
+            f"probes, an order-of-magnitude estimate): {_fmt(v, OUTPUTS['V2w'].unit_2d)}, signal/thermoelectric "
+            f"{val('signal_to_thermoelectric'):.3g}" + artefact_warning(val("signal_to_thermoelectric")))
 
 
 __all__ = ["ConstraintResult", "DESIGN_KNOBS", "DesignPoint", "DesignResult", "DesignSpec", "KnobResult",
