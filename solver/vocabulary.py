@@ -279,7 +279,8 @@ DEVICE_FIELDS: dict[str, Field] = {f.name: f for f in (
 #: bookkeeping fields of a sweep
 RUN_FIELDS: dict[str, Field] = {f.name: f for f in (
     _f("resolution_level", "1", "1", "k-mesh refinement level used"),
-    _f("converged", "1", "1", "automatic refinement reached rtol (1) or not (0)"),
+    _f("converged", "1", "1",
+       "automatic refinement reached rtol (1) or not (0); -1 where a fixed level was asked for (no refinement)"),
     _f("has_error_estimate", "1", "1",
        "error_* holds a comparison of two levels (1) or is unavailable, NaN (0)"),
     _f("nodes_per_condition", "1", "1", "k-points per condition of the node rule (-1: energy-resolved engines)"),

@@ -792,3 +792,23 @@ def test_model_nan_somewhere_gives_a_clear_error_with_the_ladder_engine():
     model = from_function(h, parameters=GAPPED, domain=lat)
     with pytest.raises(ValueError, match=r"NaN or infinite somewhere in the Brillouin zone.*check the Hamiltonian"):
         response(model, mu=0.5, temperature=300.0, tau=100.0)
+
+
+def test_results_are_written_readable_by_colleagues_as_umask_allows(tmp_path, monkeypatch):
+    """Results used to be written 0600 (mkstemp's mode) while figures were 0644: a shared machine's
+    colleagues could not read the data.  Every written file now gets 0666 less the umask."""
+    import os
+    import stat
+
+    calls = []
+    monkeypatch.setattr(run_mod, "compute_batch", _fake_batch(calls))
+    scn = parse_scenario(_scenario_file(tmp_path).read_text(encoding="utf-8"), source="s.toml", base=tmp_path)
+    run_scenario(scn, tmp_path / "out", progress=False)
+    mask = os.umask(0)
+    os.umask(mask)
+    for name in ("results.nc", "results.csv", "run.json", "scenario.toml"):
+        mode = stat.S_IMODE((tmp_path / "out" / name).stat().st_mode)
+        assert mode == 0o666 & ~mask, (name, oct(mode))
+    ds = run_mod.open_results(tmp_path / "out")
+    assert ds["i"].attrs["long_name"].startswith("first Cartesian index")
+    assert "-1 where a fixed level" in ds["converged"].attrs["long_name"]

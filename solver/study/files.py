@@ -40,6 +40,16 @@ def make_folder(folder: Path | str) -> Path:
     return folder
 
 
+def _umask() -> int:
+    mask = os.umask(0)
+    os.umask(mask)
+    return mask
+
+
+#: mode of every written file: what open() would give a new file (0666 less the process umask)
+_SHARED_MODE = 0o666 & ~_umask()
+
+
 def atomic_write(path: Path | str, writer: Callable[[str], None]) -> None:
     """Write ``path`` atomically: ``writer(tmp)`` fills a temporary file in the same folder, which
     is flushed to disk and renamed over ``path``; the folder is then flushed as well."""
@@ -50,6 +60,7 @@ def atomic_write(path: Path | str, writer: Callable[[str], None]) -> None:
         fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
         os.close(fd)
         writer(tmp)
+        os.chmod(tmp, _SHARED_MODE)      # mkstemp makes 0600; results are for colleagues too (umask applies)
         _fsync_path(tmp)
         os.replace(tmp, path)
         tmp = None

@@ -409,7 +409,9 @@ def assemble(scn: Scenario, results, inner, outer, combos):
     dims = [a.name for a in axes]
     coords = {a.name: (a.name, np.asarray(a.values), {"units": a.unit, "long_name": a.long_name,
                                                       "scenario_key": a.key}) for a in scn.axes}
-    coords.update({"i": comp, "j": comp, "k": comp})
+    coords.update({n: (n, comp, {"long_name": f"{pos} Cartesian index of a tensor (crystal or bar frame, see "
+                                              "the field's long_name)", "units": "1"})
+                   for n, pos in (("i", "first"), ("j", "second"), ("k", "third"))})
     data = {}
     for k, v in grid.items():
         name = k[4:] if k.startswith("dev_") else k
