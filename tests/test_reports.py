@@ -513,3 +513,32 @@ def test_demo_summary_says_the_kp_model_is_used_inside_its_window(demo):
     summary = demo[0]
     assert "- k·p validity: every μ of the sweep" in _section(summary, "Assumptions")
     assert "Outside the model's validity window" not in summary and "Scenario check" not in summary
+
+
+def test_measurability_figure_shows_signal_noise_and_artefacts(tmp_path, monkeypatch):
+    """measurability.png: the signal beside its noise floor, the SNR = 10 line and each artefact."""
+    import xarray as xr
+
+    from crosswind.solver.reporting import report as rep
+    figs = {}
+    monkeypatch.setattr(rep, "atomic_figure", lambda fig, path, dpi=None: figs.__setitem__(path.name, fig))
+    monkeypatch.setattr(pyplot(), "close", lambda fig: None)
+    gates = np.linspace(5.0, 50.0, 5)
+    dims = ("gate_V", "current_angle_deg")
+    sig = np.linspace(1e-9, 2e-8, 5)[:, None]
+    ds = xr.Dataset({"v2w_y_amplitude": (dims, sig * np.sqrt(2)), "v2w_y_rms": (dims, sig),
+                     "noise_y_rms": (dims, np.full((5, 1), 3e-9)), "pickup_v2w_y": (dims, np.full((5, 1), 1e-12)),
+                     "thermoelectric_v2w_y": (dims, np.full((5, 1), np.nan))},
+                    coords={"gate_V": ("gate_V", gates, {"units": "V", "long_name": "gate voltage"}),
+                            "current_angle_deg": ("current_angle_deg", [0.0], {"units": "deg"})})
+    assert rep.plot_measurability(ds, {"gate_V": 4, "current_angle_deg": 0}, tmp_path / "measurability.png")
+    ax = figs["measurability.png"].axes[0]
+    labels = [line.get_label() for line in ax.get_lines()]
+    assert any("signal" in lab for lab in labels) and "SNR = 10" in labels
+    assert any("noise" in lab for lab in labels) and any("pickup" in lab for lab in labels)
+    assert not any("thermoelectric" in lab for lab in labels)      # NaN estimate: not drawn
+    assert ax.get_yscale() == "log" and "gate voltage" in ax.get_xlabel()
+    noise = next(line for line in ax.get_lines() if "noise" in line.get_label())
+    np.testing.assert_allclose(noise.get_ydata(), 3e-9)
+    assert not rep.plot_measurability(ds.drop_vars("noise_y_rms"), {"gate_V": 4, "current_angle_deg": 0},
+                                      tmp_path / "m2.png")

@@ -10,6 +10,7 @@ Figures, written next to the results:
 * ``responses.png`` — 2ω transverse voltage, σ'_xx and the parts of χ'_yxx against every sweep axis;
 * ``angle.png`` — polar plot of |V_y^{2ω}| and |χ'_yxx| against the current angle, by rotating the
   peak point's tensors (no new k-space integration);
+* ``measurability.png`` (when a carrier axis is swept) — signal, noise floor and artefacts;
 * ``scaling.png`` (when temperature or a relaxation-time field is swept) — E⊥/E∥² against σ'_xx,
   the scaling plot used to separate τ⁰, τ¹ and τ² mechanisms (docs/theory.md §12.2).
 
@@ -675,6 +676,50 @@ def _fmt_pm(v, e, unit):
     return f"({v:.4g} ± {e:.2g}) {unit}".rstrip()
 
 
+def plot_measurability(ds, idx, path: Path) -> bool:
+    """``measurability.png``: the transverse 2ω signal (lock-in rms) against the carrier axis at the
+    peak's other coordinates, beside the noise of the transverse lock-in reading at its time
+    constant (Johnson–Nyquist + amplifier: a lower bound), the 10× noise line (SNR 10) and the
+    estimated artefacts — misalignment pickup and the thermoelectric 2ω estimate, both as rms
+    (docs/theory.md §15).  False when the dataset has no measurability fields or no swept carrier."""
+    need = ("v2w_y_rms", "noise_y_rms", "pickup_v2w_y")
+    carrier = [d for d in grid_axes(ds) if d in CARRIERS]
+    if not all(n in ds for n in need) or not carrier:
+        return False
+    name = carrier[0]
+    plt = pyplot()
+    sel = {d: i for d, i in idx.items() if d != name and d in ds["v2w_y_rms"].dims}
+    x = ds[name].values
+    curves = [("v2w_y_rms", "2ω Hall signal $V_{y'}^{2\\omega}$ (rms)", "-", "C0"),
+              ("noise_y_rms", "noise at the lock-in time constant", "--", "0.4"),
+              ("pickup_v2w_y", "misalignment pickup (rms)", ":", "C1"),
+              ("thermoelectric_v2w_y", "thermoelectric 2ω estimate (rms)", "-.", "C3")]
+    fig, ax = plt.subplots(figsize=(6.0, 4.4))
+    scale = 1.0 / np.sqrt(2.0)           # amplitudes of the artefacts → lock-in rms
+    for field_name, label, style, colour in curves:
+        if field_name not in ds:
+            continue
+        y = np.abs(np.asarray(ds[field_name].isel(sel).values, dtype=float))
+        y = y * (scale if field_name in ("pickup_v2w_y", "thermoelectric_v2w_y") else 1.0)
+        if not np.any(np.isfinite(y) & (y > 0)):
+            continue
+        ax.plot(x, np.where(y > 0, y, np.nan), style, color=colour, label=label)
+        if field_name == "noise_y_rms":
+            ax.plot(x, 10 * y, ":", color="0.6", lw=0.8, label="SNR = 10")
+    ax.set_yscale("log")
+    ax.set_xlabel(axis_label(ds, name))
+    ax.set_ylabel("voltage (rms) [V]")
+    ax.legend(fontsize=7, loc="best")
+    where = ", ".join(f"{ds[d].attrs.get('long_name', d)} = {ds[d].values[i]:g} "
+                      f"{ds[d].attrs.get('units', '')}".rstrip() for d, i in sel.items() if ds.sizes[d] > 1)
+    ax.set_title("Signal, noise floor (a lower bound) and artefacts" + (f"\nat {where}" if where else ""),
+                 fontsize=9)
+    fig.tight_layout()
+    atomic_figure(fig, path, dpi=110)
+    plt.close(fig)
+    return True
+
+
 def plot_scaling(ds, idx, path: Path):
     """E⊥/E∥² against σ'_xx as temperature (or τ) varies, one series per carrier value (colour bar),
     each with its fit C0 + C1σ + C2σ² (Du et al. 2019); the coefficients of the peak's series with
@@ -1112,6 +1157,8 @@ def write_report(ds, scn, folder, sections=()) -> list:
         written += [folder / n for n in ("bands.png", "curvature_map.png", "responses.png", "angle.png")]
         if plot_scaling(ds, idx, folder / "scaling.png"):
             written.append(folder / "scaling.png")
+        if plot_measurability(ds, idx, folder / "measurability.png"):
+            written.append(folder / "measurability.png")
     else:
         th = np.linspace(0, 360, 181)
         angle_info = (th, angle_scan(ds, idx, scn, th)[0])
