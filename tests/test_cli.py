@@ -11,7 +11,7 @@ from crosswind.solver.cli import main
 
 
 @pytest.mark.parametrize("argv", [["--help"], ["run", "--help"], ["demo", "--help"], ["models", "--help"],
-                                  ["validate", "--help"]])
+                                  ["validate", "--help"], ["fit", "--help"], ["design", "--help"]])
 def test_help_on_every_command(argv, capsys):
     assert main(argv) == 0
     assert "usage: crosswind" in capsys.readouterr().out
