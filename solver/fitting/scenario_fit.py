@@ -33,7 +33,7 @@ from crosswind.solver.fitting.fit import fit, scaling_fit
 from crosswind.solver.fitting.measurements import load_measurements
 from crosswind.solver.reporting.plotting import pyplot
 from crosswind.solver.study.chain import evaluate
-from crosswind.solver.study.files import atomic_figure, atomic_text, make_folder
+from crosswind.solver.study.files import atomic_figure, atomic_text, make_folder, scenario_toml
 from crosswind.solver.study.knobs import base_values, scenario_knobs
 from crosswind.solver.vocabulary import KNOBS, OUTPUTS
 
@@ -339,49 +339,8 @@ def fitted_scenario_text(scn, values, free) -> str:
     data.setdefault("output", {})["folder"] = "rerun"
     head = (f"# Scenario with best-fit values written back by `crosswind fit` ({', '.join(free)}).\n"
             f"# Rerun with: crosswind run fitted_scenario.toml\n")
-    return head + dumps_toml(data)
-
-
-def _val(v) -> str:
-    if isinstance(v, bool):
-        return "true" if v else "false"
-    if isinstance(v, (int,)):
-        return str(v)
-    if isinstance(v, float):
-        if math.isinf(v):
-            return "inf" if v > 0 else "-inf"
-        return repr(v)
-    if isinstance(v, str):
-        return json.dumps(v, ensure_ascii=False)
-    if isinstance(v, list):
-        return "[" + ", ".join(_val(x) for x in v) + "]"
-    if isinstance(v, dict):
-        return "{" + ", ".join(f"{k} = {_val(x)}" for k, x in v.items()) + "}"
-    raise TypeError(f"cannot write {v!r} to TOML")
-
-
-def dumps_toml(data: dict, prefix: str = "") -> str:
-    """A minimal TOML writer for scenario files (tables, scalars, lists, inline tables)."""
-    lines, subs = [], []
-    for k, v in data.items():
-        if isinstance(v, dict) and not (prefix == "fit" or prefix.startswith("fit.") or _is_sweep(v)
-                                        or prefix == "sensitivities"):
-            subs.append((k, v))
-        else:
-            lines.append(f"{k} = {_val(v)}")
-    out = ""
-    if prefix and (lines or not subs):
-        out += f"[{prefix}]\n"
-    if lines:
-        out += "\n".join(lines) + "\n\n"
-    for k, v in subs:
-        out += dumps_toml(v, f"{prefix}.{k}" if prefix else k)
-    return out
-
-
-def _is_sweep(v: dict) -> bool:
-    return "start" in v and "stop" in v
+    return head + scenario_toml(data)
 
 
 __all__ = ["run_fit", "FitInputError", "FitReport", "ScalingReport", "predictor",
-           "fitted_scenario_text", "dumps_toml", "AXIS_COLUMNS"]
+           "fitted_scenario_text", "AXIS_COLUMNS"]

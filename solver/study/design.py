@@ -50,7 +50,7 @@ from crosswind.solver.engine import noise
 from crosswind.solver.engine.device import rotate_chi, rotate_sigma
 from crosswind.solver.pytrees import as_dict, pytree_dataclass
 from crosswind.solver.study.chain import evaluate
-from crosswind.solver.study.files import atomic_text, atomic_write, make_folder
+from crosswind.solver.study.files import atomic_text, atomic_write, make_folder, scenario_toml
 from crosswind.solver.study.knobs import base_values, scenario_knobs
 from crosswind.solver.vocabulary import DEVICE_FIELDS, KNOBS, OUTPUTS
 
@@ -680,34 +680,6 @@ def summary_markdown(scn, res: DesignResult) -> str:
     return "\n".join(lines) + "\n"
 
 
-def _toml_value(v) -> str:
-    if isinstance(v, bool):
-        return "true" if v else "false"
-    if isinstance(v, (int, float)):
-        return repr(v) if isinstance(v, int) or math.isfinite(v) else ("inf" if v > 0 else "-inf")
-    if isinstance(v, str):
-        return json.dumps(v, ensure_ascii=False)
-    if isinstance(v, list):
-        return "[" + ", ".join(_toml_value(x) for x in v) + "]"
-    if isinstance(v, dict):
-        return "{" + ", ".join(f"{k} = {_toml_value(x)}" for k, x in v.items()) + "}"
-    raise TypeError(f"cannot write {v!r} as TOML")
-
-
-def toml_text(data: dict, prefix: str = "") -> str:
-    """Scenario TOML: nested tables as [sections], sweeps and knob specs inline."""
-    flat, nested = [], []
-    for k, v in data.items():
-        inline = isinstance(v, dict) and ("start" in v or prefix in ("design.knobs", "fit.parameters")
-                                          or prefix.startswith(("design.knobs.", "fit.")) or prefix == "sensitivities")
-        (nested if isinstance(v, dict) and not inline else flat).append((k, v))
-    text = f"[{prefix}]\n" if prefix and (flat or not nested) else ""
-    text += "".join(f"{k} = {_toml_value(v)}\n" for k, v in flat) + ("\n" if flat else "")
-    for k, v in nested:
-        text += toml_text(v, f"{prefix}.{k}" if prefix else k)
-    return text
-
-
 def optimal_scenario_text(scn, res: DesignResult) -> str:
     """The scenario with the optimum written in: free and held knobs as single values, the [design]
     table dropped, output into ``optimal``."""
@@ -734,7 +706,7 @@ def optimal_scenario_text(scn, res: DesignResult) -> str:
     head = ("# The scenario at the optimum found by `crosswind design` "
             f"({', '.join(k.name for k in res.knobs)} free; objective {res.objective}).\n"
             "# Run it with: crosswind run optimal_scenario.toml\n")
-    return head + toml_text(data)
+    return head + scenario_toml(data)
 
 
 def plot_map(res: DesignResult, path: Path) -> None:

@@ -10,6 +10,8 @@ hold it: HDF5 writers may crash outright on a full disk instead of raising.
 """
 from __future__ import annotations
 
+import json
+import math
 import os
 import shutil
 import tempfile
@@ -95,3 +97,48 @@ def check_free_space(folder: Path | str, needed: int, what: str) -> None:
         raise OutputError(f"not enough free space in {folder} for {what} (about {needed / 2 ** 20:.0f} MiB needed, "
                           f"{free / 2 ** 20:.0f} MiB free); free disk space or choose another output folder, then "
                           "rerun the same command (finished checkpoints are kept)")
+
+
+# ----------------------------------------------------------------------------- scenario TOML ---
+#: tables whose sub-tables are written inline (``name = {…}``): fit parameters, sensitivity steps
+#: and design knobs read best one per line
+INLINE_ROOTS = ("fit", "sensitivities", "design.knobs")
+
+
+def toml_value(v) -> str:
+    """One TOML value: booleans, integers, floats (inf/nan as TOML writes them), strings, lists,
+    inline tables."""
+    if isinstance(v, bool):
+        return "true" if v else "false"
+    if isinstance(v, int):
+        return str(v)
+    if isinstance(v, float):
+        if math.isinf(v):
+            return "inf" if v > 0 else "-inf"
+        return repr(v)                                   # 'nan' is valid TOML
+    if isinstance(v, str):
+        return json.dumps(v, ensure_ascii=False)
+    if isinstance(v, list):
+        return "[" + ", ".join(toml_value(x) for x in v) + "]"
+    if isinstance(v, dict):
+        return "{" + ", ".join(f"{k} = {toml_value(x)}" for k, x in v.items()) + "}"
+    raise TypeError(f"cannot write {v!r} to TOML")
+
+
+def scenario_toml(data: dict, prefix: str = "") -> str:
+    """A scenario as TOML text (what ``tomllib.loads`` reads back): nested tables as ``[sections]``;
+    sweeps ``{start, stop, …}`` and the sub-tables of :data:`INLINE_ROOTS` inline."""
+    lines, subs = [], []
+    inline_here = any(prefix == r or prefix.startswith(r + ".") for r in INLINE_ROOTS)
+    for k, v in data.items():
+        if isinstance(v, dict) and not (inline_here or ("start" in v and "stop" in v)):
+            subs.append((k, v))
+        else:
+            lines.append(f"{k} = {toml_value(v)}")
+    out = f"[{prefix}]\n" if prefix and (lines or not subs) else ""
+    if lines:
+        out += "\n".join(lines) + "\n\n"
+    for k, v in subs:
+        out += scenario_toml(v, f"{prefix}.{k}" if prefix else k)
+    return out
+
