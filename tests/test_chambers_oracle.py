@@ -126,7 +126,8 @@ def chambers_currents(k, w, energies, vel, omega_z, mu, kt, tau, omega, e0, nt, 
     """Band and anomalous sheet currents (A/m), shape (nt, 2) each, at t_n = 2πn/(ω nt).
 
     k (nk, 2) 1/Å, w (nk,) Å⁻², vel (nk, nb, 2) m/s, omega_z (nk, nb) Å², mu and kt eV, tau fs,
-    omega rad/fs (0: static field, nt = 1), e0 (2,) real field amplitude in V/Å."""
+    omega rad/fs (0: static field, nt = 1), e0 (2,) field phasor in V/Å: real (linear polarisation)
+    or complex (elliptical, E(t) = Re[e0 e^{iωt}], displacement Re[e0 (e^{iωt} − e^{iω(t−s)})/(iω)])."""
     x, wl = np.polynomial.laguerre.laggauss(ns)
     s = tau * x                                                          # fs
     if omega == 0.0:
@@ -135,9 +136,9 @@ def chambers_currents(k, w, energies, vel, omega_z, mu, kt, tau, omega, e0, nt, 
         field = np.broadcast_to(e0, (1, 2))
     else:
         t = 2 * np.pi * np.arange(nt) / (omega * nt)
-        g = (np.sin(omega * t)[:, None] - np.sin(omega * (t[:, None] - s[None, :]))) / omega
-        disp = g[:, :, None] * e0[None, None, :]
-        field = np.cos(omega * t)[:, None] * e0[None, :]
+        g = (np.exp(1j * omega * t)[:, None] - np.exp(1j * omega * (t[:, None] - s[None, :]))) / (1j * omega)
+        disp = (g[:, :, None] * e0[None, None, :]).real
+        field = (np.exp(1j * omega * t)[:, None] * e0[None, :]).real
     # k − (q/ħ)∫E with q = −e:  k + ∫E/ħ  (V fs/Å over eV fs = 1/Å)
     shifted = k[None, None] + disp[:, :, None, :] / HBAR_EVFS            # (nt, ns, nk, 2)
     f = np.einsum("s,tskn->tkn", wl, fermi_np(energies(shifted), mu, kt))

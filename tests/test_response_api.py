@@ -40,7 +40,7 @@ def test_response_is_a_typed_pytree_and_its_error_has_its_structure():
     assert isinstance(r.error, Response) and isinstance(r.error.chi_parts, ChiParts)
     assert r.error.error is None and r.error.resolution is None and r.error.units == r.units
     values, errors = jax.tree_util.tree_leaves(dataclasses.replace(r, error=None)), jax.tree_util.tree_leaves(r.error)
-    assert len(values) == len(errors) == 21
+    assert len(values) == len(errors) == 23          # 17 array fields (chi_dc_full, chi_circular included) + 2 × 3 χ parts
     for v, e in zip(values, errors):
         assert v.shape == e.shape and not np.iscomplexobj(np.asarray(e))
     assert np.all(np.isfinite(np.asarray(r.error.sigma))) and np.all(np.isfinite(np.asarray(r.error.chi_parts.drude)))

@@ -32,6 +32,18 @@ Also returned: the Hall angle tan θ_H = Re σ'_xy / Re σ'_xx, the nonlinear Ha
 E⊥/E∥² = Re χ'_yxx / Re σ'_yy (m/V; τ-independent for the dipole term, §5.7), the sheet current
 density I0/W and the time-averaged Joule power per area ½ Re(j·E*) (W/m²).
 
+Polarised drive and the helicity-odd rectified voltage (docs/theory.md §5.9, §10).  A uniform
+in-plane field E(t) = Re[E e^{iωt}] (an optical or THz field at any ωτ, E the complex phasor in the
+crystal frame, :func:`polarisation_phasor`) rectifies into the sheet current
+j⁽⁰⁾_a = Re[χ^full_abc E_b E_c*] (``Response.chi_dc_full`` at the drive frequency).  The bar's
+contacts draw no dc current (the current source supplies none), so the dc field
+E⁽⁰⁾ = −σ'⁻¹ j'⁽⁰⁾ (σ' the dc sheet conductivity in the bar frame) appears as
+V⁽⁰⁾_x = L E⁽⁰⁾_x, V⁽⁰⁾_y = W E⁽⁰⁾_y (:func:`photo_voltages`).  Reversing the handedness replaces E by
+E* (same ellipse, opposite sense of rotation); the helicity-odd part ½[V(E) − V(E*)] is the
+circular photogalvanic voltage, the even part the linear one.  A rectified voltage of the current
+drive (``vdc_x``, ``vdc_y``) and one of the polarised field add: their cross terms oscillate at
+the difference frequency.
+
 Everything is written with ``jax.numpy`` (differentiable); shapes broadcast explicitly.
 """
 from __future__ import annotations
@@ -185,6 +197,85 @@ def _hall_bar(sigma, chi, chi_dc, bar: HallBar, angle_deg=0.0) -> HallBarReading
 
 
 _hall_bar_jit = jax.jit(_hall_bar, static_argnames=("bar",))
+
+
+def polarisation_phasor(ellipticity_deg, angle_deg=0.0):
+    """Unit phasor ê (..., 2) complex, |ê_x|² + |ê_y|² = 1, of the in-plane field E(t) = Re[E0 ê e^{iωt}]
+    (docs/theory.md §5.9): polarisation ellipse with its major axis û = (cos θ, sin θ) at ``angle_deg``
+    θ from the crystal x axis and ellipticity angle χ = ``ellipticity_deg`` in [−45, 45] (tan|χ| =
+    minor/major axis), ê = cos χ û − i sin χ ŵ with ŵ = ẑ × û.  So E(t) = E0 (cos χ cos ωt û + sin χ
+    sin ωt ŵ): χ > 0 rotates counterclockwise seen from +ẑ (from x̂ towards ŷ), χ < 0 clockwise,
+    χ = 0 is linear along û and χ = ±45° circular.  Stokes parameters (:func:`stokes`):
+    S3/S0 = sin 2χ, the degree of circular polarisation."""
+    chi = jnp.deg2rad(jnp.asarray(ellipticity_deg, dtype=jnp.float64))
+    th = jnp.deg2rad(jnp.asarray(angle_deg, dtype=jnp.float64))
+    chi, th = jnp.broadcast_arrays(chi, th)
+    u = jnp.stack([jnp.cos(th), jnp.sin(th)], -1).astype(jnp.complex128)
+    w = jnp.stack([-jnp.sin(th), jnp.cos(th)], -1).astype(jnp.complex128)
+    return jnp.cos(chi)[..., None].astype(jnp.complex128) * u - 1j * jnp.sin(chi)[..., None].astype(jnp.complex128) * w
+
+
+def stokes(field):
+    """Stokes parameters (S0, S1, S2, S3), each (...), of an in-plane phasor ``field`` (..., 2) in the
+    convention E(t) = Re[E e^{iωt}] (docs/theory.md §5.9): S0 = |E_x|² + |E_y|², S1 = |E_x|² − |E_y|²,
+    S2 = 2 Re(E_x E_y*), S3 = 2 Im(E_x E_y*) = −i(E × E*)_z, positive when E(t) rotates
+    counterclockwise seen from +ẑ.  Units: those of the field squared."""
+    e = jnp.asarray(field).astype(jnp.complex128)
+    ex, ey = e[..., 0], e[..., 1]
+    p = ex * jnp.conj(ey)
+    return (jnp.abs(ex) ** 2 + jnp.abs(ey) ** 2, jnp.abs(ex) ** 2 - jnp.abs(ey) ** 2, 2.0 * p.real, 2.0 * p.imag)
+
+
+def rectified_current(chi_dc_full, field):
+    """The dc current j⁽⁰⁾_a = Re[χ^full_abc E_b E_c*] (..., d), real, of a field phasor ``field``
+    (..., d) (V/m) for the unsymmetrised rectified tensor ``chi_dc_full`` (..., d, d, d)
+    (``Response.chi_dc_full``; A·m/V² for a sheet, giving A/m; docs/theory.md §5.9)."""
+    c = jnp.asarray(chi_dc_full).astype(jnp.complex128)
+    e = jnp.asarray(field).astype(jnp.complex128)
+    return jnp.einsum("...abc,...b,...c->...a", c, e, jnp.conj(e)).real
+
+
+@pytree_dataclass
+class PhotoReading:
+    """Rectified (dc) readings of the Hall bar under a polarised field (:func:`photo_voltages`), SI
+    units (:data:`crosswind.solver.vocabulary.DEVICE_FIELDS`), shape (...): ``photo_current_x``/``_y``
+    the sheet current j⁽⁰⁾ in the bar frame (A/m, short circuit); ``photo_vdc_x``/``_y`` the open-circuit
+    voltages V_x = L E⁽⁰⁾_x and V_y = W E⁽⁰⁾_y for the given handedness; ``photo_vdc_helicity_x``/``_y``
+    their helicity-odd part ½[V(E) − V(E*)] (reverses with the sense of rotation; zero for linear
+    polarisation)."""
+
+    photo_current_x: Any
+    photo_current_y: Any
+    photo_vdc_x: Any
+    photo_vdc_y: Any
+    photo_vdc_helicity_x: Any
+    photo_vdc_helicity_y: Any
+
+
+def photo_voltages(sigma_dc, chi_dc_full, field, bar: HallBar, angle_deg=0.0) -> PhotoReading:
+    """Open-circuit dc voltages of ``bar`` under a uniform polarised field phasor ``field`` (..., 2) V/m in
+    the crystal frame (e.g. E0 · :func:`polarisation_phasor`), from the dc sheet conductivity
+    ``sigma_dc`` (..., 2, 2) S and ``chi_dc_full`` (..., 2, 2, 2) A·m/V² at the field's frequency, the bar
+    axis at ``angle_deg`` from crystal x (module docstring; docs/theory.md §5.9, §10).  Differentiable."""
+    sigma_dc, chi_dc_full = jnp.asarray(sigma_dc), jnp.asarray(chi_dc_full)
+    field = jnp.asarray(field).astype(jnp.complex128)
+    lead = tuple(np.broadcast_shapes(sigma_dc.shape[:-2], chi_dc_full.shape[:-3], field.shape[:-1],
+                                     jnp.shape(angle_deg)))
+    R = rotation(jnp.broadcast_to(jnp.asarray(angle_deg, dtype=jnp.float64), lead))
+    sp = rotate_sigma(jnp.broadcast_to(sigma_dc, lead + (2, 2)), jnp.broadcast_to(angle_deg, lead)).real
+    chi = jnp.broadcast_to(chi_dc_full, lead + (2, 2, 2))
+    e = jnp.broadcast_to(field, lead + (2,))
+    W, L = bar.width_um * UM, bar.length_um * UM
+
+    def volts(efield):
+        j = jnp.einsum("...ai,...i->...a", R, rectified_current(chi, efield))
+        e0 = -jnp.linalg.solve(sp, j[..., None])[..., 0]
+        return j, L * e0[..., 0], W * e0[..., 1]
+
+    j, vx, vy = volts(e)
+    _, vx_r, vy_r = volts(jnp.conj(e))
+    return PhotoReading(photo_current_x=j[..., 0], photo_current_y=j[..., 1], photo_vdc_x=vx, photo_vdc_y=vy,
+                        photo_vdc_helicity_x=0.5 * (vx - vx_r), photo_vdc_helicity_y=0.5 * (vy - vy_r))
 
 
 def lockin_reading(amplitude_phasor, harmonic: int = 2) -> tuple:

@@ -3,7 +3,8 @@
 Conventions (docs/theory.md §0, docs/theory.md §A2): carrier charge q = −e; E(t) = Re[E e^{iωt}];
 j_a = σ_ab E_b; j(t) = Re[j⁽⁰⁾ + j⁽²ω⁾ e^{2iωt}] with j⁽²ω⁾_a = χ_abc E_b E_c and
 j⁽⁰⁾_a = χ^dc_abc E_b E_c* (Sodemann & Fu, PRL 115, 216806, 2015, phasor convention; a static
-field E gives j = 2χ^dc E E).  χ is symmetrised in its last two indices.  Results in SI: 2D sheet
+field E gives j = 2χ^dc E E).  χ is symmetrised in its last two indices (exact for linear
+polarisation); ``chi_dc_full`` keeps the antisymmetric part that elliptical drive probes.  Results in SI: 2D sheet
 conductivity S, dipole m, χ A·m/V² (3D: S/m, dimensionless, A/V²).  ∫[dk] = ∫d^dk/(2π)^d, summed
 over bands and multiplied by the model's degeneracy.
 
@@ -18,6 +19,14 @@ Response coefficients (τ̃_ν = τ/(1+iντ), F = −∂f0/∂ε, v = ∇_kε/�
 * nonlinear Drude  χ^ND,2ω_abc = (q³/2ħ³) ∫[dk] F τ̃_ω [τ̃_2ω ∂_a∂_bε + τ̃'_2ω ∂_aε∂_bε] ∂_cε
   → q³τ²/(2ħ³(1+iωτ)(1+2iωτ)) ∫[dk] f0 ∂_a∂_b∂_c ε for constant τ; the rectified χ^ND,dc has
   τ̃_2ω → τ                                                                          (∝ τ²)
+* full rectified tensor (not symmetrised in b, c; docs/theory.md §5.9): χ^full = χ^BCD (unsymmetrised)
+  + χ^ND,dc + χ^int, j⁽⁰⁾_a = Re[χ^full_abc E_b E_c*] for any polarisation.  Its antisymmetric part is
+  the dipole term alone, ½(χ_abc − χ_acb) = (e³τ̃_ω/4ħ²) ε_bc D_a in 2D (q = −e, constant τ), and the
+  helicity-odd current (Berry-curvature-dipole circular photogalvanic effect; Moore & Orenstein,
+  PRL 105, 026805, 2010; Sodemann & Fu 2015; Deyo, Golub, Ivchenko & Spivak, arXiv:0904.1917, 2009)
+  is j_a = C_a S3, S3 = −i(E × E*)_z = 2 Im(E_x E_y*) (> 0: E rotates from x to y), with
+  C_ae = −½ ε_bce Im χ^full_abc → C = (e³/4ħ²) ωτ²/(1+ω²τ²) D for constant τ (3D: C_ad s_d, s = −i E × E*,
+  C = −(q³/4ħ²) ωτ²/(1+ω²τ²) (D − 1 Tr D))                                                  (∝ τ)
 * intrinsic (Berry-connection polarizability; Gao, Yang, Niu, PRL 112, 166601, 2014)
   χ^int_abc = ½ (q³/ħ) ∫[dk] f0 [∂_aG_bc − ½(∂_bG_ac + ∂_cG_ab)]  (½: phasor convention, ω ≪ gap).
   This is one published form of a disputed τ⁰ sector (docs/theory.md §5.5c); switch it off with
@@ -176,6 +185,11 @@ class Response:
     * ``chi`` (2ω) and ``chi_dc`` (rectified) (…, d, d, d) [A·m/V² (A/V²)], complex, with their
       parts ``chi_parts`` and ``chi_dc_parts`` (:class:`ChiParts`: ``dipole``, ``drude``, ``intrinsic``);
     * ``sigma_lorentz`` (…, d, d) [S/T (S/(m·T))]; ``hall_coefficient`` [Ω/T (m³/C); NaN in 3D];
+    * ``chi_dc_full`` (…, d, d, d) [A·m/V² (A/V²)], complex: the rectified tensor *not* symmetrised in
+      b, c (``chi_dc`` is its symmetric part), j⁽⁰⁾_a = Re[χ^full_abc E_b E_c*] for any polarisation;
+      ``chi_circular`` (…, d) [A·m/V²; 3D (…, d, 3) A/V²], real: the helicity-odd (circular
+      photogalvanic) current j_a = C_a S3 with S3 = −i(E × E*)_z (3D: j_a = C_ad s_d, s = −i E × E*);
+      docs/theory.md §5.9;
       ``seebeck`` (…, d, d) [V/K]; ``thermal_conductivity`` (…, d, d) [W/K (W/(K·m))];
       ``lorenz`` [W·Ω/K²]; ``nernst`` (…, d, d) [A/K (A/(K·m))].
 
@@ -203,6 +217,8 @@ class Response:
     chi: Any
     chi_dc: Any
     chi_parts: ChiParts
+    chi_dc_full: Any
+    chi_circular: Any
     chi_dc_parts: ChiParts
     sigma_lorentz: Any
     hall_coefficient: Any
@@ -306,6 +322,7 @@ def _to_si(mom: Moments, model, temp, intrinsic) -> Response:
     nd2 = _sym(m.drude2_2w * nd_fac)
     nd0 = _sym(m.drude2_0 * nd_fac)
     bcd = _sym(bcd)
+    bcd_full = bcd                     # unsymmetrised: its antisymmetric part is the circular term
     if intrinsic:
         cint = (-(E ** 2) * L ** (3 - d) / (2 * HB)) * m.bcp
     else:
@@ -316,6 +333,14 @@ def _to_si(mom: Moments, model, temp, intrinsic) -> Response:
     out["chi"] = bcd + nd2 + cint
     out["chi_dc"] = bcd + nd0 + cint
     # Lorentz Hall term and thermoelectric tensors (dc Drude part)
+    # full rectified tensor (docs/theory.md §5.9): only the dipole term has a part antisymmetric in
+    # b, c (the nonlinear Drude and intrinsic kernels are symmetric before integration by parts),
+    # so sym(chi_dc_full) = chi_dc; the circular coefficient is C_ae = −½ ε_bce Im χ^full_abc
+    out["chi_dc_full"] = bcd_full + nd0 + cint
+    if d == 2:
+        out["chi_circular"] = -0.5 * jnp.einsum("bc,pabc->pa", eps, out["chi_dc_full"].imag)
+    else:
+        out["chi_circular"] = -0.5 * jnp.einsum("bce,pabc->pae", eps, out["chi_dc_full"].imag)
     out["sigma_lorentz"] = m.lorentz * (E ** 5 * FS ** 2 * L ** (4 - d) / HB ** 4)
     s0 = m.drude0 * (E ** 3 * FS * L ** (2 - d) / HB ** 2)
     l1 = m.thermo1 * (E ** 4 * FS * L ** (2 - d) / HB ** 2)
@@ -629,7 +654,7 @@ def _rays_path(model, muf, kt, Tf, tauf, omega, kw, rtol, resolution, max_level,
 # fields whose integrals are finite for every finite model and finite conditions (the ratios
 # seebeck, lorenz, hall_coefficient may be inf/NaN where σ vanishes, e.g. μ in a gap at T → 0)
 FINITE_FIELDS = ("density", "dos", "sigma", "sigma_drude", "sigma_anomalous", "dipole", "chi", "chi_dc",
-                 "sigma_lorentz", "nernst")
+                 "chi_dc_full", "sigma_lorentz", "nernst")
 
 
 def _refuse_non_finite(fine, info):
@@ -669,7 +694,10 @@ def response(model: BandModel, mu, temperature, tau, frequency=0.0, *, rtol: flo
       216806 (2015) convention; symmetric in b, c) = dipole part χ_yxx = −e³τ̃_ω D_x/(2ħ²) (2D)
       + nonlinear Drude (∝ τ², ∫f0 ∂_a∂_b∂_c ε) + intrinsic (τ⁰, Berry-connection polarizability);
       the parts are in ``chi_parts``.  ``chi_dc`` is the rectified j⁽⁰⁾_a = χ^dc_abc E_b E_c*;
-      a static field E gives j = 2 χ^dc E E.
+      a static field E gives j = 2 χ^dc E E.  ``chi_dc_full`` is the rectified tensor before
+      symmetrisation, j⁽⁰⁾_a = Re[χ^full_abc E_b E_c*] for elliptical drive, and ``chi_circular``
+      C_a its helicity-odd current per S3 = 2 Im(E_x E_y*): C = (e³/4ħ²) ωτ²/(1+ω²τ²) D for constant
+      τ (Moore & Orenstein, PRL 105, 026805 (2010); docs/theory.md §5.9).
     * ``density`` [m⁻² (m⁻³)] relative to neutrality; ``dos`` [J⁻¹m⁻² (J⁻¹m⁻³)];
       ``sigma_lorentz`` = ∂σ/∂B_z [S/T]; ``hall_coefficient`` [Ω/T (m³/C)]; ``seebeck`` [V/K];
       ``thermal_conductivity`` [W/K (W/(K·m))]; ``lorenz`` [W·Ω/K²]; ``nernst`` [A/K (A/(K·m))].
@@ -677,9 +705,9 @@ def response(model: BandModel, mu, temperature, tau, frequency=0.0, *, rtol: flo
     Contract: dc quantities are real (float64): ``density``, ``dos``, ``dipole``, ``dipole_sea``,
     ``sigma_lorentz``, ``hall_coefficient``, ``seebeck``, ``thermal_conductivity``, ``lorenz``,
     ``nernst``.  Phasor coefficients are complex (complex128) at every frequency: ``sigma``,
-    ``sigma_drude``, ``sigma_anomalous``, ``chi``, ``chi_dc`` (at ``frequency=0`` their imaginary
-    parts are exactly 0: use ``.real`` for a dc number).  ``error`` holds |fine − coarse| per field
-    in the same units (real).
+    ``sigma_drude``, ``sigma_anomalous``, ``chi``, ``chi_dc``, ``chi_dc_full`` (at ``frequency=0``
+    their imaginary parts are exactly 0: use ``.real`` for a dc number); ``chi_circular`` is real.
+    ``error`` holds |fine − coarse| per field in the same units (real).
 
     ``resolution`` fixes the refinement level (required under ``jax.grad``/``jit``); ``None``
     chooses it automatically for ``rtol``.  ``dipole_route="both"`` also evaluates the Fermi-sea
