@@ -1,7 +1,7 @@
 """The ``crosswind`` command line.
 
-    crosswind run SCENARIO [--output DIR] [--no-progress]   run (or resume) a scenario file
-    crosswind fit SCENARIO --data FILE [--output DIR] [--starts N]   fit the [fit] parameters to data
+    crosswind run SCENARIO [--output DIR] [--no-progress] [--cluster ADDRESS]   run (or resume) a scenario file
+    crosswind fit SCENARIO --data FILE [--output DIR] [--starts N] [--cluster ADDRESS]   fit the [fit] parameters
     crosswind design SCENARIO [--output DIR] [--starts N]  optimise the [design] knobs (docs/design.md)
     crosswind demo [--output DIR] [--no-progress] [--fit]    run the built-in demonstration
     crosswind models                                        list the model catalogue
@@ -13,6 +13,7 @@
 from __future__ import annotations
 
 import argparse
+import contextlib
 import shutil
 import sys
 import textwrap
@@ -28,11 +29,21 @@ from crosswind.solver.fitting import scenario_fit
 from crosswind.solver.fitting.peak_sensitivity import write_sensitivities
 from crosswind.solver.fitting.scenario_fit import FitInputError
 from crosswind.solver.reporting.report import write_report
+from crosswind.solver.study import cluster, sweep
 from crosswind.solver.study import design as device_design
-from crosswind.solver.study import sweep
 from crosswind.solver.study.files import OutputError, atomic_text
 from crosswind.solver.study.scenario import ScenarioError, ScenarioWarning, load_scenario, parse_scenario
 from crosswind.solver.study.sweep import RunError
+
+
+def _cluster_options(parser, what: str) -> None:
+    parser.add_argument("--cluster", nargs="?", const="local", metavar="ADDRESS",
+                        help=f"run {what} on a Dask cluster (pip install \"crosswind[cluster]\"): 'local' or 'local:N' "
+                             "starts N single-threaded worker processes on this machine (loopback only; 'local': one "
+                             "per core), tcp://host:port connects to a running scheduler, 'off' runs here; default: "
+                             f"${cluster.ENV}, else here (docs/cluster.md)")
+    parser.add_argument("--dashboard", metavar="HOST:PORT", help="with --cluster local[:N]: serve the Dask dashboard "
+                        "at this address, e.g. 127.0.0.1:8787 (default: no dashboard)")
 
 
 def _parser() -> argparse.ArgumentParser:
@@ -46,6 +57,7 @@ def _parser() -> argparse.ArgumentParser:
     r.add_argument("scenario", metavar="SCENARIO", help="scenario file (TOML)")
     r.add_argument("--output", "-o", metavar="DIR", help="output folder (default: [output] folder of the scenario)")
     r.add_argument("--no-progress", action="store_true", help="do not show progress on stderr")
+    _cluster_options(r, "the batches")
     f = sub.add_parser("fit", help="fit a scenario's [fit] parameters to measurements",
                        description="Fit the free parameters of the scenario's [fit] table to a CSV file of "
                                    "measurements (docs/fitting.md) and write fit_summary.md, fit.json, plots and "
@@ -58,6 +70,7 @@ def _parser() -> argparse.ArgumentParser:
     f.add_argument("--progress", action="store_true", default=None,
                    help="show each iteration (cost, parameter values) on stderr; default: when stderr is a terminal")
     f.add_argument("--no-progress", dest="progress", action="store_false", help="do not show the iterations")
+    _cluster_options(f, "the starting points (--starts N) in parallel")
     g = sub.add_parser("design", help="optimise a device's knobs for a measurable 2ω signal",
                        description="Maximise the scenario's [design] objective (SNR, amplitude or dipole share of "
                                    "the transverse 2ω signal) over its free knobs within their bounds and limits, by "
@@ -98,12 +111,26 @@ def _say_if_outside(folder: Path, scn) -> None:
         print(f"crosswind: writing results to {where} (outside the scenario's folder {home})", flush=True)
 
 
-def _run(scn, output, progress: bool) -> int:
+def _cluster_client(args):
+    """A context giving the Dask client asked for by ``--cluster`` (else ``$CROSSWIND_CLUSTER``), or
+    ``None``; connecting happens on entry, before anything is written."""
+    address = args.cluster if getattr(args, "cluster", None) is not None else cluster.address_from_environment()
+    if cluster.parse_address(address) is None:
+        if getattr(args, "dashboard", None):
+            raise cluster.ClusterError("--dashboard needs --cluster local or local:N")
+        return contextlib.nullcontext(None)
+    if getattr(args, "dashboard", None) and cluster.parse_address(address)[0] != "local":
+        raise cluster.ClusterError("--dashboard is for a local cluster; a running scheduler serves its own dashboard")
+    return cluster.open_client(address, dashboard=getattr(args, "dashboard", None))
+
+
+def _run(scn, output, progress: bool, args=None) -> int:
     folder = Path(output) if output else scn.output_folder
     _say_if_outside(folder, scn)
     t0 = time.time()
     try:
-        ds = sweep.run_scenario(scn, folder, progress=progress)
+        with _cluster_client(args) as client:
+            ds = sweep.run_scenario(scn, folder, progress=progress, client=client)
         if progress:
             print("crosswind: writing " + ("figures and " if scn.figures else "") + "summary…", file=sys.stderr,
                   flush=True)
@@ -112,7 +139,7 @@ def _run(scn, output, progress: bool) -> int:
             sections.append(write_sensitivities(scn, ds, folder))
             extra = ", sensitivities.csv"
         write_report(ds, scn, folder, sections)
-    except (RunError, OutputError) as exc:
+    except (RunError, OutputError, cluster.ClusterError) as exc:
         _err(str(exc))
         return 2
     except KeyboardInterrupt:
@@ -172,10 +199,12 @@ def cmd_fit(args) -> int:
     t0 = time.time()
     try:
         show = sys.stderr.isatty() if args.progress is None else args.progress
-        out = scenario_fit.run_fit(scn, data, folder, starts=args.starts,
-                      progress=(lambda line: print(f"crosswind: fit {line}", file=sys.stderr, flush=True)) if show
-                      else None)
-    except (FitInputError, OutputError) as exc:
+        one_start = (args.starts or scn.fit.starts) == 1 or scn.fit.scaling     # nothing to spread over workers
+        with contextlib.nullcontext(None) if one_start else _cluster_client(args) as client:
+            out = scenario_fit.run_fit(scn, data, folder, starts=args.starts, client=client,
+                          progress=(lambda line: print(f"crosswind: fit {line}", file=sys.stderr, flush=True)) if show
+                          else None)
+    except (FitInputError, OutputError, cluster.ClusterError) as exc:
         _err(str(exc))
         return 2
     print(f"crosswind: wrote {folder}/fit_summary.md, fit.json, fit_curve.png, fit_residuals.png"
@@ -226,7 +255,7 @@ def cmd_run(args) -> int:
     except ScenarioError as exc:
         _err(str(exc))
         return 2
-    return _run(scn, args.output, not args.no_progress)
+    return _run(scn, args.output, not args.no_progress, args)
 
 
 def cmd_demo(args) -> int:

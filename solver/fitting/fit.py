@@ -192,7 +192,8 @@ def _bad_entries(r):
 def fit(residual_fn: Callable[[dict], object], initial: Mapping[str, float], *, bounds: Mapping | None = None,
         fixed=None, starts: int = 1, seed: int = 0, sigma=None, absolute_sigma: bool = False,
         jacobian: str = "forward", tolerance: float = 1e-10, max_evaluations: int | None = None,
-        jit: bool = False, progress: Callable[[str], None] | None = None) -> FitResult:
+        jit: bool = False, progress: Callable[[str], None] | None = None,
+        run_starts: Callable[[list], list] | None = None) -> FitResult:
     """Least-squares fit of the parameters in ``initial``.
 
     ``residual_fn(params) -> residual vector``: ``params`` is a dict with every name of ``initial``
@@ -210,10 +211,44 @@ def fit(residual_fn: Callable[[dict], object], initial: Mapping[str, float], *, 
     that calls ``response`` already runs compiled code and gains little).  ``progress(line)``, when
     given, receives one line per iteration (start, iteration, cost ½Σr², parameter values; per
     residual evaluation with a SciPy older than 1.16, whose ``least_squares`` has no callback).
+    ``run_starts(start points) -> outcomes``, when given, runs the starts elsewhere (in parallel on
+    a cluster): one outcome per start point, in order, each what the function of
+    :func:`start_runner` returns for it; the result is then the same as running them here.
     """
     init, fixed, free, lo, hi = _check_inputs(initial, bounds, fixed)
     if int(starts) < 1:
         raise ValueError("fit: starts must be >= 1")
+    run, scale, s_vec, max_nfev = _prepare(residual_fn, init, free, lo, hi, sigma=sigma, jacobian=jacobian,
+                                           tolerance=tolerance, max_evaluations=max_evaluations, jit=jit,
+                                           progress=progress)
+    n = len(free)
+    rng = np.random.default_rng(seed)
+    starts_list = [dict(init)] + [_random_start(rng, init, free, lo, hi, scale) for _ in range(int(starts) - 1)]
+    if run_starts is None:
+        outcomes = [run(st, f"start {i}/{len(starts_list)}") for i, st in enumerate(starts_list, 1)]
+    else:
+        outcomes = list(run_starts(starts_list))
+        if len(outcomes) != len(starts_list):
+            raise RuntimeError(f"fit: run_starts returned {len(outcomes)} outcomes for {len(starts_list)} starts")
+    return _best_of(outcomes, starts_list, init, fixed, free, lo, hi, scale, s_vec, n, absolute_sigma, max_nfev)
+
+
+def start_runner(residual_fn: Callable[[dict], object], initial: Mapping[str, float], *,
+                 bounds: Mapping | None = None, fixed=None, sigma=None, jacobian: str = "forward",
+                 tolerance: float = 1e-10, max_evaluations: int | None = None, jit: bool = False,
+                 progress: Callable[[str], None] | None = None) -> Callable[[Mapping, str], tuple]:
+    """``run(start, label) -> outcome``: one start of :func:`fit` (same options) from the point
+    ``start`` (every name of ``initial``), the outcome ``fit(..., run_starts=...)`` expects
+    (picklable).  For running starts on other processes; keep ``run`` for every start of a process,
+    so the residual is compiled once there."""
+    init, fixed, free, lo, hi = _check_inputs(initial, bounds, fixed)
+    run = _prepare(residual_fn, init, free, lo, hi, sigma=sigma, jacobian=jacobian, tolerance=tolerance,
+                   max_evaluations=max_evaluations, jit=jit, progress=progress)[0]
+    return lambda start, label="": run({k: float(v) for k, v in start.items()}, label)
+
+
+def _prepare(residual_fn, init, free, lo, hi, *, sigma, jacobian, tolerance, max_evaluations, jit, progress):
+    """The function running one start of :func:`fit` (and the parameter scales)."""
     if jacobian not in ("forward", "jacfwd", "2-point", "3-point"):
         raise ValueError(f"fit: jacobian must be 'forward', 'jacfwd', '2-point' or '3-point', got {jacobian!r}")
     if not 0 < tolerance < 1:
@@ -323,12 +358,12 @@ def fit(residual_fn: Callable[[dict], object], initial: Mapping[str, float], *, 
                              "jacobian='2-point'") from exc
         return (res, ref + s_vec * res.x, base), None, counter["nfev"]
 
-    rng = np.random.default_rng(seed)
-    starts_list = [dict(init)] + [_random_start(rng, init, free, lo, hi, scale) for _ in range(int(starts) - 1)]
-    outcomes = []
-    for i, st in enumerate(starts_list, 1):
-        outcomes.append(run(st, f"start {i}/{len(starts_list)}"))
-    good = [o for o in outcomes if o[0] is not None and np.isfinite(o[0][0].cost)]
+    return run, scale, s_vec, max_nfev
+
+
+def _best_of(outcomes, starts_list, init, fixed, free, lo, hi, scale, s_vec, n, absolute_sigma, max_nfev):
+    """The :class:`FitResult` of the best start (lowest cost) among ``outcomes``."""
+    good = [(i, o) for i, o in enumerate(outcomes) if o[0] is not None and np.isfinite(o[0][0].cost)]
     start_costs = tuple(float(o[0][0].cost) if o[0] is not None else math.nan for o in outcomes)
     if not good:
         msg = outcomes[0][1] if len(outcomes) == 1 else \
@@ -339,7 +374,7 @@ def fit(residual_fn: Callable[[dict], object], initial: Mapping[str, float], *, 
                          converged=False, message=msg, nfev=outcomes[0][2], starts_tried=len(starts_list),
                          identifiability_warnings=(), free=tuple(free), fixed=tuple(sorted(fixed)),
                          start_costs=start_costs)
-    (res, p_best, base), _, nfev = min(good, key=lambda o: (o[0][0].cost, o[0][0].status <= 0))
+    best, ((res, p_best, base), _, nfev) = min(good, key=lambda io: (io[1][0][0].cost, io[1][0][0].status <= 0))
     start = {k: base[k] for k in free}
     values = dict(init)
     values.update({k: float(v) for k, v in zip(free, p_best)})
@@ -367,7 +402,7 @@ def fit(residual_fn: Callable[[dict], object], initial: Mapping[str, float], *, 
     bounds_hit = _at_bounds(values, free, lo, hi, scale)
     for k, _ in bounds_hit:
         stderr[k] = math.nan
-    others = [c for o, c in zip(outcomes, start_costs) if o[0] is not None and o[0][2] is not base]
+    others = [c for i, (o, c) in enumerate(zip(outcomes, start_costs)) if o[0] is not None and i != best]
     confirmed = any(abs(c - res.cost) <= 1e-8 * max(res.cost, 1e-300) for c in others)
     problems = _problems(values, None if confirmed else start, stderr, free, scale, Jz, r, dof, absolute_sigma,
                          bounds_hit)

@@ -29,9 +29,10 @@ from pathlib import Path
 import jax.numpy as jnp
 import numpy as np
 
-from crosswind.solver.fitting.fit import fit, scaling_fit
+from crosswind.solver.fitting.fit import fit, scaling_fit, start_runner
 from crosswind.solver.fitting.measurements import load_measurements
 from crosswind.solver.reporting.plotting import pyplot
+from crosswind.solver.study import cluster
 from crosswind.solver.study.chain import evaluate
 from crosswind.solver.study.files import atomic_figure, atomic_text, make_folder, scenario_toml
 from crosswind.solver.study.knobs import base_values, scenario_knobs
@@ -161,25 +162,68 @@ def predictor(scn):
     return predict, base
 
 
-def run_fit(scn, data_path, folder, *, starts=None, progress=None) -> FitReport | ScalingReport:
+def _problem(scn, x, y, err):
+    """(predict, residual function, initial values, bounds, fit options) of the scenario's fit."""
+    spec = scn.fit
+    predict, _ = predictor(scn)
+    initial = {n: i for n, i, _, _ in spec.parameters}
+    bounds = {n: (lo, hi) for n, _, lo, hi in spec.parameters}
+    yscale = float(np.max(np.abs(y))) or 1.0
+    resid = lambda p: (predict(p, x) - jnp.asarray(y)) / (1.0 if err is not None else yscale)
+    return predict, resid, initial, bounds, {"sigma": err, "jit": True}
+
+
+_RUNNERS: dict = {}
+
+
+def _start_task(payload, x, y, err, start, label):
+    """Worker side of a clustered multi-start fit: one start (text and arrays travel); the residual
+    is compiled once per worker and kept for its later starts."""
+    def run():
+        key = (repr(sorted(payload.items())), x.tobytes(), y.tobytes(), None if err is None else err.tobytes())
+        if key not in _RUNNERS:
+            _, resid, initial, bounds, options = _problem(cluster.worker_scenario(payload), x, y, err)
+            _RUNNERS[key] = start_runner(resid, initial, bounds=bounds, **options)
+        return _RUNNERS[key](start, label)
+    return cluster.worker_record(run)
+
+
+def _starts_on(client, scn, x, y, err, progress):
+    """``run_starts`` of :func:`~crosswind.solver.fitting.fit.fit`: every start a Dask task."""
+    def run_starts(points):
+        n = len(points)
+        payload = cluster.scenario_payload(scn)
+        args = {i: (payload, x, y, err, p, f"start {i + 1}/{n}") for i, p in enumerate(points)}
+        if progress is not None:
+            progress(f"{n} starts on {cluster.describe(client)} (each worker compiles the model once)…")
+        out = {}
+        for i, (outcome, who) in cluster.finished(client, cluster.submit_ordered(client, _start_task, args,
+                                                                                 name="crosswind-fit-start")):
+            out[i] = outcome
+            if progress is not None:
+                cost = "failed" if outcome[0] is None else f"cost {float(outcome[0][0].cost):.4g}"
+                progress(f"start {i + 1}/{n} finished on {who['worker']}: {cost} ({len(out)}/{n} done)")
+        return [out[i] for i in range(n)]
+    return run_starts
+
+
+def run_fit(scn, data_path, folder, *, starts=None, progress=None, client=None) -> FitReport | ScalingReport:
     """Fit, write every output into ``folder``; returns the report (``fit.json`` holds the same).  ``progress(line)``
-    receives one line per iteration (cost and parameter values)."""
+    receives one line per iteration (cost and parameter values).  ``client`` (a ``distributed.Client``):
+    the starting points run in parallel as Dask tasks (docs/cluster.md), with the same result."""
     spec = scn.fit
     x, y, err = load_data(scn, data_path)
     folder = Path(folder)
     if spec.scaling:
         return _run_scaling(scn, x, y, err, data_path, folder)
-    predict, base = predictor(scn)
     if progress is not None:
         progress(f"of {len(spec.parameters)} parameter(s) to {y.size} points: the first evaluation compiles the "
                  "k-space kernels…")
-    initial = {n: i for n, i, _, _ in spec.parameters}
-    bounds = {n: (lo, hi) for n, _, lo, hi in spec.parameters}
-    yscale = float(np.max(np.abs(y))) or 1.0
-    sig = err if err is not None else None
-    resid = lambda p: (predict(p, x) - jnp.asarray(y)) / (1.0 if sig is not None else yscale)
-    res = fit(resid, initial, bounds=bounds, starts=starts or spec.starts, sigma=sig,
-              absolute_sigma=err is not None, jit=True, progress=progress)
+    predict, resid, initial, bounds, options = _problem(scn, x, y, err)
+    n_starts = starts or spec.starts
+    on_cluster = _starts_on(client, scn, x, y, err, progress) if client is not None and n_starts > 1 else None
+    res = fit(resid, initial, bounds=bounds, starts=n_starts, absolute_sigma=err is not None, progress=progress,
+              run_starts=on_cluster, **options)
     best = {k: jnp.asarray(v) for k, v in res.values.items()}
     xs = np.linspace(float(np.min(x)), float(np.max(x)), 25)
     curve = np.asarray(predict(best, xs))

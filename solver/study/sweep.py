@@ -48,6 +48,7 @@ from pathlib import Path
 import numpy as np
 
 from crosswind.solver.pytrees import as_dict
+from crosswind.solver.study import cluster
 from crosswind.solver.study.chain import evaluate
 from crosswind.solver.study.design import SETTINGS_KEYS, measurability
 from crosswind.solver.study.files import atomic_text, atomic_write, check_free_space
@@ -204,7 +205,9 @@ class _Progress:
         else:
             print(f"crosswind: {text}", file=sys.stderr, flush=True)
 
-    def update(self, skipped=False):
+    def update(self, skipped=False, workers: int | None = None):
+        """One more batch finished (``skipped``: loaded from its checkpoint); ``workers``: Dask
+        workers in use (clustered runs)."""
         self.done += 1
         if not skipped:
             self.computed = getattr(self, "computed", 0) + 1
@@ -212,9 +215,13 @@ class _Progress:
         if not self.enabled:
             return
         if self.bar is not None:
+            if workers is not None:
+                self.bar.set_postfix_str(f"{workers} worker{'s' if workers != 1 else ''}", refresh=False)
             self.bar.update(1)
         else:
             tag = " (from checkpoint)" if skipped else ""
+            if workers is not None:
+                tag += f" on {workers} worker{'s' if workers != 1 else ''}"
             left = self.total - self.done
             if not skipped and left and self.computed > 1:     # batches after the first (no compile time)
                 tag += f", about {(time.time() - self.t_first) / (self.computed - 1) * left:.0f} s left"
@@ -271,6 +278,41 @@ def compute_batch(scn: Scenario, values: dict) -> dict:
     return out
 
 
+def batch_values(scn: Scenario, inner: int, outer, combo) -> dict:
+    """{axis name: the batch's P values} of the batch at outer indices ``combo`` (:func:`batch_plan`)."""
+    axes = scn.axes[:-1]
+    idx = dict(zip(outer, combo))
+    P = len(axes[inner])
+    values = {}
+    for i, a in enumerate(axes):
+        if i == inner:
+            values[a.name] = np.asarray(a.values, dtype=float)
+        else:
+            values[a.name] = np.full(P, a.values[idx[i]], dtype=float)
+    return values
+
+
+def compute_plan_batch(scn: Scenario, values: dict, inner: int) -> dict:
+    """:func:`compute_batch` of one batch of the plan (a strain-only sweep: one model per point)."""
+    P = len(next(iter(values.values())))
+    if "strain" in values and inner == 0 and P > 1:
+        # strain is the only sweep: one model per point (model parameters are scalars)
+        parts = [compute_batch(scn, {k: v[j:j + 1] for k, v in values.items()}) for j in range(P)]
+        return {k: np.concatenate([p[k] for p in parts]) for k in parts[0]}
+    return compute_batch(scn, values)
+
+
+def _batch_task(payload: dict, b: int) -> tuple:
+    """Worker side of a clustered sweep: batch ``b`` of the scenario in ``payload`` (text and
+    arrays only, :func:`cluster.scenario_payload`); the scenario is parsed and the model built
+    once per worker process."""
+    def run():
+        scn = cluster.worker_scenario(payload)
+        inner, outer, combos = batch_plan(scn)
+        return compute_plan_batch(scn, batch_values(scn, inner, outer, combos[b]), inner)
+    return cluster.worker_record(run)
+
+
 FINITE_FIELDS = ("mu", "density", "sigma", "sigma_drude", "sigma_anomalous", "dipole", "chi", "chi_dc",
                  "chi_dipole", "chi_drude", "chi_intrinsic")
 
@@ -317,18 +359,22 @@ def folder_lock(folder: Path):
 
 
 def run_scenario(scn: Scenario, output: Path | str | None = None, *, progress: bool = True,
-                 after_batch: Callable[[int], None] | None = None):
+                 after_batch: Callable[[int], None] | None = None, client=None):
     """Run (or resume) the sweep of ``scn``; returns the xarray Dataset (also written to disk).
     ``after_batch(i)`` is called after batch ``i`` is checkpointed (for tests and monitoring).
-    The output folder is locked for the run (:func:`folder_lock`)."""
+    The output folder is locked for the run (:func:`folder_lock`).
+
+    ``client``: a ``distributed.Client`` (e.g. of :func:`crosswind.solver.study.cluster.open_client`,
+    or a notebook's own): the batches still to compute run as Dask tasks on its workers, and are
+    checkpointed here as they finish (docs/cluster.md); the dataset is the serial run's."""
     folder = Path(output) if output is not None else scn.output_folder
     prepare_folder(folder)
     refuse_foreign(folder)              # before the lock file: a foreign folder is left untouched
     with folder_lock(folder):
-        return _run_locked(scn, folder, progress, after_batch)
+        return _run_locked(scn, folder, progress, after_batch, client)
 
 
-def _run_locked(scn: Scenario, folder: Path, progress: bool, after_batch):
+def _run_locked(scn: Scenario, folder: Path, progress: bool, after_batch, client=None):
     parts = fingerprint_parts(scn)
     fp = _sha(json.dumps(parts, sort_keys=True).encode())
     check_manifest(folder, fp, parts)
@@ -337,43 +383,41 @@ def _run_locked(scn: Scenario, folder: Path, progress: bool, after_batch):
                                                   "batches": len(combos),
                                                   "started": time.strftime("%Y-%m-%dT%H:%M:%S")}, indent=1))
     _atomic_text(folder / "scenario.toml", scn.text)
-    axes = scn.axes[:-1]
     bdir = folder / "batches"
     bdir.mkdir(exist_ok=True)
     prog = _Progress(len(combos), progress)
-    results, computed, t0 = [], [], time.time()
+    results, computed, t0 = [None] * len(combos), [], time.time()
+    workers: dict = {}
     try:
         for b, combo in enumerate(combos):
             path = bdir / f"batch_{b:05d}.npz"
             done = load_checkpoint(path, fp) if path.exists() else None
             if done is not None:
-                results.append(done)
+                results[b] = done
                 prog.update(skipped=True)
                 continue
+            if client is not None:
+                continue                 # computed on the cluster below
             if not computed:
                 prog.phase(f"compiling the k-space kernels for {scn.material.model or scn.material.tight_binding.name} "
                            "(first run only; cached afterwards)…")
-            idx = dict(zip(outer, combo))
-            P = len(axes[inner])
-            values = {}
-            for i, a in enumerate(axes):
-                if i == inner:
-                    values[a.name] = np.asarray(a.values, dtype=float)
-                else:
-                    values[a.name] = np.full(P, a.values[idx[i]], dtype=float)
-            if "strain" in values and inner == 0 and P > 1:
-                # strain is the only sweep: one model per point (model parameters are scalars)
-                parts = [compute_batch(scn, {k: v[j:j + 1] for k, v in values.items()}) for j in range(P)]
-                res = {k: np.concatenate([p[k] for p in parts]) for k in parts[0]}
-            else:
-                res = compute_batch(scn, values)
-            check_finite_batch(scn, b, values, res)
-            _atomic_write(path, lambda tmp, res=res: _savez(tmp, dict(res, _fingerprint=np.array(fp))))
-            results.append(res)
-            computed.append(b)
-            prog.update()
-            if after_batch is not None:
-                after_batch(b)
+            values = batch_values(scn, inner, outer, combo)
+            res = compute_plan_batch(scn, values, inner)
+            _keep_batch(scn, bdir, fp, b, values, res, results, computed, after_batch, prog)
+        missing = [b for b, r in enumerate(results) if r is None]
+        if client is not None and missing:
+            prog.phase(f"computing {len(missing)} batch(es) on {cluster.describe(client)} (each worker builds the "
+                       "model and compiles the kernels once)…")
+            payload = cluster.scenario_payload(scn)
+            futures = cluster.submit_ordered(client, _batch_task, {b: (payload, b) for b in missing},
+                                             name=f"crosswind-batch-{fp}")
+            for b, (res, who) in cluster.finished(client, futures):
+                values = batch_values(scn, inner, outer, combos[b])
+                mine = workers.setdefault(who["worker"], {"pid": who["pid"], "batches": [], "programs_compiled": []})
+                mine["batches"].append(b)
+                mine["programs_compiled"].append(who["programs_compiled"])
+                _keep_batch(scn, bdir, fp, b, values, res, results, computed, after_batch, prog,
+                            workers=cluster.workers_in_use(client))
     finally:
         prog.close()
     ds = assemble(scn, results, inner, outer, combos)
@@ -381,10 +425,23 @@ def _run_locked(scn: Scenario, folder: Path, progress: bool, after_batch):
     m = measurability(ds, scn.device)
     ds = ds.merge(m)
     ds.attrs.update(noise_settings=m.attrs["noise_settings"], measurability_codes=m.attrs["verdicts"])
-    ds.attrs["batches_computed_this_run"] = json.dumps(computed)
+    ds.attrs["batches_computed_this_run"] = json.dumps(sorted(computed))
     ds.attrs["wall_time_s_this_run"] = round(time.time() - t0, 3)
+    if client is not None:      # who computed what, and the XLA programs each task had to build
+        ds.attrs["cluster_workers_this_run"] = json.dumps(workers)
     write_results(ds, folder)
     return ds
+
+
+def _keep_batch(scn, bdir, fp, b, values, res, results, computed, after_batch, prog, workers=None):
+    """Check a computed batch, checkpoint it atomically and count it."""
+    check_finite_batch(scn, b, values, res)
+    _atomic_write(bdir / f"batch_{b:05d}.npz", lambda tmp: _savez(tmp, dict(res, _fingerprint=np.array(fp))))
+    results[b] = res
+    computed.append(b)
+    prog.update(workers=workers)
+    if after_batch is not None:
+        after_batch(b)
 
 
 def assemble(scn: Scenario, results, inner, outer, combos):
