@@ -63,6 +63,7 @@ from crosswind.models.units import ANGSTROM, E_CHARGE, HBAR_JS, KB_EVK
 from crosswind.solver.engine import ladder as _ladder
 from crosswind.solver.engine import mesh as _mesh
 from crosswind.solver.engine import rays as _rays
+from crosswind.solver.engine import shells as _shells
 from crosswind.solver.engine.inputs import check_arguments
 from crosswind.solver.engine.kernels import Moments, moments, moments_indexed
 from crosswind.solver.engine.memory import budget_bytes, condition_block
@@ -568,42 +569,52 @@ def _rays_at(model, grid, mu, kt, temp, tau_arr, omega, *, plan, tau_eval, fille
                              filled, sea)
 
 
-def _run_rays(model, mu, kt, temp, tau_arr, omega, res, kw, plan, traced):
+@partial(jax.jit, static_argnames=("plan", "tau_eval", "filled", "sea"))
+def _shells_at(model, grid, mu, kt, temp, tau_arr, omega, *, plan, tau_eval, filled, sea):
+    tau_col = jax.tree_util.tree_map(lambda a: a[:, None], tau_arr)
+    return _shells.shell_moments(model, model.params, plan, grid, mu, kt, temp, tau_eval, tau_col, omega,
+                                 filled, sea)
+
+
+def _run_rays(model, mu, kt, temp, tau_arr, omega, res, kw, plan, traced, eng=_rays):
     """One evaluation of the shared ray rule; a concrete run whose rays had more crossings than
     the plan's slots (or whose windows left the knot tables) is repeated with a new plan."""
     if plan is None:
-        plan = _rays.make_plan(model, model.params, np.asarray(mu), np.asarray(kt), res)
+        plan = eng.make_plan(model, model.params, np.asarray(mu), np.asarray(kt), res)
+    at = _shells_at if eng is _shells else _rays_at
     tried = []
     for _ in range(3):
         tried.append(plan)
-        sums, ex, over = _rays_at(model, plan[1], mu, kt, temp, tau_arr, omega, plan=plan[0], **kw)
+        sums, ex, over = at(model, plan[1], mu, kt, temp, tau_arr, omega, plan=plan[0], **kw)
         if traced or not bool(over):
             break
-        counted = _rays.make_plan(model, model.params, np.asarray(mu), np.asarray(kt), res)
+        counted = eng.make_plan(model, model.params, np.asarray(mu), np.asarray(kt), res)
         plan = (counted if counted[0].slots > plan[0].slots else
-                _rays.make_plan(model, model.params, np.asarray(mu), np.asarray(kt), res,
+                eng.make_plan(model, model.params, np.asarray(mu), np.asarray(kt), res,
                                 slots=2 * plan[0].slots))
     return sums, ex, over, tried
 
 
 def _rays_path(model, muf, kt, Tf, tauf, omega, kw, rtol, resolution, max_level, intrinsic, plan,
-               traced, tau_max, estimate_error):
-    """Energy-resolved shared rays (:mod:`crosswind.solver.engine.rays`) for continuum models: one ray
+               traced, tau_max, estimate_error, eng=_rays):
+    """Energy-resolved shared rays (:mod:`crosswind.solver.engine.rays`, 2D; ``eng=_shells``:
+    :mod:`crosswind.solver.engine.shells`, 3D) for continuum models: one ray
     set per pass for every condition; the error is |fine − coarse| between consecutive
     resolutions plus the T² extrapolation spread."""
-    if isinstance(model.domain, Lattice) or model.dim != 2:
-        raise ValueError("response: engine='rays' integrates 2D continuum (k·p) models; use "
-                         "engine='ladder' or 'mesh' for lattice models")
-    nres = len(_rays.RESOLUTIONS)
+    name, dim = ("shells", 3) if eng is _shells else ("rays", 2)
+    if isinstance(model.domain, Lattice) or model.dim != dim:
+        raise ValueError(f"response: engine='{name}' integrates {dim}D continuum (k·p) models (2D: 'rays', "
+                         "3D: 'shells'); use engine='ladder' or 'mesh' for lattice models")
+    nres = len(eng.RESOLUTIONS)
     if traced and plan is None:
-        raise ValueError("response: with engine='rays' under jax.grad/jit pass plan=..., the plan of "
+        raise ValueError(f"response: with engine='{name}' under jax.grad/jit pass plan=..., the plan of "
                          "a concrete call: response(...).resolution.plan")
     k_points = 0
     centres = len(model.domain.centers)
     runs, attempts = {}, {}
 
     def run(lev, given=None):
-        sums, ex, over, tried = _run_rays(model, muf, kt, Tf, tauf, omega, lev, kw, given, traced)
+        sums, ex, over, tried = _run_rays(model, muf, kt, Tf, tauf, omega, lev, kw, given, traced, eng)
         nonlocal k_points
         k_points += sum(p[0].k_points(centres) for p in tried)
         runs[lev] = (sums, ex, over, tried[-1])
@@ -646,7 +657,7 @@ def _rays_path(model, muf, kt, Tf, tauf, omega, kw, rtol, resolution, max_level,
         if lev > 0 and estimate_error and not traced:
             run(lev - 1)
         fine, err = errors(lev)
-    info = {"engine": "rays", "level": lev, "plan": runs[lev][3], "attempts": attempts[lev],
+    info = {"engine": name, "level": lev, "plan": runs[lev][3], "attempts": attempts[lev],
             "k_points": int(k_points)}
     return fine, err, bad, info
 
@@ -752,10 +763,10 @@ def response(model: BandModel, mu, temperature, tau, frequency=0.0, *, rtol: flo
     always includes ``k_points``, the distinct k-points where the band geometry was evaluated
     (all passes and conditions).
     """
-    if engine not in ("auto", "mesh", "ladder", "rays"):
-        raise ValueError("response: engine must be 'auto', 'mesh' (node quadrature, every model), "
-                         "'ladder' (energy-resolved, 2D lattice models) or 'rays' (energy-resolved, "
-                         "2D continuum models)")
+    if engine not in ("auto", "mesh", "ladder", "rays", "shells"):
+        raise ValueError("response: engine must be 'auto', 'mesh' (node quadrature, lattices and 2D "
+                         "continuum models), 'ladder' (energy-resolved, lattice models), 'rays' (energy-"
+                         "resolved, 2D continuum models) or 'shells' (energy-resolved, 3D continuum models)")
     if not isinstance(model, BandModel):
         raise TypeError("response: the first argument must be a BandModel from crosswind.models.build(...)")
     if engine == "auto":
@@ -763,7 +774,10 @@ def response(model: BandModel, mu, temperature, tau, frequency=0.0, *, rtol: flo
         # costly for the Weyl model, so 3D lattices keep the node quadrature unless asked for
         if plan is not None:
             # a plan from an earlier call selects its own engine
-            engine = "ladder" if isinstance(plan, _ladder.Plan) else "rays"
+            engine = ("ladder" if isinstance(plan, _ladder.Plan) else
+                      "shells" if isinstance(plan[0], _shells.ShellPlan) else "rays")
+        elif model.dim == 3 and not isinstance(model.domain, Lattice):
+            engine = "shells"           # 3D continuum: the only engine that integrates them
         elif resolution is not None or model.dim != 2:
             engine = "mesh"
         else:
@@ -803,9 +817,10 @@ def response(model: BandModel, mu, temperature, tau, frequency=0.0, *, rtol: flo
     if resolution is None:
         tau_max = float(np.max(np.abs(np.asarray(jax.vmap(lambda a: type(scat).evaluate(
             a, jnp.zeros((1, 1)), jnp.zeros((1, 1)))[0])(jax.tree_util.tree_map(lambda x: x[:, None, None], tauf))))))
-    if engine == "rays":
+    if engine in ("rays", "shells"):
         fine, err, bad, info = _rays_path(model, muf, kt, Tf, tauf, omega_sums, kw, rtol, resolution,
-                                          max_level, intrinsic, plan, traced, tau_max, estimate_error)
+                                          max_level, intrinsic, plan, traced, tau_max, estimate_error,
+                                          _shells if engine == "shells" else _rays)
     elif engine == "ladder":
         fine, err, bad, info = _ladder_path(model, muf, kt, Tf, tauf, omega_sums, kw, rtol, resolution,
                                             max_level, intrinsic, plan, traced, tau_max)
