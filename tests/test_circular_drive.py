@@ -41,6 +41,7 @@ from test_chambers_oracle import (
     toy_model,
     toy_velocities,
 )
+from test_scenario import GOOD
 
 from crosswind.models import build
 from crosswind.models.units import E_CHARGE, HBAR_JS, KB_EVK
@@ -314,22 +315,14 @@ def test_chambers_oracle_band_current_is_helicity_even():
 
 
 # ---------------------------------------------------------------------------------- gradients ------
+@pytest.mark.slow          # ≈ 20 s alone, 50 s on a loaded machine: compiles the reverse pass of response
 def test_gradients_through_the_circular_coefficient():
-    """jax.grad and jax.jvp of chi_circular (and of the helicity-odd voltage) by a model parameter, τ
-    and the ellipticity agree with central finite differences on the level-0 lattice mesh of the
-    Chambers toy, whose nodes do not move with the parameters at this temperature (common practice)."""
-    model = toy_model()
+    """jax.grad of chi_circular by a model parameter and τ, through the whole response on the level-0
+    lattice mesh of the Chambers toy (whose nodes do not move with the parameters at this
+    temperature), agrees with central finite differences (common practice)."""
     f = OMEGA_TAU / TAU * 1e15 / (2 * np.pi)
-    sigma_dc = np.asarray(chambers_circular()[1].sigma).real
-    bar = HallBar(width_um=5.0, length_um=10.0, current_uA=10.0)
-
-    def solved(tilt, tau):
-        return response(model.with_params(tilt=tilt), MU, TEMPERATURE, tau, f, resolution=0, intrinsic=False,
-                        estimate_error=False)
-
-    circ = lambda tilt, tau: solved(tilt, tau).chi_circular[1]
-    volt = lambda tilt, ell: photo_voltages(sigma_dc, solved(tilt, TAU).chi_dc_full,
-                                            3e4 * polarisation_phasor(ell, 15.0), bar).photo_vdc_helicity_y
+    circ = lambda tilt, tau: response(toy_model().with_params(tilt=tilt), MU, TEMPERATURE, tau, f, resolution=0,
+                                      intrinsic=False, estimate_error=False).chi_circular[1]
     x0 = (0.3, TAU)
     g = jax.grad(circ, argnums=(0, 1))(*x0)
     for i, h in ((0, 1e-4), (1, 1e-3)):
@@ -338,8 +331,165 @@ def test_gradients_through_the_circular_coefficient():
         dn[i] -= h
         fd = (float(circ(*up)) - float(circ(*dn))) / (2 * h)
         assert abs(float(g[i]) - fd) < 1e-6 * abs(fd), (i, float(g[i]), fd)
-    for tangent, (a, b), h in (((1.0, 0.0), (0.3, 30.0), 1e-4), ((0.0, 1.0), (0.3, 30.0), 1e-2)):
-        _, t = jax.jvp(volt, (jnp.asarray(a), jnp.asarray(b)), tuple(jnp.asarray(x) for x in tangent))
-        fd = (float(volt(a + h * tangent[0], b + h * tangent[1]))
-              - float(volt(a - h * tangent[0], b - h * tangent[1]))) / (2 * h)
+
+
+def test_derivatives_of_the_photovoltage_by_the_polarisation():
+    """jax.jvp of the open-circuit photovoltage by the ellipticity and the axis angle agrees with central
+    finite differences; the helicity-odd part depends on the polarisation only through
+    S3 = sin 2χ (docs/theory.md §5.9): d/dχ = 2 cot 2χ times itself, and nothing on the axis angle."""
+    r = dirac_response(0.7)
+    sigma_dc = np.asarray(dirac_response(0.0).sigma).real
+    bar = HallBar(width_um=5.0, length_um=10.0, current_uA=10.0)
+    read = lambda ell, angle: photo_voltages(sigma_dc, r.chi_dc_full, 3e4 * polarisation_phasor(ell, angle), bar, 20.0)
+    volt = lambda ell, angle: read(ell, angle).photo_vdc_y
+    for tangent in ((1.0, 0.0), (0.0, 1.0)):
+        _, t = jax.jvp(volt, (jnp.asarray(30.0), jnp.asarray(15.0)), tuple(jnp.asarray(x) for x in tangent))
+        h = 1e-2
+        fd = (float(volt(30.0 + h * tangent[0], 15.0 + h * tangent[1]))
+              - float(volt(30.0 - h * tangent[0], 15.0 - h * tangent[1]))) / (2 * h)
         assert abs(float(t) - fd) < 1e-6 * abs(fd), (tangent, float(t), fd)
+    odd = lambda ell, angle: read(ell, angle).photo_vdc_helicity_y
+    _, t_angle = jax.jvp(odd, (jnp.asarray(30.0), jnp.asarray(15.0)), (jnp.asarray(0.0), jnp.asarray(1.0)))
+    _, t_ell = jax.jvp(odd, (jnp.asarray(30.0), jnp.asarray(15.0)), (jnp.asarray(1.0), jnp.asarray(0.0)))
+    np.testing.assert_allclose(float(t_ell), float(odd(30.0, 15.0)) * 2 * np.pi / 180 / np.tan(np.pi / 3), rtol=1e-12)
+    assert abs(float(t_angle)) < 1e-12 * abs(float(t_ell))
+
+
+# ---------------------------------------------------------------------------------- scenarios ------
+def _scenario():
+    """The scenario of tests/test_scenario.py at one μ and one temperature, one valley, angles 0° and 60°."""
+    text = GOOD
+    for old, new in (("mu_eV = [0.13, 0.15]", "mu_eV = 0.15"), ("temperature_K = [5, 20]", "temperature_K = 20"),
+                     ("current_angle_deg = [0, 90]", "current_angle_deg = [0, 60]"), ("valleys = 2", "valleys = 1")):
+        assert old in text
+        text = text.replace(old, new)
+    return text
+
+
+SCENARIO = _scenario()
+
+CIRCULAR = """
+[drive]
+polarisation = "circular"
+handedness = "counterclockwise"
+frequency_Hz = 1.1e12
+field_V_m = 3e4
+"""
+
+
+def drive_scenario(drive_text):
+    from crosswind.solver.study.scenario import parse_scenario
+    return parse_scenario(SCENARIO + drive_text, "s.toml")
+
+
+@pytest.mark.parametrize("text, ellipticity, angle", [
+    (CIRCULAR, 45.0, 0.0),
+    (CIRCULAR.replace("counterclockwise", "clockwise"), -45.0, 0.0),
+    ('[drive]\npolarisation = "elliptical"\nhandedness = "clockwise"\nellipticity_deg = 20\nangle_deg = 30\n'
+     'frequency_Hz = 1e12\nfield_V_m = 1e4\n', -20.0, 30.0),
+    ('[drive]\npolarisation = "linear"\nangle_deg = 15\nfrequency_Hz = 1e12\nfield_V_m = 1e4\n', 0.0, 15.0),
+])
+def test_drive_table_is_read(text, ellipticity, angle):
+    """[drive] keys → a Drive with the signed ellipticity angle of docs/theory.md §5.9 (> 0
+    counterclockwise seen from +z)."""
+    d = drive_scenario(text).drive
+    assert (d.ellipticity_deg, d.angle_deg) == (ellipticity, angle)
+    assert drive_scenario("").drive is None
+
+
+@pytest.mark.parametrize("text, message", [
+    ('polarization = "circular"', r"\[drive\] key 'polarization': unknown key. Did you mean 'polarisation'\?"),
+    ('polarisation = "circ"', r"unknown or missing polarisation 'circ'. Did you mean 'circular'\? Allowed: "
+                              r"\"linear\", \"circular\", \"elliptical\""),
+    ('polarisation = "circular"\nfield_V_m = 1e4\nhandedness = "clockwise"', r"key 'frequency_Hz': missing. "
+                                                                             r"Allowed: the drive frequency in Hz"),
+    ('polarisation = "circular"\nfrequency_Hz = 0\nfield_V_m = 1e4\nhandedness = "clockwise"',
+     r"key 'frequency_Hz': must be positive, got 0"),
+    ('polarisation = "circular"\nfrequency_Hz = 1e12\nhandedness = "clockwise"', r"key 'field_V_m': missing"),
+    ('polarisation = "circular"\nfrequency_Hz = 1e12\nfield_V_m = 1e4',
+     r"key 'handedness': missing for polarisation = \"circular\".*Allowed: \"counterclockwise\", \"clockwise\""),
+    ('polarisation = "circular"\nfrequency_Hz = 1e12\nfield_V_m = 1e4\nhandedness = "left"',
+     r"key 'handedness': got 'left' \(left/right mean opposite things"),
+    ('polarisation = "circular"\nfrequency_Hz = 1e12\nfield_V_m = 1e4\nhandedness = "clockwise"\nangle_deg = 3',
+     r"key 'angle_deg': a circularly polarised field has no axis; remove the key, or set polarisation = "
+     r"\"elliptical\""),
+    ('polarisation = "circular"\nfrequency_Hz = 1e12\nfield_V_m = 1e4\nhandedness = "clockwise"\n'
+     'ellipticity_deg = 45', r"key 'ellipticity_deg': it is 45° for circular polarisation"),
+    ('polarisation = "elliptical"\nfrequency_Hz = 1e12\nfield_V_m = 1e4\nhandedness = "clockwise"',
+     r"key 'ellipticity_deg': missing for polarisation = \"elliptical\""),
+    ('polarisation = "elliptical"\nfrequency_Hz = 1e12\nfield_V_m = 1e4\nhandedness = "clockwise"\n'
+     'ellipticity_deg = 45', r"must lie strictly between 0 and 45 degrees, got 45 \(0 is linear, 45 circular"),
+    ('polarisation = "linear"\nfrequency_Hz = 1e12\nfield_V_m = 1e4\nhandedness = "clockwise"',
+     r"key 'handedness': a linearly polarised field has no handedness; remove the key"),
+    ('polarisation = "linear"\nfrequency_Hz = 1e12\nfield_V_m = -1', r"key 'field_V_m': must be positive"),
+])
+def test_drive_table_errors_name_the_fix(text, message):
+    """Unknown keys and bad values of [drive] are refused, naming the file, table, key and fix."""
+    from crosswind.solver.study.scenario import ScenarioError
+    with pytest.raises(ScenarioError, match=r"s\.toml: " + (message if message.startswith(r"\[drive\]")
+                                                           else r"\[drive\].*" + message)):
+        drive_scenario("[drive]\n" + text + "\n")
+
+
+@functools.cache
+def chain_with(drive_text):
+    from crosswind.solver.study.chain import evaluate
+    from crosswind.solver.study.knobs import base_values
+    scn = drive_scenario(drive_text)
+    values = base_values(scn, {"current_angle_deg": np.array([[0.0, 60.0]])})
+    return scn, evaluate(scn, values, resolution=0)
+
+
+def test_chain_reads_the_helicity_odd_voltage():
+    """The chain adds the photovoltages of [drive] to the Hall-bar reading: the helicity-odd part
+    reverses with the handedness, equals −W(σ'⁻¹ R C)_y E0² S3 from chi_circular at the drive frequency
+    (docs/theory.md §5.9, §10), and a linearly polarised drive gives none."""
+    scn, ccw = chain_with(CIRCULAR)
+    _, cw = chain_with(CIRCULAR.replace("counterclockwise", "clockwise"))
+    _, lin = chain_with('[drive]\npolarisation = "linear"\nfrequency_Hz = 1.1e12\nfield_V_m = 3e4\n')
+    odd = np.asarray(ccw.reading.photo_vdc_helicity_y)
+    assert odd.shape == (1, 2) and scale(odd) > 0
+    np.testing.assert_allclose(np.asarray(cw.reading.photo_vdc_helicity_y), -odd, rtol=1e-12)
+    assert np.all(np.asarray(lin.reading.photo_vdc_helicity_y) == 0.0)
+    rd = ccw.drive_response
+    wt = 2 * np.pi * 1.1e12 * 100e-15
+    cf = closed_form_circular(rd.dipole, wt, 100.0)
+    np.testing.assert_allclose(np.asarray(rd.chi_circular), cf, rtol=1e-12, atol=1e-12 * scale(cf))
+    sigma = np.asarray(ccw.response.sigma)[0].real
+    for i, ang in enumerate((0.0, 60.0)):
+        t = np.deg2rad(ang)
+        R = np.array([[np.cos(t), np.sin(t)], [-np.sin(t), np.cos(t)]])
+        e0 = -np.linalg.solve(R @ sigma @ R.T, R @ (np.asarray(rd.chi_circular)[0] * 3e4 ** 2))
+        got = [float(ccw.reading.photo_vdc_helicity_x[0, i]), float(odd[0, i])]
+        want = np.array([10e-6 * e0[0], 5e-6 * e0[1]])
+        np.testing.assert_allclose(got, want, rtol=1e-12, atol=1e-12 * scale(want))
+    # the current-drive readings are those of a scenario without [drive]
+    _, plain = chain_with("")
+    assert not hasattr(plain.reading, "photo_vdc_y") and plain.drive_response is None
+    np.testing.assert_array_equal(np.asarray(plain.reading.vdc_y), np.asarray(ccw.reading.vdc_y))
+
+
+@pytest.mark.slow          # ≈ 40 s: a sweep (its own compilation) and the report
+def test_sweep_and_summary_show_the_helicity_odd_signal(tmp_path):
+    """A sweep with [drive] writes the photovoltages (units from the vocabulary) and summary.md reports
+    the helicity-odd transverse voltage at the shown point (docs/scenario-files.md, [drive])."""
+    from crosswind.solver.reporting.report import fmt_volts, helicity_lines, peak_index, write_report
+    from crosswind.solver.study.scenario import parse_scenario
+    from crosswind.solver.study.sweep import run_scenario
+    scn = parse_scenario((SCENARIO + CIRCULAR).replace("temperature_K = 20", "temperature_K = [20, 40]"), "s.toml")
+    ds = run_scenario(scn, tmp_path / "out", progress=False)
+    for name in ("photo_vdc_helicity_y", "photo_vdc_y", "photo_current_x"):
+        assert ds[name].dims[-1] == "current_angle_deg"
+    assert ds["photo_vdc_helicity_y"].attrs["units"] == "V" and ds["photo_current_x"].attrs["units"] == "A m^-1"
+    _, direct = chain_with(CIRCULAR)
+    np.testing.assert_allclose(ds["photo_vdc_helicity_y"].sel(temperature_K=20.0).values.reshape(-1),
+                               np.asarray(direct.reading.photo_vdc_helicity_y).reshape(-1), rtol=1e-12)
+    write_report(ds, scn, tmp_path / "out")
+    summary = (tmp_path / "out" / "summary.md").read_text(encoding="utf-8")
+    section = summary.split("## Helicity-odd rectified signal of the polarised drive")[1].split("\n## ")[0]
+    idx = peak_index(ds)
+    odd = float(ds["photo_vdc_helicity_y"].isel({d: i for d, i in idx.items() if d in ds["photo_vdc_helicity_y"].dims}))
+    assert f"**V_y = {fmt_volts(odd)}**" in section
+    assert "circularly polarised, turning counterclockwise seen from +z" in section and "S3/S0 = 1" in section
+    assert "ωτ = 0.691" in section
+    assert helicity_lines(ds, drive_scenario(""), idx) == []

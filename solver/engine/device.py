@@ -48,6 +48,7 @@ Everything is written with ``jax.numpy`` (differentiable); shapes broadcast expl
 """
 from __future__ import annotations
 
+import dataclasses
 from dataclasses import dataclass
 from typing import Any
 
@@ -250,6 +251,19 @@ class PhotoReading:
     photo_vdc_y: Any
     photo_vdc_helicity_x: Any
     photo_vdc_helicity_y: Any
+
+
+@pytree_dataclass
+class DrivenHallBarReading(HallBarReading, PhotoReading):
+    """A :class:`HallBarReading` with the :class:`PhotoReading` of a polarised field drive (a scenario's
+    ``[drive]``): the fields of both, so that sweeps write the photovoltages beside the current-drive
+    readings (:func:`with_photo`)."""
+
+
+def with_photo(reading: HallBarReading, photo: PhotoReading) -> DrivenHallBarReading:
+    """``reading`` extended by ``photo`` (same leading shape)."""
+    return DrivenHallBarReading(**{f.name: getattr(reading, f.name) for f in dataclasses.fields(reading)},
+                                **{f.name: getattr(photo, f.name) for f in dataclasses.fields(photo)})
 
 
 def photo_voltages(sigma_dc, chi_dc_full, field, bar: HallBar, angle_deg=0.0) -> PhotoReading:

@@ -909,6 +909,51 @@ def _headline(ds, scn, idx, info, amp, rms, phase, mu, dens) -> list:
         ""]
 
 
+def helicity_lines(ds, scn, idx) -> list:
+    """Markdown lines on the rectified signal of the scenario's polarised ``[drive]`` field
+    (docs/theory.md §5.9): its helicity-odd part at the shown grid point and over the sweep; no lines
+    when the scenario has no ``[drive]`` (the dataset then has no ``photo_*`` fields)."""
+    drv = getattr(scn, "drive", None)
+    if drv is None or "photo_vdc_helicity_y" not in ds:
+        return []
+    g = lambda name: float(ds[name].isel({d: i for d, i in idx.items() if d in ds[name].dims}).values)
+    odd_y, odd_x = g("photo_vdc_helicity_y"), g("photo_vdc_helicity_x")
+    tot_y, tot_x = g("photo_vdc_y"), g("photo_vdc_x")
+    sweep = np.abs(ds["photo_vdc_helicity_y"].values)
+    if drv.ellipticity_deg == 0.0:
+        state = f"linearly polarised along {drv.angle_deg:g}° from crystal x"
+    else:
+        sense = "counterclockwise" if drv.ellipticity_deg > 0 else "clockwise"
+        shape = ("circularly polarised" if abs(drv.ellipticity_deg) == 45.0 else
+                 f"elliptically polarised (ellipticity angle {abs(drv.ellipticity_deg):g}°, major axis at "
+                 f"{drv.angle_deg:g}° from crystal x)")
+        state = f"{shape}, turning {sense} seen from +z"
+    s3 = float(np.sin(np.deg2rad(2 * drv.ellipticity_deg)))
+    wt = ""
+    if "tau_fs" in ds.coords:          # constant τ: a swept axis, or one value
+        taus = np.asarray(ds["tau_fs"].values).reshape(-1)
+        w_tau = 2 * np.pi * drv.frequency_Hz * float(taus[idx.get("tau_fs", 0)]) * 1e-15
+        wt = f" (ωτ = {w_tau:.3g}; the helicity-odd current goes as ωτ/(1 + ω²τ²) at fixed τ)"
+    lines = [
+        "## Helicity-odd rectified signal of the polarised drive",
+        "",
+        f"Drive: an in-plane field of amplitude {drv.field_V_m:.4g} V/m at {drv.frequency_Hz:.4g} Hz{wt}, "
+        f"{state}; degree of circular polarisation S3/S0 = {s3:.3g}.",
+        "",
+        f"At the grid point shown ({_fmt_point(ds, idx)}) the open-circuit dc voltages are "
+        f"V_y = {fmt_volts(tot_y)} across and V_x = {fmt_volts(tot_x)} along the bar; their helicity-odd "
+        f"parts, which reverse sign with the handedness, are **V_y = {fmt_volts(odd_y)}** and "
+        f"V_x = {fmt_volts(odd_x)}. Over the sweep |V_y| of the helicity-odd part reaches "
+        f"{fmt_volts(float(np.nanmax(sweep)))}.",
+        "",
+        "The helicity-odd part is the Berry-curvature-dipole circular photogalvanic current "
+        "(docs/theory.md §5.9); it vanishes for linear polarisation and at lock-in frequencies. It is "
+        "computed with the sweep's numerics; no error estimate of it is stored.",
+        "",
+    ]
+    return lines
+
+
 def summary_markdown(ds, scn, idx, angle_info=None, info=None, sections=()) -> str:
     """``summary.md``: the peak, the mechanism, then ``sections`` (Markdown text of later analyses,
     e.g. the sensitivity table), then conditions, assumptions, accuracy and cautions."""
@@ -974,6 +1019,7 @@ def summary_markdown(ds, scn, idx, angle_info=None, info=None, sections=()) -> s
         f"over L = {dev.length_um:g} μm, rectified transverse voltage {vdc_txt}. Primes (σ', χ') denote the "
         "bar frame: x' along the current, y' across the bar.",
         "",
+        *helicity_lines(ds, scn, idx),
         "## Which mechanism dominates",
         "",
     ]

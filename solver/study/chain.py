@@ -33,8 +33,11 @@ from crosswind.solver.engine.device import (
     HallBar,
     HallBarReading,
     hall_bar,
+    photo_voltages,
+    polarisation_phasor,
     rotate_chi,
     rotate_sigma,
+    with_photo,
 )
 from crosswind.solver.engine.response import Response, response
 from crosswind.solver.engine.scattering import ConstantTau, MatthiessenTau, PowerLawTau
@@ -56,7 +59,12 @@ class ChainResult:
     ``chi_bar`` the tensors in the bar frame; and the four outputs a fit compares with data
     (:data:`crosswind.solver.vocabulary.OUTPUTS`): ``V2w`` = |V_y^2ω| (V), ``Vxx`` = |V_xx| (V),
     ``sigma_xx`` = Re σ'_xx (S) and ``ratio`` = E⊥^2ω/(E∥^ω)² (m/V).  ``V2w`` and ``Vxx`` include the
-    drive-current scale (V^2ω ∝ I², V_xx ∝ I) when the knob ``current_uA`` is given."""
+    drive-current scale (V^2ω ∝ I², V_xx ∝ I) when the knob ``current_uA`` is given.
+
+    With a polarised field drive (the scenario's ``[drive]``, docs/theory.md §5.9) ``reading`` is a
+    :class:`~crosswind.solver.engine.device.DrivenHallBarReading` that adds the rectified photocurrent
+    and open-circuit voltages with their helicity-odd part (``photo_vdc_helicity_y``, ...), and
+    ``drive_response`` is the response at the drive frequency (crystal frame; else None)."""
 
     mu: Any
     response: Response
@@ -67,6 +75,7 @@ class ChainResult:
     Vxx: Any
     sigma_xx: Any
     ratio: Any
+    drive_response: Any = None
 
     def output(self, name: str):
         """One of :data:`~crosswind.solver.vocabulary.OUTPUTS` by name."""
@@ -137,18 +146,29 @@ def evaluate(scn, values: dict, *, resolution: int | None, rtol: float = 1e-3, i
     sigma, chi, chi_dc = spread(r.sigma), spread(r.chi), spread(r.chi_dc)
     d = scn.device
     reading = hall_bar(sigma, chi, chi_dc, HallBar(d.width_um, d.length_um, d.current_uA, d.frequency_Hz), angle)
+    rd = None
+    if scn.drive is not None:
+        # the polarised field's rectified current at its own frequency, against the dc conductivity
+        # (σ at the lock-in frequency, ωτ ~ 1e-10); docs/theory.md §5.9
+        rd = response(model, mu=mu, temperature=temperature, tau=tau, frequency=scn.drive.frequency_Hz,
+                      resolution=resolution, rtol=rtol, estimate_error=estimate_error,
+                      intrinsic=scn.numerics.intrinsic if intrinsic is None else intrinsic)
+        field = scn.drive.field_V_m * polarisation_phasor(scn.drive.ellipticity_deg, scn.drive.angle_deg)
+        photo = photo_voltages(sigma, spread(rd.chi_dc_full), field,
+                               HallBar(d.width_um, d.length_um, d.current_uA, d.frequency_Hz), angle)
+        reading = with_photo(reading, photo)
     sigma_bar, chi_bar = rotate_sigma(sigma, angle), rotate_chi(chi, angle)
     scale = jnp.broadcast_to((v["current_uA"] / d.current_uA).reshape(-1, 1) if "current_uA" in v else 1.0, (P, 1))
     out = ChainResult(mu=mu, response=r, reading=reading, sigma_bar=sigma_bar, chi_bar=chi_bar,
                       V2w=reading.v2w_y_amplitude * scale * scale, Vxx=jnp.abs(reading.v_xx) * scale,
-                      sigma_xx=sigma_bar[..., 0, 0].real, ratio=reading.nonlinear_ratio)
+                      sigma_xx=sigma_bar[..., 0, 0].real, ratio=reading.nonlinear_ratio, drive_response=rd)
     if v["current_angle_deg"].ndim == 2:
         return out
     # one angle per condition: drop the angle axis of the device quantities (not of mu and the response)
     drop = lambda t: t[:, 0]
     return ChainResult(mu=mu, response=r, reading=jax.tree.map(drop, reading), sigma_bar=drop(sigma_bar),
                        chi_bar=drop(chi_bar), V2w=drop(out.V2w), Vxx=drop(out.Vxx), sigma_xx=drop(out.sigma_xx),
-                       ratio=drop(out.ratio))
+                       ratio=drop(out.ratio), drive_response=rd)
 
 
 __all__ = ["ChainResult", "evaluate", "gate_capacitance"]

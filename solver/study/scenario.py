@@ -21,6 +21,11 @@ Tables and keys (units in the key names):
                           tau_phonon_fs, reference_temperature_K)
     [numerics]            rtol, resolution ("auto" or a level 0..4), intrinsic, density_resolution
     [output]              folder (relative to the scenario file), figures
+    [drive]               a polarised in-plane field besides the current drive (docs/theory.md §5.9):
+                          polarisation = "linear" | "circular" | "elliptical", frequency_Hz, field_V_m
+                          (phasor amplitude, S0 = field²), handedness = "counterclockwise" |
+                          "clockwise" (seen from +z; circular, elliptical), ellipticity_deg (elliptical,
+                          0 < χ < 45), angle_deg (linear, elliptical: direction / major axis from crystal x)
     [design]              objective, knobs {name = {initial, bounds}}, at, limits, starts, resolution,
                           map_points (``crosswind design``; :func:`crosswind.solver.study.design.parse_design`)
 
@@ -146,6 +151,21 @@ class Device:
 
 
 @dataclass(frozen=True)
+class Drive:
+    """``[drive]``: a uniform in-plane field E(t) = Re[E e^{iωt}] at ``frequency_Hz`` with phasor
+    E = ``field_V_m`` · ê(``ellipticity_deg``, ``angle_deg``)
+    (:func:`crosswind.solver.engine.device.polarisation_phasor`; docs/theory.md §5.9).
+    ``ellipticity_deg`` is the signed ellipticity angle: > 0 counterclockwise seen from +z, < 0
+    clockwise, 0 linear, ±45 circular; ``polarisation`` is the kind the file named."""
+
+    polarisation: str            # "linear" | "circular" | "elliptical"
+    frequency_Hz: float
+    field_V_m: float
+    ellipticity_deg: float
+    angle_deg: float = 0.0
+
+
+@dataclass(frozen=True)
 class Numerics:
     rtol: float = 1e-3
     resolution: int | None = None    # None: automatic refinement to rtol
@@ -189,6 +209,7 @@ class Scenario:
     fit: FitSpec | None = None
     design: DesignSpec | None = None
     cautions: tuple = ()         # plausibility warnings (file: [table] key 'k': ...), also issued as ScenarioWarning
+    drive: Drive | None = None   # [drive]: a polarised field (docs/theory.md §5.9)
 
     def axis(self, name: str) -> Axis:
         for a in self.axes:
@@ -206,7 +227,7 @@ class Scenario:
 
 
 # ----------------------------------------------------------------------------- schema ---------
-_TOP = ("material", "device", "conditions", "numerics", "output", "sensitivities", "fit", "design")
+_TOP = ("material", "device", "conditions", "numerics", "output", "sensitivities", "fit", "design", "drive")
 _MATERIAL = ("model", "tight_binding", "parameters", "strain")
 _STRAIN_TENSOR = ("xx", "yy", "xy")
 _STRAIN_UNIAXIAL = ("magnitude", "angle_deg", "poisson")
@@ -217,6 +238,9 @@ _SCATTERING = SCATTERING
 _SCAT_DEFAULTS = SCATTERING_DEFAULTS
 _CONDITIONS = tuple(_CARRIERS) + ("temperature_K", "tau_fs", "scattering", "current_angle_deg")
 _NUMERICS = ("rtol", "resolution", "intrinsic", "density_resolution")
+_DRIVE = ("polarisation", "frequency_Hz", "field_V_m", "handedness", "ellipticity_deg", "angle_deg")
+_POLARISATIONS = ("linear", "circular", "elliptical")
+_HANDEDNESS = {"counterclockwise": 1.0, "clockwise": -1.0}
 _OUTPUT = ("folder", "figures")
 _SWEEP = ("start", "stop", "num", "spacing")
 _SENS = ("knobs", "resolution")
@@ -650,6 +674,57 @@ def _axis(knob: str, values) -> Axis:
     return Axis(k.name, key, k.unit, tuple(values), k.long_name)
 
 
+def _drive(ctx, data) -> Drive:
+    """``[drive]``: a polarised field; every key checked, each error naming the fix."""
+    t = ctx.table("drive", data)
+    ctx.check_keys("drive", t, _DRIVE)
+    kinds = ", ".join(f'"{k}"' for k in _POLARISATIONS)
+    kind = t.get("polarisation")
+    if kind not in _POLARISATIONS:
+        close = difflib.get_close_matches(str(kind), _POLARISATIONS, n=1)
+        hint = f" Did you mean '{close[0]}'?" if close else ""
+        ctx.fail("drive", "polarisation", f"unknown or missing polarisation {kind!r}.{hint}", kinds)
+    for need, what in (("frequency_Hz", "the drive frequency in Hz (> 0; a static field has no helicity)"),
+                       ("field_V_m", "the phasor amplitude |E| of the in-plane field in the sheet, V/m (> 0)")):
+        if need not in t:
+            ctx.fail("drive", need, "missing.", what)
+    freq = _number(ctx, "drive", "frequency_Hz", t["frequency_Hz"], positive=True)
+    field = _number(ctx, "drive", "field_V_m", t["field_V_m"], positive=True)
+    hands = ", ".join(f'"{k}"' for k in _HANDEDNESS)
+    if kind == "linear":
+        for key in ("handedness", "ellipticity_deg"):
+            if key in t:
+                ctx.fail("drive", key, "a linearly polarised field has no " + key.split("_")[0] + "; remove the "
+                         "key, or set polarisation = \"elliptical\" or \"circular\".")
+        ell = 0.0
+    else:
+        if "handedness" not in t:
+            ctx.fail("drive", "handedness", f"missing for polarisation = \"{kind}\" (the sense of rotation of "
+                     "E(t) seen from +z).", hands)
+        hand = t["handedness"]
+        if hand not in _HANDEDNESS:
+            ctx.fail("drive", "handedness", f"got {hand!r} (left/right mean opposite things in optics and "
+                     "engineering, so the sense of rotation seen from +z is asked for).", hands)
+        if kind == "circular":
+            for key, why in (("ellipticity_deg", "it is 45° for circular polarisation"),
+                             ("angle_deg", "a circularly polarised field has no axis")):
+                if key in t:
+                    ctx.fail("drive", key, f"{why}; remove the key, or set polarisation = \"elliptical\".")
+            ell = 45.0
+        else:
+            if "ellipticity_deg" not in t:
+                ctx.fail("drive", "ellipticity_deg", "missing for polarisation = \"elliptical\".",
+                         "the ellipticity angle χ in degrees, 0 < χ < 45 (tan χ = minor/major axis)")
+            ell = _number(ctx, "drive", "ellipticity_deg", t["ellipticity_deg"])
+            if not 0.0 < ell < 45.0:
+                ctx.fail("drive", "ellipticity_deg", f"must lie strictly between 0 and 45 degrees, got {ell:g} "
+                         "(0 is linear, 45 circular; the sense of rotation is the key handedness).",
+                         "0 < ellipticity_deg < 45, or polarisation = \"linear\" / \"circular\"")
+        ell *= _HANDEDNESS[hand]
+    angle = _number(ctx, "drive", "angle_deg", t.get("angle_deg", 0.0))
+    return Drive(polarisation=kind, frequency_Hz=freq, field_V_m=field, ellipticity_deg=ell, angle_deg=angle)
+
+
 def _numerics(ctx, data):
     t = ctx.table("numerics", data)
     ctx.check_keys("numerics", t, _NUMERICS)
@@ -735,7 +810,8 @@ def _parse_scenario(text: str, source: str, base: Path | str | None) -> Scenario
     sens = _sensitivities(ctx, data["sensitivities"], scn) if "sensitivities" in data else None
     fit = _fit(ctx, data["fit"], scn, base) if "fit" in data else None
     design = parse_design(ctx, data["design"], scn) if "design" in data else None
-    return _replace(scn, sensitivities=sens, fit=fit, design=design, cautions=tuple(ctx.cautions))
+    drive = _drive(ctx, data["drive"]) if "drive" in data else None
+    return _replace(scn, sensitivities=sens, fit=fit, design=design, drive=drive, cautions=tuple(ctx.cautions))
 
 
 def _level(ctx, table, key, v, default):
