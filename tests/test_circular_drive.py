@@ -201,6 +201,32 @@ def test_every_engine_gives_the_full_tensor(engine):
     assert np.shape(r.error.chi_circular) == np.shape(r.chi_circular)
 
 
+@pytest.mark.parametrize("case", ["lattice", pytest.param("kp", marks=pytest.mark.slow)])   # kp ≈ 20 s
+def test_three_dimensional_circular_coefficient(case):
+    """3D: C = (e³τ/4ħ²) ωτ/(1+ω²τ²) (D − 1 Tr D) for q = −e, with j_a = C_ad s_d and s = −i E × E*
+    (docs/theory.md §5.9), on the tilted lattice Weyl model (node quadrature; Tr D ≠ 0 enters) and
+    on a tilted k·p Weyl pair (shell engine)."""
+    wt, tau = 0.7, 50.0
+    if case == "lattice":
+        r = response(build("weyl", tilt=0.4), 0.05, 300.0, tau, hz(wt, tau), resolution=0)
+        assert abs(np.trace(np.asarray(r.dipole))) > 0.1 * scale(r.dipole)
+    else:
+        r = response(build("weyl-pair-kp", tilt_x=1e5), 0.05, 100.0, tau, hz(wt, tau), engine="shells", resolution=0)
+        assert r.resolution.engine == "shells"
+    D = np.asarray(r.dipole)
+    assert D.shape == (3, 3)
+    cf = E_CHARGE ** 3 * tau * 1e-15 / (4 * HBAR_JS ** 2) * wt / (1 + wt ** 2) * (D - np.eye(3) * np.trace(D))
+    c = np.asarray(r.chi_circular)
+    assert c.shape == (3, 3) and np.max(np.abs(c - cf)) <= 1e-12 * scale(cf)
+    assert r.units["chi_circular"] == "A V^-2"
+    # the current of a field E: Re[χ^full E E*] − Re[χ^dc] Re(E E*) = C (−i E × E*)
+    e = np.array([1.0, 0.3 - 0.8j, 0.5j])
+    s = (-1j * np.cross(e, np.conj(e))).real
+    odd = np.asarray(rectified_current(r.chi_dc_full, e)) - np.einsum("abc,bc->a", np.asarray(r.chi_dc).real,
+                                                                       np.outer(e, np.conj(e)).real)
+    np.testing.assert_allclose(odd, c @ s, rtol=1e-12, atol=1e-12 * scale(c @ s))
+
+
 # ---------------------------------------------------------------------------------- currents -------
 @pytest.mark.parametrize("angle", [0.0, 30.0, 90.0, 137.0])
 def test_linear_polarisation_has_no_helicity_current(angle):
