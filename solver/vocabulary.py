@@ -327,7 +327,25 @@ def units_of(dim: int = 2) -> dict[str, str]:
                                                                            "chi_intrinsic")}
 
 
-__all__ = ["CARRIERS", "DEVICE_FIELDS", "Field", "GATE_FIELD_REFUSE_V_PER_NM", "GATE_FIELD_SOURCE", "GATE_FIELD_UNIT",
-           "GATE_FIELD_WARN_V_PER_NM", "KNOBS", "KP_DEFAULT_LATTICE_A", "KP_K_MAX", "K_UNIT", "Knob", "MU_SLIPS",
-           "OUTPUTS", "RESPONSE_FIELDS", "RUN_FIELDS", "SCATTERING", "SCATTERING_DEFAULTS", "all_field_names", "field",
-           "units_of"]
+
+#: why an axis is not in SI units (the ``comment`` attribute of its dataset coordinate, as the CF
+#: conventions allow; result fields are SI).  Interface units are those the trade quotes.
+NON_SI_UNITS = {
+    "eV": "eV, not J: band energies and the chemical potential are quoted in eV (1 eV = 1.602176634e-19 J exactly)",
+    "fs": "fs, not s: relaxation times are quoted in fs (1 fs = 1e-15 s)",
+    "deg": "degree, not rad: angles from the crystal x axis are quoted in degrees",
+    "cm^-2": "cm^-2, not m^-2: sheet densities are quoted per cm^2 (1 cm^-2 = 1e4 m^-2)",
+    "uA": "uA, not A: drive currents are quoted in microampere (1 uA = 1e-6 A)",
+    "um": "um, not m: bar dimensions are quoted in micrometre (1 um = 1e-6 m)",
+    "nm": "nm, not m: dielectric thicknesses are quoted in nanometre (1 nm = 1e-9 m)",
+    "1/Å": "1/Å, not 1/m: wave vectors are quoted per ångström (1 1/Å = 1e10 1/m)",
+}
+
+#: dataset attribute ``Conventions`` (CF: units and long_name on every variable; no CF standard
+#: name exists for Berry-curvature transport quantities, so none is set)
+CF_CONVENTIONS = "CF-1.10"
+
+__all__ = ["CARRIERS", "CF_CONVENTIONS", "DEVICE_FIELDS", "Field", "GATE_FIELD_REFUSE_V_PER_NM", "GATE_FIELD_SOURCE",
+           "GATE_FIELD_UNIT", "GATE_FIELD_WARN_V_PER_NM", "KNOBS", "KP_DEFAULT_LATTICE_A", "KP_K_MAX", "K_UNIT",
+           "Knob", "MU_SLIPS", "NON_SI_UNITS", "OUTPUTS", "RESPONSE_FIELDS", "RUN_FIELDS", "SCATTERING",
+           "SCATTERING_DEFAULTS", "all_field_names", "field", "units_of"]

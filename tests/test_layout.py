@@ -22,9 +22,10 @@ LAYERS = [("crosswind",), ("crosswind.models",), ("crosswind.solver.vocabulary",
           ("crosswind.solver.engine",), ("crosswind.solver.study",),
           ("crosswind.solver.reporting",), ("crosswind.solver.fitting",), ("crosswind.validation",),
           ("crosswind.solver.cli", "crosswind.solver.demo", "crosswind.solver")]
+# heavy libraries of the file and figure stack, imported only by the functions that write files;
 # dask/distributed: the optional cluster extra, imported only inside solver/study/cluster.py's functions
 # so that a run without --cluster never imports Dask from Crosswind (nor pays its start-up time)
-LOCAL_IMPORTS_ALLOWED = ("matplotlib", "xarray", "tqdm", "dask", "distributed")
+LOCAL_IMPORTS_ALLOWED = ("matplotlib", "xarray", "pandas", "tqdm", "dask", "distributed")
 
 
 def _modules() -> dict[str, Path]:

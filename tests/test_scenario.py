@@ -117,7 +117,7 @@ def test_interrupted_sweep_resumes_without_loss_or_repeat(tmp_path, monkeypatch)
     m = build("massive-dirac", velocity=5e5, tilt=5e4, mass=0.1, valleys=2)
     r = response(m, mu=np.array([0.13, 0.15, 0.13, 0.15]), temperature=np.array([5.0, 5.0, 20.0, 20.0]),
                  tau=100.0, frequency=17.0, resolution=0)
-    got = ds["chi"].values[:, 0, :, 1, 0, 0].reshape(-1)
+    got = ds["chi"].sel(i="y", j="x", k="x").transpose("temperature_K", "mu_eV").values.reshape(-1)
     assert np.allclose(got, np.asarray(r.chi)[:, 1, 0, 0].real, rtol=1e-12, atol=0)
     # a third run computes nothing
     ds3 = run_scenario(s, progress=False)
@@ -133,7 +133,12 @@ def test_dataset_reopens_with_units_axes_and_provenance(tmp_path):
     assert ds["current_angle_deg"].attrs["units"] == "deg"
     assert ds["sigma"].attrs["units"] == "S" and ds["chi"].attrs["units"] == "A m V^-2"
     assert ds["v2w_y_amplitude"].attrs["units"] == "V"
-    assert ds["v2w_y_amplitude"].dims == ("temperature_K", "tau_fs", "mu_eV", "current_angle_deg")
+    assert ds["v2w_y_amplitude"].dims == ("temperature_K", "mu_eV", "current_angle_deg")
+    # a fixed quantity is a scalar coordinate, not a length-1 dimension (the CSV still lists it)
+    assert ds["tau_fs"].dims == () and float(ds["tau_fs"]) == 100.0 and ds["tau_fs"].attrs["units"] == "fs"
+    # CF: units and long_name everywhere; a non-SI axis says why (comment); K is SI, so no comment
+    assert ds.attrs["Conventions"].startswith("CF-") and "1e-15 s" in ds["tau_fs"].attrs["comment"]
+    assert "J" in ds["mu_eV"].attrs["comment"] and "comment" not in ds["temperature_K"].attrs
     assert list(ds["i"].values) == ["x", "y"]
     assert "error_chi" in ds and ds.attrs["scenario_text"] == GOOD
     assert json.loads(ds.attrs["numerics"])["levels_used"] == [0]

@@ -203,8 +203,10 @@ def energies_at(model: BandModel, k, params):
     return jnp.sort(w)
 
 
-def ray_rule(model: BandModel, res: Resolution, mu, kt, params=None):
-    """Polar quadrature for one condition (scalar ``mu`` eV, ``kt`` eV).  Returns (k, w)."""
+def ray_rule(model: BandModel, res: Resolution, mu, kt, params=None, with_window: bool = False):
+    """Polar quadrature for one condition (scalar ``mu`` eV, ``kt`` eV).  Returns (k, w), and with
+    ``with_window`` also the angular resolution ratio of :func:`_angular_ratio` (above 1 the
+    Fermi-window integrands are not resolved by the rays)."""
     dom = model.domain
     if dom.dim != 2:
         raise NotImplementedError("continuum integration is implemented for 2D models; "
@@ -257,12 +259,12 @@ def ray_rule(model: BandModel, res: Resolution, mu, kt, params=None):
 
         kf, slope = jax.vmap(bisect)(a0, b0, nb_)
         width = WINDOW * kt / jnp.maximum(slope, 1e-12)
-        return kf, width, found
+        return kf, width, found, nb_
 
     def per_center(c):
         return jax.vmap(lambda dv: per_ray(c, dv))(dirs)
 
-    kf, width, found = jax.vmap(per_center)(centers)                    # (C, nth, X)
+    kf, width, found, bands = jax.vmap(per_center)(centers)             # (C, nth, X)
     # crossings that were not found collapse onto k = 0 (zero-width panels)
     kf_s = jnp.where(found, kf, 0.0)
     order = jnp.argsort(kf_s, axis=-1)
@@ -292,7 +294,34 @@ def ray_rule(model: BandModel, res: Resolution, mu, kt, params=None):
     wr = jnp.concatenate([wr.reshape(wr.shape[:2] + (-1,)), jnp.broadcast_to(wrt, rt.shape)], axis=-1)
     pts = centers[:, None, None, :] + r[..., None] * dirs[None, :, None, :]
     wts = wr * r * (2 * jnp.pi / nth) / (2 * jnp.pi) ** 2
-    return (jax.lax.stop_gradient(pts.reshape(-1, 2)), jax.lax.stop_gradient(wts.reshape(-1)))
+    out = (jax.lax.stop_gradient(pts.reshape(-1, 2)), jax.lax.stop_gradient(wts.reshape(-1)))
+    if with_window:
+        nb = energies_at(model, centers[0], p).shape[0]                  # bands per k (static)
+        out += (jax.lax.stop_gradient(_angular_ratio(kf, width, found, bands, nb, nth)),)
+    return out
+
+
+def _angular_ratio(kf, width, found, bands, n_bands, nth):
+    """Angular resolution of the rays on the Fermi contours they do not resolve by construction.
+
+    Along a ray the panels sit on the thermal window, so a contour that encloses its centre is
+    resolved at any temperature (k_F(θ) is smooth).  A contour that does not enclose the centre
+    (a pocket seen from outside: only some rays cross it) or that passes within its thermal window
+    of the centre (k_F < window) is tangent to some rays: there the occupation, as a function of
+    the angle, changes over Δθ ≈ window / pocket size, which the angular spacing 2π/n must resolve.
+    Returns max over such (centre, band) of (largest k_F)·(2π/n) / (smallest window); above 1 the
+    Fermi-window integrands are not resolved (T → 0 at a fixed level; docs/theory.md §14)."""
+    ratios = []
+    for b in range(n_bands):
+        mine = found & (bands == b)                                       # (C, nth, X)
+        hit = jnp.any(mine, axis=-1)                                      # (C, nth)
+        partial = jnp.any(hit, axis=-1) & ~jnp.all(hit, axis=-1)          # (C,)
+        through = jnp.any(mine & (kf < width), axis=(-2, -1))
+        reach = jnp.max(jnp.where(mine, kf, 0.0), axis=(-2, -1))
+        narrow = jnp.min(jnp.where(mine, width, jnp.inf), axis=(-2, -1))
+        r = reach * (2 * jnp.pi / nth) / jnp.maximum(narrow, 1e-300)
+        ratios.append(jnp.max(jnp.where(partial | through, r, 0.0)))
+    return jnp.max(jnp.stack(ratios))
 
 
 def node_count(model: BandModel, res: Resolution) -> int:

@@ -62,8 +62,10 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass
+from functools import partial
 from typing import Any
 
+import jax
 import jax.numpy as jnp
 from scipy import constants as _c
 
@@ -212,6 +214,7 @@ class Measurability:
     signal_to_thermoelectric: Any
 
 
+@partial(jax.jit, static_argnames=("settings",))    # one program instead of ~40 small ones
 def assess(sigma_bar, v2w_y, v2w_x, power_density, temperature_K, *, width_m, length_m, dielectric_m,
            settings: NoiseSettings | None = None, seebeck_bar=None) -> Measurability:
     """Measurability of a transverse 2ω reading.  ``sigma_bar`` (..., 2, 2) S in the bar frame,

@@ -257,7 +257,7 @@ def neutral_filling(model: BandModel) -> int:
 def _moments_at(model, mu, kt, temp, tau_arr, omega, *, level, tau_eval, filled, sea, chunk):
     """Kernel sums of one block of conditions at one level, and per condition the node spacing on
     its Fermi contour over its thermal window (above 1: unresolved; continuum rays place their
-    panels on the window itself, 0)."""
+    panels on the window itself and report their angular ratio, :func:`mesh._angular_ratio`)."""
     res = mesh_levels(model)[level]
     p = model.params
     tau_col = jax.tree_util.tree_map(lambda a: a[:, None], tau_arr)
@@ -268,12 +268,12 @@ def _moments_at(model, mu, kt, temp, tau_arr, omega, *, level, tau_eval, filled,
 
     def one(args):
         m, t, tt, ta = args
-        k, w = _mesh.ray_rule(model, res, m, t)
+        k, w, ratio = _mesh.ray_rule(model, res, m, t, with_window=True)
         ta1 = jax.tree_util.tree_map(lambda a: a[None], ta)
         out = moments(model, p, k, w, m[None], t[None], tt[None], tau_eval, ta1, omega, filled, sea, chunk)
-        return jax.tree_util.tree_map(lambda a: a[0], out)
+        return jax.tree_util.tree_map(lambda a: a[0], out), ratio
 
-    return jax.vmap(one)((mu, kt, temp, tau_col)), jnp.zeros(mu.shape)
+    return jax.vmap(one)((mu, kt, temp, tau_col))
 
 
 def _eps(dim):
@@ -289,6 +289,7 @@ def _sym(chi):
     return 0.5 * (chi + jnp.swapaxes(chi, -1, -2))
 
 
+@partial(jax.jit, static_argnames=("intrinsic",))   # one program, not ~100 op-by-op dispatches
 def _to_si(mom: Moments, model, temp, intrinsic) -> Response:
     """SI fields (a :class:`Response` without error and metadata) from the kernel sums."""
     d = model.dim
@@ -394,6 +395,7 @@ def _converged(fine, err, mom_fine, rtol, model, tau_max):
     return bad
 
 
+@jax.jit
 def _field_errors(a: Response, b: Response) -> Response:
     """|a − b| for every response field and every χ part (SI fields of :func:`_to_si`)."""
     return jax.tree_util.tree_map(lambda x, y: jnp.abs(x - y), a, b)
@@ -576,6 +578,20 @@ def _shells_at(model, grid, mu, kt, temp, tau_arr, omega, *, plan, tau_eval, fil
                                  filled, sea)
 
 
+@partial(jax.jit, static_argnames=("intrinsic",))
+def _energy_errors(f, ex, coarse, over, model, temp, intrinsic):
+    """SI fields of the sums ``f`` and their error: |fine − coarse| (NaN without a coarser run)
+    plus the spread of the T² extrapolation ``ex``; inf where a plan overflowed."""
+    fine = _to_si(f, model, temp, intrinsic)
+    shifted = _to_si(jax.tree_util.tree_map(lambda a, b: a + b.astype(a.dtype), f, ex), model, temp, intrinsic)
+    spread = _field_errors(shifted, fine)
+    if coarse is None:
+        diff = jax.tree_util.tree_map(lambda a: jnp.full(a.shape, jnp.nan), spread)
+    else:
+        diff = _field_errors(fine, _to_si(coarse, model, temp, intrinsic))
+    return fine, jax.tree_util.tree_map(lambda u, v: jnp.where(over, jnp.inf, u + v), diff, spread)
+
+
 def _run_rays(model, mu, kt, temp, tau_arr, omega, res, kw, plan, traced, eng=_rays):
     """One evaluation of the shared ray rule; a concrete run whose rays had more crossings than
     the plan's slots (or whose windows left the knot tables) is repeated with a new plan."""
@@ -623,18 +639,11 @@ def _rays_path(model, muf, kt, Tf, tauf, omega, kw, rtol, resolution, max_level,
 
     def errors(lev):
         f, ex, over, _ = runs[lev]
-        fine = _to_si(f, model, Tf, intrinsic)
-        shifted = _to_si(jax.tree_util.tree_map(lambda a, b: a + b.astype(a.dtype), f, ex), model, Tf,
-                         intrinsic)
-        spread = _field_errors(shifted, fine)
+        c = None
         if lev - 1 in runs:
             c, _, over_c, _ = runs[lev - 1]
-            diff = _field_errors(fine, _to_si(c, model, Tf, intrinsic))
             over = over | over_c
-        else:
-            diff = jax.tree_util.tree_map(lambda a: jnp.full(a.shape, jnp.nan), spread)
-        err = jax.tree_util.tree_map(lambda u, v: jnp.where(over, jnp.inf, u + v), diff, spread)
-        return fine, err
+        return _energy_errors(f, ex, c, over, model, Tf, intrinsic)
 
     bad = None
     if resolution is None:
@@ -844,11 +853,13 @@ def response(model: BandModel, mu, temperature, tau, frequency=0.0, *, rtol: flo
         # the thermal window of some condition fell between the nodes: not converged, whatever the level
         converged = False
         unconverged = tuple(dict.fromkeys(unconverged + ("sigma", "dipole", "chi", "chi_dc")))
+        better, kind = (("ladder", "lattices") if isinstance(model.domain, Lattice) else
+                        ("rays", "continuum models"))
         warnings.warn(
             f"response: at level {info['level']} the node spacing on the Fermi contour is "
             f"{info['window_ratio']:.3g}x the thermal window (W k_BT/|grad e|) for {info['window_unresolved']} "
             "of the conditions (low temperature): their Fermi-surface fields are not resolved and carry "
-            "error = inf. Use engine='ladder' (the default for 2D lattices with resolution=None), a finer "
+            f"error = inf. Use engine={better!r} (the default for 2D {kind} with resolution=None), a finer "
             "resolution, or a higher temperature.", RuntimeWarning, stacklevel=2)
     info.update({"converged": converged, "unconverged_fields": unconverged})
     units = Units(UNITS_2D if model.dim == 2 else UNITS_3D)

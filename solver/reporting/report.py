@@ -41,7 +41,7 @@ from crosswind.solver.engine.device import (
 from crosswind.solver.engine.occupation import fermi, thermal_energy
 from crosswind.solver.engine.response import neutral_filling
 from crosswind.solver.reporting.plotting import pyplot
-from crosswind.solver.study.design import measurability_lines
+from crosswind.solver.study.design import measurability_lines, value_at
 from crosswind.solver.study.files import atomic_figure, atomic_text
 from crosswind.solver.study.scenario import model_window
 from crosswind.solver.vocabulary import CARRIERS, SCATTERING
@@ -74,7 +74,7 @@ def _point(ds, idx, name):
 
 
 def _model_at(scn, ds, idx):
-    strain = float(ds["strain"].values[idx["strain"]]) if "strain" in idx else None
+    strain = value_at(ds, "strain", idx) if "strain" in ds.coords else None
     return scn.build_model(strain)
 
 
@@ -491,7 +491,7 @@ def plot_curvature_map(model, mu, temperature, path: Path, n=161):
 
 
 def _bar_parts(ds, idx):
-    ang = float(ds["current_angle_deg"].values[idx["current_angle_deg"]])
+    ang = value_at(ds, "current_angle_deg", idx)
     out = {}
     for p in PARTS:
         chi = _point(ds, idx, f"chi_{p}")
@@ -738,7 +738,7 @@ def plot_scaling(ds, idx, path: Path):
     norm = Normalize(float(np.min(cvals)), float(np.max(cvals)) if len(cvals) > 1 else float(cvals[0]) + 1)
     cmap = plt.get_cmap("viridis")
     fig, ax = plt.subplots(figsize=(6.4, 5.4))
-    ang = float(ds["current_angle_deg"].values[idx["current_angle_deg"]])
+    ang = value_at(ds, "current_angle_deg", idx)
     spans, sig_spans, fits = [], [], {}
     for ci in range(len(cvals)):
         sel = {d: i for d, i in idx.items() if d not in (name, carrier)}
@@ -811,7 +811,7 @@ def plot_scaling(ds, idx, path: Path):
 def _fmt_point(ds, idx):
     parts = []
     for d in grid_axes(ds):
-        v = float(ds[d].values[idx[d]])
+        v = value_at(ds, d, idx)
         if ds.sizes[d] > 1 or d == "current_angle_deg":
             unit = {"deg": "°", "1": ""}.get(ds[d].attrs.get("units", ""), ds[d].attrs.get("units", ""))
             name = ds[d].attrs.get("long_name", d.replace("_", " "))
@@ -965,7 +965,7 @@ def summary_markdown(ds, scn, idx, angle_info=None, info=None, sections=()) -> s
     mu = float(ds["mu"].isel(sel_pt).values)
     dens = float(ds["density"].isel(sel_pt).values) * 1e-4
     sbar = g("sigma_bar")
-    ang = float(ds["current_angle_deg"].values[idx["current_angle_deg"]])
+    ang = value_at(ds, "current_angle_deg", idx)
     parts = _bar_parts(ds, idx)
     chi = complex(g("chi_bar")[1, 0, 0])
     err_chi = float(np.max(ds["error_chi"].isel(sel_pt).values))
@@ -1195,7 +1195,7 @@ def write_report(ds, scn, folder, sections=()) -> list:
     if scn.figures:
         sel = {d: i for d, i in idx.items() if d != "current_angle_deg"}
         mu = float(ds["mu"].isel(sel).values)
-        T = float(ds["temperature_K"].values[idx["temperature_K"]])
+        T = value_at(ds, "temperature_K", idx)
         plot_bands(model, mu, folder / "bands.png")
         plot_curvature_map(model, mu, max(T, 0.0), folder / "curvature_map.png")
         plot_responses(ds, idx, folder / "responses.png", info)

@@ -798,6 +798,13 @@ def measurability(ds, device=None, settings: noise.NoiseSettings | None = None):
     return res
 
 
+def value_at(ds, name: str, idx: dict) -> float:
+    """The value of coordinate or field ``name`` of a sweep dataset at the grid point ``idx``
+    ({dimension: index}); a fixed quantity is a scalar coordinate and has no index."""
+    var = ds[name]
+    return float(var.isel({d: i for d, i in idx.items() if d in var.dims}).values)
+
+
 def measurability_lines(ds, scn, idx) -> list:
     """Markdown lines that lead a sweep's ``summary.md``: the verdict at the grid point ``idx`` (the
     2ω peak: {dimension: index}) with its SNR and averaging time, the count of verdicts over the
@@ -816,7 +823,7 @@ def measurability_lines(ds, scn, idx) -> list:
              f"probes at the peak; settings and formulas: docs/design.md, docs/theory.md §15).",
              ""]
     rise = val("temperature_rise")
-    T = float(np.asarray(ds["temperature_K"].values)[idx.get("temperature_K", 0)])
+    T = value_at(ds, "temperature_K", idx)
     heat = (" — **more than 10 % of the bath temperature: the chosen temperature is not the electron temperature**"
             if int(val("heating_flag")) else "")
     lines += [f"- Joule heating at the peak: channel temperature rise {rise:.3g} "
@@ -840,8 +847,8 @@ def _thermo_line(val, settings) -> str:
             f"{val('signal_to_thermoelectric'):.3g}" + artefact_warning(val("signal_to_thermoelectric")))
 
 
-__all__ = ["ConstraintResult", "DESIGN_KNOBS", "DesignPoint", "DesignResult", "DesignSpec", "KnobResult",
-           "LIMITS", "OBJECTIVES", "SETTINGS_KEYS", "StartResult", "artefact_warning", "design", "dielectric_m",
+__all__ = ["ConstraintResult", "DESIGN_KNOBS", "DesignPoint", "DesignResult", "DesignSpec", "KnobResult", "LIMITS",
+           "OBJECTIVES", "SETTINGS_KEYS", "StartResult", "artefact_warning", "design", "dielectric_m",
            "free_knob_names", "held_values", "limit_value", "measurability", "measurability_lines", "noise_settings",
-           "objective_map", "optimal_scenario_text", "parse_design", "run_design", "summary_markdown", "verdict_line",
-           "write_design"]
+           "objective_map", "optimal_scenario_text", "parse_design", "run_design", "summary_markdown", "value_at",
+           "verdict_line", "write_design"]

@@ -54,7 +54,7 @@ from crosswind.solver.study.design import SETTINGS_KEYS, measurability
 from crosswind.solver.study.files import atomic_text, atomic_write, check_free_space
 from crosswind.solver.study.knobs import base_values
 from crosswind.solver.study.scenario import Scenario
-from crosswind.solver.vocabulary import field
+from crosswind.solver.vocabulary import CF_CONVENTIONS, NON_SI_UNITS, field
 
 ERROR_FIELDS = ("density", "sigma", "sigma_anomalous", "dipole", "chi", "chi_dc", "chi_dipole", "chi_drude",
                 "chi_intrinsic")
@@ -465,7 +465,9 @@ def assemble(scn: Scenario, results, inner, outer, combos):
             grid[k][tuple(sl)] = v
     dims = [a.name for a in axes]
     coords = {a.name: (a.name, np.asarray(a.values), {"units": a.unit, "long_name": a.long_name,
-                                                      "scenario_key": a.key}) for a in scn.axes}
+                                                      "scenario_key": a.key,
+                                                      **({"comment": NON_SI_UNITS[a.unit]} if a.unit in NON_SI_UNITS
+                                                         else {})}) for a in scn.axes}
     coords.update({n: (n, comp, {"long_name": f"{pos} Cartesian index of a tensor (crystal or bar frame, see "
                                               "the field's long_name)", "units": "1"})
                    for n, pos in (("i", "first"), ("j", "second"), ("k", "third"))})
@@ -486,6 +488,9 @@ def assemble(scn: Scenario, results, inner, outer, combos):
     if ds.sizes["current_angle_deg"] != A:     # a bookkeeping bug, never a user error
         raise RuntimeError(f"assemble: {ds.sizes['current_angle_deg']} current angles in the dataset, {A} expected")
     numerics = {"rtol": scn.numerics.rtol,
+    # only swept axes are dimensions; a fixed value becomes a scalar coordinate (with its
+    # attributes).  The current angle stays a dimension: it is the axis of every Hall-bar reading.
+    ds = ds.squeeze([a.name for a in scn.axes[:-1] if len(a) == 1])
                 "resolution": "auto" if scn.numerics.resolution is None else scn.numerics.resolution,
                 "error_estimate": ("|fine - coarse|" if np.all(grid.get("has_error_estimate", 1) == 1) else
                                    "unavailable (NaN) where has_error_estimate = 0: level 0 has no coarser level"),
@@ -494,7 +499,7 @@ def assemble(scn: Scenario, results, inner, outer, combos):
                 "all_converged": (None if np.all(grid["converged"] < 0)
                                   else bool(np.all(grid["converged"] == 1)))}
     ds.attrs.update({
-        "title": "Crosswind sweep", "crosswind_version": package_version(),
+        "title": "Crosswind sweep", "Conventions": CF_CONVENTIONS, "crosswind_version": package_version(),
         "scenario_file": str(scn.path), "scenario_text": scn.text,
         "numerics": json.dumps(numerics), "carrier_axis": scn.carrier, "scattering": scn.scattering,
         "device": json.dumps(scn.device.__dict__),
