@@ -163,6 +163,8 @@ KNOBS: dict[str, Knob] = {k.name: k for k in (
     _k("filter_slope_dB_oct", "device", "dB/oct", "lock-in filter slope (6, 12, 18 or 24)", None, 6.0, 24.0),
     _k("averaging_limit_min", "device", "min", "longest averaging time considered (marginal verdict)", None,
        positive=True),
+    _k("thickness_nm", "device", "nm", "film thickness of a 3D model (sheet = bulk × thickness, docs/theory.md "
+       "§16.5)", None, positive=True),
     _k("substrate_um", "device", "um", "substrate thickness (back face at the bath temperature)", None,
        positive=True),
     _k("substrate_conductivity_W_mK", "device", "W m^-1 K^-1", "substrate thermal conductivity", None,

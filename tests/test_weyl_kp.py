@@ -15,7 +15,10 @@ from crosswind.models.domain import Continuum
 from crosswind.models.twoband import bind_length, hamiltonian_of
 from crosswind.models.units import ANGSTROM, E2_OVER_H, E_CHARGE, HBAR_EVS, KB_EVK
 from crosswind.solver import response
-from crosswind.solver.engine import shells
+from crosswind.solver.engine import device, shells
+from crosswind.solver.study.chain import evaluate
+from crosswind.solver.study.knobs import base_values
+from crosswind.solver.study.scenario import ScenarioError, parse_scenario
 
 HV = HBAR_EVS / ANGSTROM                     # ħ·(1 m/s) in eV Å
 TAU = 100.0                                  # fs
@@ -313,3 +316,61 @@ def test_lattice_node_chirality_and_velocities_match_the_linearisation():
     gk = band_geometry(kp, jnp.asarray(q))
     assert np.asarray(gl.berry_curvature) == pytest.approx(np.asarray(gk.berry_curvature), rel=2e-3)
     assert np.asarray(gl.energy_gradient) == pytest.approx(np.asarray(gk.energy_gradient), rel=2e-3, abs=1e-4)
+
+
+# ---------------------------------------------------------------------------------------------
+# films of a 3D model (docs/theory.md §16.5)
+
+FILM = """
+[material]
+model = "weyl-kp"
+[material.parameters]
+tilt_x = 5e4
+energy_split = 0.02
+[device]
+width_um = 5
+length_um = 20
+current_uA = 10
+thickness_nm = {thickness}
+[conditions]
+mu_eV = 0.05
+temperature_K = 20
+tau_fs = 100
+"""
+
+
+def test_film_sheet_is_bulk_times_thickness_in_plane():
+    # docs/theory.md §16.5 (an approximation): σ_sheet = σ_bulk d, χ_sheet = χ_bulk d, in-plane
+    rng = np.random.default_rng(3)
+    sigma = rng.normal(size=(2, 3, 3)) + 1j * rng.normal(size=(2, 3, 3))
+    chi = rng.normal(size=(2, 3, 3, 3)).astype(np.complex128)
+    s, c, cd = device.film_sheet(sigma, chi, 2 * chi, 40.0)
+    assert np.asarray(s) == pytest.approx(sigma[:, :2, :2] * 40e-9, rel=1e-15)
+    assert np.asarray(c) == pytest.approx(chi[:, :2, :2, :2] * 40e-9, rel=1e-15)
+    bar = device.HallBar(5.0, 20.0, 10.0)
+    a = device.hall_bar(sigma + 1e6, chi, chi, device.HallBar(5.0, 20.0, 10.0, thickness_nm=40.0))
+    b = device.hall_bar(*device.film_sheet(sigma + 1e6, chi, chi, 40.0), bar)
+    assert np.asarray(a.v2w_y) == pytest.approx(np.asarray(b.v2w_y), rel=1e-14)
+
+
+def test_film_scenario_needs_a_thickness_and_refuses_it_for_2d_models():
+    # docs/scenario-files.md: a 3D model is a film of thickness thickness_nm, swept in μ
+    scn = parse_scenario(FILM.format(thickness=40))
+    assert scn.device.thickness_nm == 40.0
+    with pytest.raises(ScenarioError, match="thickness_nm"):
+        parse_scenario(FILM.replace("thickness_nm = {thickness}\n", ""))
+    with pytest.raises(ScenarioError, match="μ only"):
+        parse_scenario(FILM.format(thickness=40).replace("mu_eV = 0.05", "density_cm2 = 1e12"))
+    with pytest.raises(ScenarioError, match="2D"):
+        parse_scenario(FILM.format(thickness=40).replace('"weyl-kp"', '"massive-dirac"')
+                       .replace("tilt_x = 5e4\nenergy_split = 0.02", "tilt = 5e4"))
+
+
+@pytest.mark.slow
+def test_film_chain_reads_bulk_times_thickness():
+    # docs/theory.md §16.5: the chain's bar-frame σ of a film is the bulk σ × thickness
+    scn = parse_scenario(FILM.format(thickness=40))
+    out = evaluate(scn, base_values(scn), resolution=1)
+    bulk = np.asarray(out.response.sigma)[..., :2, :2]
+    assert np.asarray(out.sigma_bar).reshape(bulk.shape) == pytest.approx(bulk * 40e-9, rel=1e-12)
+    assert np.all(np.isfinite(np.asarray(out.V2w)))

@@ -96,12 +96,14 @@ class HallBarReading:
 @dataclass(frozen=True)
 class HallBar:
     """A Hall bar: ``width_um`` W and probe spacing ``length_um`` L (μm), drive current amplitude
-    ``current_uA`` I0 (μA) of I(t) = I0 sin ωt at ``frequency_Hz``."""
+    ``current_uA`` I0 (μA) of I(t) = I0 sin ωt at ``frequency_Hz``; ``thickness_nm`` d for a film of
+    a 3D model (bulk tensors become sheet tensors, :func:`film_sheet`; None for a 2D sheet)."""
 
     width_um: float
     length_um: float
     current_uA: float
     frequency_Hz: float = 17.0
+    thickness_nm: float | None = None
 
     def __post_init__(self):
         for name in ("width_um", "length_um", "current_uA"):
@@ -110,6 +112,8 @@ class HallBar:
                 raise ValueError(f"HallBar: {name} must be a positive number, got {v!r}")
         if not (self.frequency_Hz >= 0):
             raise ValueError(f"HallBar: frequency_Hz must be >= 0, got {self.frequency_Hz!r}")
+        if self.thickness_nm is not None and not (self.thickness_nm > 0 and np.isfinite(self.thickness_nm)):
+            raise ValueError(f"HallBar: thickness_nm must be a positive number, got {self.thickness_nm!r}")
 
 
 def rotation(angle_deg):
@@ -149,16 +153,30 @@ def rotate_chi(chi, angle_deg):
     return jnp.einsum("...ai,...bj,...ck,...ijk->...abc", R, R, R, c)
 
 
+def film_sheet(sigma, chi, chi_dc, thickness_nm):
+    """Sheet tensors of a film of thickness d = ``thickness_nm`` from bulk tensors of a 3D model:
+    the in-plane (x, y) components times d, σ_sheet = σ_bulk d [S/m → S], χ_sheet = χ_bulk d
+    [A/V² → A·m/V²].  An approximation: no confinement subbands, no surface (Fermi-arc) states, no
+    surface scattering (docs/theory.md §16.5)."""
+    d = thickness_nm * 1e-9
+    return (jnp.asarray(sigma)[..., :2, :2] * d, jnp.asarray(chi)[..., :2, :2, :2] * d,
+            jnp.asarray(chi_dc)[..., :2, :2, :2] * d)
+
+
 def hall_bar(sigma, chi, chi_dc, bar: HallBar, angle_deg=0.0) -> HallBarReading:
     """Voltages and ratios of ``bar`` for sheet tensors in the crystal frame: ``sigma`` (..., 2, 2) S,
     ``chi``/``chi_dc`` (..., 2, 2, 2) A·m/V² (Sodemann–Fu phasor convention), current at
     ``angle_deg`` (scalar or array broadcasting with the leading dims).  Returns a
     :class:`HallBarReading` (units in :data:`FIELDS_UNITS`); ω and 2ω phasors are for a cosine drive of amplitude I0
     (see the module docstring), amplitudes, rms values and lock-in phases are for the sine drive.
-    Compiled once per shape (``jax.jit``; ``bar`` is static) and differentiable."""
+    Compiled once per shape (``jax.jit``; ``bar`` is static) and differentiable.  Bulk tensors of a
+    3D model (..., 3, 3) S/m and (..., 3, 3, 3) A/V² are converted with :func:`film_sheet` when
+    ``bar.thickness_nm`` is given."""
+    if jnp.shape(sigma)[-2:] == (3, 3) and bar.thickness_nm is not None:
+        sigma, chi, chi_dc = film_sheet(sigma, chi, chi_dc, bar.thickness_nm)
     if jnp.shape(sigma)[-2:] != (2, 2) or jnp.shape(chi)[-3:] != (2, 2, 2):
         raise ValueError("hall_bar: sigma must be (..., 2, 2) and chi (..., 2, 2, 2): the device layer "
-                         "handles 2D sheets only")
+                         "handles 2D sheets (and 3D films with HallBar(thickness_nm=...))")
     return _hall_bar_jit(sigma, chi, chi_dc, bar, angle_deg)
 
 

@@ -32,6 +32,7 @@ from crosswind.solver.engine.density import mu_from_density, parallel_plate_capa
 from crosswind.solver.engine.device import (
     HallBar,
     HallBarReading,
+    film_sheet,
     hall_bar,
     photo_voltages,
     polarisation_phasor,
@@ -145,6 +146,9 @@ def evaluate(scn, values: dict, *, resolution: int | None, rtol: float = 1e-3, i
     spread = lambda t: jnp.broadcast_to(t.reshape((P, 1) + t.shape[1:]), (P,) + per_angle + t.shape[1:])
     sigma, chi, chi_dc = spread(r.sigma), spread(r.chi), spread(r.chi_dc)
     d = scn.device
+    if d.thickness_nm is not None:
+        # film of a 3D model: sheet = bulk × thickness, in-plane components (docs/theory.md §16.5)
+        sigma, chi, chi_dc = film_sheet(sigma, chi, chi_dc, d.thickness_nm)
     reading = hall_bar(sigma, chi, chi_dc, HallBar(d.width_um, d.length_um, d.current_uA, d.frequency_Hz), angle)
     rd = None
     if scn.drive is not None:

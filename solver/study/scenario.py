@@ -9,7 +9,8 @@ Tables and keys (units in the key names):
                           magnitude, angle_deg, poisson (uniaxial; ``magnitude`` may be a sweep)
     [device]              width_um, length_um, current_uA (amplitude of I0 sin ωt), frequency_Hz,
                           current_angle_deg, dielectric_nm, permittivity | capacitance_nF_cm2,
-                          gate_offset_V; measurement and thermal settings (docs/theory.md §15):
+                          gate_offset_V, thickness_nm (film of a 3D model, docs/theory.md §16.5);
+                          measurement and thermal settings (docs/theory.md §15):
                           probe_width_um, probe_misalignment, thermal_asymmetry,
                           amplifier_noise_nV_rtHz, time_constant_ms, filter_slope_dB_oct,
                           averaging_limit_min, substrate_um, substrate_conductivity_W_mK,
@@ -146,6 +147,8 @@ class Device:
     filter_slope_dB_oct: float | None = None
     averaging_limit_min: float | None = None
     substrate_um: float | None = None
+    # film of a 3D model: sheet quantities = bulk × thickness (docs/theory.md §16.5)
+    thickness_nm: float | None = None
     substrate_conductivity_W_mK: float | None = None
     dielectric_conductivity_W_mK: float | None = None
 
@@ -232,7 +235,7 @@ _MATERIAL = ("model", "tight_binding", "parameters", "strain")
 _STRAIN_TENSOR = ("xx", "yy", "xy")
 _STRAIN_UNIAXIAL = ("magnitude", "angle_deg", "poisson")
 _DEVICE = ("width_um", "length_um", "current_uA", "frequency_Hz", "current_angle_deg", "dielectric_nm",
-           "permittivity", "capacitance_nF_cm2", "gate_offset_V") + SETTINGS_KEYS
+           "permittivity", "capacitance_nF_cm2", "gate_offset_V", "thickness_nm") + SETTINGS_KEYS
 _CARRIERS = CARRIERS
 _SCATTERING = SCATTERING
 _SCAT_DEFAULTS = SCATTERING_DEFAULTS
@@ -424,10 +427,24 @@ def _material(ctx, data, base: Path):
         raise
     except ValueError as exc:
         ctx.fail("material.parameters", None, str(exc))
-    if probe.dim != 2:
-        ctx.fail("material", "model" if has_m else "tight_binding",
-                 f"the device layer handles 2D sheets; this model is {probe.dim}D.", "a 2D model")
     return mat, axis, probe
+
+
+def _film(ctx, probe, dev: Device, carrier, drive: bool) -> None:
+    """A 3D model is a film: [device] thickness_nm turns bulk into sheet quantities (bulk ×
+    thickness, docs/theory.md §16.5); a 2D model takes no thickness."""
+    if probe.dim == 2:
+        if dev.thickness_nm is not None:
+            ctx.fail("device", "thickness_nm", "is for films of 3D models; this model is 2D.", "no thickness_nm")
+        return
+    if dev.thickness_nm is None:
+        ctx.fail("device", "thickness_nm", f"missing: the device layer handles sheets and this model is "
+                 f"{probe.dim}D.", "thickness_nm (a film: sheet = bulk × thickness, an approximation)")
+    if carrier != "mu_eV":
+        ctx.fail("conditions", carrier, "a 3D film is swept in μ only (a gate sets a sheet density, "
+                 "whose distribution across the film is not modelled).", "mu_eV")
+    if drive:
+        ctx.fail("drive", None, "a polarised drive of a 3D film is not supported yet.", "no [drive] table")
 
 
 def _device(ctx, data):
@@ -445,7 +462,8 @@ def _device(ctx, data):
                  frequency_Hz=g("frequency_Hz", nonneg=True) if "frequency_Hz" in t else 17.0,
                  dielectric_nm=g("dielectric_nm", positive=True), permittivity=g("permittivity", positive=True),
                  capacitance_nF_cm2=g("capacitance_nF_cm2", positive=True),
-                 gate_offset_V=g("gate_offset_V") or 0.0, **_settings(ctx, t))
+                 gate_offset_V=g("gate_offset_V") or 0.0, thickness_nm=g("thickness_nm", positive=True),
+                 **_settings(ctx, t))
     angle = _values(ctx, "device", "current_angle_deg", t["current_angle_deg"]) if "current_angle_deg" in t else None
     return dev, angle
 
@@ -597,7 +615,9 @@ def _disc(centers, radius: float, n_r: int = 12, n_phi: int = 24) -> np.ndarray:
 def model_window(model) -> ModelWindow | None:
     """The :class:`ModelWindow` of a 2D model (None when its bands are not finite there).  A k·p
     model is trusted within |k| ≤ max(1/a, its curvature scale), a = its ``lattice_constant`` or
-    KP_DEFAULT_LATTICE_A (vocabulary)."""
+    KP_DEFAULT_LATTICE_A (vocabulary).  None for a 3D model (films: no window is checked)."""
+    if model.dim != 2:
+        return None
     if isinstance(model.domain, Lattice):
         b = np.asarray(model.reciprocal_vectors())[:2, :2]
         u = np.linspace(-0.5, 0.5, 25)                  # holds Γ, M and (multiples of 1/3) K
@@ -799,6 +819,7 @@ def _parse_scenario(text: str, source: str, base: Path | str | None) -> Scenario
     material, strain_axis, probe = _material(ctx, data["material"], base)
     device, dev_angle = _device(ctx, data["device"])
     carrier, kind, axes, angle_axis = _conditions(ctx, data["conditions"], device, dev_angle)
+    _film(ctx, probe, device, carrier, "drive" in data)
     if carrier == "mu_eV":
         _plausible_mu(ctx, probe, axes[-1].values)
     numerics = _numerics(ctx, data.get("numerics", {}))
