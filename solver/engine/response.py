@@ -103,8 +103,9 @@ class Resolution:
 
     Every engine:
 
-    * ``engine`` (str): ``"mesh"`` (node quadrature), ``"ladder"`` (energy-resolved, 2D lattices)
-      or ``"rays"`` (energy-resolved, 2D continuum models);
+    * ``engine`` (str): ``"mesh"`` (node quadrature), ``"ladder"`` (energy-resolved, 2D lattices),
+      ``"rays"`` (energy-resolved, 2D continuum models) or ``"shells"`` (energy-resolved, 3D
+      continuum models);
     * ``level`` (int): refinement level of the returned values (index into the engine's resolutions);
     * ``k_points`` (int): distinct k-points where the band geometry was evaluated (all passes and
       conditions);
@@ -761,7 +762,11 @@ def response(model: BandModel, mu, temperature, tau, frequency=0.0, *, rtol: flo
     metadata records ``condition_block``.  The budget holds for concrete calls; under
     ``jax.grad`` the reverse pass keeps what it needs of every block.
 
-    ``engine="auto"`` (default) takes the ladder for 2D lattice models with automatic resolution
+    ``engine="auto"`` (default) takes the shared shells of :mod:`crosswind.solver.engine.shells` for
+    3D continuum (k·p) models at any resolution (docs/theory.md §16.3; a fixed ``resolution`` indexes
+    ``shells.RESOLUTIONS``, under ``jax.grad`` pass ``plan=r.resolution.plan``; ``dipole_route="both"``
+    is refused there: the Fermi-sea form misses the monopole at each node, §16.2), and the ladder for
+    2D lattice models with automatic resolution
     (``resolution=None``) and the node quadrature ("mesh") otherwise.
     ``engine="ladder"`` (lattice models) uses the energy-resolved ladder of
     :mod:`crosswind.solver.engine.ladder`: the band geometry is evaluated once per call for all
