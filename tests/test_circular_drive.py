@@ -457,6 +457,17 @@ def test_drive_table_errors_name_the_fix(text, message):
         drive_scenario("[drive]\n" + text + "\n")
 
 
+def test_a_lock_in_frequency_drive_loads_with_a_caution():
+    """A [drive] at ωτ < 0.01 (e.g. the lock-in frequency typed in) loads with a ScenarioWarning naming
+    the ωτ/(1 + ω²τ²) suppression (docs/theory.md §5.9); a THz drive loads silently."""
+    from crosswind.solver.study.scenario import ScenarioWarning
+    with pytest.warns(ScenarioWarning, match=r"\[drive\] key 'frequency_Hz': ωτ is at most 1.1e-11 at 17 Hz: "
+                                             r"the helicity-odd current goes as ωτ/\(1 \+ ω²τ²\)"):
+        scn = drive_scenario(CIRCULAR.replace("1.1e12", "17"))
+    assert len(scn.cautions) == 1
+    assert drive_scenario(CIRCULAR).cautions == ()
+
+
 @functools.cache
 def chain_with(drive_text):
     from crosswind.solver.study.chain import evaluate

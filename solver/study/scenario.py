@@ -694,8 +694,10 @@ def _axis(knob: str, values) -> Axis:
     return Axis(k.name, key, k.unit, tuple(values), k.long_name)
 
 
-def _drive(ctx, data) -> Drive:
-    """``[drive]``: a polarised field; every key checked, each error naming the fix."""
+def _drive(ctx, data, taus=()) -> Drive:
+    """``[drive]``: a polarised field; every key checked, each error naming the fix.  With a constant
+    relaxation time (``taus``, fs) a drive with ωτ < 0.01 everywhere loads with a caution: the
+    helicity-odd current goes as ωτ/(1 + ω²τ²) (docs/theory.md §5.9)."""
     t = ctx.table("drive", data)
     ctx.check_keys("drive", t, _DRIVE)
     kinds = ", ".join(f'"{k}"' for k in _POLARISATIONS)
@@ -742,6 +744,11 @@ def _drive(ctx, data) -> Drive:
                          "0 < ellipticity_deg < 45, or polarisation = \"linear\" / \"circular\"")
         ell *= _HANDEDNESS[hand]
     angle = _number(ctx, "drive", "angle_deg", t.get("angle_deg", 0.0))
+    wt = [2 * math.pi * freq * t * 1e-15 for t in taus]
+    if wt and max(wt) < 0.01 and kind != "linear":
+        ctx.warn("drive", "frequency_Hz", f"ωτ is at most {max(wt):.2g} at {freq:g} Hz: the helicity-odd current "
+                 "goes as ωτ/(1 + ω²τ²) and is negligible (docs/theory.md §5.9); circular photogalvanic "
+                 "measurements use THz fields, ωτ of order 1. Check the value and its unit.")
     return Drive(polarisation=kind, frequency_Hz=freq, field_V_m=field, ellipticity_deg=ell, angle_deg=angle)
 
 
@@ -831,7 +838,8 @@ def _parse_scenario(text: str, source: str, base: Path | str | None) -> Scenario
     sens = _sensitivities(ctx, data["sensitivities"], scn) if "sensitivities" in data else None
     fit = _fit(ctx, data["fit"], scn, base) if "fit" in data else None
     design = parse_design(ctx, data["design"], scn) if "design" in data else None
-    drive = _drive(ctx, data["drive"]) if "drive" in data else None
+    taus = next((a.values for a in all_axes if a.name == "tau_fs"), ())
+    drive = _drive(ctx, data["drive"], taus) if "drive" in data else None
     return _replace(scn, sensitivities=sens, fit=fit, design=design, drive=drive, cautions=tuple(ctx.cautions))
 
 
