@@ -28,6 +28,7 @@ import contextlib
 import hashlib
 import os
 import tempfile
+import time
 import tomllib
 import uuid
 import warnings
@@ -214,16 +215,18 @@ def programs_built() -> int:
 
 
 def worker_record(run: Callable[[], object]):
-    """``(result of run(), {"worker", "pid", "programs_compiled"})``: who ran a task and how many
-    XLA programs it had to build."""
-    before = programs_built()
+    """``(result of run(), {"worker", "pid", "programs_compiled", "seconds"})``: who ran a task, how
+    many XLA programs it had to build and how long it took there."""
+    before, t0 = programs_built(), time.perf_counter()
     out = run()
+    seconds = time.perf_counter() - t0
     try:
         from distributed import get_worker
         who = get_worker().address
     except (ImportError, ValueError):
         who = "local"
-    return out, {"worker": who, "pid": os.getpid(), "programs_compiled": programs_built() - before}
+    return out, {"worker": who, "pid": os.getpid(), "programs_compiled": programs_built() - before,
+                 "seconds": round(seconds, 4)}
 
 
 # ----------------------------------------------------------------------- running tasks --------

@@ -413,9 +413,10 @@ def _run_locked(scn: Scenario, folder: Path, progress: bool, after_batch, client
                                              name=f"crosswind-batch-{fp}")
             for b, (res, who) in cluster.finished(client, futures):
                 values = batch_values(scn, inner, outer, combos[b])
-                mine = workers.setdefault(who["worker"], {"pid": who["pid"], "batches": [], "programs_compiled": []})
-                mine["batches"].append(b)
-                mine["programs_compiled"].append(who["programs_compiled"])
+                mine = workers.setdefault(who["worker"], {"pid": who["pid"], "batches": [], "programs_compiled": [],
+                                                          "seconds": []})
+                for k in ("batches", "programs_compiled", "seconds"):
+                    mine[k].append(b if k == "batches" else who[k])
                 _keep_batch(scn, bdir, fp, b, values, res, results, computed, after_batch, prog,
                             workers=cluster.workers_in_use(client))
     finally:
