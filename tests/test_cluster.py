@@ -31,6 +31,14 @@ from crosswind.solver.study.sweep import open_results, run_scenario  # noqa: E40
 
 SWEEP = GOOD.replace("temperature_K = [5, 20]", "temperature_K = [5, 10, 15, 20, 25, 30, 35, 40]")
 BATCHES = list(range(8))      # inner axis mu_eV (2 points), one batch per temperature
+FIT = GOOD.replace("mu_eV = [0.13, 0.15]", "mu_eV = 0.14").replace("temperature_K = [5, 20]", "temperature_K = 20") \
+    .replace("current_angle_deg = [0, 90]", "current_angle_deg = 0") + """
+[fit]
+quantity = "V2w"
+axis = "mu_eV"
+parameters = {tilt = {initial = 3e4, bounds = [1e4, 1e5]}}
+starts = 2
+"""
 
 
 @pytest.fixture(scope="module")
@@ -98,7 +106,8 @@ def test_a_run_without_a_cluster_needs_no_dask(tmp_path):
     assert (tmp_path / "out" / "results.nc").exists()
 
 
-def test_an_unreachable_scheduler_is_named_before_anything_is_written(tmp_path, capsys):
+@pytest.mark.parametrize("command", ["run", "fit"])
+def test_an_unreachable_scheduler_is_named_before_anything_is_written(tmp_path, capsys, command):
     import socket
 
     import dask
@@ -106,13 +115,16 @@ def test_an_unreachable_scheduler_is_named_before_anything_is_written(tmp_path, 
         s.bind(("127.0.0.1", 0))
         port = s.getsockname()[1]
     p = tmp_path / "s.toml"
-    p.write_text(GOOD, encoding="utf-8")
+    p.write_text(GOOD if command == "run" else FIT, encoding="utf-8")
+    argv = [command, str(p), "--no-progress", "--cluster", f"tcp://127.0.0.1:{port}"]
+    if command == "fit":
+        argv += ["--data", str(tmp_path / "d.csv"), "--output", str(tmp_path / "out")]
     with dask.config.set({"distributed.comm.timeouts.connect": "2s"}):
-        rc = main(["run", str(p), "--no-progress", "--cluster", f"tcp://127.0.0.1:{port}"])
+        rc = main(argv)
     assert rc == 2
     err = capsys.readouterr().err
     assert f"cannot reach the Dask scheduler at tcp://127.0.0.1:{port}" in err
-    assert not (tmp_path / "out").exists()
+    assert sorted(x.name for x in tmp_path.iterdir()) == ["s.toml"]
 
 
 def test_the_payload_carries_the_tight_binding_file(tmp_path):
@@ -207,16 +219,6 @@ def test_the_command_reads_the_scheduler_address_from_the_environment(serial, cl
 
 
 # ------------------------------------------------------------------------ fits and grids -------
-FIT = GOOD.replace("mu_eV = [0.13, 0.15]", "mu_eV = 0.14").replace("temperature_K = [5, 20]", "temperature_K = 20") \
-    .replace("current_angle_deg = [0, 90]", "current_angle_deg = 0") + """
-[fit]
-quantity = "V2w"
-axis = "mu_eV"
-parameters = {tilt = {initial = 3e4, bounds = [1e4, 1e5]}}
-starts = 2
-"""
-
-
 def test_fit_starts_in_parallel_give_the_serial_result(client, tmp_path):
     """The starts of ``crosswind fit`` as Dask tasks (scenario_fit._starts_on, what ``run_fit(...,
     client=)`` passes to ``fit``): the same FitResult as the serial fit with the same seed."""
