@@ -117,10 +117,12 @@ def test_trace_of_the_dipole_of_one_type_one_node_is_minus_chi_over_4pi2(node):
 
 @pytest.mark.slow
 def test_trace_reverses_with_chirality():
-    # docs/theory.md §16.2: Tr D = −χ/(4π²); χ = −1 at automatic resolution
+    # docs/theory.md §16.2: Tr D = −χ/(4π²); χ = −1 at automatic resolution.  The intrinsic χ
+    # part is off: the connection polarizability G ~ 1/q³ makes it diverge logarithmically when the
+    # thermal window reaches the node (μ = 0 at 30 K here), so it never converges (§16.2)
     m = build("weyl-kp", nodes=1, chirality=-1, cutoff=0.5, **ANISO, **TILT)
-    r = response(m, MUS[:4], TEMPS[:4], TAU, rtol=1e-5)
-    assert r.resolution.converged
+    r = response(m, MUS[:4], TEMPS[:4], TAU, rtol=1e-5, intrinsic=False)
+    assert r.resolution.converged, r.resolution.unconverged_fields
     assert _trace(r) * 4 * np.pi ** 2 == pytest.approx(np.ones(4), abs=1e-6)
 
 
