@@ -176,6 +176,23 @@ def test_a_worker_killed_mid_batch_costs_only_its_batch(scn, serial, tmp_path):
     assert_same(ds, serial)
 
 
+def test_a_local_cluster_listens_on_loopback_only_and_has_no_dashboard(client):
+    import urllib.error
+    import urllib.request
+
+    import psutil
+    addresses = [client.scheduler.address, *client.nthreads()]
+    assert len(addresses) == 3 and all(a.startswith("tcp://127.0.0.1:") for a in addresses), addresses
+    assert set(client.nthreads().values()) == {1}                  # single-threaded workers
+    pids = [os.getpid(), *client.run(os.getpid).values()]      # scheduler and nannies run in this process
+    listening = {c.laddr.ip for p in pids for c in psutil.Process(p).net_connections("tcp")
+                 if c.status == psutil.CONN_LISTEN}
+    assert listening == {"127.0.0.1"}
+    port = client.scheduler_info()["services"]["dashboard"]    # the scheduler's HTTP API, no dashboard pages
+    with pytest.raises(urllib.error.HTTPError, match="404"):
+        urllib.request.urlopen(f"http://127.0.0.1:{port}/status", timeout=10)
+
+
 def test_local_cluster_sweep_equals_the_serial_sweep_and_compiles_once_per_worker(scn, serial, client, tmp_path):
     ds = run_scenario(scn, tmp_path / "out", progress=False, client=client)
     assert_same(ds, serial)

@@ -96,9 +96,12 @@ def local_cluster(n_workers: int, *, dashboard: str | None = None):
         from distributed import LocalCluster
     except ImportError as exc:
         raise _no_dask(exc) from exc
+    # without a dashboard the scheduler still serves its small HTTP API (health, metrics): on a free
+    # loopback port rather than the dashboard's usual 8787
+    http = {} if dashboard is not None else {"scheduler_kwargs": {"dashboard_address": "127.0.0.1:0"}}
     return LocalCluster(n_workers=n_workers, threads_per_worker=1, processes=True, host="127.0.0.1",
                         scheduler_port=0, dashboard_address=dashboard, worker_dashboard_address=None,
-                        silence_logs=40)
+                        silence_logs=40, **http)
 
 
 def connect(address: str):
