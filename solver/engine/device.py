@@ -116,11 +116,11 @@ class HallBar:
             raise ValueError(f"HallBar: thickness_nm must be a positive number, got {self.thickness_nm!r}")
 
 
+@jax.jit
 def rotation(angle_deg):
     """R(θ) with rows x' = (cos θ, sin θ), y' = (−sin θ, cos θ); shape (..., 2, 2)."""
     t = jnp.deg2rad(jnp.asarray(angle_deg, dtype=jnp.float64))
     c, s = jnp.cos(t), jnp.sin(t)
-@jax.jit
     return jnp.stack([jnp.stack([c, s], -1), jnp.stack([-s, c], -1)], -2)
 
 
@@ -135,19 +135,19 @@ def _common(sigma, angle_deg, *others):
     return shape, out
 
 
+@jax.jit
 def rotate_sigma(sigma, angle_deg):
     """σ' = R σ Rᵀ (bar frame, x' along the current at ``angle_deg`` from crystal x)."""
     _, (s, a) = _common(sigma, angle_deg)
     R = rotation(a).astype(s.dtype)
-@jax.jit
     return jnp.einsum("...ai,...bj,...ij->...ab", R, R, s)
 
 
+@jax.jit
 def rotate_chi(chi, angle_deg):
     """χ'_abc = R_ai R_bj R_ck χ_ijk."""
     chi = jnp.asarray(chi)
     lead = tuple(np.broadcast_shapes(chi.shape[:-3], jnp.shape(angle_deg)))
-@jax.jit
     c = jnp.broadcast_to(chi, lead + chi.shape[-3:])
     R = rotation(jnp.broadcast_to(jnp.asarray(angle_deg, dtype=jnp.float64), lead)).astype(c.dtype)
     return jnp.einsum("...ai,...bj,...ck,...ijk->...abc", R, R, R, c)
