@@ -488,10 +488,10 @@ def assemble(scn: Scenario, results, inner, outer, combos):
     ds = xr.Dataset(data, coords=coords)
     if ds.sizes["current_angle_deg"] != A:     # a bookkeeping bug, never a user error
         raise RuntimeError(f"assemble: {ds.sizes['current_angle_deg']} current angles in the dataset, {A} expected")
-    numerics = {"rtol": scn.numerics.rtol,
     # only swept axes are dimensions; a fixed value becomes a scalar coordinate (with its
     # attributes).  The current angle stays a dimension: it is the axis of every Hall-bar reading.
     ds = ds.squeeze([a.name for a in scn.axes[:-1] if len(a) == 1])
+    numerics = {"rtol": scn.numerics.rtol,
                 "resolution": "auto" if scn.numerics.resolution is None else scn.numerics.resolution,
                 "error_estimate": ("|fine - coarse|" if np.all(grid.get("has_error_estimate", 1) == 1) else
                                    "unavailable (NaN) where has_error_estimate = 0: level 0 has no coarser level"),
@@ -513,23 +513,32 @@ def assemble(scn: Scenario, results, inner, outer, combos):
 
 
 def flat_table(ds):
-    """One row per grid point (all axes, angle included); tensor components become columns."""
-    import xarray as xr
-    grid_dims = [d for d in ds.dims if d not in ("i", "j", "k")]
-    template = xr.DataArray(np.zeros([ds.sizes[d] for d in grid_dims]), dims=grid_dims,
-                            coords={d: ds[d] for d in grid_dims})
+    """One row per grid point; the index holds every axis of the scenario (swept or fixed, in the
+    scenario's order, angle included), tensor components become columns (``chi_yxx``)."""
+    import pandas as pd
+    axes = [n for n, c in ds.coords.items() if "scenario_key" in c.attrs]
+    swept = [d for d in axes if d in ds.dims]
+    shape = tuple(ds.sizes[d] for d in swept)
+    rows = int(np.prod(shape))
+    grids = np.meshgrid(*[ds[d].values for d in swept], indexing="ij") if swept else []
+    index = [grids[swept.index(a)].reshape(rows) if a in swept else np.full(rows, ds[a].values.item())
+             for a in axes]
     cols, units = {}, {}
     for name, var in ds.data_vars.items():
         tdims = [d for d in var.dims if d in ("i", "j", "k")]
-        combos = itertools.product(*[ds[d].values for d in tdims]) if tdims else [()]
-        for combo in combos:
-            sub = var.sel(dict(zip(tdims, combo))).drop_vars(tdims) if tdims else var
+        own = [d for d in swept if d in var.dims]
+        v = var.transpose(*own, *tdims).values
+        # put the grid axes the field lacks in as length-1 axes, then broadcast over the whole grid
+        v = v.reshape(tuple(ds.sizes[d] if d in own else 1 for d in swept) + v.shape[len(own):])
+        v = np.broadcast_to(v, shape + v.shape[len(swept):]).reshape(rows, -1)
+        combos = list(itertools.product(*[ds[d].values for d in tdims])) if tdims else [()]
+        for c, combo in enumerate(combos):
             col = f"{name}_{''.join(combo)}" if tdims else name
-            cols[col] = xr.broadcast(sub, template)[0].transpose(*grid_dims)
-            units[col] = var.attrs.get("units", "")
-    frame = xr.Dataset(cols).to_dataframe()[list(cols)]
+            cols[col], units[col] = v[:, c], var.attrs.get("units", "")
+    frame = pd.DataFrame(cols, index=pd.MultiIndex.from_arrays(index, names=axes) if axes else None)
     frame.columns = [f"{c} [{units[c]}]" if units[c] else c for c in frame.columns]
-    frame.index.names = [f"{n} [{ds[n].attrs.get('units', '')}]" for n in frame.index.names]
+    if axes:
+        frame.index.names = [f"{n} [{ds[n].attrs.get('units', '')}]" for n in axes]
     return frame
 
 
