@@ -186,12 +186,12 @@ class Response:
       Fermi-sea form (NaN unless ``dipole_route="both"``);
     * ``chi`` (2ω) and ``chi_dc`` (rectified) (…, d, d, d) [A·m/V² (A/V²)], complex, with their
       parts ``chi_parts`` and ``chi_dc_parts`` (:class:`ChiParts`: ``dipole``, ``drude``, ``intrinsic``);
-    * ``sigma_lorentz`` (…, d, d) [S/T (S/(m·T))]; ``hall_coefficient`` [Ω/T (m³/C); NaN in 3D];
     * ``chi_dc_full`` (…, d, d, d) [A·m/V² (A/V²)], complex: the rectified tensor *not* symmetrised in
       b, c (``chi_dc`` is its symmetric part), j⁽⁰⁾_a = Re[χ^full_abc E_b E_c*] for any polarisation;
       ``chi_circular`` (…, d) [A·m/V²; 3D (…, d, 3) A/V²], real: the helicity-odd (circular
       photogalvanic) current j_a = C_a S3 with S3 = −i(E × E*)_z (3D: j_a = C_ad s_d, s = −i E × E*);
       docs/theory.md §5.9;
+    * ``sigma_lorentz`` (…, d, d) [S/T (S/(m·T))]; ``hall_coefficient`` [Ω/T (m³/C); NaN in 3D];
       ``seebeck`` (…, d, d) [V/K]; ``thermal_conductivity`` (…, d, d) [W/K (W/(K·m))];
       ``lorenz`` [W·Ω/K²]; ``nernst`` (…, d, d) [A/K (A/(K·m))].
 
@@ -218,9 +218,9 @@ class Response:
     dipole_sea: Any
     chi: Any
     chi_dc: Any
-    chi_parts: ChiParts
     chi_dc_full: Any
     chi_circular: Any
+    chi_parts: ChiParts
     chi_dc_parts: ChiParts
     sigma_lorentz: Any
     hall_coefficient: Any
@@ -324,8 +324,8 @@ def _to_si(mom: Moments, model, temp, intrinsic) -> Response:
     nd_fac = -(E ** 4 * FS ** 2 * L ** (3 - d) / (2 * HB ** 3))
     nd2 = _sym(m.drude2_2w * nd_fac)
     nd0 = _sym(m.drude2_0 * nd_fac)
-    bcd = _sym(bcd)
     bcd_full = bcd                     # unsymmetrised: its antisymmetric part is the circular term
+    bcd = _sym(bcd)
     if intrinsic:
         cint = (-(E ** 2) * L ** (3 - d) / (2 * HB)) * m.bcp
     else:
@@ -335,7 +335,6 @@ def _to_si(mom: Moments, model, temp, intrinsic) -> Response:
     out["chi_dc_parts"] = ChiParts(dipole=bcd, drude=nd0, intrinsic=cint)
     out["chi"] = bcd + nd2 + cint
     out["chi_dc"] = bcd + nd0 + cint
-    # Lorentz Hall term and thermoelectric tensors (dc Drude part)
     # full rectified tensor (docs/theory.md §5.9): only the dipole term has a part antisymmetric in
     # b, c (the nonlinear Drude and intrinsic kernels are symmetric before integration by parts),
     # so sym(chi_dc_full) = chi_dc; the circular coefficient is C_ae = −½ ε_bce Im χ^full_abc
@@ -344,6 +343,7 @@ def _to_si(mom: Moments, model, temp, intrinsic) -> Response:
         out["chi_circular"] = -0.5 * jnp.einsum("bc,pabc->pa", eps, out["chi_dc_full"].imag)
     else:
         out["chi_circular"] = -0.5 * jnp.einsum("bce,pabc->pae", eps, out["chi_dc_full"].imag)
+    # Lorentz Hall term and thermoelectric tensors (dc Drude part)
     out["sigma_lorentz"] = m.lorentz * (E ** 5 * FS ** 2 * L ** (4 - d) / HB ** 4)
     s0 = m.drude0 * (E ** 3 * FS * L ** (2 - d) / HB ** 2)
     l1 = m.thermo1 * (E ** 4 * FS * L ** (2 - d) / HB ** 2)
