@@ -141,6 +141,20 @@ def test_trace_of_the_pair_vanishes_while_its_diagonal_components_do_not(pair):
 # ---------------------------------------------------------------------------------------------
 # independent references: scipy quadratures of one node
 
+@pytest.mark.slow
+def test_type_two_node_with_a_sharp_cutoff_is_reported_unconverged():
+    # docs/theory.md §16.3 (limitation): an overtilted node (|t_z| > v; Soluyanov et al., Nature 527,
+    # 495, 2015) has open pockets that end on the cutoff sphere; where the radial slope of a band
+    # changes sign the occupied volume jumps from direction to direction, the product rule converges
+    # slowly, and response must say so instead of returning a converged number.  The trace of D is
+    # not quantised: about −0.65/(4π²) here, against −1/(4π²) for any type-I node.
+    m = build("weyl-kp", nodes=1, cutoff=0.2, velocity_x=3e5, velocity_y=3e5, velocity_z=3e5, tilt_z=4.5e5)
+    r = response(m, 0.02, 20.0, TAU, rtol=1e-3, max_level=1)
+    assert r.resolution.converged is False and "density" in r.resolution.unconverged_fields
+    assert float(r.error.density) > 0.1 * abs(float(r.density))
+    assert abs(float(_trace(r)) * 4 * np.pi ** 2 + 1.0) > 0.2
+
+
 def _node_dipole_reference(v, t, chi, mu, kt, cutoff):
     """D_bc = Σ_± ∫d³q/(2π)³ F ∂_bε Ω_c of H = ħt·q + χħ(v_x q_xσ_x + v_y q_yσ_y + v_z q_zσ_z),
     |q| < Λ, by scipy.integrate.dblquad over directions: on each ray ε_± = ±r s_±(n) with
