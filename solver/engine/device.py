@@ -176,7 +176,7 @@ def hall_bar(sigma, chi, chi_dc, bar: HallBar, angle_deg=0.0) -> HallBarReading:
         sigma, chi, chi_dc = film_sheet(sigma, chi, chi_dc, bar.thickness_nm)
     if jnp.shape(sigma)[-2:] != (2, 2) or jnp.shape(chi)[-3:] != (2, 2, 2):
         raise ValueError("hall_bar: sigma must be (..., 2, 2) and chi (..., 2, 2, 2): the device layer "
-                         "handles 2D sheets (and 3D films with HallBar(thickness_nm=...))")
+                         "handles 2D sheets only (a film of a 3D model: HallBar(thickness_nm=...))")
     return _hall_bar_jit(sigma, chi, chi_dc, bar, angle_deg)
 
 
