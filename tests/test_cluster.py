@@ -88,6 +88,13 @@ def test_addresses():
             cluster.parse_address(bad)
 
 
+def test_a_worker_of_another_version_is_refused():
+    import crosswind
+    cluster.check_version({"worker": "tcp://w:1", "version": crosswind.__version__})
+    with pytest.raises(cluster.ClusterError, match="tcp://w:1 runs crosswind 0.0.1, this client"):
+        cluster.check_version({"worker": "tcp://w:1", "version": "0.0.1"})
+
+
 def test_a_run_without_a_cluster_needs_no_dask(tmp_path):
     """With Dask made unimportable, the CLI imports and a run completes; importing the CLI (cluster
     module included) does not import Dask.  (xarray itself imports Dask when it is installed and a
@@ -156,11 +163,11 @@ def test_a_worker_killed_mid_batch_costs_only_its_batch(scn, serial, tmp_path):
         def killer():
             deadline = time.monotonic() + 50
             while time.monotonic() < deadline:
-                busy = c.run(lambda dask_worker: len(dask_worker.state.executing))
-                for addr, n in busy.items():
-                    if n:
+                busy = c.run(lambda dask_worker: [ts.key for ts in dask_worker.state.executing])
+                for addr, keys in busy.items():
+                    if keys:
                         os.kill(pids[addr], signal.SIGKILL)
-                        killed[addr] = pids[addr]
+                        killed[addr] = int(keys[0].rsplit("-", 1)[1])     # key ...-<batch index>
                         return
                 time.sleep(0.01)
 
@@ -173,6 +180,8 @@ def test_a_worker_killed_mid_batch_costs_only_its_batch(scn, serial, tmp_path):
     assert _checkpoints(tmp_path / "out") == BATCHES
     who = json.loads(ds.attrs["cluster_workers_this_run"])
     assert sorted(b for w in who.values() for b in w["batches"]) == BATCHES
+    (dead, lost), = killed.items()
+    assert any(lost in w["batches"] for addr, w in who.items() if addr != dead)   # recomputed elsewhere
     assert_same(ds, serial)
 
 

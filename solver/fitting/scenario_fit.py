@@ -199,6 +199,7 @@ def _starts_on(client, scn, x, y, err, progress):
         out = {}
         for i, (outcome, who) in cluster.finished(client, cluster.submit_ordered(client, _start_task, args,
                                                                                  name="crosswind-fit-start")):
+            cluster.check_version(who)
             out[i] = outcome
             if progress is not None:
                 cost = "failed" if outcome[0] is None else f"cost {float(outcome[0][0].cost):.4g}"

@@ -38,6 +38,7 @@ from pathlib import Path
 import jax
 import numpy as np
 
+from crosswind import __version__
 from crosswind.models import build
 from crosswind.solver.engine.response import response
 from crosswind.solver.pytrees import as_dict
@@ -218,8 +219,8 @@ def programs_built() -> int:
 
 
 def worker_record(run: Callable[[], object]):
-    """``(result of run(), {"worker", "pid", "programs_compiled", "seconds"})``: who ran a task, how
-    many XLA programs it had to build and how long it took there."""
+    """``(result of run(), {"worker", "pid", "programs_compiled", "seconds", "version"})``: who ran a
+    task, how many XLA programs it had to build, how long it took there and its Crosswind version."""
     before, t0 = programs_built(), time.perf_counter()
     out = run()
     seconds = time.perf_counter() - t0
@@ -229,7 +230,14 @@ def worker_record(run: Callable[[], object]):
     except (ImportError, ValueError):
         who = "local"
     return out, {"worker": who, "pid": os.getpid(), "programs_compiled": programs_built() - before,
-                 "seconds": round(seconds, 4)}
+                 "seconds": round(seconds, 4), "version": __version__}
+
+
+def check_version(who: dict) -> None:
+    """Refuse the result of a worker running another Crosswind version than this client."""
+    if who.get("version") != __version__:
+        raise ClusterError(f"Dask worker {who.get('worker')} runs crosswind {who.get('version')}, this client "
+                           f"{__version__}; install the same version on every worker")
 
 
 # ----------------------------------------------------------------------- running tasks --------

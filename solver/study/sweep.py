@@ -412,6 +412,7 @@ def _run_locked(scn: Scenario, folder: Path, progress: bool, after_batch, client
             futures = cluster.submit_ordered(client, _batch_task, {b: (payload, b) for b in missing},
                                              name=f"crosswind-batch-{fp}")
             for b, (res, who) in cluster.finished(client, futures):
+                cluster.check_version(who)
                 values = batch_values(scn, inner, outer, combos[b])
                 mine = workers.setdefault(who["worker"], {"pid": who["pid"], "batches": [], "programs_compiled": [],
                                                           "seconds": []})
