@@ -36,6 +36,19 @@ def test_dipole_matches_an_independent_scipy_quadrature_at_cryogenic_temperature
         assert err <= float(r.error.dipole[0]), (T, err, float(r.error.dipole[0]))
 
 
+def test_a_cold_window_inside_a_hot_one_is_resolved():
+    """One call at 1 K and 20 K at the same μ: the graded breakpoints used to step over the cold
+    window from inside the hot one (D_x at 1 K came out −3.55e-12 m instead of −9.67e-12 m).  Now
+    the 1 K condition agrees with the scipy reference (validation/references.py) as a call of its own does."""
+    m = build("massive-dirac", **TILTED)
+    both = response(m, mu=np.array([0.15, 0.15]), temperature=np.array([1.0, 20.0]), tau=100.0,
+                    engine="rays", resolution=1)
+    alone = response(m, mu=0.15, temperature=1.0, tau=100.0, engine="rays", resolution=1)
+    ref = tilted_dipole_quadrature(TILTED, {"mu": 0.15, "temperature": 1.0})
+    assert abs(float(both.dipole[0, 0]) - ref) <= 1e-3 * abs(ref)
+    assert abs(float(alone.dipole[0]) - ref) <= 1e-3 * abs(ref)
+
+
 @pytest.mark.parametrize("T", [0.0, 0.3, 1.0, 10.0])
 def test_density_follows_the_sommerfeld_closed_form(T):
     """Massive Dirac cone, μ = 0.15 eV, Δ = 0.1 eV: the density of states is linear above the gap,

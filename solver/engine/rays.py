@@ -138,7 +138,8 @@ def effective_windows(mu, kt, t_res):
 
 def breakpoints(mu, kt, t_res, spacing):
     """Graded energy breakpoints (eV) over the union of the windows μ ± (W+2)k_BT, with spacing
-    ``spacing``·(the smallest k_BT whose window contains the energy)."""
+    ``spacing``·(the smallest k_BT whose window contains the energy); a step never passes the start
+    of a window of finer spacing ahead (a cold window nested in a hot one is always resolved)."""
     win = effective_windows(mu, kt, t_res)
     m, k = win[:, 0], win[:, 1]
     lo, hi = m - (W + 2) * k, m + (W + 2) * k
@@ -147,7 +148,11 @@ def breakpoints(mu, kt, t_res, spacing):
     while e < stop:
         inside = (lo <= e) & (hi >= e)
         if np.any(inside):
-            step = spacing * float(k[inside].min())
+            finest = float(k[inside].min())
+            step = spacing * finest
+            ahead = (lo > e) & (k < finest)
+            if np.any(ahead):
+                step = min(step, float(lo[ahead].min()) - e)
         else:                         # a gap between windows: jump to the next one
             nxt = lo[lo > e]
             step = float(nxt.min() - e) if nxt.size else stop - e

@@ -133,36 +133,11 @@ def _check(model):
 # planning (concrete values)
 # --------------------------------------------------------------------------------------------
 
-def breakpoints(mu, kt, t_res, spacing):
-    """Graded energy breakpoints (eV) over the union of the windows μ ± (W+2)k_BT, with spacing
-    ``spacing``·(the smallest k_BT whose window contains the energy); a step never passes the start
-    of a window of finer spacing ahead (a cold window nested in a hot one is always resolved)."""
-    win = _rays.effective_windows(mu, kt, t_res)
-    m, k = win[:, 0], win[:, 1]
-    lo, hi = m - (_rays.W + 2) * k, m + (_rays.W + 2) * k
-    e, stop = float(lo.min()), float(hi.max())
-    out = [e]
-    while e < stop:
-        inside = (lo <= e) & (hi >= e)
-        if np.any(inside):
-            finest = float(k[inside].min())
-            step = spacing * finest
-            ahead = (lo > e) & (k < finest)
-            if np.any(ahead):
-                step = min(step, float(lo[ahead].min()) - e)
-        else:                         # a gap between windows: jump to the next one
-            nxt = lo[lo > e]
-            step = float(nxt.min() - e) if nxt.size else stop - e
-        e = min(e + step, stop)
-        out.append(e)
-    return np.asarray(out)
-
-
 def _energy_plan(mu, kt, resolution):
     """The energy part of a plan (breakpoints, knot tables) with the settings of
     ``rays.RESOLUTIONS[resolution]``, as :func:`crosswind.solver.engine.rays.make_plan`."""
     angles, nodes, c, rho, t_res = _rays.RESOLUTIONS[resolution]
-    bps = breakpoints(mu, kt, t_res, c)
+    bps = _rays.breakpoints(mu, kt, t_res, c)
     nlev = _rays._bucket(len(bps), 16)
     win = _rays.effective_windows(mu, kt, t_res)
     kt_min, kt_max = float(win[:, 1].min()), float(win[:, 1].max())

@@ -44,7 +44,7 @@ from crosswind.solver.engine.response import response
 from crosswind.solver.pytrees import as_dict
 from crosswind.solver.study.files import scenario_toml
 from crosswind.solver.study.scenario import Scenario, parse_scenario
-from crosswind.solver.vocabulary import field
+from crosswind.solver.vocabulary import KNOBS, field
 
 ENV = "CROSSWIND_CLUSTER"
 ADDRESS_FORMS = "'local', 'local:N' (N worker processes on this machine) or a scheduler address 'tcp://host:port'"
@@ -347,9 +347,9 @@ def map_response(client, model: str, grid: dict, *, mu, temperature, tau, freque
             data[k] = (dims, v, attrs)
     coords = {k: (k, v) for k, v in zip(names, values)}
     if shapes:
-        for k, unit in (("mu", "eV"), ("temperature", "K"), ("tau", "fs")):
+        for k, knob in (("mu", "mu_eV"), ("temperature", "temperature_K"), ("tau", "tau_fs")):
             coords[f"{k}_condition"] = ("condition", np.broadcast_to(conditions[k], next(iter(shapes))),
-                                        {"units": unit})
+                                        {"units": KNOBS[knob].unit, "long_name": KNOBS[knob].long_name})
     ds = xr.Dataset(data, coords=coords)
     ds.attrs.update({"title": f"Crosswind response of {model} on a parameter grid", "model": model,
                      "fixed_parameters": repr(dict(fixed or {})), "frequency_Hz": float(frequency),
