@@ -16,10 +16,12 @@ from crosswind.models.domain import Continuum
 from crosswind.models.twoband import bind_length, hamiltonian_of
 from crosswind.models.units import ANGSTROM, E2_OVER_H, E_CHARGE, HBAR_EVS, KB_EVK
 from crosswind.solver import response
+from crosswind.solver.cli import main
 from crosswind.solver.engine import device, shells
 from crosswind.solver.study.chain import evaluate
 from crosswind.solver.study.knobs import base_values
 from crosswind.solver.study.scenario import ScenarioError, parse_scenario
+from crosswind.solver.study.sweep import open_results
 
 HV = HBAR_EVS / ANGSTROM                     # ħ·(1 m/s) in eV Å
 TAU = 100.0                                  # fs
@@ -405,3 +407,22 @@ def test_gradient_through_the_shell_engine_at_a_fixed_plan():
                                        plan=plan).density)(3e5)
     assert np.isfinite(float(grad))
     assert float(grad) == pytest.approx(-float(r.density) / 3e5, rel=1e-3)
+
+
+def test_film_run_writes_the_film_approximation_into_the_summary(tmp_path):
+    # issue item: sheet quantities of a 3D film are stated as an approximation in the report
+    scn_file = tmp_path / "film.toml"
+    scn_file.write_text(FILM.format(thickness=40).replace("mu_eV = 0.05", "mu_eV = [0.04, 0.05]")
+                        + "[numerics]\nresolution = 0\n", encoding="utf-8")
+    assert main(["run", str(scn_file), "--output", str(tmp_path / "out"), "--no-progress"]) == 0
+    text = (tmp_path / "out" / "summary.md").read_text(encoding="utf-8")
+    assert "Film of a 3D model" in text and "40 nm" in text and "approximation" in text
+    ds = open_results(tmp_path / "out")
+    # the dataset holds sheet quantities of the film: bulk × thickness, in-plane components
+    assert ds["sigma"].attrs["units"] == "S" and ds.sizes["i"] == 2 and "40 nm" in ds.attrs["film"]
+    m = parse_scenario(FILM.format(thickness=40)).build_model(None)
+    bulk = response(m, mu=np.array([0.04, 0.05]), temperature=20.0, tau=100.0, resolution=0)
+    sheet = ds["sigma"].transpose("mu_eV", "i", "j").values
+    assert sheet == pytest.approx(np.asarray(bulk.sigma).real[:, :2, :2] * 40e-9, rel=1e-12)
+    assert ds["dipole"].transpose("mu_eV", "i").values == pytest.approx(np.asarray(bulk.dipole)[:, :2, 2] * 40e-9,
+                                                                        rel=1e-12)

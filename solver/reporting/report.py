@@ -261,6 +261,22 @@ def _fmt_k(p) -> str:
     return "(" + ", ".join(f"{float(x):.3g}" if abs(float(x)) > 1e-12 else "0" for x in p[:2]) + ")"
 
 
+def _in_plane(model, k2, centre=None):
+    """Points (n, 2) of the k_x–k_y plane as wavevectors of ``model``: a 3D model gets the k_z of
+    ``centre`` (its first node or valley centre; 0 for a lattice), so figures cut through it."""
+    k2 = np.asarray(k2, dtype=float)
+    if model.dim == 2:
+        return k2
+    kz = 0.0 if centre is None or len(centre) < 3 else float(centre[2])
+    return np.concatenate([k2, np.full((len(k2), 1), kz)], axis=1)
+
+
+def _omega_z(om):
+    """Ω (Å²) of a 2D model, Ω_z of a 3D one ((nk, nb, 3) → (nk, nb))."""
+    om = np.asarray(om)
+    return om[..., 2] if om.ndim == 3 else om
+
+
 def _band_path(model, mu):
     """The k path of ``bands.png`` (1/Å): Γ–M–corner–Γ for a lattice, for a continuum model cuts along
     k_x then k_y through the first valley centre c.  Returns (k points (n, 2), distance along the path
@@ -280,7 +296,8 @@ def _band_path(model, mu):
         tick_pts = [[p] for p in pts]
         xlabel = "distance along Γ–M–K–Γ [1/Å]" if hexa else "distance along Γ–M–corner–Γ [1/Å]"
     else:
-        c = np.asarray(model.domain.centers[0], dtype=float)[:2]
+        centre = np.asarray(model.domain.centers[0], dtype=float)
+        c = centre[:2]
         kmax = _continuum_extent(model, mu)
         ex, ey = np.array([kmax, 0.0]), np.array([0.0, kmax])
         segments = [(c - ex, c), (c, c + ex), (c - ey, c), (c, c + ey)]
@@ -297,7 +314,8 @@ def _band_path(model, mu):
     ks.append(segments[-1][1][None, :])
     x.append(np.array([s0]))
     labels = [(f"{n}\n" if n else "") + " | ".join(_fmt_k(p) for p in tp) for n, tp in zip(names, tick_pts)]
-    return np.concatenate(ks), np.concatenate(x), xlabel, ticks, labels
+    centre = None if isinstance(model.domain, Lattice) else np.asarray(model.domain.centers[0], dtype=float)
+    return _in_plane(model, np.concatenate(ks), centre), np.concatenate(x), xlabel, ticks, labels
 
 
 @functools.cache
@@ -365,7 +383,8 @@ def _continuum_extent(model, mu):
     t = np.linspace(0, 12 * scale, 1200)
     c = np.asarray(dom.centers[0], dtype=float)
     dirs = np.array([(1.0, 0.0), (0.0, 1.0), (-1.0, 0.0), (0.0, -1.0)])
-    k = (c[None, None, :] + t[None, :, None] * dirs[:, None, :]).reshape(-1, 2)
+    dirs = np.concatenate([dirs, np.zeros((4, len(c) - 2))], axis=1)        # in the k_x–k_y plane
+    k = (c[None, None, :] + t[None, :, None] * dirs[:, None, :]).reshape(-1, len(c))
     e = np.asarray(band_geometry(model, k).energies).reshape(4, len(t), -1)
     cross = np.any(np.diff(np.sign(e - mu), axis=1) != 0, axis=2)
     kmax = float(np.max(np.where(cross, t[None, 1:], 0.0)))
@@ -392,7 +411,7 @@ def plot_bands(model, mu, path: Path):
     elif model.domain.periodic:
         lo = min(lo, float(np.min(e_all)))
     tol = COINCIDE_FRACTION * (hi - lo)
-    merged = [merge_coincident(g.energies, g.berry_curvature, tol) for g in geo]
+    merged = [merge_coincident(g.energies, _omega_z(g.berry_curvature), tol) for g in geo]
     shown = np.concatenate([m[2][(m[1] >= lo) & (m[1] <= hi)] for m in merged])
     single = np.abs(np.concatenate([np.asarray(g.berry_curvature).ravel() for g in geo]))
     scale_single = float(np.percentile(single, 99)) if single.size else 0.0
@@ -467,9 +486,9 @@ def plot_curvature_map(model, mu, temperature, path: Path, n=161):
         c = np.asarray(model.domain.centers[0], dtype=float)
     t = np.linspace(-ext, ext, n)
     KX, KY = np.meshgrid(c[0] + t, c[1] + t, indexing="xy")
-    k = np.stack([KX.ravel(), KY.ravel()], -1)
+    k = _in_plane(model, np.stack([KX.ravel(), KY.ravel()], -1), c)
     g = band_geometry(model, k)
-    e, om = np.asarray(g.energies), np.asarray(g.berry_curvature)
+    e, om = np.asarray(g.energies), _omega_z(g.berry_curvature)
     kt = float(thermal_energy(np.asarray(temperature)))
     f = np.asarray(fermi(e, mu, kt)) - (np.arange(e.shape[1]) < neutral_filling(model))[None, :]
     w = np.sum(f * om, axis=1).reshape(KX.shape)
@@ -1118,6 +1137,10 @@ def summary_markdown(ds, scn, idx, angle_info=None, info=None, sections=()) -> s
         *validity_cautions,
         *(f"- Scenario check: {c}" for c in getattr(scn, "cautions", ())),
     ]
+    if dev.thickness_nm is not None:
+        lines.append(f"- Film of a 3D model: sheet quantities are the bulk ones times the thickness "
+                     f"{dev.thickness_nm:g} nm (in-plane components). An approximation: no confinement subbands, no "
+                     "surface (Fermi-arc) states, no surface scattering (docs/theory.md §16.5).")
     if scn.carrier == "gate_V":
         vmax = float(np.max(np.abs(np.asarray(scn.axis("gate_V").values) - dev.gate_offset_V)))
         if dev.dielectric_nm is not None:

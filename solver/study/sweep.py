@@ -275,7 +275,34 @@ def compute_batch(scn: Scenario, values: dict) -> dict:
         out[f"dev_{k}"] = np.asarray(v)
     out["dev_sigma_bar"] = np.asarray(got.sigma_bar)
     out["dev_chi_bar"] = np.asarray(got.chi_bar)
+    if scn.device.thickness_nm is not None:
+        out = film_sheet_fields(out, scn.device.thickness_nm * 1e-9)
     return out
+
+
+def film_sheet_fields(out: dict, thickness_m: float) -> dict:
+    """Crystal-frame fields of a 3D model as the sheet quantities of a film of ``thickness_m``:
+    bulk × thickness, in-plane components (docs/theory.md §16.5, an approximation): density m⁻³ → m⁻²,
+    σ (…, 3, 3) S/m → (…, 2, 2) S, χ (…, 3, 3, 3) A/V² → (…, 2, 2, 2) A·m/V², the dipole D_az (…, 3, 3)
+    → D_a (…, 2) m (the in-plane gradient of Ω_z, as for a 2D sheet); the Seebeck tensor is intensive
+    (in-plane block only).  Error estimates alike; Hall-bar fields are already sheet quantities."""
+    def sheet(key, v):
+        base = key[6:] if key.startswith("error_") else key
+        if base.startswith("dev_") or base in ("mu", "has_error_estimate", "resolution_level", "converged",
+                                               "nodes_per_condition"):
+            return v
+        if base == "density":
+            return v * thickness_m
+        if base == "seebeck":
+            return v[..., :2, :2]
+        if base == "dipole":
+            return v[..., :2, 2] * thickness_m
+        if base.startswith("chi"):
+            return v[..., :2, :2, :2] * thickness_m
+        if base.startswith("sigma"):
+            return v[..., :2, :2] * thickness_m
+        raise RuntimeError(f"film_sheet_fields: no sheet rule for {key!r}")   # a new field: add its rule
+    return {k: sheet(k, v) for k, v in out.items()}
 
 
 def batch_values(scn: Scenario, inner: int, outer, combo) -> dict:
@@ -510,6 +537,11 @@ def assemble(scn: Scenario, results, inner, outer, combos):
                        "bar frame x' along the current at current_angle from crystal x",
         "model": "relaxation-time Boltzmann theory, band-independent tau, to second order in E",
     })
+    if scn.device.thickness_nm is not None:
+        ds.attrs["film"] = (f"3D model as a film of thickness {scn.device.thickness_nm:g} nm: crystal-frame fields "
+                            "are sheet quantities = bulk x thickness (in-plane components; dipole: D_az x thickness), "
+                            "an approximation without subbands, surface states or surface scattering "
+                            "(docs/theory.md §16.5)")
     return ds
 
 
