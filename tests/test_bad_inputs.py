@@ -640,7 +640,7 @@ def test_node_rule_at_a_band_edge_at_zero_temperature_is_right_or_says_so(mu):
     assert float(r.error.sigma[0, 0]) >= true_err and np.isposinf(float(r.error.chi[1, 0, 0]))
     assert r.resolution.window_unresolved == 1 and r.resolution.converged is False
     # 1 K smooths the contour over more than the ray spacing: resolved, and the estimate bounds the error
-    warm_truth = response(m, mu=mu, temperature=1.0, tau=100.0, rtol=1e-6)
+    warm_truth = response(m, mu=mu, temperature=1.0, tau=100.0, rtol=1e-5)       # its estimate: 1.5e-7 relative
     warm = response(m, mu=mu, temperature=1.0, tau=100.0, resolution=1)
     assert warm.resolution.window_unresolved == 0
     assert float(warm.error.sigma[0, 0]) >= abs(float(warm.sigma[0, 0].real) - float(warm_truth.sigma[0, 0].real))

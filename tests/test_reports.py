@@ -238,7 +238,7 @@ def test_fit_command_prints_progress(tmp_path, monkeypatch, capsys):
 
     from crosswind.solver.fitting import scenario_fit
 
-    def fake_run_fit(scn, data, folder, starts=None, progress=None):
+    def fake_run_fit(scn, data, folder, starts=None, progress=None, client=None):
         if progress is not None:
             progress("start 1/1, iteration 1: cost 3.2, tilt = 3.5e+04")
         return types.SimpleNamespace(status="ok", scaling=False)

@@ -83,7 +83,7 @@ def test_units_and_shapes(base):
     assert sens["mass"].units["chi"] == "(A m V^-2) / (eV)"
     assert sens["temperature"].units["dipole"] == "(m) / (K)"
     leaves, values = _leaves(sens["mu"]), _leaves(value)
-    assert set(leaves) == set(values) and len(leaves) == 21      # 15 arrays + 2 × 3 χ parts
+    assert set(leaves) == set(values) and len(leaves) == 23      # 17 arrays (chi_dc_full, chi_circular incl.) + 2 × 3 χ parts
     for f, a in leaves.items():
         assert np.shape(a) == np.shape(values[f]), f
     assert isinstance(sens["mu"], Response) and isinstance(sens["mu"].chi_parts, ChiParts)
