@@ -244,6 +244,32 @@ def _crossing_counts(model, params, grid, *, angles):
     return jax.vmap(lambda c: jax.lax.map(lambda d: one(c, d), dirs))(centers)
 
 
+def crossings(model, p, c, dvec, kr, levels, slots):
+    """The last ``slots`` crossings of the energy ``levels`` by any band along the ray c + k·dvec
+    (probe radii ``kr``), each refined by ``BISECT`` bisections: (valid (slots,), k (slots,), number
+    of crossings found; more than ``slots`` is an overflow)."""
+    pos, band, itv, lev = _ray_candidates(model, p, c, dvec, kr, levels)
+    found = jnp.sum(pos >= 0)
+    order = jnp.argsort(pos)[-slots:]
+    pos, band, itv, lev = pos[order], band[order], itv[order], lev[order]
+
+    def f(kk):
+        e = jax.vmap(lambda q: energies_at(model, c + q * dvec, p))(kk)       # (slots, nb)
+        return jnp.take_along_axis(e, band[:, None], axis=1)[:, 0] - levels[lev]
+
+    a, b = kr[itv], kr[jnp.minimum(itv + 1, PROBE)]
+
+    def body(_, st):
+        a, b, fa = st
+        m = 0.5 * (a + b)
+        fm = f(m)
+        left = (fm > 0) == (fa > 0)
+        return jnp.where(left, m, a), jnp.where(left, b, m), jnp.where(left, fm, fa)
+
+    a, b, _ = jax.lax.fori_loop(0, BISECT, body, (a, b, f(a)))
+    return pos >= 0, 0.5 * (a + b), found
+
+
 def ray_nodes(model: BandModel, params, plan: RayPlan, grid: RayGrid):
     """Nodes (N, 2) and weights (N,) of the shared rule, and whether some ray had more crossings
     than ``plan.slots`` (overflow)."""
@@ -258,28 +284,8 @@ def ray_nodes(model: BandModel, params, plan: RayPlan, grid: RayGrid):
     geo = jnp.asarray(GEOMETRIC) * s
 
     def one_ray(c, dvec):
-        pos, band, itv, lev = _ray_candidates(model, p, c, dvec, kr, levels)
-        found = jnp.sum(pos >= 0)
-        order = jnp.argsort(pos)[-plan.slots:]
-        pos, band, itv, lev = pos[order], band[order], itv[order], lev[order]
-        ok = pos >= 0
-
-        def f(kk):
-            e = jax.vmap(lambda q: energies_at(model, c + q * dvec, p))(kk)       # (slots, nb)
-            return jnp.take_along_axis(e, band[:, None], axis=1)[:, 0] - levels[lev]
-
-        a, b = kr[itv], kr[jnp.minimum(itv + 1, PROBE)]
-        fa = f(a)
-
-        def body(_, st):
-            a, b, fa = st
-            m = 0.5 * (a + b)
-            fm = f(m)
-            left = (fm > 0) == (fa > 0)
-            return jnp.where(left, m, a), jnp.where(left, b, m), jnp.where(left, fm, fa)
-
-        a, b, _ = jax.lax.fori_loop(0, BISECT, body, (a, b, fa))
-        kc = jnp.where(ok, 0.5 * (a + b), 0.0)
+        ok, kc, found = crossings(model, p, c, dvec, kr, levels, plan.slots)
+        kc = jnp.where(ok, kc, 0.0)
         bps = jnp.sort(jnp.concatenate([jnp.zeros(1), geo, kc]))
         lo, hi = bps[:-1], bps[1:]
         r = lo[:, None] + (hi - lo)[:, None] * x[None, :]

@@ -48,7 +48,6 @@ from crosswind.models.domain import Lattice
 from crosswind.models.units import KB_EVK as KB
 from crosswind.solver.engine import rays as _rays
 from crosswind.solver.engine.ladder import factor_layout, point_factors
-from crosswind.solver.engine.mesh import energies_at
 
 CUTOFF_KEY = "kp_cutoff"     # static option of a 3D continuum model: momentum cutoff Λ (1/Å)
 
@@ -213,27 +212,9 @@ def shell_nodes(model: BandModel, params, plan: ShellPlan, grid):
 
     def one_ray(c, dvec, wdir, R):
         kr = _probe(s, R)
-        pos, band, itv, lev = _rays._ray_candidates(model, p, c, dvec, kr, levels)
-        found = jnp.sum(pos >= 0)
-        order = jnp.argsort(pos)[-slots:]
-        pos, band, itv, lev = pos[order], band[order], itv[order], lev[order]
-
-        def f(kk):
-            e = jax.vmap(lambda q: energies_at(model, c + q * dvec, p))(kk)
-            return jnp.take_along_axis(e, band[:, None], axis=1)[:, 0] - levels[lev]
-
-        a, b = kr[itv], kr[jnp.minimum(itv + 1, _rays.PROBE)]
-
-        def body(_, st):
-            a, b, fa = st
-            m = 0.5 * (a + b)
-            fm = f(m)
-            keep = (fm > 0) == (fa > 0)
-            return jnp.where(keep, m, a), jnp.where(keep, b, m), jnp.where(keep, fm, fa)
-
-        a, b, _ = jax.lax.fori_loop(0, _rays.BISECT, body, (a, b, f(a)))
+        ok, kc, found = _rays.crossings(model, p, c, dvec, kr, levels, slots)
         finite = jnp.isfinite(R)
-        kc = jnp.where(pos >= 0, jnp.minimum(0.5 * (a + b), R), 0.0)
+        kc = jnp.where(ok, jnp.minimum(kc, R), 0.0)
         ends = jnp.stack([jnp.asarray(0.0), jnp.where(finite, R, 0.0)])
         bps = jnp.sort(jnp.concatenate([ends, jnp.minimum(geo, R), kc]))
         lo, hi = bps[:-1], bps[1:]
