@@ -57,6 +57,7 @@ current_angle_deg = [0, 90]
 
 [numerics]
 resolution = {resolution}
+batch_points = {points}        # one run of the μ axis per batch: B batches of P points
 
 [output]
 folder = "out"

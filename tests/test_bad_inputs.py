@@ -155,6 +155,7 @@ exponent = 1.0
 
 [numerics]
 resolution = 0
+batch_points = 2           # one batch per temperature: the checkpoint tests count batches
 
 [output]
 figures = false

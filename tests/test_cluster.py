@@ -29,8 +29,9 @@ from crosswind.solver.study import cluster  # noqa: E402
 from crosswind.solver.study.scenario import load_scenario, parse_scenario  # noqa: E402
 from crosswind.solver.study.sweep import open_results, run_scenario  # noqa: E402
 
-SWEEP = GOOD.replace("temperature_K = [5, 20]", "temperature_K = [5, 10, 15, 20, 25, 30, 35, 40]")
-BATCHES = list(range(8))      # inner axis mu_eV (2 points), one batch per temperature
+SWEEP = GOOD.replace("temperature_K = [5, 20]", "temperature_K = [5, 10, 15, 20, 25, 30, 35, 40]").replace(
+    "resolution = 0", "resolution = 0\nbatch_points = 2")
+BATCHES = list(range(8))      # inner axis mu_eV (2 points), batch_points = 2: one batch per temperature
 FIT = GOOD.replace("mu_eV = [0.13, 0.15]", "mu_eV = 0.14").replace("temperature_K = [5, 20]", "temperature_K = 20") \
     .replace("current_angle_deg = [0, 90]", "current_angle_deg = 0") + """
 [fit]

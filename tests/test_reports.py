@@ -208,7 +208,7 @@ def test_run_shows_compile_phase_estimate_and_report_phase(tmp_path, monkeypatch
     from test_scenario import GOOD
     monkeypatch.setitem(sys.modules, "tqdm", None)          # the plain progress lines (no bar)
     p = tmp_path / "s.toml"
-    p.write_text(GOOD, encoding="utf-8")
+    p.write_text(GOOD.replace("resolution = 0", "resolution = 0\nbatch_points = 2"), encoding="utf-8")
     assert main(["run", str(p)]) == 0
     err = capsys.readouterr().err
     assert "crosswind: compiling the k-space kernels for massive-dirac (first run only" in err

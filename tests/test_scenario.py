@@ -92,7 +92,7 @@ def test_strain_forms_reach_the_model(tmp_path):
 
 
 def test_interrupted_sweep_resumes_without_loss_or_repeat(tmp_path, monkeypatch):
-    s = load_scenario(write(tmp_path, GOOD))
+    s = load_scenario(write(tmp_path, GOOD.replace("resolution = 0", "resolution = 0\nbatch_points = 2")))
     calls = []
     real = run_mod.compute_batch
 
@@ -122,6 +122,55 @@ def test_interrupted_sweep_resumes_without_loss_or_repeat(tmp_path, monkeypatch)
     # a third run computes nothing
     ds3 = run_scenario(s, progress=False)
     assert len(calls) == 2 and json.loads(ds3.attrs["batches_computed_this_run"]) == []
+
+
+def test_batches_gather_runs_up_to_batch_points_and_never_mix_strains(tmp_path, monkeypatch):
+    """A batch is whole runs of the inner axis (mu_eV here), consecutive, at most batch_points
+    points, one strain value; how the grid is cut does not change the numbers of a fixed-mesh
+    sweep, every point lands in its place, and the layout is part of the fingerprint."""
+    default = load_scenario(write(tmp_path, GOOD))
+    assert default.numerics.batch_points == 64
+    inner, outer, batches = run_mod.batch_plan(default)
+    assert default.axes[inner].name == "mu_eV" and len(batches) == 1 and len(batches[0]) == 2
+    three = GOOD.replace("temperature_K = [5, 20]", "temperature_K = [5, 10, 20]")
+    cut = load_scenario(write(tmp_path, three.replace("resolution = 0", "resolution = 0\nbatch_points = 5"), "c.toml"))
+    assert [len(b) for b in run_mod.batch_plan(cut)[2]] == [2, 1]            # 2 runs of 2 points, then 1
+    one = load_scenario(write(tmp_path, three.replace("resolution = 0", "resolution = 0\nbatch_points = 1"), "o.toml"))
+    assert [len(b) for b in run_mod.batch_plan(one)[2]] == [1, 1, 1]         # at least one run per batch
+    tmd = GOOD.replace('model = "massive-dirac"', 'model = "tmd"').replace(
+        "velocity = 5e5\ntilt = 5e4\nmass = 0.1\nvalleys = 2", 'material = "MoS2"')
+    strained = load_scenario(write(tmp_path, tmd + "\n[material.strain]\nmagnitude = [0.01, 0.02]\n", "s.toml"))
+    inner, outer, batches = run_mod.batch_plan(strained)
+    assert outer[0] == 0 and [len(b) for b in batches] == [2, 2]              # 8 points, but two strains
+    assert all(len({combo[0] for combo in b}) == 1 for b in batches)
+    values = run_mod.batch_values(strained, inner, outer, batches[1])
+    assert np.all(values["strain"] == 0.02) and list(values["temperature_K"]) == [5, 5, 20, 20]
+    assert list(values["mu_eV"]) == [0.13, 0.15, 0.13, 0.15]
+    # the same fixed-mesh sweep cut into 1 and 3 batches: the same dataset
+    calls = []
+    real = run_mod.compute_batch
+    monkeypatch.setattr(run_mod, "compute_batch", lambda scn, v: calls.append(len(v["mu_eV"])) or real(scn, v))
+    whole = run_scenario(load_scenario(write(tmp_path, three.replace('folder = "out"', 'folder = "w"'), "w.toml")),
+                         progress=False)
+    parts = run_scenario(load_scenario(write(tmp_path, three.replace('folder = "out"', 'folder = "p"').replace(
+        "resolution = 0", "resolution = 0\nbatch_points = 2"), "p.toml")), progress=False)
+    assert calls == [6, 2, 2, 2]
+    for name in ("chi", "sigma", "density", "v2w_y_amplitude"):
+        assert np.allclose(whole[name].values, parts[name].values, rtol=1e-12, atol=0), name
+    m = build("massive-dirac", velocity=5e5, tilt=5e4, mass=0.1, valleys=2)
+    r = response(m, mu=0.15, temperature=10.0, tau=100.0, frequency=17.0, resolution=0)
+    got = whole["chi"].sel(i="y", j="x", k="x", temperature_K=10.0, mu_eV=0.15).values
+    assert got == pytest.approx(float(np.asarray(r.chi)[1, 0, 0].real), rel=1e-12)
+    # another cut is another input: the folder is refused, naming the batch layout
+    other = three.replace("resolution = 0", "resolution = 0\nbatch_points = 4").replace('folder = "out"', 'folder = "w"')
+    with pytest.raises(RunError, match=r"batch layout.*changed since these results were computed"):
+        run_scenario(load_scenario(write(tmp_path, other, "w2.toml")), progress=False)
+
+
+def test_batch_points_must_be_a_positive_integer(tmp_path):
+    for bad in ("0", "2.5", "true", '"64"'):
+        with pytest.raises(ScenarioError, match=r"\[numerics\] key 'batch_points': got .*a positive integer"):
+            load_scenario(write(tmp_path, GOOD.replace("resolution = 0", f"resolution = 0\nbatch_points = {bad}")))
 
 
 def test_dataset_reopens_with_units_axes_and_provenance(tmp_path):

@@ -20,7 +20,8 @@ Tables and keys (units in the key names):
     [conditions.scattering]  kind = "constant" (tau_fs) | "power-law" (tau0_fs, exponent,
                           reference_energy_eV, energy_scale_eV) | "matthiessen" (tau_impurity_fs,
                           tau_phonon_fs, reference_temperature_K)
-    [numerics]            rtol, resolution ("auto" or a level 0..4), intrinsic, density_resolution
+    [numerics]            rtol, resolution ("auto" or a level 0..4), intrinsic, density_resolution,
+                          batch_points
     [output]              folder (relative to the scenario file), figures
     [drive]               a polarised in-plane field besides the current drive (docs/theory.md §5.9):
                           polarisation = "linear" | "circular" | "elliptical", frequency_Hz, field_V_m
@@ -174,6 +175,7 @@ class Numerics:
     resolution: int | None = None    # None: automatic refinement to rtol
     intrinsic: bool = True
     density_resolution: int = 2
+    batch_points: int = 64           # a sweep batch gathers whole inner-axis runs up to this many points
 
 
 @dataclass(frozen=True)
@@ -240,7 +242,7 @@ _CARRIERS = CARRIERS
 _SCATTERING = SCATTERING
 _SCAT_DEFAULTS = SCATTERING_DEFAULTS
 _CONDITIONS = tuple(_CARRIERS) + ("temperature_K", "tau_fs", "scattering", "current_angle_deg")
-_NUMERICS = ("rtol", "resolution", "intrinsic", "density_resolution")
+_NUMERICS = ("rtol", "resolution", "intrinsic", "density_resolution", "batch_points")
 _DRIVE = ("polarisation", "frequency_Hz", "field_V_m", "handedness", "ellipticity_deg", "angle_deg")
 _POLARISATIONS = ("linear", "circular", "elliptical")
 _HANDEDNESS = {"counterclockwise": 1.0, "clockwise": -1.0}
@@ -769,7 +771,10 @@ def _numerics(ctx, data):
     dres = t.get("density_resolution", 2)
     if not (isinstance(dres, int) and not isinstance(dres, bool) and 0 <= dres <= 4):
         ctx.fail("numerics", "density_resolution", f"got {dres!r}.", "an integer level 0..4")
-    return Numerics(rtol=rtol, resolution=res, intrinsic=intr, density_resolution=dres)
+    bp = t.get("batch_points", 64)
+    if not (isinstance(bp, int) and not isinstance(bp, bool) and bp >= 1):
+        ctx.fail("numerics", "batch_points", f"got {bp!r}.", "a positive integer (points per sweep batch), e.g. 64")
+    return Numerics(rtol=rtol, resolution=res, intrinsic=intr, density_resolution=dres, batch_points=bp)
 
 
 def _output(ctx, data, base: Path):
