@@ -238,6 +238,36 @@ def test_mu_from_density_2d_parabolic():
     np.testing.assert_allclose(dmu, (mus[2] - mus[0]) / (2 * h), rtol=1e-6)
 
 
+def _dirac_density(mu, T, v=5e5, gap=0.1):
+    """n(μ, T) (m⁻²) of one massive Dirac cone ε = ±√((ħvk)² + Δ²), counted from neutrality: the
+    density of states |ε|/(2π(ħv)²) outside the gap (common practice), electrons minus holes by
+    scipy quadrature over the energy."""
+    hv = sc.hbar * v / sc.e * 1e10                             # eV Å
+    kt = KB * T
+
+    def carriers(m):      # ∫_Δ^∞ ε f(ε − m) dε, the Fermi function as expit (no overflow)
+        return integrate.quad(lambda e: e * expit(-(e - m) / kt), gap, np.inf, epsabs=0, epsrel=1e-13,
+                              limit=400, points=None)[0]
+    return (carriers(mu) - carriers(-mu)) / (2 * np.pi * hv ** 2) * 1e20
+
+
+def test_mu_from_density_massive_dirac_band_edges_and_gap():
+    """μ(n, T) of a massive Dirac cone against a root of the energy-quadrature density (brentq):
+    1, 10 and 150 K, densities from 10¹⁰ to 5·10¹² cm⁻² of both signs, so μ lies just above a band
+    edge (1 K), deep in a band, and inside the gap where n is exponential in μ (150 K, lowest
+    densities: a secant step there used to stall and left μ 60 meV off)."""
+    from scipy.optimize import brentq
+    m = build("massive-dirac", velocity=5e5, mass=0.1)
+    dens = np.geomspace(1e14, 5e16, 12)
+    n = np.concatenate([dens, -dens] * 3)
+    T = np.repeat([1.0, 10.0, 150.0], 24)
+    mus = np.asarray(mu_from_density(m, n, T, resolution=1))
+    ref = np.array([brentq(lambda x, ni=ni, ti=ti: _dirac_density(x, ti) - ni, -0.5, 0.5, xtol=1e-14)
+                    for ni, ti in zip(n, T)])
+    assert np.all(np.abs(ref[48:52]) < 0.1)                   # 150 K, ~10¹⁰ cm⁻²: μ in the gap
+    np.testing.assert_allclose(mus, ref, rtol=0, atol=1e-9)
+
+
 # --------------------------------------------------------------------------------------------
 # anomalous Nernst effect of one massive Dirac valley (check #29)
 # --------------------------------------------------------------------------------------------

@@ -28,6 +28,7 @@ from crosswind.solver.engine.occupation import fermi, thermal_energy
 from crosswind.solver.engine.response import mesh_levels, neutral_filling
 
 MU_TOL = 1e-12    # eV: the solve stops when a step or the bracket is below this
+START_TOL = 1e-7  # eV: the same for the first phase (on energies computed once, _start_rule)
 
 
 def parallel_plate_capacitance(thickness_nm, permittivity=3.9):
@@ -66,6 +67,27 @@ def _density_fn(model: BandModel, resolution: int):
     return n_of
 
 
+def _start_rule(model: BandModel, resolution: int):
+    """``(k, w)`` of the first phase of the solve, independent of μ so that its band energies are
+    computed once: on a lattice the solve's own uniform grid (the first phase then finds the root
+    itself); on a continuum model a polar midpoint grid around every centre (radii of the rays'
+    probe, k = 4s·u/(1 − u)), which only has to land close to the root."""
+    if isinstance(model.domain, Lattice):
+        return _mesh.lattice_rule(model, mesh_levels(model)[resolution])
+    p = jax.lax.stop_gradient(model.params)
+    s = model.domain.scale_for(p)
+    nth = mesh_levels(model)[resolution].n
+    theta = (jnp.arange(nth, dtype=jnp.float64) + 0.5) * (2 * jnp.pi / nth)
+    dirs = jnp.stack([jnp.cos(theta), jnp.sin(theta)], axis=-1)
+    u = (jnp.arange(_mesh.PROBE, dtype=jnp.float64) + 0.5) / _mesh.PROBE
+    kr = 4.0 * s * u / (1.0 - u)
+    wr = 4.0 * s / (1.0 - u) ** 2 / _mesh.PROBE * kr * (2 * jnp.pi / nth) / (2 * jnp.pi) ** 2
+    centers = jnp.asarray(np.asarray(model.domain.centers, dtype=float))
+    pts = centers[:, None, None, :] + kr[None, None, :, None] * dirs[None, :, None, :]
+    w = jnp.broadcast_to(wr, pts.shape[:-1])
+    return jax.lax.stop_gradient(pts.reshape(-1, model.dim)), jax.lax.stop_gradient(w.reshape(-1))
+
+
 def mu_from_density(model: BandModel, density, temperature, *, bracket=(-5.0, 5.0),
                     resolution: int = 2, iterations: int = 60):
     """μ (eV) with n(μ, T) = ``density`` (m^-d, relative to neutrality), for scalar or array
@@ -90,33 +112,53 @@ def mu_from_density(model: BandModel, density, temperature, *, bracket=(-5.0, 5.
 def _solve(model, flat_n, flat_t, lo, hi, *, resolution, iterations):
     n_of = _density_fn(model, resolution)
 
+    k1, w1 = _start_rule(model, resolution)
+    e1 = jax.lax.stop_gradient(jax.vmap(lambda q: energies_at(model, q, model.params))(k1))
+    below = (jnp.arange(e1.shape[1]) < neutral_filling(model)).astype(e1.dtype)[None, :]
+
+    def occupied(mu, kt):
+        return model.degeneracy * jnp.sum(w1[:, None] * (fermi(e1, mu, kt) - below)) * 1e10 ** model.dim
+
     def solve_one(params, n_target, t):
         kt = thermal_energy(t)
 
         def residual(mu):
             return n_of(params, mu, kt) - n_target
 
-        def solve(f, x0):
-            # safeguarded Newton: the bracket [a, b] shrinks with every evaluation; a Newton step
-            # (∂n/∂μ at the same mesh, by jvp: the density of states) is taken when it stays
-            # inside the bracket, a bisection otherwise (μ in a gap, far from the root)
+        def newton(f, x0, tol=MU_TOL):
+            # safeguarded Newton: the bracket [a, b] shrinks with every evaluation; a step is taken
+            # when it stays inside the bracket, a bisection otherwise (μ in a gap, far from the
+            # root).  The slope is ∂n/∂μ at the same mesh (by jvp: the density of states), or
+            # the secant through the last two evaluations where that lies within a factor 2 of
+            # it: a continuum mesh is placed for each μ, and its n(μ) can rise some per cent
+            # slower or faster than its density of states (Newton alone then converges only
+            # linearly; the secant does not stall on the convex tail of a band edge)
             def body(st):
-                a, b, x, i, _ = st
+                a, b, x, i, _, xp, fp = st
                 fx, gx = jax.jvp(f, (x,), (jnp.ones_like(x),))
                 a, b = jnp.where(fx > 0, a, x), jnp.where(fx > 0, x, b)
-                step = fx / jnp.where(gx > 0, gx, 1.0)
-                # converged: the Newton correction is below the tolerance (it may round to x
-                # itself, which sits on the bracket's edge)
-                conv = ((gx > 0) & (jnp.abs(step) < MU_TOL)) | (fx == 0)
+                sec = (fx - fp) / jnp.where(x != xp, x - xp, 1.0)
+                slope = jnp.where((i > 0) & (x != xp) & (sec > 0.5 * gx) & (sec < 2.0 * gx), sec, gx)
+                step = fx / jnp.where(slope > 0, slope, 1.0)
+                # converged: the correction is below the tolerance (it may round to x itself,
+                # which sits on the bracket's edge)
+                conv = ((slope > 0) & (jnp.abs(step) < tol)) | (fx == 0)
                 xn = x - step
-                xn = jnp.where((gx > 0) & (xn > a) & (xn < b), xn, 0.5 * (a + b))
-                xn = jnp.where(conv, x - jnp.where(gx > 0, step, 0.0), xn)
-                return a, b, xn, i + 1, conv | (b - a < MU_TOL)
+                xn = jnp.where((slope > 0) & (xn > a) & (xn < b), xn, 0.5 * (a + b))
+                xn = jnp.where(conv, x - jnp.where(slope > 0, step, 0.0), xn)
+                return a, b, xn, i + 1, conv | (b - a < tol), x, fx
 
             def more(st):
                 return (~st[4]) & (st[3] < iterations)
 
-            return jax.lax.while_loop(more, body, (lo, hi, x0, 0, False))[2]
+            return jax.lax.while_loop(more, body, (lo, hi, x0, 0, False, x0, jnp.zeros_like(x0)))[2]
+
+        def solve(f, x0):
+            # first phase on energies computed once (_start_rule): on a lattice the root itself,
+            # on a continuum model a root within about a meV of it (its fixed grid makes n(μ) a
+            # fine staircase at low T); the second phase polishes with the residual f itself from
+            # there, inside the full bracket (a few evaluations of f instead of 10–12)
+            return newton(f, newton(lambda mu: occupied(mu, kt) - n_target, x0, START_TOL))
 
         def tangent_solve(g, y):
             return y / g(1.0)
