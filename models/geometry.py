@@ -202,3 +202,23 @@ def band_geometry(model: BandModel, k, tol: float = DEGENERACY_TOL) -> BandGeome
 @partial(jax.jit, static_argnums=(2,))
 def _batched(model, k, tol):
     return jax.vmap(lambda q: geometry_at(model, q, None, tol))(k)
+
+
+def block_band_geometry(model: BandModel, k, tol: float = DEGENERACY_TOL) -> BandGeometry:
+    """:func:`band_geometry` block by block: every field has the shape ``(nk, S, m, ...)`` for the
+    S blocks of m bands of the Hamiltonian, energies ascending within each block (no merging or
+    sorting across blocks: a valley or spin sector stays identifiable).  One compiled program for
+    all blocks."""
+    k = jnp.asarray(k, dtype=jnp.float64)
+    if k.ndim != 2 or k.shape[1] != model.dim:
+        raise ValueError(f"block_band_geometry: k must have shape (nk, {model.dim}) in 1/Å, got {tuple(k.shape)}")
+    return BandGeometry(*_batched_blocks(model, k, tol))
+
+
+@partial(jax.jit, static_argnums=(2,))
+def _batched_blocks(model, k, tol):
+    def one(q):
+        fn = _blocks_dvector if model.dvector is not None else _blocks_eigh
+        w, *rest = fn(model, q, model.params, tol)
+        return (w, *(_group_mean(w, x, tol) for x in rest))
+    return jax.vmap(one)(k)

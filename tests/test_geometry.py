@@ -318,3 +318,23 @@ def test_reverse_mode_gradient_at_touching_matches_forward():
     for key in rev:
         assert np.isfinite(float(rev[key])), key
         assert float(rev[key]) == pytest.approx(float(fwd[key]), rel=1e-9, abs=1e-12), key
+
+
+def test_block_band_geometry_is_band_geometry_block_by_block():
+    """The per-block geometry (one program for all blocks, used for the report's sector panels)
+    holds the same bands as band_geometry, ascending within each block: merged and sorted, the
+    energies and curvatures agree."""
+    from crosswind.models.geometry import block_band_geometry
+    for name, kw in (("tmd", dict(material="MoS2", strain_xx=0.01)), ("massive-dirac", dict(valleys=2, tilt=3e4)),
+                     ("bilayer-graphene", {})):
+        m = build(name, **kw)
+        k = np.random.default_rng(3).normal(scale=0.05, size=(40, 2))
+        g, gb = band_geometry(m, k), block_band_geometry(m, k)
+        e = np.asarray(gb.energies)
+        assert e.shape == (40, m.blocks, m.block_size)
+        assert np.all(np.diff(e, axis=-1) >= 0)
+        flat_e, flat_om = e.reshape(40, -1), np.asarray(gb.berry_curvature).reshape(40, -1)
+        order = np.argsort(flat_e, axis=1, kind="stable")
+        np.testing.assert_allclose(np.take_along_axis(flat_e, order, 1), np.asarray(g.energies), rtol=0, atol=1e-12)
+        np.testing.assert_allclose(np.take_along_axis(flat_om, order, 1), np.asarray(g.berry_curvature),
+                                   rtol=1e-10, atol=1e-12 * np.abs(flat_om).max())

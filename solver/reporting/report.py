@@ -20,16 +20,16 @@ every number in it is computed from the dataset.
 """
 from __future__ import annotations
 
-import functools
 import json
 import textwrap
-from dataclasses import replace
 from pathlib import Path
 
+import jax
 import numpy as np
 
 from crosswind.models import band_geometry, catalogue
 from crosswind.models.domain import Lattice
+from crosswind.models.geometry import block_band_geometry
 from crosswind.models.units import E_CHARGE
 from crosswind.solver.engine.device import (
     HallBar,
@@ -318,36 +318,18 @@ def _band_path(model, mu):
     return _in_plane(model, np.concatenate(ks), centre), np.concatenate(x), xlabel, ticks, labels
 
 
-@functools.cache
-def _block_functions(hamiltonian, dvector, block: int):
-    """Hamiltonian (and d-vector) of one block alone, with a stable identity per (model function,
-    block) so that JAX compiles each once per process."""
-    def h(k, p):
-        return hamiltonian(k, p)[block:block + 1]
-    if dvector is None:
-        return h, None
-
-    def d(k, p):
-        d0, dv = dvector(k, p)
-        return d0[block:block + 1], dv[block:block + 1]
-    return h, d
-
-
 #: a continuum model with 2 … MAX_SECTOR_PANELS blocks gets one band panel per block
 MAX_SECTOR_PANELS = 4
 
 
-def _sectors(model) -> list:
-    """The models drawn in separate panels: each block of a k·p model with several blocks (valleys and
-    spins all measured from one k origin, so time-reversed partners fold onto each other), else the
-    model itself."""
+def _sector_geometry(model, k) -> list:
+    """Band geometry of each panel: each block of a k·p model with several blocks (valleys and
+    spins all measured from one k origin, so time-reversed partners fold onto each other; one
+    compiled program for all blocks), else the model itself."""
     if isinstance(model.domain, Lattice) or not 1 < model.blocks <= MAX_SECTOR_PANELS:
-        return [model]
-    out = []
-    for b in range(model.blocks):
-        h, d = _block_functions(model.hamiltonian, model.dvector, b)
-        out.append(replace(model, hamiltonian=h, dvector=d, blocks=1, jet=None))
-    return out
+        return [band_geometry(model, k)]
+    g = block_band_geometry(model, k)
+    return [jax.tree_util.tree_map(lambda x, b=b: x[:, b], g) for b in range(model.blocks)]
 
 
 def merge_coincident(energies, curvature, tol):
@@ -398,8 +380,7 @@ def plot_bands(model, mu, path: Path):
     from matplotlib.colors import SymLogNorm
     plt = pyplot()
     k, x, xlabel, ticks, labels = _band_path(model, mu)
-    sectors = _sectors(model)
-    geo = [band_geometry(m, k) for m in sectors]
+    geo = _sector_geometry(model, k)
     e_all = np.concatenate([np.asarray(g.energies) for g in geo], axis=1)
     lo, hi = mu - 0.5 * max(abs(mu), 0.2), mu + 0.5 * max(abs(mu), 0.2)
     filled = neutral_filling(model)
@@ -422,7 +403,7 @@ def plot_bands(model, mu, path: Path):
     win = None if model.domain.periodic else model_window(model)
     beyond = (np.linalg.norm(k - np.asarray(model.domain.centers[0], dtype=float)[None, :2], axis=1) > win.k_valid
               if win is not None else np.zeros(len(k), dtype=bool))
-    n = len(sectors)
+    n = len(geo)
     rows, cols = (2, 2) if n > 2 else (1, n)
     height = 1.7 + 3.2 * rows
     fig, axs = plt.subplots(rows, cols, figsize=(3.2 + 3.4 * cols, height), sharey=True, squeeze=False)
