@@ -6,9 +6,9 @@ fit) in a Hall bar of our own invention on a 285 nm SiO2 back gate.  Strain of 1
 crystal x axis lowers the C3 symmetry and gives a Berry-curvature dipole along x; the current runs
 along x, where the nonlinear Hall voltage is largest.  Scattering: impurities plus phonons
 (Matthiessen's rule), so the temperature sweep also changes τ and feeds the scaling plot.  The
-sweep (12 gate voltages × 3 temperatures) runs with automatic resolution (the shared-ray engine
-of docs/theory.md §14.3: one ray set per batch, converged to rtol 1e-3) and μ from the gate
-density on the fixed mesh level 1.
+sweep (12 gate voltages × 3 temperatures, one batch of 36 points) runs with automatic resolution
+(the shared-ray engine of docs/theory.md §14.3: one ray set for all conditions, converged to rtol
+1e-3) and μ from the gate density on mesh level 1.
 """
 from pathlib import Path
 

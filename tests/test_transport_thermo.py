@@ -251,6 +251,12 @@ def _dirac_density(mu, T, v=5e5, gap=0.1):
     return (carriers(mu) - carriers(-mu)) / (2 * np.pi * hv ** 2) * 1e20
 
 
+def test_mu_from_density_refuses_a_3d_continuum_model_naming_the_fix():
+    with pytest.raises(NotImplementedError, match=r"no density mesh for the 3D continuum model 'weyl-kp'; "
+                                                  r"give the chemical potential instead \(mu_eV\)"):
+        mu_from_density(build("weyl-kp"), 1e24, 10.0, resolution=1)
+
+
 def test_mu_from_density_massive_dirac_band_edges_and_gap():
     """μ(n, T) of a massive Dirac cone against a root of the energy-quadrature density (brentq):
     1, 10 and 150 K, densities from 10¹⁰ to 5·10¹² cm⁻² of both signs, so μ lies just above a band

@@ -1,12 +1,13 @@
 """Chemical potential from a carrier density, and gate voltage → density.
 
 ``mu_from_density`` solves n(μ, T) = n_target for μ inside ``jax.lax.custom_root``: the forward
-pass keeps a bracket and takes Newton steps with ∂n/∂μ (the density of states on the same mesh)
-when they stay inside it, bisection steps otherwise (robust when μ sits in a gap, where plain
-Newton diverges; typically 6–10 evaluations instead of 44 bisections), and
-the derivative comes from the implicit-function theorem, dμ/dθ = −(∂n/∂θ)/(∂n/∂μ), not from
-differentiating the iterations.  n(μ, T) is evaluated on one fixed k-mesh (``resolution``) for
-all bisection steps, so the root is that of a smooth function of μ.
+pass keeps a bracket and takes Newton–secant steps when they stay inside it, bisection steps
+otherwise (robust when μ sits in a gap, where plain Newton diverges), in two phases: first on
+band energies computed once on a μ-independent grid, then on n(μ) itself from there (3–6
+evaluations of n instead of 10–12; docs/theory.md §11).  The derivative comes from the
+implicit-function theorem, dμ/dθ = −(∂n/∂θ)/(∂n/∂μ), not from differentiating the iterations.
+n(μ, T) is evaluated at the mesh level ``resolution`` (a lattice's uniform grid; a continuum
+model's rays placed for each μ), and the root is that of this function.
 
 ``gate_density`` is the parallel-plate relation n = ε0 εr V_g/(e d) (no quantum capacitance;
 common practice), positive V_g adding electrons.
@@ -74,6 +75,9 @@ def _start_rule(model: BandModel, resolution: int):
     probe, k = 4s·u/(1 − u)), which only has to land close to the root."""
     if isinstance(model.domain, Lattice):
         return _mesh.lattice_rule(model, mesh_levels(model)[resolution])
+    if model.dim != 2:
+        raise NotImplementedError(f"mu_from_density: no density mesh for the 3D continuum model '{model.name}'; "
+                                  "give the chemical potential instead (mu_eV), or use a lattice model")
     p = jax.lax.stop_gradient(model.params)
     s = model.domain.scale_for(p)
     nth = mesh_levels(model)[resolution].n
