@@ -82,6 +82,25 @@ def test_new_conditions_reuse_the_compiled_ladder(haldane_ladder):
     assert np.all(np.isfinite(np.asarray(f2.dos)))
 
 
+def test_a_chunk_of_hot_conditions_skips_the_levels_it_does_not_need_exactly(haldane_ladder):
+    """Conditions are sorted hot to cold and processed in chunks; a chunk whose conditions are all
+    hotter than level l's parent skips level l (its sums are exactly zero there).  One condition
+    per chunk, given in the reverse order: the same sums as both in one chunk."""
+    model, plan, _, f, c = haldane_ladder
+    ktl = np.asarray(ld.ladder_temperatures(model, model.params, plan)[0])
+    assert plan.levels >= 3 and thermal_energy(300.0) >= ktl[2]        # 300 K skips level 3 and up
+    scat = as_scattering(TAU)
+    tau = jax.tree_util.tree_map(lambda a: jnp.broadcast_to(a, (2,))[:, None], scat.arrays())
+    temp = jnp.asarray(T[::-1])
+    f1, c1, _, _ = jax.jit(lambda m: ld.ladder_moments(m, m.params, plan, jnp.asarray(MU[::-1]), thermal_energy(temp),
+                                                       temp, type(scat).evaluate, tau, 0.0, 1, False,
+                                                       condition_chunk=1))(model)
+    for got, want in ((f1, f), (c1, c)):
+        for name in ("density", "dos", "drude", "dipole", "ahe", "bcp"):
+            a, b = np.asarray(getattr(got, name))[::-1], np.asarray(getattr(want, name))
+            np.testing.assert_allclose(a, b, rtol=1e-13, atol=1e-13 * np.abs(b).max(), err_msg=name)
+
+
 def test_response_engine_option_and_k_point_count():
     model = build("haldane")
     dirac = build("massive-dirac")

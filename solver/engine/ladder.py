@@ -478,8 +478,14 @@ def condition_sums(levels, info, plan: Plan, mu, kt, temp, tau_eval, tau_arr, om
             part = _level_sums(acc, lev["e_lo"], delta, mu, kstar[0], None, kstar[0], temp, tau_eval,
                                tau_arr, omega, layout, sea, rho, True, filled * vol)
         else:
-            part = _level_sums(acc, lev["e_lo"], delta, mu, kstar[lv], kstar[lv - 1], ktl[lv - 1], temp,
-                               tau_eval, tau_arr, omega, layout, sea, rho, False, 0.0)
+            def refined(acc=acc, lev=lev, delta=delta, lv=lv):
+                return _level_sums(acc, lev["e_lo"], delta, mu, kstar[lv], kstar[lv - 1], ktl[lv - 1], temp,
+                                   tau_eval, tau_arr, omega, layout, sea, rho, False, 0.0)
+            # a condition with k_BT ≥ k_BT_{l−1} has φ(T*_l) = φ(T*_{l−1}): its level-l sum is
+            # exactly zero.  A block of conditions that all are (ladder_moments sorts them by
+            # temperature) skips the level's knot sums
+            shapes = jax.eval_shape(refined)
+            part = jax.lax.cond(jnp.any(kt < ktl[lv - 1]), refined, lambda s=shapes: _zeros_of(s))
         total = part if total is None else _tree_add(total, part)
         partial.append(total)
     # below the deepest level: X(T) = X0 + a T² from the partial sums at T_L and T_{L-1}
@@ -503,6 +509,11 @@ def condition_sums(levels, info, plan: Plan, mu, kt, temp, tau_eval, tau_arr, om
     return result, err
 
 
+def _zeros_of(shapes):
+    """Zeros of the shapes and dtypes of a pytree of ``jax.ShapeDtypeStruct``."""
+    return jax.tree_util.tree_map(lambda x: jnp.zeros(x.shape, x.dtype), shapes)
+
+
 def _b(v, like):
     """Broadcast a (P,) array against ``like`` (P, ...)."""
     return v.reshape(v.shape + (1,) * (like.ndim - 1))
@@ -519,6 +530,11 @@ def ladder_moments(model, params, plan: Plan, mu, kt, temp, tau_eval, tau_arr, o
     nch = _chunks(P, cc)
     pad = nch * cc - P
     padv = lambda x: jnp.concatenate([x, jnp.broadcast_to(x[-1:], (pad,) + x.shape[1:])]) if pad else x
+    # conditions sorted hot to cold, so that a chunk's conditions need the same ladder levels
+    # (condition_sums skips a level none of them needs); the results are put back in order below
+    order = jnp.argsort(-jax.lax.stop_gradient(kt))
+    take = lambda x: jnp.take(x, order, axis=0)
+    mu, kt, temp, tau_arr = take(mu), take(kt), take(temp), jax.tree_util.tree_map(take, tau_arr)
     args = (padv(mu), padv(kt), padv(temp), jax.tree_util.tree_map(padv, tau_arr))
 
     def one(a):
@@ -530,7 +546,8 @@ def ladder_moments(model, params, plan: Plan, mu, kt, temp, tau_eval, tau_arr, o
 
     split = lambda x: x.reshape((nch, cc) + x.shape[1:])
     out = jax.lax.map(one, jax.tree_util.tree_map(split, args))
-    out = jax.tree_util.tree_map(lambda x: x.reshape((nch * cc,) + x.shape[2:])[:P], out)
+    back = jnp.argsort(order)
+    out = jax.tree_util.tree_map(lambda x: jnp.take(x.reshape((nch * cc,) + x.shape[2:])[:P], back, axis=0), out)
     return out[0], out[1], out[2], info
 
 
