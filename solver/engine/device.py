@@ -159,8 +159,18 @@ def film_sheet(sigma, chi, chi_dc, thickness_nm):
     [A/V² → A·m/V²].  An approximation: no confinement subbands, no surface (Fermi-arc) states, no
     surface scattering (docs/theory.md §16.5)."""
     d = thickness_nm * 1e-9
-    return (jnp.asarray(sigma)[..., :2, :2] * d, jnp.asarray(chi)[..., :2, :2, :2] * d,
-            jnp.asarray(chi_dc)[..., :2, :2, :2] * d)
+    return (sheet_rank2(jnp.asarray(sigma), d), sheet_rank3(jnp.asarray(chi), d),
+            sheet_rank3(jnp.asarray(chi_dc), d))
+
+
+def sheet_rank2(x, thickness_m):
+    """In-plane block of a bulk rank-2 tensor (..., 3, 3) times the thickness (numpy or JAX)."""
+    return x[..., :2, :2] * thickness_m
+
+
+def sheet_rank3(x, thickness_m):
+    """In-plane block of a bulk rank-3 tensor (..., 3, 3, 3) times the thickness (numpy or JAX)."""
+    return x[..., :2, :2, :2] * thickness_m
 
 
 def hall_bar(sigma, chi, chi_dc, bar: HallBar, angle_deg=0.0) -> HallBarReading:

@@ -340,16 +340,24 @@ def _layout(sea):
     return layout, nc
 
 
-def build_tables(model, params, plan: RayPlan, grid: RayGrid, filled, sea, chunk=2048):
-    """Knot tables (R, M, nc), below (R, nc), above (R, nc) and the overflow flag."""
-    layout, nc = _layout(sea)
-    k, w, over = ray_nodes(model, params, plan, grid)
+def pad_to_chunks(k, w, chunk):
+    """Nodes ``k`` (n, d) and weights ``w`` (n,) padded to whole chunks of at most ``chunk``:
+    ``(k, w, c, number of chunks)``.  The padding repeats the first node with weight 0."""
     n = k.shape[0]
     c = min(chunk, n)
     nch = -(-n // c)
     pad = nch * c - n
-    kp = jnp.concatenate([k, jnp.broadcast_to(k[:1], (pad, 2))]) if pad else k
-    wp = jnp.concatenate([w, jnp.zeros((pad,))]) if pad else w
+    if pad:
+        k = jnp.concatenate([k, jnp.broadcast_to(k[:1], (pad, k.shape[1]))])
+        w = jnp.concatenate([w, jnp.zeros((pad,))])
+    return k, w, c, nch
+
+
+def build_tables(model, params, plan: RayPlan, grid: RayGrid, filled, sea, chunk=2048):
+    """Knot tables (R, M, nc), below (R, nc), above (R, nc) and the overflow flag."""
+    layout, nc = _layout(sea)
+    k, w, over = ray_nodes(model, params, plan, grid)
+    kp, wp, c, nch = pad_to_chunks(k, w, chunk)
     e_lo = jax.lax.stop_gradient(grid.e_lo)
     deltas = jax.lax.stop_gradient(grid.delta) * 2.0 ** jnp.arange(plan.tables, dtype=jnp.float64)
     nb = model.n_bands

@@ -248,12 +248,7 @@ def build_tables(model, params, plan: ShellPlan, grid, filled, chunk=2048):
     """Knot tables (R, M, nc), below (R, nc), above (R, nc), the overflow flag and the layout."""
     layout, nc = _layout(False)
     k, w, over = shell_nodes(model, params, plan, grid)
-    n = k.shape[0]
-    c = min(chunk, n)
-    nch = -(-n // c)
-    pad = nch * c - n
-    k = jnp.concatenate([k, jnp.broadcast_to(k[:1], (pad, 3))])
-    w = jnp.concatenate([w, jnp.zeros((pad,))])
+    k, w, c, nch = _rays.pad_to_chunks(k, w, chunk)
     ep = plan.energy
     e_lo = jax.lax.stop_gradient(grid.e_lo)
     deltas = jax.lax.stop_gradient(grid.delta) * 2.0 ** jnp.arange(ep.tables, dtype=jnp.float64)

@@ -50,6 +50,7 @@ from pathlib import Path
 
 import numpy as np
 
+from crosswind.solver.engine.device import sheet_rank2, sheet_rank3
 from crosswind.solver.pytrees import as_dict
 from crosswind.solver.study import cluster
 from crosswind.solver.study.chain import evaluate
@@ -316,9 +317,9 @@ def film_sheet_fields(out: dict, thickness_m: float) -> dict:
         if base == "dipole":
             return v[..., :2, 2] * thickness_m
         if base.startswith("chi"):
-            return v[..., :2, :2, :2] * thickness_m
+            return sheet_rank3(v, thickness_m)
         if base.startswith("sigma"):
-            return v[..., :2, :2] * thickness_m
+            return sheet_rank2(v, thickness_m)
         raise RuntimeError(f"film_sheet_fields: no sheet rule for {key!r}")   # a new field: add its rule
     return {k: sheet(k, v) for k, v in out.items()}
 
