@@ -83,9 +83,8 @@ def _start_rule(model: BandModel, resolution: int):
     nth = mesh_levels(model)[resolution].n
     theta = (jnp.arange(nth, dtype=jnp.float64) + 0.5) * (2 * jnp.pi / nth)
     dirs = jnp.stack([jnp.cos(theta), jnp.sin(theta)], axis=-1)
-    u = (jnp.arange(_mesh.PROBE, dtype=jnp.float64) + 0.5) / _mesh.PROBE
-    kr = 4.0 * s * u / (1.0 - u)
-    wr = 4.0 * s / (1.0 - u) ** 2 / _mesh.PROBE * kr * (2 * jnp.pi / nth) / (2 * jnp.pi) ** 2
+    kr, dk = _mesh.probe_midpoints(s)
+    wr = dk * kr * (2 * jnp.pi / nth) / (2 * jnp.pi) ** 2
     centers = jnp.asarray(np.asarray(model.domain.centers, dtype=float))
     pts = centers[:, None, None, :] + kr[None, None, :, None] * dirs[None, :, None, :]
     w = jnp.broadcast_to(wr, pts.shape[:-1])

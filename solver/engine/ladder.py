@@ -484,8 +484,9 @@ def condition_sums(levels, info, plan: Plan, mu, kt, temp, tau_eval, tau_arr, om
             # a condition with k_BT ≥ k_BT_{l−1} has φ(T*_l) = φ(T*_{l−1}): its level-l sum is
             # exactly zero.  A block of conditions that all are (ladder_moments sorts them by
             # temperature) skips the level's knot sums
-            shapes = jax.eval_shape(refined)
-            part = jax.lax.cond(jnp.any(kt < ktl[lv - 1]), refined, lambda s=shapes: _zeros_of(s))
+            # (the zero branch takes its structure from the running total: no second trace)
+            part = jax.lax.cond(jnp.any(kt < ktl[lv - 1]), refined,
+                                lambda t=total: jax.tree_util.tree_map(jnp.zeros_like, t))
         total = part if total is None else _tree_add(total, part)
         partial.append(total)
     # below the deepest level: X(T) = X0 + a T² from the partial sums at T_L and T_{L-1}
@@ -507,11 +508,6 @@ def condition_sums(levels, info, plan: Plan, mu, kt, temp, tau_eval, tau_arr, om
         result = total
         err = jax.tree_util.tree_map(lambda x: jnp.where(_b(below, x), jnp.inf, 0.0), total)
     return result, err
-
-
-def _zeros_of(shapes):
-    """Zeros of the shapes and dtypes of a pytree of ``jax.ShapeDtypeStruct``."""
-    return jax.tree_util.tree_map(lambda x: jnp.zeros(x.shape, x.dtype), shapes)
 
 
 def _b(v, like):

@@ -192,6 +192,20 @@ MAX_CROSSINGS = 2
 HOTSPOTS = (0.5, 2.0, 8.0)
 
 
+def probe_midpoints(s, count: int = PROBE):
+    """Midpoints u_i = (i + ½)/count of [0, 1) mapped onto a ray by the compactification
+    k = 4s·u/(1 − u) (s: the model's momentum scale, Å⁻¹).  Returns the radii and the midpoint
+    weights dk/du / count = 4s/(1 − u)² / count."""
+    u = (jnp.arange(count, dtype=jnp.float64) + 0.5) / count
+    return 4.0 * s * u / (1.0 - u), 4.0 * s / (1.0 - u) ** 2 / count
+
+
+def probe_radii(s):
+    """Probe radii of a ray used to bracket band crossings: k = 0, then :func:`probe_midpoints`
+    (PROBE + 1 radii, ascending)."""
+    return jnp.concatenate([jnp.zeros(1), probe_midpoints(s)[0]])
+
+
 def energies_at(model: BandModel, k, params):
     """All band energies at one k (ascending), cheap path (no derivatives)."""
     if model.dvector is not None:
@@ -221,8 +235,7 @@ def ray_rule(model: BandModel, res: Resolution, mu, kt, params=None, with_window
     dirs = jnp.stack([jnp.cos(theta), jnp.sin(theta)], axis=-1)          # (nth, 2)
     centers = jnp.asarray(np.asarray(dom.centers, dtype=float))           # (C, 2)
     # probe grid along a ray (compactified)
-    u = (jnp.arange(1, PROBE + 1, dtype=jnp.float64) - 0.5) / PROBE
-    kr = jnp.concatenate([jnp.zeros(1), s * 4.0 * u / (1.0 - u)])        # (PROBE+1,)
+    kr = probe_radii(s)                                                   # (PROBE+1,)
 
     def per_ray(c, dvec):
         pts = c[None, :] + kr[:, None] * dvec[None, :]

@@ -56,11 +56,10 @@ from crosswind.solver.engine.ladder import (
     factor_layout,
     point_factors,
 )
-from crosswind.solver.engine.mesh import energies_at
+from crosswind.solver.engine.mesh import PROBE, energies_at, probe_radii
 from crosswind.solver.pytrees import pytree_dataclass
 
 W = 20.0                     # window half-width in k_BT (neglected weight ~ e^-20)
-PROBE = 160                  # probe points per ray for bracketing crossings
 BISECT = 30                  # bisection steps per crossing (2^-30 of a probe interval)
 GEOMETRIC = tuple(2.0 ** (m / 2.0) for m in range(-8, 9))     # fixed breakpoints in units of s
 PAD_ENERGY = 1e9             # padding breakpoints (eV): never crossed
@@ -194,11 +193,6 @@ def _directions(n):
     return jnp.stack([jnp.cos(theta), jnp.sin(theta)], axis=-1)
 
 
-def _probe_radii(s):
-    u = (jnp.arange(1, PROBE + 1, dtype=jnp.float64) - 0.5) / PROBE
-    return jnp.concatenate([jnp.zeros(1), s * 4.0 * u / (1.0 - u)])
-
-
 def _ray_candidates(model, params, c, dvec, kr, levels):
     """Approximate crossings of every (band, breakpoint) on one ray: first and last crossing
     interval of the probe grid.  Returns positions (2·nb·J,) (−1: none), band, interval, level."""
@@ -233,7 +227,7 @@ def _crossing_counts(model, params, grid, *, angles):
     p = jax.lax.stop_gradient(params)
     dom = model.domain
     s = dom.scale_for(p)
-    kr = _probe_radii(s)
+    kr = probe_radii(s)
     centers = jnp.asarray(np.asarray(dom.centers, dtype=float))
     dirs = _directions(angles)
 
@@ -276,7 +270,7 @@ def ray_nodes(model: BandModel, params, plan: RayPlan, grid: RayGrid):
     dom = model.domain
     p = jax.lax.stop_gradient(params)
     s = dom.scale_for(p)
-    kr = _probe_radii(s)
+    kr = probe_radii(s)
     levels = jax.lax.stop_gradient(grid.breakpoints)
     centers = jnp.asarray(np.asarray(dom.centers, dtype=float))
     dirs = _directions(plan.angles)

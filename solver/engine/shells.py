@@ -46,6 +46,7 @@ import numpy as np
 from crosswind.models.band_model import BandModel
 from crosswind.models.domain import Lattice
 from crosswind.models.units import KB_EVK as KB
+from crosswind.solver.engine import mesh as _mesh
 from crosswind.solver.engine import rays as _rays
 from crosswind.solver.engine.ladder import factor_layout, point_factors
 
@@ -178,7 +179,7 @@ def _rays_of(model, params, n_cos, n_phi):
 def _probe(s, R):
     """Probe radii on [0, R]: the compactified grid of the 2D rule, clipped at R (clipped points
     repeat, and an interval of zero length holds no crossing)."""
-    return jnp.minimum(_rays._probe_radii(s), R)
+    return jnp.minimum(_mesh.probe_radii(s), R)
 
 
 @partial(jax.jit, static_argnames=("n_cos", "n_phi"))
