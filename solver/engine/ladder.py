@@ -40,6 +40,7 @@ from __future__ import annotations
 
 import dataclasses
 from dataclasses import dataclass
+from functools import partial
 
 import jax
 import jax.numpy as jnp
@@ -206,8 +207,11 @@ def _grid(n, dim):
     return np.stack(np.meshgrid(*([ax] * dim), indexing="ij"), -1).reshape(-1, dim)
 
 
+@jax.jit
 def probe_speed(model, params):
-    """Largest |∇ε| (eV Å) over all bands on a PROBE^d grid (sets the temperature ladder)."""
+    """Largest |∇ε| (eV Å) over all bands on a PROBE^d grid (sets the temperature ladder).
+    Compiled: planning calls it outside any trace, where op-by-op dispatch of the mapped band
+    geometry cost about 0.17 s per call."""
     red = jnp.asarray(_grid(PROBE, model.dim))
     b = model.reciprocal_vectors(params)
     _, gn = jax.vmap(lambda q: _energy_and_speed(model, params, q))(red @ b)
@@ -313,9 +317,11 @@ def build_tables(model, params, plan: Plan, mu, kt, sea, chunk=4096):
         flag = score < 0
         B = plan.budgets[lev - 1]
         Bc = min(B, score.shape[0])
-        neg, chosen = jax.lax.top_k(-score, Bc)
-        chosen_ok = jnp.isfinite(neg) & (neg > 0)
+        # the flagged cells in index order (a linear-time compaction; a full sort for top_k cost
+        # ~60 ms per level).  Beyond the budget the choice is immaterial: overflow is reported
         nflag = jnp.sum(flag)
+        chosen = jnp.nonzero(flag, size=Bc, fill_value=0)[0]
+        chosen_ok = jnp.arange(Bc) < nflag
         flagged_all.append(nflag)
         overflow_all.append(nflag > Bc)
         parents = red_prev[chosen]                                   # (Bc, d)
@@ -654,30 +660,37 @@ def _level_counts(model, params, n0, mu, kt, ktl):
     """Expected number of flagged level-(l−1) cells for l = 1..L, from the level-0 grid: the
     fraction of each level-0 cell's energy range [ε − |∇ε|h, ε + |∇ε|h] inside the window of
     level l, times the 2^{d(l−1)} cells of level l−1 in it."""
-    dim = model.dim
+    ktl = np.asarray(ktl, dtype=float)
+    fracs, anyrel = _level_fractions(model, params, jnp.asarray(mu), jnp.asarray(kt),
+                                     jnp.asarray(ktl[:-1]), n0=n0)
+    fracs, anyrel = np.asarray(fracs), np.asarray(anyrel)
+    return [float(f) * 2 ** (model.dim * lev) if a else 0
+            for lev, (f, a) in enumerate(zip(fracs, anyrel))]
+
+
+@partial(jax.jit, static_argnames=("n0",))
+def _level_fractions(model, params, mu, kt, kt_parent, *, n0):
+    """Σ over level-0 cells of the window fraction for each refined level (parent temperatures
+    ``kt_parent`` (L,)), and whether any condition needs the level: one compiled program (the
+    per-level numpy loop cost about 0.5 s per call on a 720² grid)."""
     b = model.reciprocal_vectors(params)
-    hd0 = 0.5 * float(jnp.sqrt(jnp.sum(b * b))) / n0
-    red = jnp.asarray(_grid(n0, dim))
-    e, gn = _speeds_jit(model, params, red @ b)
-    e, gn = np.asarray(e), np.asarray(gn)
-    out = []
-    for lev in range(1, len(ktl)):
-        rel = np.sort(mu[kt < ktl[lev - 1]])
-        if rel.size == 0:
-            out.append(0)
-            continue
-        j = np.clip(np.searchsorted(rel, e), 1, max(rel.size - 1, 1))
-        d = np.abs(e - rel[np.minimum(j, rel.size - 1)])
-        if rel.size > 1:
-            d = np.minimum(d, np.abs(e - rel[j - 1]))
-        R = W * ktl[lev - 1] + SLACK * gn * hd0 / 2 ** (lev - 1)
-        s = np.maximum(gn * hd0, 1e-12)
-        overlap = np.clip(np.minimum(d + s, R) - np.maximum(d - s, -R), 0.0, 2 * s)
-        frac = np.max(overlap / (2 * s), axis=-1)
-        out.append(float(np.sum(frac)) * 2 ** (dim * (lev - 1)))
-    return out
+    hd0 = 0.5 * jnp.sqrt(jnp.sum(b * b)) / n0
+    red = jnp.asarray(_grid(n0, model.dim))
+    e, gn = jax.vmap(lambda q: _energy_and_speed(model, params, q))(red @ b)      # (N, nb)
+    s = jnp.maximum(gn * hd0, 1e-12)
 
+    def one(args):
+        ktp, scale = args
+        relevant = kt < ktp
+        rel = jnp.sort(jnp.where(relevant, mu, jnp.inf))
+        if rel.shape[0] == 1:
+            d = jnp.abs(e - rel[0])
+        else:
+            j = jnp.clip(jnp.searchsorted(rel, e), 1, rel.shape[0] - 1)
+            d = jnp.minimum(jnp.abs(e - rel[j]), jnp.abs(e - rel[j - 1]))
+        R = W * ktp + SLACK * gn * hd0 / scale
+        overlap = jnp.clip(jnp.minimum(d + s, R) - jnp.maximum(d - s, -R), 0.0, 2 * s)
+        return jnp.sum(jnp.max(overlap / (2 * s), axis=-1)), jnp.any(relevant)
 
-@jax.jit
-def _speeds_jit(model, params, k):
-    return jax.vmap(lambda q: _energy_and_speed(model, params, q))(k)
+    scales = 2.0 ** jnp.arange(kt_parent.shape[0], dtype=jnp.float64)
+    return jax.lax.map(one, (kt_parent, scales))
