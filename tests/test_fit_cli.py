@@ -38,7 +38,7 @@ def invented(tmp_path, scn, noise=0.02, seed=1):
     vals = base_values(scn)
     vals["tilt"] = TRUE_TILT
     vals["mu_eV"] = np.asarray(MUS)
-    v = np.asarray(evaluate(scn, vals, resolution=1)["V2w"])
+    v = np.asarray(evaluate(scn, vals, resolution=1).output("V2w"))
     err = noise * v
     y = v + err * np.random.default_rng(seed).standard_normal(v.shape)
     p = tmp_path / "data.csv"
@@ -59,6 +59,12 @@ def test_fit_recovers_truth_and_writes_outputs_that_rerun(tmp_path, capsys):
     res = json.loads((out / "fit.json").read_text(encoding="utf-8"))
     assert res["converged"]
     assert abs(res["values"]["tilt"] - TRUE_TILT) < 2 * res["stderr"]["tilt"]
+    # the model column (rebuilt from the residuals at the optimum) is the chain at the fitted value
+    vals = base_values(scn)
+    vals["tilt"] = res["values"]["tilt"]
+    vals["mu_eV"] = np.asarray(MUS)
+    direct = np.asarray(evaluate(scn, vals, resolution=1).output("V2w"))
+    np.testing.assert_allclose(res["data"]["model"], direct, rtol=1e-9)
     assert 0 < res["stderr"]["tilt"] < 0.2 * TRUE_TILT
     summ = (out / "fit_summary.md").read_text(encoding="utf-8")
     assert "χ²_red" in summ and "`tilt`" in summ and "converged" in summ
@@ -148,3 +154,22 @@ def test_demo_with_fit(tmp_path):
     assert (tmp_path / "demo" / "fit" / "fit_summary.md").exists()
     head = (tmp_path / "demo" / "fit" / "invented_measurements.csv").read_text(encoding="utf-8")
     assert head.startswith("# INVENTED MEASUREMENTS")
+
+
+def test_best_fit_curve_reuses_the_data_length_and_residual_units():
+    """The best-fit curve is evaluated in blocks of the data's length (so the programs compiled for
+    the data serve it) and equals the model on the whole abscissa; a residual unit is the standard
+    error when given, else the largest |y|."""
+    from crosswind.solver.fitting.scenario_fit import _best_curve, _residual_unit
+    seen = []
+
+    def predict(p, x):
+        seen.append(len(x))
+        return p["a"] * np.asarray(x) ** 2
+    x = np.array([1.0, 2.0, 4.0])
+    xs, curve = _best_curve(predict, {"a": 3.0}, x)
+    assert set(seen) == {3} and len(xs) >= 25 and len(xs) % 3 == 0
+    assert xs[0] == 1.0 and xs[-1] == 4.0
+    np.testing.assert_allclose(curve, 3.0 * xs ** 2, rtol=1e-15)
+    np.testing.assert_array_equal(_residual_unit(np.array([1.0, -5.0]), np.array([0.1, 0.2])), [0.1, 0.2])
+    assert _residual_unit(np.array([1.0, -5.0]), None) == 5.0

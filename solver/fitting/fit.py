@@ -59,6 +59,7 @@ RELATIVE_STDERR_LIMIT = 1.0     # a standard error above 100 % of the value: the
 SENSITIVITY_FLOOR = 1e-6        # |∂r/∂p|·scale below this fraction of |r|: the data do not see p
 CHI2_P_LIMIT = 1e-3             # two-sided χ² probability below this (known errors): model or errors wrong
 AT_BOUND_TOLERANCE = 1e-6       # within this fraction of the scale from a bound: "at the bound"
+TANGENT_BLOCK = 4               # forward-mode Jacobian: free parameters whose tangents run in one program
 
 
 @dataclass(frozen=True)
@@ -202,9 +203,11 @@ def fit(residual_fn: Callable[[dict], object], initial: Mapping[str, float], *, 
     it, so pass model − data; otherwise return (model − data)/σ yourself.
     ``bounds``: {name: (low, high)} (None for an open end); ``fixed``: names held at their initial
     value.  ``starts``: number of starting points (the first is ``initial``), drawn with ``seed``.
-    ``jacobian``: ``"forward"`` (one ``jax.jvp`` per free parameter; one compiled program serves any
-    choice of free parameters), ``"jacfwd"`` (batched ``jax.jacfwd``) or ``"2-point"``/``"3-point"``
-    (finite differences, for residual functions JAX cannot trace).  ``tolerance`` is used for the
+    ``jacobian``: ``"forward"`` (``jax.jvp`` with the tangents of up to ``TANGENT_BLOCK`` free
+    parameters mapped in one program, which evaluates the residual once for all of them; the program
+    depends on min(number of free parameters, ``TANGENT_BLOCK``), not on which ones are free),
+    ``"jacfwd"`` (batched ``jax.jacfwd``) or ``"2-point"``/``"3-point"`` (finite differences, for
+    residual functions JAX cannot trace).  ``tolerance`` is used for the
     cost, step and gradient tests of ``least_squares``; ``max_evaluations`` caps residual
     evaluations per start (default 100 × (number of free parameters + 1)).  ``jit=True`` compiles
     the residual and its JVP once (worth it for cheap residuals evaluated many times; a residual
@@ -282,8 +285,12 @@ def _prepare(residual_fn, init, free, lo, hi, *, sigma, jacobian, tolerance, max
         return r
 
     residual_eval = jax.jit(residual_of) if jit else residual_of
-    tangent_of = lambda p, t: jax.jvp(residual_of, (p,), (t,))[1]
-    tangent_eval = jax.jit(tangent_of) if jit else tangent_of
+    # forward-mode Jacobian columns in blocks of up to TANGENT_BLOCK tangents mapped together: one
+    # program evaluates the residual once and carries the block's tangents alongside (for two free
+    # parameters about 0.65× the time of two separate jvp calls)
+    block = min(n, TANGENT_BLOCK)
+    tangents_of = lambda p, ts: jax.vmap(lambda t: jax.jvp(residual_of, (p,), (t,))[1])(ts)
+    tangents_eval = jax.jit(tangents_of) if jit else tangents_of
 
     per_iteration = "callback" in inspect.signature(least_squares).parameters
 
@@ -313,10 +320,14 @@ def _prepare(residual_fn, init, free, lo, hi, *, sigma, jacobian, tolerance, max
             p = full(to_p(z), base)
             if jacobian == "forward":
                 cols = []
-                for i, k in enumerate(free):
-                    t = {kk: jnp.zeros((), jnp.float64) for kk in init}
-                    t[k] = jnp.ones((), jnp.float64)
-                    cols.append(np.asarray(tangent_eval(p, t)) * s_vec[i])
+                for b0 in range(0, n, block):
+                    # unit tangents of free parameters b0 .. b0+block−1 (zero rows pad the last block,
+                    # so every block has the same shape: one compiled program)
+                    ts = {kk: np.zeros(block) for kk in init}
+                    for j, k in enumerate(free[b0:b0 + block]):
+                        ts[k][j] = 1.0
+                    out = np.asarray(tangents_eval(p, {kk: jnp.asarray(v) for kk, v in ts.items()}))
+                    cols += [out[j] * s_vec[b0 + j] for j in range(min(block, n - b0))]
                 J = np.stack(cols, axis=1)
             else:
                 pf = [p[k] for k in free]

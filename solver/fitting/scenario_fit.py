@@ -168,9 +168,25 @@ def _problem(scn, x, y, err):
     predict, _ = predictor(scn)
     initial = {n: i for n, i, _, _ in spec.parameters}
     bounds = {n: (lo, hi) for n, _, lo, hi in spec.parameters}
-    yscale = float(np.max(np.abs(y))) or 1.0
-    resid = lambda p: (predict(p, x) - jnp.asarray(y)) / (1.0 if err is not None else yscale)
+    unit = _residual_unit(y, err)
+    resid = lambda p: (predict(p, x) - jnp.asarray(y)) / (1.0 if err is not None else unit)
     return predict, resid, initial, bounds, {"sigma": err, "jit": True}
+
+
+def _residual_unit(y, err):
+    """What one unit of a fit residual is in the data's unit: the standard errors when given
+    (the residual is divided by them), else the largest |y|."""
+    return np.asarray(err, dtype=float) if err is not None else float(np.max(np.abs(y))) or 1.0
+
+
+def _best_curve(predict, best, x, points=25):
+    """The model at the best fit on at least ``points`` abscissae over the data's range, evaluated in
+    blocks of the data's length: the programs compiled for the data serve every block (another
+    length would trace and compile the whole chain again)."""
+    m = len(x)
+    blocks = -(-points // m)
+    xs = np.linspace(float(np.min(x)), float(np.max(x)), blocks * m)
+    return xs, np.concatenate([np.asarray(predict(best, xs[i * m:(i + 1) * m])) for i in range(blocks)])
 
 
 _RUNNERS: dict = {}
@@ -226,9 +242,11 @@ def run_fit(scn, data_path, folder, *, starts=None, progress=None, client=None) 
     res = fit(resid, initial, bounds=bounds, starts=n_starts, absolute_sigma=err is not None, progress=progress,
               run_starts=on_cluster, **options)
     best = {k: jnp.asarray(v) for k, v in res.values.items()}
-    xs = np.linspace(float(np.min(x)), float(np.max(x)), 25)
-    curve = np.asarray(predict(best, xs))
-    model_at = np.asarray(predict(best, x))
+    xs, curve = _best_curve(predict, best, x)
+    # the model at the data from the residuals at the optimum (r = (model − y)/unit): no new evaluation
+    # (a fit whose every start failed has no residuals: evaluate there)
+    model_at = (np.asarray(predict(best, x)) if res.residuals is None
+                else np.asarray(y) + np.asarray(res.residuals) * _residual_unit(y, err))
     units = scenario_knobs(scn)
     make_folder(folder)
     out = FitReport(
