@@ -162,11 +162,11 @@ def geometry_at(model: BandModel, k, params=None, tol: float = DEGENERACY_TOL):
         _group_mean(w, x, tol) for x in (grad, hess, omega, mom, metric, bcp))
     nb = model.n_bands
     flat = lambda x: x.reshape((nb,) + x.shape[2:])
-    single = model.dvector is not None and w.shape[0] == 1
+    single = w.shape[0] == 1
     w, grad, hess, omega, mom, metric, bcp = map(flat, (w, grad, hess, omega, mom, metric, bcp))
     if single:
-        # one two-band block: (d0 − |d|, d0 + |d|) is already ascending and a tie keeps this
-        # order in argsort too, so the sort and its seven gathers are skipped (same arrays)
+        # one block is already ascending ((d0 − |d|, d0 + |d|), or eigh's order) and a tie keeps
+        # that order in the stable argsort too: the sort and its seven gathers are skipped
         return w, grad, hess, omega, mom, metric, bcp
     order = jnp.argsort(w)
     return tuple(x[order] for x in (w, grad, hess, omega, mom, metric, bcp))
