@@ -35,6 +35,7 @@ import jax.numpy as jnp
 from .band_model import BandModel
 from .eigh import DEGENERACY_TOL, safe_eigh, safe_inverse_gaps
 from .pytrees import pytree_dataclass
+from .twoband import dvector_jet
 from .units import ANGSTROM, GRAD_TO_VELOCITY, HBAR2_OVER_ME_EVA2, HBAR_EVS
 
 # (e/ħ)·[eV Å²] expressed in eV/T: X[eV Å²]·1e-20 / ħ[eV s]
@@ -120,9 +121,12 @@ def _blocks_dvector(model: BandModel, k, params, tol):
     """Per-block geometry at one k from the closed two-band forms."""
     dim = model.dim
     f = model.dvector
-    d0, dv = f(k, params)                                            # (S,), (S, 3)
-    jd0, jdv = jax.jacfwd(f, argnums=0)(k, params)                   # (S, d), (S, 3, d)
-    hd0, hdv = jax.jacfwd(jax.jacfwd(f, argnums=0), argnums=0)(k, params)
+    if model.jet is not None:                                        # explicit Bloch sums
+        (d0, dv), (jd0, jdv), (hd0, hdv) = dvector_jet(*model.jet(k, params))
+    else:
+        d0, dv = f(k, params)                                        # (S,), (S, 3)
+        jd0, jdv = jax.jacfwd(f, argnums=0)(k, params)               # (S, d), (S, 3, d)
+        hd0, hdv = jax.jacfwd(jax.jacfwd(f, argnums=0), argnums=0)(k, params)
     e, ok = _safe_norm(dv, tol)                                      # (S,)
     inv_e = jnp.where(ok, 1.0 / jnp.where(ok, e, 1.0), 0.0)
     nhat = dv * inv_e[:, None]
@@ -157,9 +161,12 @@ def geometry_at(model: BandModel, k, params=None, tol: float = DEGENERACY_TOL):
     p = model.params if params is None else params
     fn = _blocks_dvector if model.dvector is not None else _blocks_eigh
     w, grad, hess, omega, mom, metric, bcp = fn(model, k, p, tol)
-    # group averages inside each block
-    grad, hess, omega, mom, metric, bcp = (
-        _group_mean(w, x, tol) for x in (grad, hess, omega, mom, metric, bcp))
+    if model.dvector is None:
+        # group averages inside each block.  Closed two-band forms need none: the two bands of a
+        # block are within tol only where |d| <= tol, and there every quantity is already equal
+        # for both (d̂ and 1/|d| are masked to zero), so the average would return its input
+        grad, hess, omega, mom, metric, bcp = (
+            _group_mean(w, x, tol) for x in (grad, hess, omega, mom, metric, bcp))
     nb = model.n_bands
     flat = lambda x: x.reshape((nb,) + x.shape[2:])
     single = w.shape[0] == 1
@@ -225,5 +232,7 @@ def _batched_blocks(model, k, tol):
     def one(q):
         fn = _blocks_dvector if model.dvector is not None else _blocks_eigh
         w, *rest = fn(model, q, model.params, tol)
+        if model.dvector is not None:            # closed two-band forms: see geometry_at
+            return (w, *rest)
         return (w, *(_group_mean(w, x, tol) for x in rest))
     return jax.vmap(one)(k)

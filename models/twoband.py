@@ -15,6 +15,22 @@ def from_dvector(d0, d):
             + jnp.einsum("sc,cij->sij", d.astype(jnp.complex128), PAULI))
 
 
+def dvector_jet(h, dh, d2h):
+    """The d-vector of two-band blocks and its first and second k-derivatives from the blocks'
+    jet (H (S, 2, 2), ∂H (S, 2, 2, d), ∂²H (S, 2, 2, d, d)), by the linear map of H = d0 + d·σ:
+    d0 = Re(H₀₀ + H₁₁)/2, d_x = Re H₀₁, d_y = −Im H₀₁, d_z = Re(H₀₀ − H₁₁)/2 (the same map holds
+    for every derivative).  Returns ``((d0, d), (∂d0, ∂d), (∂²d0, ∂²d))`` with shapes (S,), (S, 3);
+    (S, d), (S, 3, d); (S, d, d), (S, 3, d, d)."""
+
+    def split(x):
+        d0 = 0.5 * jnp.real(x[:, 0, 0] + x[:, 1, 1])
+        d = jnp.stack([jnp.real(x[:, 0, 1]), -jnp.imag(x[:, 0, 1]), 0.5 * jnp.real(x[:, 0, 0] - x[:, 1, 1])],
+                      axis=1)
+        return d0, d
+
+    return split(h), split(dh), split(d2h)
+
+
 @cache
 def bind_length(fn, length: float):
     """``fn(k, p, length)`` as a function of (k, p), one object per (fn, length), so that models

@@ -37,3 +37,39 @@ def test_geometry_is_the_same_through_either_route():
     for k in K:
         for a, b in zip(geometry_at(model, k), geometry_at(plain, k)):
             np.testing.assert_allclose(a, b, rtol=1e-9, atol=1e-9)
+
+
+def test_strained_honeycomb_jet_equals_autodiff():
+    _check_jet(build("honeycomb", staggered=0.2, strain_xx=0.01, strain_xy=-0.004))
+
+
+def test_haldane_jet_equals_autodiff():
+    _check_jet(build("haldane", t2=0.12, phi=0.7, mass=0.1))
+
+
+def test_two_band_geometry_is_the_same_with_the_jet_or_nested_autodiff():
+    """Closed two-band forms fed by the explicit Bloch sums (d-vector from the blocks' jet) or by
+    nested jax.jacfwd of the d-vector: the same band geometry."""
+    from dataclasses import replace
+    path = ir.files("crosswind.models").joinpath("data/haldane.toml")
+    for model in (build("honeycomb", staggered=0.2, strain_xx=0.01),
+                  build("haldane", t2=0.12, phi=0.7, mass=0.1), load_tight_binding(str(path))):
+        assert model.dvector is not None and model.jet is not None
+        plain = replace(model, jet=None)
+        for k in K:
+            for a, b in zip(geometry_at(model, k), geometry_at(plain, k)):
+                np.testing.assert_allclose(a, b, rtol=1e-10, atol=1e-12)
+
+
+def test_two_band_touching_needs_no_group_average():
+    """At an exact touching of a closed two-band block (gapless honeycomb at K) every quantity is
+    already equal for both bands, so skipping the group average changes nothing."""
+    from crosswind.models.builtin.honeycomb import dirac_point
+    from crosswind.models.eigh import DEGENERACY_TOL
+    from crosswind.models.geometry import _blocks_dvector, _group_mean
+    model = build("honeycomb", staggered=0.0)
+    k = dirac_point(model)
+    w, *rest = _blocks_dvector(model, k, model.params, DEGENERACY_TOL)
+    assert float(jnp.abs(w[0, 1] - w[0, 0])) <= DEGENERACY_TOL
+    for x in rest:
+        np.testing.assert_array_equal(np.asarray(_group_mean(w, x, DEGENERACY_TOL)), np.asarray(x))

@@ -11,6 +11,7 @@ Topological for |M| < 3√3|t2 sin φ| with lower-band Chern number C = +sgn(sin
 """
 from __future__ import annotations
 
+import jax
 import jax.numpy as jnp
 import numpy as np
 
@@ -42,6 +43,31 @@ def dvector(k, p, acc=1.42):
     return d0[None], d[None]
 
 
+def hamiltonian_jet(k, p, acc=1.42):
+    """H (1, 2, 2) and its first and second k-derivatives as explicit Bloch sums of the d-vector
+    above (∂_a cos(k·r) = −r_a sin(k·r), ∂_a∂_b cos(k·r) = −r_a r_b cos(k·r), likewise for sin)."""
+    a = jnp.asarray(_A) * acc
+    b = jnp.asarray(_B) * acc
+    ka, kb = a @ k, b @ k
+    ca, sa, cb, sb = jnp.cos(ka), jnp.sin(ka), jnp.cos(kb), jnp.sin(kb)
+    c0 = 2 * p["t2"] * jnp.cos(p["phi"])
+    cz = 2 * p["t2"] * jnp.sin(p["phi"])
+    aa = a[:, :, None] * a[:, None, :]
+    bb = b[:, :, None] * b[:, None, :]
+    # (d0, dx, dy, dz) and derivatives; H = d0 + d·σ
+    d = (c0 * jnp.sum(cb), p["t1"] * jnp.sum(ca), p["t1"] * jnp.sum(sa), p["mass"] - cz * jnp.sum(sb))
+    g = (-c0 * (sb @ b), -p["t1"] * (sa @ a), p["t1"] * (ca @ a), -cz * (cb @ b))
+    hh = (-c0 * jnp.einsum("i,iab->ab", cb, bb), -p["t1"] * jnp.einsum("i,iab->ab", ca, aa),
+          -p["t1"] * jnp.einsum("i,iab->ab", sa, aa), cz * jnp.einsum("i,iab->ab", sb, bb))
+
+    def block(d0, dx, dy, dz):
+        cx, zero = jax.lax.complex, jnp.zeros_like(dx)
+        return jnp.stack([jnp.stack([cx(d0 + dz, zero), cx(dx, -dy)]),
+                          jnp.stack([cx(dx, dy), cx(d0 - dz, zero)])])[None]
+
+    return block(*d), block(*g), block(*hh)
+
+
 SPEC_FULL = ParamSpec(SPEC.parameters + (
     real("bond_length", "Å", 1.42, "carbon–carbon distance a_cc (sets the k scale)", 0.1, 100.0),
 ), owner="haldane")
@@ -59,6 +85,6 @@ def build_haldane(p, s) -> BandModel:
     lattice = Lattice(vectors=(tuple(a[1] - a[2]), tuple(a[2] - a[0])),
                       positions=((0.0, 0.0), tuple(-a[0])))
     return BandModel(name="haldane", dim=2, hamiltonian=h, params=p, spec=SPEC_FULL, domain=lattice,
-                     degeneracy=1.0, blocks=1, block_size=2, dvector=dv,
+                     degeneracy=1.0, blocks=1, block_size=2, dvector=dv, jet=bind_length(hamiltonian_jet, acc),
                      static=(("bond_length", acc),), description="Haldane model",
                      source="Haldane 1988")

@@ -89,6 +89,29 @@ def dvector(k, p, acc):
     return jnp.zeros((1,)), d[None]
 
 
+def hamiltonian_jet(k, p, acc):
+    """H (1, 2, 2) and its first and second k-derivatives as explicit Bloch sums: with
+    h(k) = −Σ_i t_i e^{ik·δ_i'} the off-diagonal element, ∂_a h = −Σ_i t_i (iδ'_ia) e^{ik·δ_i'} and
+    ∂_a∂_b h = Σ_i t_i δ'_ia δ'_ib e^{ik·δ_i'}; the diagonal ±Δ does not depend on k."""
+    bonds = jnp.asarray(BONDS * acc)
+    eps = strain_of(p)
+    new = deform(bonds, eps)                                  # δ_i' (3, 2)
+    t = scaled_hopping(p["hopping"], bonds, eps, p["beta"])   # t_i (3,)
+    phase = new @ k
+    c, s = t * jnp.cos(phase), t * jnp.sin(phase)
+    cx = jax.lax.complex
+    h01 = cx(-jnp.sum(c), -jnp.sum(s))
+    dh01 = cx(s @ new, -(c @ new))                             # (2,)
+    nn = new[:, :, None] * new[:, None, :]
+    d2h01 = cx(jnp.einsum("i,iab->ab", c, nn), jnp.einsum("i,iab->ab", s, nn))
+    dz = jnp.asarray(p["staggered"]).astype(jnp.complex128)
+    h = jnp.stack([jnp.stack([dz, h01]), jnp.stack([jnp.conj(h01), -dz])])
+    zero1, zero2 = jnp.zeros_like(dh01), jnp.zeros_like(d2h01)
+    dh = jnp.stack([jnp.stack([zero1, dh01]), jnp.stack([jnp.conj(dh01), zero1])])
+    d2h = jnp.stack([jnp.stack([zero2, d2h01]), jnp.stack([jnp.conj(d2h01), zero2])])
+    return h[None], dh[None], d2h[None]
+
+
 def valley_point(lattice_constant: float = 2.46, valley: int = 1) -> np.ndarray:
     """Undeformed Dirac point K = (4π/(3a), 0) (valley=+1) or K' = −K (valley=−1), 1/Å."""
     if valley not in (1, -1):
@@ -143,7 +166,7 @@ def build_honeycomb(p, s) -> BandModel:
     static = (("degeneracy", s["degeneracy"]), ("lattice_constant", a))
     return BandModel(name="honeycomb", dim=2, hamiltonian=h, params=p, spec=SPEC, domain=lattice,
                      degeneracy=float(s["degeneracy"]), blocks=1, block_size=2, dvector=dv,
-                     deformation=deformation_of, static=static,
+                     jet=bind_length(hamiltonian_jet, acc), deformation=deformation_of, static=static,
                      description="honeycomb lattice (graphene-like)", source=SPEC.owner)
 
 

@@ -261,11 +261,15 @@ def build_tables(model, params, plan: Plan, mu, kt, sea, chunk=4096):
         fits = (mhi - mlo + 2 * W * kt_window + 12 * delta) <= (M - 1) * delta
         return e_lo, delta, fits
 
+    stride = 2 ** dim
+
     def evaluate(red, w, e_lo, delta, coarse_mask, acc_f, acc_c):
         """Geometry at reduced points ``red`` (n, d) in chunks; deposit fine (all points) and
-        coarse (``coarse_mask`` points at 2^d·w, knots 2δ).  Returns accs, energies, speeds."""
+        coarse (``coarse_mask`` points at 2^d·w, knots 2δ).  Points come in blocks of 2^d (the
+        children of one coarser cell) whose first member is the only one the mask can select, so
+        the coarse deposit reads every 2^d-th point.  Returns accs, energies, speeds."""
         n = red.shape[0]
-        c = min(chunk, n)
+        c = min(_round(chunk, stride), n)
         nch = _chunks(n, c)
         pad = nch * c - n
         # padding repeats the first point (weight 0): never a special point such as Γ, where a
@@ -281,7 +285,9 @@ def build_tables(model, params, plan: Plan, mu, kt, sea, chunk=4096):
             ww = sl(wp)
             e, gn, f = jax.vmap(lambda q: point_factors(model, params, q, sea))(kk)
             af = _deposit(af, e, f, ww, e_lo, delta)
-            ac = _deposit(ac, e, f, jnp.where(sl(cm), ww * 2 ** dim, 0.0), e_lo, 2 * delta)
+            first = slice(None, None, stride)
+            ac = _deposit(ac, e[first], f[first], jnp.where(sl(cm)[first], ww[first] * stride, 0.0),
+                          e_lo, 2 * delta)
             return (af, ac), (jax.lax.stop_gradient(e), gn)
 
         (acc_f, acc_c), (e, gn) = jax.lax.scan(jax.checkpoint(body), (acc_f, acc_c), jnp.arange(nch))
@@ -289,8 +295,15 @@ def build_tables(model, params, plan: Plan, mu, kt, sea, chunk=4096):
 
     levels = []
     # level 0: the whole zone
-    red0 = jnp.asarray(_grid(n0, dim))
-    idx0 = np.stack(np.meshgrid(*([np.arange(n0)] * dim), indexing="ij"), -1).reshape(-1, dim)
+    if n0 % 2:
+        raise ValueError(f"ladder: the level-0 grid needs an even n0 (got {n0}); plans from make_plan "
+                         "always have one, so pass plan=None or a plan returned by response")
+    # level 0 in blocks of 2^d points (the children of one cell of the n0/2 grid), the point with
+    # all indices even first: the nested sub-grid of the error estimate
+    half = np.stack(np.meshgrid(*([np.arange(n0 // 2)] * dim), indexing="ij"), -1).reshape(-1, dim)
+    offs = np.stack(np.meshgrid(*([np.arange(2)] * dim), indexing="ij"), -1).reshape(-1, dim)
+    idx0 = (2 * half[:, None, :] + offs[None, :, :]).reshape(-1, dim)
+    red0 = jnp.asarray((idx0 + 0.5) / n0)
     cmask0 = jnp.asarray(np.all(idx0 % 2 == 0, axis=-1))
     kt0w = jnp.maximum(ktl[0], jnp.max(kt_s))
     e_lo, delta, fits = knots_for(0, kt0w, jnp.ones_like(mu_s, dtype=bool))
