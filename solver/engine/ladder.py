@@ -40,7 +40,8 @@ from __future__ import annotations
 
 import dataclasses
 from dataclasses import dataclass
-from functools import partial
+from functools import cache, partial
+from typing import NamedTuple
 
 import jax
 import jax.numpy as jnp
@@ -98,19 +99,86 @@ def n0_of(resolution: int, dim: int) -> int:
 # geometric factors (dimension-generic)
 # --------------------------------------------------------------------------------------------
 
+class Cols(NamedTuple):
+    """Columns of one geometric factor in the flat factor vector: ``start``, the tensor
+    ``shape``, and for a symmetric tensor ``expand`` (full flat index -> stored column, stored
+    columns = distinct components only; None: every component stored)."""
+
+    start: int
+    shape: tuple
+    expand: tuple | None = None
+
+    @property
+    def stored(self) -> int:
+        if self.expand is not None:
+            return max(self.expand) + 1
+        return int(np.prod(self.shape)) if self.shape else 1
+
+    @property
+    def cols(self) -> slice:
+        return slice(self.start, self.start + self.stored)
+
+
+def _symmetric(shape, groups):
+    """(full flat positions of the distinct components, full flat index -> distinct index) of a
+    tensor symmetric under permutations of the axes inside each of ``groups``."""
+    canon = []
+    for ix in np.ndindex(*shape):
+        ix = list(ix)
+        for g in groups:
+            vals = sorted(ix[a] for a in g)
+            for a, v in zip(g, vals):
+                ix[a] = v
+        canon.append(tuple(ix))
+    distinct = list(dict.fromkeys(canon))
+    pick = tuple(int(np.ravel_multi_index(c, shape)) for c in distinct)
+    return pick, tuple(distinct.index(c) for c in canon)
+
+
 def factor_layout(dim, sea):
+    """Named column blocks (:class:`Cols`) of the flat factor vector and its length.  Symmetric
+    tensors keep their distinct components only: g_a g_b (a↔b), ∂_a∂_bε g_c (a↔b), g_a g_b g_c
+    (all), and the polarizability term g_a G_bc − … (b↔c)."""
+    layout, nc = _factor_layout(dim, sea)
+    return dict(layout), nc
+
+
+@cache
+def _factor_layout(dim, sea):
     om = () if dim == 2 else (3,)
-    items = [("one", ()), ("gg", (dim, dim)), ("gom", (dim,) + om), ("hg", (dim,) * 3),
-             ("ggg", (dim,) * 3), ("bcp", (dim,) * 3), ("lor", (dim, dim)), ("om", om),
-             ("abs_om", ()), ("sc_dip", ()), ("sc_dr2", ()), ("sc_bcp", ())]
+    d2, d3 = (dim, dim), (dim,) * 3
+    items = [("one", (), ()), ("gg", d2, ((0, 1),)), ("gom", (dim,) + om, ()), ("hg", d3, ((0, 1),)),
+             ("ggg", d3, ((0, 1, 2),)), ("bcp", d3, ((1, 2),)), ("lor", d2, ()), ("om", om, ()),
+             ("abs_om", (), ()), ("sc_dip", (), ()), ("sc_dr2", (), ()), ("sc_bcp", (), ())]
     if sea:
-        items.append(("dom", (dim,) + om))
+        items.append(("dom", (dim,) + om, ()))
     out, start = {}, 0
-    for name, shape in items:
-        size = int(np.prod(shape)) if shape else 1
-        out[name] = (start, shape)
-        start += size
+    for name, shape, groups in items:
+        expand = _symmetric(shape, groups)[1] if groups else None
+        out[name] = Cols(start, shape, expand)
+        start += out[name].stored
     return out, start
+
+
+def _pick(name, dim):
+    """Static positions of the stored components of ``name`` in its full flattened tensor."""
+    cols = _factor_layout(dim, False)[0][name]
+    if cols.expand is None:
+        return None
+    groups = {"gg": ((0, 1),), "hg": ((0, 1),), "ggg": ((0, 1, 2),), "bcp": ((1, 2),)}[name]
+    return np.asarray(_symmetric(cols.shape, groups)[0])
+
+
+def expand_cols(x, cols: Cols):
+    """Stored columns ``x`` (..., stored) of one factor as its full tensor (...,) + shape."""
+    if cols.expand is not None:
+        x = x[..., np.asarray(cols.expand)]
+    return x.reshape(x.shape[:-1] + cols.shape)
+
+
+def column_values(vals, layout, name):
+    """The ``name`` factor of flat values (..., nc) as its full tensor (...,) + shape."""
+    return expand_cols(vals[..., layout[name].cols], layout[name])
 
 
 def point_factors(model, params, k, sea):
@@ -140,8 +208,13 @@ def point_factors(model, params, k, sea):
     scales = [sg(omn)[:, None], sg(gn * omn)[:, None],
               sg(jnp.sqrt(jnp.sum(h * h, axis=(-1, -2))) * gn)[:, None],
               sg(gn * jnp.sqrt(jnp.sum(G * G, axis=(-1, -2))))[:, None]]
-    parts = [jnp.ones((nb, 1)), gg.reshape(nb, -1), gom.reshape(nb, -1), hg.reshape(nb, -1),
-             ggg.reshape(nb, -1), bcp.reshape(nb, -1), lor.reshape(nb, -1), omv.reshape(nb, -1)] + scales
+    def stored(name, x):
+        x = x.reshape(nb, -1)
+        pick = _pick(name, dim)
+        return x if pick is None else x[:, pick]
+
+    parts = [jnp.ones((nb, 1)), stored("gg", gg), gom.reshape(nb, -1), stored("hg", hg),
+             stored("ggg", ggg), stored("bcp", bcp), lor.reshape(nb, -1), omv.reshape(nb, -1)] + scales
     if sea:
         dom = jax.jacfwd(lambda q: geometry_at(model, q, params)[3])(k)     # (nb, [3,] d) ∂_bΩ
         if dim == 3:
@@ -163,6 +236,16 @@ def _lagrange(t):
     """Cubic Lagrange weights of knots j−1, j, j+1, j+2 at fractional position t ∈ [0, 1)."""
     return jnp.stack([-t * (t - 1) * (t - 2) / 6, (t + 1) * (t - 1) * (t - 2) / 2,
                       -(t + 1) * t * (t - 2) / 2, (t + 1) * t * (t - 1) / 6], axis=-1)
+
+
+def nearest_mu_distance(e, mu, relevant):
+    """|e − μ| to the nearest μ of the conditions (P,) marked ``relevant`` (inf if none), for
+    energies ``e`` of any shape: the sorted μ (non-relevant ones moved to +inf) bisected."""
+    rel = jnp.sort(jnp.where(relevant, mu, jnp.inf))
+    if rel.shape[0] == 1:
+        return jnp.abs(e - rel[0])
+    j = jnp.clip(jnp.searchsorted(rel, e), 1, rel.shape[0] - 1)
+    return jnp.minimum(jnp.abs(e - rel[j - 1]), jnp.abs(e - rel[j]))
 
 
 def _deposit(acc, e, f, w, e_lo, delta):
@@ -317,13 +400,7 @@ def build_tables(model, params, plan: Plan, mu, kt, sea, chunk=4096):
     for lev in range(1, L + 1):
         s_prev = 1.0 / (n0 * 2 ** (lev - 1))                          # reduced spacing of level lev-1
         relevant = kt_s < ktl[lev - 1]
-        mu_rel = jnp.sort(jnp.where(relevant, mu_s, jnp.inf))
-        # distance of each state to the nearest relevant μ
-        pos = jnp.clip(jnp.searchsorted(mu_rel, e_prev), 1, mu_rel.shape[0] - 1)
-        if mu_rel.shape[0] == 1:
-            dist = jnp.abs(e_prev - mu_rel[0])
-        else:
-            dist = jnp.minimum(jnp.abs(e_prev - mu_rel[pos - 1]), jnp.abs(e_prev - mu_rel[pos]))
+        dist = nearest_mu_distance(e_prev, mu_s, relevant)
         reach = W * ktl[lev - 1] + SLACK * g_prev * halfdiag / 2 ** (lev - 1)
         score = jnp.min((dist - reach) / reach, axis=-1)
         score = jnp.where(valid_prev, score, jnp.inf)
@@ -368,10 +445,8 @@ def _occupations(E, mu, kt):
 
 def _column_sum(vals, layout, name, weight):
     """Σ_q weight (P, Q) × the ``name`` columns of ``vals`` (P, Q, nc), shaped (P,) + shape."""
-    start, shape = layout[name]
-    size = int(np.prod(shape)) if shape else 1
-    out = jnp.einsum("pq,pqc->pc", weight, vals[..., start:start + size])
-    return out.reshape((vals.shape[0],) + shape)
+    cols = layout[name]
+    return expand_cols(jnp.einsum("pq,pqc->pc", weight, vals[..., cols.cols]), cols)
 
 
 def _kernel_sums_dc(vals, occ, E, mu, tau, dtau, layout, sea):
@@ -401,7 +476,6 @@ def _kernel_sums(vals, occ, E, mu, temp, tau_eval, tau_arr, omega, layout, sea):
     knot values ``vals`` (P, Q, nc) and occupation weights ``occ`` (each (P, Q)); ``E`` (P, Q) the
     knot energies.  ``omega=None`` marks a static field
     (the real-arithmetic path of :func:`_kernel_sums_dc`)."""
-    P = vals.shape[0]
     tau, dtau = tau_eval(tau_arr, E, jnp.broadcast_to(temp[:, None], E.shape))
     if omega is None:
         return _kernel_sums_dc(vals, occ, E, mu, tau, dtau, layout, sea)
@@ -411,15 +485,14 @@ def _kernel_sums(vals, occ, E, mu, temp, tau_eval, tau_arr, omega, layout, sea):
     F, f0 = occ["F"], occ["f0"]
 
     def s(name, weight):
-        start, shape = layout[name]
-        size = int(np.prod(shape)) if shape else 1
-        v = vals[..., start:start + size]
+        cols = layout[name]
+        v = vals[..., cols.cols]
         if jnp.iscomplexobj(weight):          # real tables: two real sums, no complex copy
             out = jax.lax.complex(jnp.einsum("pq,pqc->pc", weight.real, v),
                                   jnp.einsum("pq,pqc->pc", weight.imag, v))
         else:
             out = jnp.einsum("pq,pqc->pc", weight, v)
-        return out.reshape((P,) + shape)
+        return expand_cols(out, cols)
 
     Fc = F.astype(jnp.complex128)
     de = E - jnp.broadcast_to(mu[:, None], E.shape)
@@ -466,9 +539,7 @@ def _level_sums(acc, e_lo, delta, mu, kt_hi, kt_lo, kt_win, temp, tau_eval, tau_
         for key, name in (("density", "one"), ("ahe", "om"), ("scale_ahe", "abs_om"),
                           ("dipole_sea", "dom")):
             if getattr(out, key) is not None:
-                st, shape = layout[name]
-                size = int(np.prod(shape)) if shape else 1
-                add[key] = getattr(out, key) + pre[:, st:st + size].reshape((mu.shape[0],) + shape)
+                add[key] = getattr(out, key) + column_values(pre, layout, name)
         add["density"] = add["density"] - filled_vol
         out = dataclasses.replace(out, **add)
     return out
@@ -695,12 +766,7 @@ def _level_fractions(model, params, mu, kt, kt_parent, *, n0):
     def one(args):
         ktp, scale = args
         relevant = kt < ktp
-        rel = jnp.sort(jnp.where(relevant, mu, jnp.inf))
-        if rel.shape[0] == 1:
-            d = jnp.abs(e - rel[0])
-        else:
-            j = jnp.clip(jnp.searchsorted(rel, e), 1, rel.shape[0] - 1)
-            d = jnp.minimum(jnp.abs(e - rel[j]), jnp.abs(e - rel[j - 1]))
+        d = nearest_mu_distance(e, mu, relevant)
         R = W * ktp + SLACK * gn * hd0 / scale
         overlap = jnp.clip(jnp.minimum(d + s, R) - jnp.maximum(d - s, -R), 0.0, 2 * s)
         return jnp.sum(jnp.max(overlap / (2 * s), axis=-1)), jnp.any(relevant)

@@ -50,9 +50,11 @@ from crosswind.models.band_model import BandModel
 from crosswind.models.domain import Lattice
 from crosswind.models.units import KB_EVK as KB
 from crosswind.solver.engine.ladder import (
+    Cols,
     _kernel_sums,
     _lagrange,
     _occupations,
+    column_values,
     factor_layout,
     point_factors,
 )
@@ -326,10 +328,10 @@ def _deposit3(acc, e, f, w, e_lo, delta):
 def _layout(sea):
     layout, nc = factor_layout(2, sea)
     layout = dict(layout)
-    layout["hole_one"] = (nc, ())
+    layout["hole_one"] = Cols(nc, ())
     nc += 1
     if sea:
-        layout["hole_dom"] = (nc, (2,))
+        layout["hole_dom"] = Cols(nc, (2,))
         nc += 2
     return layout, nc
 
@@ -364,7 +366,7 @@ def build_tables(model, params, plan: RayPlan, grid: RayGrid, filled, sea, chunk
         f = f.at[:, layout["one"][0]].multiply(1.0 - fill[:, 0])
         extra = [fill]
         if sea:
-            st, _ = layout["dom"]
+            st = layout["dom"].start
             dom = f[:, st:st + 2]
             f = f.at[:, st:st + 2].multiply(1.0 - fill)
             extra.append(fill * dom)
@@ -405,9 +407,7 @@ def window_knots(rho):
 
 
 def _cols(vals, layout, name):
-    st, shape = layout[name]
-    size = int(np.prod(shape)) if shape else 1
-    return vals[..., st:st + size].reshape(vals.shape[:-1] + shape)
+    return column_values(vals, layout, name)
 
 
 def _tapered(occ, E, mu, kt):

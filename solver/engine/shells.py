@@ -48,7 +48,7 @@ from crosswind.models.domain import Lattice
 from crosswind.models.units import KB_EVK as KB
 from crosswind.solver.engine import mesh as _mesh
 from crosswind.solver.engine import rays as _rays
-from crosswind.solver.engine.ladder import factor_layout, point_factors
+from crosswind.solver.engine.ladder import Cols, factor_layout, point_factors
 
 CUTOFF_KEY = "kp_cutoff"     # static option of a 3D continuum model: momentum cutoff Λ (1/Å)
 
@@ -241,7 +241,7 @@ def shell_nodes(model: BandModel, params, plan: ShellPlan, grid):
 def _layout(sea):
     layout, nc = factor_layout(3, sea)
     layout = dict(layout)
-    layout["hole_one"] = (nc, ())
+    layout["hole_one"] = Cols(nc, ())
     return layout, nc + 1
 
 

@@ -384,23 +384,20 @@ def moments_from_tables(table, layout, vol, mu, kt, temp, tau_eval, tau_arr, ome
     t1, _ = tau_tilde(tau, dtau, omega)
     t2, dt2 = tau_tilde(tau, dtau, 2.0 * omega)
     tauc, dtauc = tau.astype(jnp.complex128), dtau.astype(jnp.complex128)
-    P = mu.shape[0]
 
     def fs(name, weight=None):
-        start, shape = layout[name]
-        size = int(np.prod(shape)) if shape else 1
-        vals = sE[..., start:start + size]
+        cols = layout[name]
+        vals = sE[..., cols.cols]
         ww = wq if weight is None else wq.astype(weight.dtype) * weight
         if jnp.iscomplexobj(ww):
             vals = vals.astype(ww.dtype)
-        return jnp.einsum("pq,pqc->pc", ww, vals).reshape((P,) + shape)
+        return _ladder.expand_cols(jnp.einsum("pq,pqc->pc", ww, vals), cols)
 
     def sea_(name, weight=None):
-        start, shape = layout[name]
-        size = int(np.prod(shape)) if shape else 1
-        vals = cE[..., start:start + size]
+        cols = layout[name]
+        vals = cE[..., cols.cols]
         ww = wq if weight is None else wq * weight
-        return jnp.einsum("pq,pqc->pc", ww, vals).reshape((P,) + shape)
+        return _ladder.expand_cols(jnp.einsum("pq,pqc->pc", ww, vals), cols)
 
     out = {}
     out["density"] = sea_("one") - filled * vol
