@@ -443,10 +443,17 @@ def _occupations(E, mu, kt):
     return {"f0": fermi(E, M, K), "F": minus_dfermi(E, M, K), "s": entropy_density(E, M, K)}
 
 
+def knot_contract(weight, vals):
+    """Σ_q weight (P, Q) × vals: per-condition knot values (P, Q, n) or knots shared by every
+    condition (Q, n) (one matrix product instead of P small ones)."""
+    return jnp.einsum("pq,qc->pc" if vals.ndim == 2 else "pq,pqc->pc", weight, vals)
+
+
 def _column_sum(vals, layout, name, weight):
-    """Σ_q weight (P, Q) × the ``name`` columns of ``vals`` (P, Q, nc), shaped (P,) + shape."""
+    """Σ_q weight (P, Q) × the ``name`` columns of ``vals`` ((P, Q, nc) or shared (Q, nc)), shaped
+    (P,) + shape."""
     cols = layout[name]
-    return expand_cols(jnp.einsum("pq,pqc->pc", weight, vals[..., cols.cols]), cols)
+    return expand_cols(knot_contract(weight, vals[..., cols.cols]), cols)
 
 
 def _kernel_sums_dc(vals, occ, E, mu, tau, dtau, layout, sea):
@@ -488,10 +495,9 @@ def _kernel_sums(vals, occ, E, mu, temp, tau_eval, tau_arr, omega, layout, sea):
         cols = layout[name]
         v = vals[..., cols.cols]
         if jnp.iscomplexobj(weight):          # real tables: two real sums, no complex copy
-            out = jax.lax.complex(jnp.einsum("pq,pqc->pc", weight.real, v),
-                                  jnp.einsum("pq,pqc->pc", weight.imag, v))
+            out = jax.lax.complex(knot_contract(weight.real, v), knot_contract(weight.imag, v))
         else:
-            out = jnp.einsum("pq,pqc->pc", weight, v)
+            out = knot_contract(weight, v)
         return expand_cols(out, cols)
 
     Fc = F.astype(jnp.complex128)

@@ -56,6 +56,7 @@ from crosswind.solver.engine.ladder import (
     _occupations,
     column_values,
     factor_layout,
+    knot_contract,
     point_factors,
 )
 from crosswind.solver.engine.mesh import PROBE, energies_at, probe_radii
@@ -421,44 +422,92 @@ def _tapered(occ, E, mu, kt):
     return {"f0": step + (occ["f0"] - step) * taper, "F": occ["F"] * taper, "s": occ["s"] * taper}
 
 
-def _sums_at(tabs, plan, grid, layout, mu, kt_occ, temp, tau_eval, tau_arr, omega, sea):
-    """Kernel sums (:class:`~crosswind.solver.engine.kernels.Moments`) for conditions (P,) at
-    occupation temperatures ``kt_occ`` (P,), and whether each condition's window fits the tables."""
-    tables, below, above = tabs
-    R, M = plan.tables, plan.knots
-    Q = _window(plan)
+def _knot_windows(plan, grid, mu, kt_occ):
+    """Table index r (P,), its knot spacing (P,) and the first knot of each condition's window
+    (P,): the coarsest table with at least ρ knots per k_BT, window from μ − (W+2)k_BT."""
     kt_s = jax.lax.stop_gradient(kt_occ)
     delta0 = jax.lax.stop_gradient(grid.delta)
     e_lo = jax.lax.stop_gradient(grid.e_lo)
-    r = jnp.clip(jnp.floor(jnp.log2(kt_s / (plan.rho * delta0))), 0, R - 1).astype(jnp.int32)
+    r = jnp.clip(jnp.floor(jnp.log2(kt_s / (plan.rho * delta0))), 0, plan.tables - 1).astype(jnp.int32)
     delta = delta0 * 2.0 ** r.astype(jnp.float64)
     start = jnp.floor((jax.lax.stop_gradient(mu) - (W + 2) * kt_s - e_lo) / delta).astype(jnp.int32) - 2
-    j = start[:, None] + jnp.arange(Q, dtype=jnp.int32)[None, :]
-    fits = (start >= 1) & (start + Q <= M - 3)
-    jc = jnp.clip(j, 0, M - 1)
-    vals = tables[r[:, None], jc]                                              # (P, Q, nc)
-    E = e_lo + j.astype(jnp.float64) * delta[:, None]
+    return r, delta, start
+
+
+def _shared_span(plan):
+    """Knots of a window shared by a chunk of conditions: a condition's own window plus a quarter
+    of it for the spread of the conditions' windows (sorted neighbours in a sweep)."""
+    Q = _window(plan)
+    return Q + Q // 4
+
+
+def _window_moments(vals, E, pre, post, layout, mu, kt_occ, temp, tau_eval, tau_arr, omega, sea):
+    """Moments from knot values ``vals`` ((P, Q, nc), or (Q, nc) shared by all conditions), knot
+    energies ``E`` (P, Q), and the table sums below (``pre``) and above (``post``) the knots (P, nc)."""
     occ = _tapered(_occupations(E, mu, kt_occ), E, mu, kt_occ)
     out = _kernel_sums(vals, occ, E, mu, temp, tau_eval, tau_arr, omega, layout, sea)
-    # Fermi-sea kernels: knots below the window are fully occupied, above it empty
-    csum = jnp.concatenate([jnp.zeros((R, 1, tables.shape[-1])), jnp.cumsum(tables, axis=1)], axis=1)
-    pre = below[r] + csum[r, jnp.clip(start, 0, M)]                             # (P, nc) below window
-    post = above[r] + csum[r, M] - csum[r, jnp.clip(start + Q, 0, M)]           # (P, nc) above window
     f0 = occ["f0"]
     new = {key: getattr(out, key) + _cols(pre, layout, name)
            for key, name in (("ahe", "om"), ("scale_ahe", "abs_om"))}
-    # density = Σ_upper w f0 − Σ_filled w (1 − f0)
     # the "one" and "dom" columns hold the bands empty at neutrality, the "hole" columns the
     # filled ones: n = Σ_upper w f0 − Σ_filled w (1 − f0)
-    hole = _cols(vals, layout, "hole_one")
-    new["dos"] = out.dos + jnp.einsum("pq,pq->p", occ["F"], hole)
-    new["density"] = (jnp.einsum("pq,pq->p", f0, _cols(vals, layout, "one")) + _cols(pre, layout, "one")
-                      - jnp.einsum("pq,pq->p", 1.0 - f0, hole) - _cols(post, layout, "hole_one"))
+    hole = _cols(vals, layout, "hole_one")[..., None]
+    new["dos"] = out.dos + knot_contract(occ["F"], hole)[:, 0]
+    new["density"] = (knot_contract(f0, _cols(vals, layout, "one")[..., None])[:, 0] + _cols(pre, layout, "one")
+                      - knot_contract(1.0 - f0, hole)[:, 0] - _cols(post, layout, "hole_one"))
     if sea:
         hole = _cols(vals, layout, "hole_dom")
-        new["dipole_sea"] = (jnp.einsum("pq,pqb->pb", f0, _cols(vals, layout, "dom")) + _cols(pre, layout, "dom")
-                             - jnp.einsum("pq,pqb->pb", 1.0 - f0, hole) - _cols(post, layout, "hole_dom"))
-    return dataclasses.replace(out, **new), fits
+        new["dipole_sea"] = (knot_contract(f0, _cols(vals, layout, "dom")) + _cols(pre, layout, "dom")
+                             - knot_contract(1.0 - f0, hole) - _cols(post, layout, "hole_dom"))
+    return dataclasses.replace(out, **new)
+
+
+def _sums_at(tabs, plan, grid, layout, mu, kt_occ, temp, tau_eval, tau_arr, omega, sea):
+    """Kernel sums (:class:`~crosswind.solver.engine.kernels.Moments`) for conditions (P,) at
+    occupation temperatures ``kt_occ`` (P,), and whether each condition's window fits the tables.
+
+    Each condition sums the knots of its own window (Q knots gathered per condition); when all
+    conditions of the chunk read the same table and their windows lie within
+    :func:`_shared_span` knots (neighbours of a sorted sweep), they share one slice of the table
+    and the sums are matrix products.  Both give the same sums: outside its own window a
+    condition's tapered occupations are exactly 1 (f0) or 0, which the table sums below and above
+    the knots (``pre``, ``post``) otherwise supply."""
+    tables, below, above = tabs
+    R, M = plan.tables, plan.knots
+    Q, U = _window(plan), _shared_span(plan)
+    e_lo = jax.lax.stop_gradient(grid.e_lo)
+    r, delta, start = _knot_windows(plan, grid, mu, kt_occ)
+    fits = (start >= 1) & (start + Q <= M - 3)
+    csum = jnp.concatenate([jnp.zeros((R, 1, tables.shape[-1])), jnp.cumsum(tables, axis=1)], axis=1)
+    rest = (layout, mu, kt_occ, temp, tau_eval, tau_arr, omega, sea)
+
+    def below_above(rr, lo, hi):
+        # fully occupied below knot lo, empty from knot hi on
+        return (below[rr] + csum[rr, jnp.clip(lo, 0, M)],
+                above[rr] + csum[rr, M] - csum[rr, jnp.clip(hi, 0, M)])
+
+    def own(_):
+        j = start[:, None] + jnp.arange(Q, dtype=jnp.int32)[None, :]
+        vals = tables[r[:, None], jnp.clip(j, 0, M - 1)]                      # (P, Q, nc)
+        E = e_lo + j.astype(jnp.float64) * delta[:, None]
+        return _window_moments(vals, E, *below_above(r, start, start + Q), *rest)
+
+    s0 = jnp.min(start)
+    r0 = r[0]
+
+    def shared(_):
+        s = jnp.clip(s0, 0, M - U)
+        vals = jax.lax.dynamic_slice(tables, (r0, s, jnp.int32(0)), (1, U, tables.shape[-1]))[0]  # (U, nc)
+        j = s + jnp.arange(U, dtype=jnp.int32)
+        E = jnp.broadcast_to(e_lo + j.astype(jnp.float64) * delta[0], (mu.shape[0], U))
+        rr = jnp.full_like(r, r0)
+        return _window_moments(vals, E, *below_above(rr, jnp.full_like(start, s), jnp.full_like(start, s + U)),
+                               *rest)
+
+    can_share = jnp.all(r == r0) & (jnp.max(start) + Q <= s0 + U) & (s0 >= 0) & (s0 + U <= M)
+    if U > M:
+        return own(None), fits
+    return jax.lax.cond(can_share, shared, own, None), fits
 
 
 def _bshape(v, like):
@@ -507,8 +556,13 @@ def ray_moments(model, params, plan: RayPlan, grid: RayGrid, mu, kt, temp, tau_e
     cc = min(condition_chunk, P)
     nch = -(-P // cc)
     pad = nch * cc - P
+    # conditions sorted by table and window start, so that the neighbours in a chunk can share
+    # one slice of the table (see _sums_at); the results are put back in the callers' order
+    r, _, start = _knot_windows(plan, grid, mu, jnp.maximum(kt, KB * plan.t_res))
+    order = jnp.argsort(r.astype(jnp.int64) * (4 * plan.knots) + start.astype(jnp.int64), stable=True)
+    perm = lambda x: x[order]
     padv = lambda x: jnp.concatenate([x, jnp.broadcast_to(x[-1:], (pad,) + x.shape[1:])]) if pad else x
-    args = (padv(mu), padv(kt), padv(temp), jax.tree_util.tree_map(padv, tau_arr))
+    args = tuple(jax.tree_util.tree_map(lambda x: padv(perm(x)), a) for a in (mu, kt, temp, tau_arr))
 
     def one(a):
         m, k, t, ta = a
@@ -516,6 +570,7 @@ def ray_moments(model, params, plan: RayPlan, grid: RayGrid, mu, kt, temp, tau_e
 
     split = lambda x: x.reshape((nch, cc) + x.shape[1:])
     out = jax.lax.map(one, jax.tree_util.tree_map(split, args))
-    out = jax.tree_util.tree_map(lambda x: x.reshape((nch * cc,) + x.shape[2:])[:P], out)
+    back = jnp.zeros_like(order).at[order].set(jnp.arange(P, dtype=order.dtype))
+    out = jax.tree_util.tree_map(lambda x: x.reshape((nch * cc,) + x.shape[2:])[:P][back], out)
     sums, err, fits = out
     return sums, err, over | ~jnp.all(fits)
