@@ -528,27 +528,64 @@ def _window_values(acc, e_lo, delta, start, Q):
 def _level_sums(acc, e_lo, delta, mu, kt_hi, kt_lo, kt_win, temp, tau_eval, tau_arr, omega, layout,
                 sea, rho, first, filled_vol):
     """Σ_j table_j [φ(E_j; kt_hi) − φ(E_j; kt_lo)] over the knots within W·kt_win of μ (for the
-    first level: φ(kt_hi) alone, plus the fully occupied states below the window)."""
+    first level: φ(kt_hi) alone, plus the fully occupied states below the window).
+
+    Each condition sums the Q knots of its own window; when the windows of all conditions of the
+    chunk lie within one slice of the table (the whole table when it has at most 4Q knots, else 2Q
+    knots around neighbours in μ: ladder_moments sorts them), they read that shared slice instead,
+    with every weight set to zero outside the condition's own window (f0 to 1 below it on the first
+    level), and the sums become matrix products: the same sums."""
     Q = int(2 * (W + 1) * rho * (1 if first else 2)) + 8
+    table, below = acc
+    M = table.shape[0]
+    # the shared slice: the whole table when it is short (one matrix product over at most 4Q
+    # knots still beats Q gathered knots per condition), else 2Q knots
+    U = M if M <= 4 * Q else 2 * Q
     start = jnp.floor(jax.lax.stop_gradient((mu - W * kt_win - e_lo) / delta)).astype(jnp.int32) - 2
-    vals, E = _window_values(acc, e_lo, delta, start, Q)
-    occ = _occupations(E, mu, kt_hi)
-    if not first:
-        lo = _occupations(E, mu, kt_lo)
-        occ = {k: occ[k] - lo[k] for k in occ}
-    out = _kernel_sums(vals, occ, E, mu, temp, tau_eval, tau_arr, omega, layout, sea)
-    if first:
-        table, below = acc
+
+    def occupations(E):
+        occ = _occupations(E, mu, kt_hi)
+        if not first:
+            lo = _occupations(E, mu, kt_lo)
+            occ = {k: occ[k] - lo[k] for k in occ}
+        return occ
+
+    def finish(out, lo):
+        if not first:
+            return out
         csum = jnp.concatenate([jnp.zeros((1, table.shape[1])), jnp.cumsum(table, axis=0)])
-        pre = below[None, :] + csum[jnp.clip(start, 0, table.shape[0])]            # (P, nc)
+        pre = below[None, :] + csum[jnp.clip(lo, 0, M)]                               # (P, nc)
         add = {}
         for key, name in (("density", "one"), ("ahe", "om"), ("scale_ahe", "abs_om"),
                           ("dipole_sea", "dom")):
             if getattr(out, key) is not None:
                 add[key] = getattr(out, key) + column_values(pre, layout, name)
         add["density"] = add["density"] - filled_vol
-        out = dataclasses.replace(out, **add)
-    return out
+        return dataclasses.replace(out, **add)
+
+    def own(_):
+        vals, E = _window_values(acc, e_lo, delta, start, Q)
+        return finish(_kernel_sums(vals, occupations(E), E, mu, temp, tau_eval, tau_arr, omega, layout, sea),
+                      start)
+
+    s0 = jnp.clip(jnp.min(start), 0, M - U)
+
+    def shared(_):
+        vals = jax.lax.dynamic_slice(table, (s0, jnp.int32(0)), (U, table.shape[1]))      # (U, nc)
+        j = s0 + jnp.arange(U, dtype=jnp.int32)
+        E = jnp.broadcast_to(e_lo + j.astype(jnp.float64) * delta, (mu.shape[0], U))
+        rel = j[None, :] - start[:, None]
+        inside = (rel >= 0) & (rel < Q)
+        occ = {k: jnp.where(inside, v, 0.0) for k, v in occupations(E).items()}
+        if first:
+            occ["f0"] = jnp.where(rel < 0, 1.0, occ["f0"])
+        out = _kernel_sums(vals, occ, E, mu, temp, tau_eval, tau_arr, omega, layout, sea)
+        return finish(out, jnp.full_like(start, s0))
+
+    # every condition's window (its part inside the table: outside it reads zero) in the slice
+    can_share = ((jnp.clip(jnp.min(start), 0, M) >= s0)
+                 & (jnp.clip(jnp.max(start) + Q, 0, M) <= s0 + U))
+    return jax.lax.cond(can_share, shared, own, None)
 
 
 def _tree_add(a, b):
@@ -624,7 +661,8 @@ def ladder_moments(model, params, plan: Plan, mu, kt, temp, tau_eval, tau_arr, o
     padv = lambda x: jnp.concatenate([x, jnp.broadcast_to(x[-1:], (pad,) + x.shape[1:])]) if pad else x
     # conditions sorted hot to cold, so that a chunk's conditions need the same ladder levels
     # (condition_sums skips a level none of them needs); the results are put back in order below
-    order = jnp.argsort(-jax.lax.stop_gradient(kt))
+    # (and by μ within a temperature: neighbouring windows can share one table slice)
+    order = jnp.lexsort((jax.lax.stop_gradient(mu), -jax.lax.stop_gradient(kt)))
     take = lambda x: jnp.take(x, order, axis=0)
     mu, kt, temp, tau_arr = take(mu), take(kt), take(temp), jax.tree_util.tree_map(take, tau_arr)
     args = (padv(mu), padv(kt), padv(temp), jax.tree_util.tree_map(padv, tau_arr))

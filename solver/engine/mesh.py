@@ -206,15 +206,16 @@ def probe_radii(s):
     return jnp.concatenate([jnp.zeros(1), probe_midpoints(s)[0]])
 
 
-def energies_at(model: BandModel, k, params):
-    """All band energies at one k (ascending), cheap path (no derivatives)."""
+def energies_at(model: BandModel, k, params, ordered: bool = True):
+    """All band energies at one k (ascending; block by block with ``ordered=False``), cheap path
+    (no derivatives)."""
     if model.dvector is not None:
         d0, d = model.dvector(k, params)
         e = jnp.sqrt(jnp.sum(d * d, axis=-1))
         w = jnp.stack([d0 - e, d0 + e], axis=-1).reshape(-1)
     else:
         w = jnp.linalg.eigvalsh(model.hamiltonian(k, params)).reshape(-1)
-    return jnp.sort(w)
+    return jnp.sort(w) if ordered else w
 
 
 def ray_rule(model: BandModel, res: Resolution, mu, kt, params=None, with_window: bool = False):

@@ -251,8 +251,10 @@ def crossings(model, p, c, dvec, kr, levels, slots):
     pos, band, itv, lev = pos[order], band[order], itv[order], lev[order]
 
     def f(kk):
-        e = jax.vmap(lambda q: energies_at(model, c + q * dvec, p))(kk)       # (slots, nb)
-        return jnp.take_along_axis(e, band[:, None], axis=1)[:, 0] - levels[lev]
+        # whether the band-th energy (ascending) lies above its level: fewer than band + 1
+        # energies at or below it (no sort of the bands at every bisection step)
+        e = jax.vmap(lambda q: energies_at(model, c + q * dvec, p, ordered=False))(kk)   # (slots, nb)
+        return jnp.sum(e <= levels[lev][:, None], axis=1) <= band
 
     a, b = kr[itv], kr[jnp.minimum(itv + 1, PROBE)]
 
@@ -260,7 +262,7 @@ def crossings(model, p, c, dvec, kr, levels, slots):
         a, b, fa = st
         m = 0.5 * (a + b)
         fm = f(m)
-        left = (fm > 0) == (fa > 0)
+        left = fm == fa
         return jnp.where(left, m, a), jnp.where(left, b, m), jnp.where(left, fm, fa)
 
     a, b, _ = jax.lax.fori_loop(0, BISECT, body, (a, b, f(a)))
