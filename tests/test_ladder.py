@@ -221,3 +221,39 @@ def test_level_budget_counts_match_a_plain_numpy_count():
         want.append(float(np.sum(np.max(overlap / (2 * s), axis=-1))) * 2 ** (dim * (lev - 1)))
     assert want[0] > 0 and want[-1] == 0.0          # a level no condition needs counts nothing
     np.testing.assert_allclose(got, want, rtol=1e-9)
+
+
+def _random_sums_inputs(P, M, nc, seed=0):
+    rng = np.random.default_rng(seed)
+    table = jnp.asarray(rng.normal(size=(M, nc)))
+    below = jnp.asarray(rng.normal(size=(nc,)))
+    mu = jnp.asarray(np.sort(rng.uniform(0.05, 0.07, P)))
+    kt = jnp.asarray(rng.uniform(0.4e-3, 0.9e-3, P))
+    tau = {"tau0": jnp.full((P, 1), 80.0)}
+    return table, below, mu, kt, tau
+
+
+@pytest.mark.parametrize("first", [True, False])
+def test_shared_slice_knot_sums_equal_per_condition_windows(first):
+    """The matrix-product form over one shared table slice (chunks of ≥ SHARED_MIN conditions)
+    gives the sums of one gathered window per condition (small chunks), to rounding."""
+    layout, nc = ld.factor_layout(2, False)
+    P, M, rho = 96, 1024, 6.0
+    table, below, mu, kt, tau = _random_sums_inputs(P, M, nc)
+    e_lo, delta = 0.03, 0.9e-3 / rho / (1 if first else 2)
+    tau_eval = as_scattering(80.0).evaluate
+    kt_lo = kt if first else 0.5 * kt
+    kt_win = kt if first else jnp.full((P,), 0.9e-3)
+    temp = kt / 8.617333262e-5
+
+    def sums(sl):
+        return ld._level_sums((table, below), e_lo, delta, mu[sl], kt[sl], kt_lo[sl], kt_win[sl], temp[sl],
+                              tau_eval, {"tau0": tau["tau0"][sl]}, None, layout, False, rho, first, 0.0)
+
+    shared = sums(slice(None))
+    assert P >= ld.SHARED_MIN
+    own = [sums(slice(i, i + 8)) for i in range(0, P, 8)]
+    for field in ("density", "dos", "drude", "dipole", "ahe", "bcp", "drude2_2w", "thermo2", "nernst"):
+        a = np.asarray(getattr(shared, field))
+        b = np.concatenate([np.asarray(getattr(o, field)) for o in own])
+        np.testing.assert_allclose(a, b, rtol=1e-11, atol=1e-11 * np.max(np.abs(b)))

@@ -59,6 +59,9 @@ from crosswind.solver.engine.occupation import (
 )
 
 W = 20.0                   # window half-width in k_BT: neglected weight ~ e^-20 ≈ 2e-9
+#: conditions per chunk from which the knot sums also compile the shared-slice form (matrix
+#: products over one table slice); smaller chunks keep one gathered window per condition only
+SHARED_MIN = 64
 SLACK = 1.5                # cell-size reach in units of |∇ε|·(half diagonal)
 PROBE = 24                 # points per direction of the v_max probe grid
 
@@ -582,6 +585,8 @@ def _level_sums(acc, e_lo, delta, mu, kt_hi, kt_lo, kt_win, temp, tau_eval, tau_
         out = _kernel_sums(vals, occ, E, mu, temp, tau_eval, tau_arr, omega, layout, sea)
         return finish(out, jnp.full_like(start, s0))
 
+    if mu.shape[0] < SHARED_MIN:
+        return own(None)
     # every condition's window (its part inside the table: outside it reads zero) in the slice
     can_share = ((jnp.clip(jnp.min(start), 0, M) >= s0)
                  & (jnp.clip(jnp.max(start) + Q, 0, M) <= s0 + U))

@@ -50,6 +50,7 @@ from crosswind.models.band_model import BandModel
 from crosswind.models.domain import Lattice
 from crosswind.models.units import KB_EVK as KB
 from crosswind.solver.engine.ladder import (
+    SHARED_MIN,
     Cols,
     _kernel_sums,
     _lagrange,
@@ -507,7 +508,7 @@ def _sums_at(tabs, plan, grid, layout, mu, kt_occ, temp, tau_eval, tau_arr, omeg
                                *rest)
 
     can_share = jnp.all(r == r0) & (jnp.max(start) + Q <= s0 + U) & (s0 >= 0) & (s0 + U <= M)
-    if U > M:
+    if U > M or mu.shape[0] < SHARED_MIN:
         return own(None), fits
     return jax.lax.cond(can_share, shared, own, None), fits
 
