@@ -245,5 +245,8 @@ def test_batched_tangents_match_one_by_one(base):
     batched = sensitivities(model, NAMES, resolution=LEVEL, mode="jacfwd", **COND)
     for n in NAMES:
         for f in ("sigma", "dipole", "chi", "density"):
-            np.testing.assert_allclose(np.asarray(getattr(batched[n], f)), np.asarray(getattr(sens[n], f)),
-                                       rtol=1e-10, atol=0)
+            # components that vanish by symmetry (here χ_yyy of the x-tilted cone, ~1e-13 of the
+            # largest component) are rounding noise: judged against the field's scale, as above
+            want = np.asarray(getattr(sens[n], f))
+            np.testing.assert_allclose(np.asarray(getattr(batched[n], f)), want,
+                                       rtol=1e-10, atol=1e-10 * np.max(np.abs(want)))
