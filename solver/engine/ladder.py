@@ -105,11 +105,12 @@ def n0_of(resolution: int, dim: int) -> int:
 class Cols(NamedTuple):
     """Columns of one geometric factor in the flat factor vector: ``start``, the tensor
     ``shape``, and for a symmetric tensor ``expand`` (full flat index -> stored column, stored
-    columns = distinct components only; None: every component stored)."""
+    columns = distinct components only; None: every component stored) and ``pick``."""
 
     start: int
     shape: tuple
     expand: tuple | None = None
+    pick: tuple | None = None      # full flat positions of the stored components (symmetric only)
 
     @property
     def stored(self) -> int:
@@ -157,19 +158,10 @@ def _factor_layout(dim, sea):
         items.append(("dom", (dim,) + om, ()))
     out, start = {}, 0
     for name, shape, groups in items:
-        expand = _symmetric(shape, groups)[1] if groups else None
-        out[name] = Cols(start, shape, expand)
+        pick, expand = _symmetric(shape, groups) if groups else (None, None)
+        out[name] = Cols(start, shape, expand, pick)
         start += out[name].stored
     return out, start
-
-
-def _pick(name, dim):
-    """Static positions of the stored components of ``name`` in its full flattened tensor."""
-    cols = _factor_layout(dim, False)[0][name]
-    if cols.expand is None:
-        return None
-    groups = {"gg": ((0, 1),), "hg": ((0, 1),), "ggg": ((0, 1, 2),), "bcp": ((1, 2),)}[name]
-    return np.asarray(_symmetric(cols.shape, groups)[0])
 
 
 def expand_cols(x, cols: Cols):
@@ -213,8 +205,8 @@ def point_factors(model, params, k, sea):
               sg(gn * jnp.sqrt(jnp.sum(G * G, axis=(-1, -2))))[:, None]]
     def stored(name, x):
         x = x.reshape(nb, -1)
-        pick = _pick(name, dim)
-        return x if pick is None else x[:, pick]
+        pick = _factor_layout(dim, False)[0][name].pick
+        return x if pick is None else x[:, np.asarray(pick)]
 
     parts = [jnp.ones((nb, 1)), stored("gg", gg), gom.reshape(nb, -1), stored("hg", hg),
              stored("ggg", ggg), stored("bcp", bcp), lor.reshape(nb, -1), omv.reshape(nb, -1)] + scales
