@@ -193,14 +193,16 @@ def test_tight_binding_file_against_an_independent_uniform_grid():
     assert abs(ahe - ref["ahe"]) <= ahe_err and ahe_err < 1e-4 * abs(ref["ahe"])
 
 
-def test_level_budget_counts_match_a_plain_numpy_count():
+@pytest.mark.parametrize("extra", [0, 1])
+def test_level_budget_counts_match_a_plain_numpy_count(extra):
     """The compiled per-level count of flagged cells (budget sizing) against the same estimate
-    written out in numpy (one level at a time, energies and speeds from band_geometry)."""
+    written out in numpy (one level at a time, energies and speeds from band_geometry); with a
+    fifth condition the compiled count pads the conditions to 8."""
     from crosswind.models.geometry import band_geometry
     model = build("honeycomb", staggered=0.2, strain_xx=0.01)
     n0, dim = 48, 2
-    mu = np.array([0.25, 0.3, 0.31, 0.6])
-    kt = np.asarray(thermal_energy(np.array([40.0, 10.0, 200.0, 5.0])))
+    mu = np.array([0.25, 0.3, 0.31, 0.6, 0.45][:4 + extra])
+    kt = np.asarray(thermal_energy(np.array([40.0, 10.0, 200.0, 5.0, 20.0][:4 + extra])))
     ktl = 0.02 / 2.0 ** np.arange(8)                   # the last parent is colder than every condition
     got = ld._level_counts(model, model.params, n0, mu, kt, ktl)
     b = np.asarray(model.reciprocal_vectors(model.params))
@@ -221,6 +223,18 @@ def test_level_budget_counts_match_a_plain_numpy_count():
         want.append(float(np.sum(np.max(overlap / (2 * s), axis=-1))) * 2 ** (dim * (lev - 1)))
     assert want[0] > 0 and want[-1] == 0.0          # a level no condition needs counts nothing
     np.testing.assert_allclose(got, want, rtol=1e-9)
+
+
+def test_level_counts_compile_once_per_power_of_two_of_conditions():
+    model = build("haldane")
+    ktl = 0.02 / 2.0 ** np.arange(4)
+    kt = np.asarray(thermal_energy(np.full(7, 20.0)))
+    mu = np.linspace(1.0, 1.3, 7)
+    ld._level_counts(model, model.params, 16, mu[:5], kt[:5], ktl)
+    before = ld._level_fractions._cache_size()
+    for n in (6, 7):
+        ld._level_counts(model, model.params, 16, mu[:n], kt[:n], ktl)
+    assert ld._level_fractions._cache_size() == before
 
 
 def _random_sums_inputs(P, M, nc, seed=0):

@@ -47,8 +47,8 @@ class Moments:
     yet applied), every field with the P conditions in front; the formulas are in the module
     docstring.  Returned by :func:`moments`, :func:`moments_indexed`, the ladder
     (:func:`crosswind.solver.engine.ladder.ladder_moments`), the shared rays
-    (:func:`crosswind.solver.engine.rays.ray_moments`) and the triangles
-    (:func:`crosswind.solver.engine.trimesh.moments_from_tables`).
+    (:func:`crosswind.solver.engine.rays.ray_moments`) and the shells
+    (:func:`crosswind.solver.engine.shells.shell_moments`).
 
     Physics (2D shapes; 3D adds the curvature index c where Ω is a vector):
 

@@ -51,12 +51,7 @@ from scipy.optimize import minimize
 from crosswind.models.geometry import geometry_at
 from crosswind.models.units import KB_EVK as KB
 from crosswind.solver.engine.kernels import Moments, tau_tilde
-from crosswind.solver.engine.occupation import (
-    T_FLOOR,
-    entropy_density,
-    fermi,
-    minus_dfermi,
-)
+from crosswind.solver.engine.occupation import T_FLOOR, occupations
 
 W = 20.0                   # window half-width in k_BT: neglected weight ~ e^-20 ≈ 2e-9
 #: conditions per chunk from which the knot sums also compile the shared-slice form (matrix
@@ -434,8 +429,8 @@ def build_tables(model, params, plan: Plan, mu, kt, sea, chunk=4096):
 
 def _occupations(E, mu, kt):
     """f0, −∂f0/∂ε and s at knot energies E (P, Q) for (mu, kt) (P,)."""
-    M, K = jnp.broadcast_to(mu[:, None], E.shape), jnp.broadcast_to(kt[:, None], E.shape)
-    return {"f0": fermi(E, M, K), "F": minus_dfermi(E, M, K), "s": entropy_density(E, M, K)}
+    f0, F, s = occupations(E, mu[:, None], kt[:, None])
+    return {"f0": f0, "F": F, "s": s}
 
 
 def knot_contract(weight, vals):
@@ -786,6 +781,11 @@ def _level_counts(model, params, n0, mu, kt, ktl):
     fraction of each level-0 cell's energy range [ε − |∇ε|h, ε + |∇ε|h] inside the window of
     level l, times the 2^{d(l−1)} cells of level l−1 in it."""
     ktl = np.asarray(ktl, dtype=float)
+    # conditions padded to a power of two by repeating the last one (a repeated μ changes no
+    # distance): one compiled program for every sweep length in the same bucket
+    mu, kt = np.asarray(mu, dtype=float).ravel(), np.asarray(kt, dtype=float).ravel()
+    pad = _pow2(mu.size, floor=1) - mu.size
+    mu, kt = np.concatenate([mu, np.repeat(mu[-1:], pad)]), np.concatenate([kt, np.repeat(kt[-1:], pad)])
     fracs, anyrel = _level_fractions(model, params, jnp.asarray(mu), jnp.asarray(kt),
                                      jnp.asarray(ktl[:-1]), n0=n0)
     fracs, anyrel = np.asarray(fracs), np.asarray(anyrel)
