@@ -673,6 +673,26 @@ def test_lattice_node_quadrature_at_zero_temperature_is_right_or_says_so():
     assert np.isfinite(float(warm.error.sigma[0, 0]))
 
 
+def test_3d_lattice_at_low_temperature_names_a_temperature_and_a_model_that_work():
+    """A 3D lattice has no low-temperature engine: the warning must not send the user to the
+    ladder (impractical in 3D) but name the temperature from which the level resolves the window
+    (checked: just above it no condition is flagged) and the k·p models that integrate the nodes."""
+    import re
+    m = build("weyl", tilt=0.3)
+    with pytest.warns(RuntimeWarning, match=r"3D lattices have no low-temperature engine") as rec:
+        r = response(m, mu=0.1, temperature=2.0, tau=100.0, resolution=1)
+    msg = str(rec[0].message)
+    assert "weyl-kp" in msg and "engine='shells'" in msg and "Use engine='ladder'" not in msg
+    assert r.resolution.window_unresolved == 1 and np.isposinf(float(r.error.sigma[0, 0]))
+    t_ok = float(re.search(r"from about ([0-9.eE+-]+) K", msg).group(1))
+    assert t_ok > 2.0
+    warm = response(m, mu=0.1, temperature=1.05 * t_ok, tau=100.0, resolution=1)
+    assert warm.resolution.window_unresolved == 0
+    with pytest.warns(RuntimeWarning, match=r"3D lattices have no low-temperature engine"):
+        cool = response(m, mu=0.1, temperature=0.9 * t_ok, tau=100.0, resolution=1)
+    assert cool.resolution.window_unresolved == 1
+
+
 # ------------------------------------------------------------------ bounded memory -----------
 _MEMORY_PROBE = """
 import json, os, resource, sys

@@ -524,6 +524,8 @@ def _mesh_path(model, muf, kt, Tf, tauf, omega, kw, rtol, resolution, max_level,
         info["window_unresolved"] = int(np.sum(w > 1))
         if info["window_unresolved"]:
             info["window_ratio"] = float(np.max(w))
+            # the window scales with k_BT: the temperature from which this level resolves every condition
+            info["_warm_enough"] = float(np.max(np.asarray(kt)[w > 1] * w[w > 1])) / KB_EVK
     return fine, err, bad, info
 
 
@@ -746,7 +748,9 @@ def response(model: BandModel, mu, temperature, tau, frequency=0.0, *, rtol: flo
     (Fermi-sea integrals); ``resolution`` metadata then says ``converged=False``,
     ``window_unresolved`` (the number of such conditions) and ``window_ratio`` (spacing / window,
     largest), and a ``RuntimeWarning`` names the fix: ``engine="ladder"`` (automatic for 2D
-    lattices with ``resolution=None``), a finer level or a higher temperature.  With
+    lattices with ``resolution=None``), a finer level or a higher temperature; for 3D lattices,
+    which have no low-temperature engine yet, the temperature from which the level resolves every
+    window and the k·p models (``engine="shells"``) that integrate the same band touchings.  With
     ``resolution=None`` and ``engine="mesh"`` the level is raised until the window is resolved or
     the finest level is reached.
 
@@ -860,12 +864,23 @@ def response(model: BandModel, mu, temperature, tau, frequency=0.0, *, rtol: flo
         unconverged = tuple(dict.fromkeys(unconverged + ("sigma", "dipole", "chi", "chi_dc")))
         better, kind = (("ladder", "lattices") if isinstance(model.domain, Lattice) else
                         ("rays", "continuum models"))
-        warnings.warn(
-            f"response: at level {info['level']} the node spacing on the Fermi contour is "
-            f"{info['window_ratio']:.3g}x the thermal window (W k_BT/|grad e|) for {info['window_unresolved']} "
-            "of the conditions (low temperature): their Fermi-surface fields are not resolved and carry "
-            f"error = inf. Use engine={better!r} (the default for 2D {kind} with resolution=None), a finer "
-            "resolution, or a higher temperature.", RuntimeWarning, stacklevel=2)
+        head = (f"response: at level {info['level']} the node spacing on the Fermi contour is "
+                f"{info['window_ratio']:.3g}x the thermal window (W k_BT/|grad e|) for {info['window_unresolved']} "
+                "of the conditions (low temperature): their Fermi-surface fields are not resolved and carry "
+                "error = inf. ")
+        if model.dim == 3 and isinstance(model.domain, Lattice):
+            # the ladder is no way out here: its refined shells around a 3D Fermi surface grow 4x per
+            # level (docs/performance.md, 3D lattices)
+            fix = (f"3D lattices have no low-temperature engine yet: from about {info['_warm_enough']:.3g} K "
+                   "this level resolves the window; below that, integrate a k·p model of the same band "
+                   "touchings (e.g. 'weyl-kp' or 'weyl-pair-kp': engine='shells', any temperature). "
+                   "engine='ladder' is not practical in 3D: a Weyl lattice at 30 K ran 14 minutes into 8.6 GiB "
+                   "without finishing.")
+        else:
+            fix = (f"Use engine={better!r} (the default for 2D {kind} with resolution=None), a finer "
+                   "resolution, or a higher temperature.")
+        warnings.warn(head + fix, RuntimeWarning, stacklevel=2)
+    info.pop("_warm_enough", None)
     info.update({"converged": converged, "unconverged_fields": unconverged})
     units = Units(UNITS_2D if model.dim == 2 else UNITS_3D)
     return dataclasses.replace(fine, error=dataclasses.replace(err, units=units), resolution=Resolution(**info),
