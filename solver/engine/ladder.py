@@ -819,9 +819,13 @@ def _level_fractions(model, params, mu, kt, kt_parent, *, n0):
     if m == 2:
         offs = np.stack(np.meshgrid(*([np.array([-0.5, 0.5])] * dim), indexing="ij"), -1).reshape(-1, dim)
         dk = jnp.asarray(offs / n0) @ b                                           # (2^d, d)
-        e = (e[:, None, :] + jnp.einsum("nbd,sd->nsb", g, dk)
-             + 0.5 * jnp.einsum("nbde,sd,se->nsb", h, dk, dk)).reshape(-1, e.shape[-1])
-        g = (g[:, None] + jnp.einsum("nbde,se->nsbd", h, dk)).reshape(-1, g.shape[1], dim)
+        es = e[:, None, :] + jnp.einsum("nbd,sd->nsb", g, dk) + 0.5 * jnp.einsum("nbde,sd,se->nsb", h, dk, dk)
+        gs = g[:, None] + jnp.einsum("nbde,se->nsbd", h, dk)
+        # a point on a band touching may have no finite second derivative: the cells there keep
+        # the corner's own values (a budget estimate only)
+        ok = jnp.isfinite(es) & jnp.all(jnp.isfinite(gs), axis=-1)
+        e = jnp.where(ok, es, e[:, None, :]).reshape(-1, e.shape[-1])
+        g = jnp.where(ok[..., None], gs, g[:, None]).reshape(-1, g.shape[1], dim)
     gn = jnp.sqrt(jnp.sum(g * g, axis=-1))
     s = jnp.maximum(gn * hd0, 1e-12)
 
