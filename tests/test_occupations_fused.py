@@ -36,13 +36,22 @@ def test_values_match_mpmath_to_relative_precision():
                 assert abs(float(got) - want) <= 4e-15 * abs(want), (x, float(got), want)
 
 
-def test_values_equal_the_separate_functions():
-    e = jnp.linspace(-0.3, 0.4, 701)
+def test_energy_scaled_values_match_scipy_closed_forms():
+    """At a realistic k_BT: f0 against scipy's logistic function, −∂f0/∂ε against
+    sech²(x/2)/(4k_BT), s against its definition through scipy's log-logistic; the public
+    single-member functions return the same values."""
+    from scipy.special import expit, log_expit
+    e = np.linspace(-0.3, 0.4, 701)
     mu, kt = 0.05, 8.617e-4
-    f0, F, s = occupations(e, mu, kt)
-    np.testing.assert_allclose(f0, fermi(e, mu, kt), rtol=1e-13, atol=1e-300)
-    np.testing.assert_allclose(F, minus_dfermi(e, mu, kt), rtol=1e-12, atol=1e-300)
-    np.testing.assert_allclose(s, entropy_density(e, mu, kt), rtol=1e-12, atol=1e-300)
+    x = (e - mu) / kt
+    f0, F, s = occupations(jnp.asarray(e), mu, kt)
+    f, g = expit(-x), expit(x)
+    np.testing.assert_allclose(f0, f, rtol=1e-13, atol=0)
+    np.testing.assert_allclose(F, 1.0 / (4 * kt * np.cosh(np.clip(0.5 * x, -300, 300)) ** 2), rtol=1e-12, atol=0)
+    np.testing.assert_allclose(s, -f * log_expit(-x) - g * log_expit(x), rtol=1e-12, atol=0)
+    np.testing.assert_array_equal(fermi(jnp.asarray(e), mu, kt), f0)
+    np.testing.assert_array_equal(minus_dfermi(jnp.asarray(e), mu, kt), F)
+    np.testing.assert_array_equal(entropy_density(jnp.asarray(e), mu, kt), s)
 
 
 @pytest.mark.parametrize("x", [-30.0, -2.0, -1e-12, 0.0, 0.3, 5.0, 40.0])
