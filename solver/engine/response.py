@@ -862,8 +862,6 @@ def response(model: BandModel, mu, temperature, tau, frequency=0.0, *, rtol: flo
         # the thermal window of some condition fell between the nodes: not converged, whatever the level
         converged = False
         unconverged = tuple(dict.fromkeys(unconverged + ("sigma", "dipole", "chi", "chi_dc")))
-        better, kind = (("ladder", "lattices") if isinstance(model.domain, Lattice) else
-                        ("rays", "continuum models"))
         head = (f"response: at level {info['level']} the node spacing on the Fermi contour is "
                 f"{info['window_ratio']:.3g}x the thermal window (W k_BT/|grad e|) for {info['window_unresolved']} "
                 "of the conditions (low temperature): their Fermi-surface fields are not resolved and carry "
@@ -877,6 +875,8 @@ def response(model: BandModel, mu, temperature, tau, frequency=0.0, *, rtol: flo
                    "engine='ladder' is not practical in 3D: a Weyl lattice at 30 K ran 14 minutes into 8.6 GiB "
                    "without finishing.")
         else:
+            better, kind = (("ladder", "lattices") if isinstance(model.domain, Lattice) else
+                            ("rays", "continuum models"))
             fix = (f"Use engine={better!r} (the default for 2D {kind} with resolution=None), a finer "
                    "resolution, or a higher temperature.")
         warnings.warn(head + fix, RuntimeWarning, stacklevel=2)
