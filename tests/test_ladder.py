@@ -196,8 +196,8 @@ def test_tight_binding_file_against_an_independent_uniform_grid():
 @pytest.mark.parametrize("extra,n0", [(0, 48), (1, 48), (0, 288)])
 def test_level_budget_counts_match_a_plain_numpy_count(extra, n0):
     """The compiled per-level count of flagged cells (budget sizing) against the same estimate
-    written out in numpy (one level at a time, energies and speeds from band_geometry) on the
-    grid it uses (level 0 for n0 = 48; from ladder.COUNT_HALF on the n0/2 grid with energies
+    written out in numpy (one level at a time, energies and speeds from band_geometry, the union
+    of the conditions' windows merged interval by interval) on the grid it uses (level 0 for n0 = 48; from ladder.COUNT_HALF on the n0/2 grid with energies
     extrapolated linearly to the level-0 cell centres), and against the count on the level-0 grid
     itself (within 0.1 % here); with a fifth condition the compiled count
     pads the conditions to 8."""
@@ -229,10 +229,16 @@ def test_level_budget_counts_match_a_plain_numpy_count(extra, n0):
             if rel.size == 0:
                 out.append(0.0)
                 continue
-            d = np.min(np.abs(e[..., None] - rel), axis=-1)            # nearest relevant μ
-            R = ld.W * ktl[lev - 1] + ld.SLACK * gn * hd0 / 2 ** (lev - 1)
+            R = ld.W * ktl[lev - 1] + ld.SLACK * gn.max() * hd0 / 2 ** (lev - 1)
+            # the union of the windows [μ − R, μ + R] as disjoint intervals, merged in a plain loop
+            merged = []
+            for m in np.sort(rel):
+                if merged and m - R <= merged[-1][1]:
+                    merged[-1][1] = m + R
+                else:
+                    merged.append([m - R, m + R])
             s = np.maximum(gn * hd0, 1e-12)
-            overlap = np.clip(np.minimum(d + s, R) - np.maximum(d - s, -R), 0.0, 2 * s)
+            overlap = sum(np.clip(np.minimum(e + s, hi) - np.maximum(e - s, lo), 0.0, None) for lo, hi in merged)
             out.append(float(np.sum(np.max(overlap / (2 * s), axis=-1))) * 2 ** (dim * (lev - 1)))
         return out
 
@@ -288,3 +294,26 @@ def test_shared_slice_knot_sums_equal_per_condition_windows(first):
         a = np.asarray(getattr(shared, field))
         b = np.concatenate([np.asarray(getattr(o, field)) for o in own])
         np.testing.assert_allclose(a, b, rtol=1e-11, atol=1e-11 * np.max(np.abs(b)))
+
+
+def test_window_coverage_measures_the_union_of_the_windows():
+    """Length of (−∞, x] inside the union of [μ − R, μ + R] over the relevant conditions, against
+    the intervals merged in a plain loop (overlapping, repeated and isolated μ; conditions not
+    relevant leave no window; none relevant: zero)."""
+    rng = np.random.default_rng(3)
+    mu = np.concatenate([rng.uniform(0.0, 1.0, 12), [0.5, 0.5, 2.0]])
+    relevant = np.ones(mu.size, bool)
+    relevant[[1, 4]] = False
+    R = 0.04
+    x = np.linspace(-0.2, 2.2, 301)
+    merged = []
+    for m in np.sort(mu[relevant]):
+        if merged and m - R <= merged[-1][1]:
+            merged[-1][1] = m + R
+        else:
+            merged.append([m - R, m + R])
+    want = sum(np.clip(x - lo, 0.0, hi - lo) for lo, hi in merged)
+    got = ld.window_coverage(jnp.asarray(x), jnp.asarray(mu), jnp.asarray(relevant), R)
+    np.testing.assert_allclose(np.asarray(got), want, rtol=0, atol=1e-14)
+    none = ld.window_coverage(jnp.asarray(x), jnp.asarray(mu), jnp.zeros(mu.size, bool), R)
+    assert np.all(np.asarray(none) == 0.0)

@@ -238,6 +238,22 @@ def nearest_mu_distance(e, mu, relevant):
     return jnp.minimum(jnp.abs(e - rel[j - 1]), jnp.abs(e - rel[j]))
 
 
+def window_coverage(x, mu, relevant, R):
+    """Length of (−∞, x] ∩ ∪_p [μ_p − R, μ_p + R] over the conditions (P,) marked ``relevant``,
+    for ``x`` of any shape.  With μ sorted, window p adds the new part [max(μ_p − R,
+    μ_{p−1} + R), μ_p + R] to the union of the windows before it; the parts are disjoint and
+    ordered, so the length is their cumulative sum up to x (a bisection) plus the part x falls in."""
+    rel = jnp.sort(jnp.where(relevant, mu, jnp.inf))
+    b = rel + R
+    a = jnp.maximum(rel - R, jnp.concatenate([jnp.full((1,), -jnp.inf), b[:-1]]))
+    length = jnp.where(jnp.isfinite(rel), b - a, 0.0)
+    cum = jnp.concatenate([jnp.zeros((1,)), jnp.cumsum(length)])
+    j = jnp.searchsorted(b, x, side="right")
+    jc = jnp.minimum(j, rel.shape[0] - 1)
+    part = jnp.where(j < rel.shape[0], jnp.clip(x - a[jc], 0.0, length[jc]), 0.0)
+    return cum[j] + part
+
+
 def _deposit(acc, e, f, w, e_lo, delta):
     """Add points (energies ``e`` (N, nb), factors ``f`` (N, nb, nc), weights ``w`` (N,)) to
     ``acc`` = (table (M, nc), below (nc,)).  States below the first knot go to ``below`` (fully
@@ -786,8 +802,8 @@ def _block_gaps_jit(model, params, k):
 
 def _level_counts(model, params, n0, mu, kt, ktl):
     """Expected number of flagged level-(l−1) cells for l = 1..L, from the level-0 grid: the
-    fraction of each level-0 cell's energy range [ε − |∇ε|h, ε + |∇ε|h] inside the window of
-    level l, times the 2^{d(l−1)} cells of level l−1 in it."""
+    fraction of each level-0 cell's energy range [ε − |∇ε|h, ε + |∇ε|h] inside the union of the
+    windows of level l (:func:`window_coverage`), times the 2^{d(l−1)} cells of level l−1 in it."""
     ktl = np.asarray(ktl, dtype=float)
     # conditions padded to a power of two by repeating the last one (a repeated μ changes no
     # distance): one compiled program for every sweep length in the same bucket
@@ -836,13 +852,14 @@ def _level_fractions(model, params, mu, kt, kt_parent, *, n0):
         g = jnp.where(ok[..., None], gs, g[:, None]).reshape(-1, g.shape[1], dim)
     gn = jnp.sqrt(jnp.sum(g * g, axis=-1))
     s = jnp.maximum(gn * hd0, 1e-12)
+    gmax = jnp.max(gn)
 
     def one(args):
         ktp, scale = args
         relevant = kt < ktp
-        d = nearest_mu_distance(e, mu, relevant)
-        R = W * ktp + SLACK * gn * hd0 / scale
-        overlap = jnp.clip(jnp.minimum(d + s, R) - jnp.maximum(d - s, -R), 0.0, 2 * s)
+        # the cell-size reach at the largest speed (a few per cent of the window: a slight overcount)
+        R = W * ktp + SLACK * gmax * hd0 / scale
+        overlap = window_coverage(e + s, mu, relevant, R) - window_coverage(e - s, mu, relevant, R)
         return jnp.sum(jnp.max(overlap / (2 * s), axis=-1)), jnp.any(relevant)
 
     scales = 2.0 ** jnp.arange(kt_parent.shape[0], dtype=jnp.float64)
