@@ -710,10 +710,10 @@ N0_MAX = {2: 768, 3: 96}
 
 
 #: budget of a refined level = BUDGET_SLACK × its expected count of flagged cells (+64, rounded up to
-#: 256).  The counts of :func:`_level_fractions` came within 0.3 % of the cells the run flagged
-#: (honeycomb at 1–10 K and 2 meV above a band edge, Haldane, tmd-lattice; the earlier factor 1.3
-#: left about 23 % of every refined level's points at zero weight); a level that still overflows
-#: is rerun with budgets from the counts it reports
+#: 256).  The counts of :func:`_level_fractions` came 0–2 % above the cells the run flagged
+#: (honeycomb at 1–10 K and 2 meV above a band edge, Haldane, tmd-lattice, sweeps; the earlier
+#: factor 1.3 left about 23 % of every refined level's points at zero weight); a level that still
+#: overflows is rerun with budgets from the counts it reports
 BUDGET_SLACK = 1.1
 
 
