@@ -197,10 +197,10 @@ def test_tight_binding_file_against_an_independent_uniform_grid():
 def test_level_budget_counts_match_a_plain_numpy_count(extra, n0):
     """The compiled per-level count of flagged cells (budget sizing) against the same estimate
     written out in numpy (one level at a time, energies and speeds from band_geometry, the union
-    of the conditions' windows merged interval by interval) on the grid it uses (level 0 for n0 = 48; from ladder.COUNT_HALF on the n0/2 grid with energies
-    extrapolated linearly to the level-0 cell centres), and against the count on the level-0 grid
-    itself (within 0.1 % here); with a fifth condition the compiled count
-    pads the conditions to 8."""
+    of the conditions' windows merged interval by interval) on the grid it uses (level 0 for
+    n0 = 48; from ladder.COUNT_HALF on the n0/2 grid with second-order Taylor energies and
+    gradients at the level-0 cell centres), and against the count on the level-0 grid itself
+    (within 0.1 % here); with a fifth condition the compiled count pads the conditions to 8."""
     from crosswind.models.geometry import band_geometry
     model = build("honeycomb", staggered=0.2, strain_xx=0.01)
     dim = 2
