@@ -193,6 +193,17 @@ def test_tight_binding_file_against_an_independent_uniform_grid():
     assert abs(ahe - ref["ahe"]) <= ahe_err and ahe_err < 1e-4 * abs(ref["ahe"])
 
 
+def _merged_windows(mu, R):
+    """The union of the windows [μ − R, μ + R] as disjoint intervals, merged in a plain loop."""
+    merged = []
+    for m in np.sort(mu):
+        if merged and m - R <= merged[-1][1]:
+            merged[-1][1] = m + R
+        else:
+            merged.append([m - R, m + R])
+    return merged
+
+
 @pytest.mark.parametrize("extra,n0", [(0, 48), (1, 48), (0, 288)])
 def test_level_budget_counts_match_a_plain_numpy_count(extra, n0):
     """The compiled per-level count of flagged cells (budget sizing) against the same estimate
@@ -230,13 +241,7 @@ def test_level_budget_counts_match_a_plain_numpy_count(extra, n0):
                 out.append(0.0)
                 continue
             R = ld.W * ktl[lev - 1] + ld.SLACK * gn.max() * hd0 / 2 ** (lev - 1)
-            # the union of the windows [μ − R, μ + R] as disjoint intervals, merged in a plain loop
-            merged = []
-            for m in np.sort(rel):
-                if merged and m - R <= merged[-1][1]:
-                    merged[-1][1] = m + R
-                else:
-                    merged.append([m - R, m + R])
+            merged = _merged_windows(rel, R)
             s = np.maximum(gn * hd0, 1e-12)
             overlap = sum(np.clip(np.minimum(e + s, hi) - np.maximum(e - s, lo), 0.0, None) for lo, hi in merged)
             out.append(float(np.sum(np.max(overlap / (2 * s), axis=-1))) * 2 ** (dim * (lev - 1)))
@@ -306,12 +311,7 @@ def test_window_coverage_measures_the_union_of_the_windows():
     relevant[[1, 4]] = False
     R = 0.04
     x = np.linspace(-0.2, 2.2, 301)
-    merged = []
-    for m in np.sort(mu[relevant]):
-        if merged and m - R <= merged[-1][1]:
-            merged[-1][1] = m + R
-        else:
-            merged.append([m - R, m + R])
+    merged = _merged_windows(mu[relevant], R)
     want = sum(np.clip(x - lo, 0.0, hi - lo) for lo, hi in merged)
     got = ld.window_coverage(jnp.asarray(x), jnp.asarray(mu), jnp.asarray(relevant), R)
     np.testing.assert_allclose(np.asarray(got), want, rtol=0, atol=1e-14)
