@@ -15,7 +15,7 @@ Names and units of every knob and field: :mod:`crosswind.solver.vocabulary`.  Im
 package (like ``crosswind.models``) switches JAX to 64-bit floats process-wide.
 """
 import crosswind.models  # noqa: F401  (float64 and the compilation cache, models/runtime.py)
-from crosswind.solver.engine.density import gate_density, mu_from_density
+from crosswind.solver.engine.density import gate_density, mu_from_density, response_at_density
 from crosswind.solver.engine.response import Response, response
 from crosswind.solver.engine.scattering import ConstantTau, MatthiessenTau, PowerLawTau
 from crosswind.solver.engine.sensitivity import sensitivities, sensitivity_table
@@ -24,5 +24,5 @@ from crosswind.solver.fitting.fit import FitResult, fit, scaling_fit
 from crosswind.solver.fitting.measurements import load_measurements
 
 __all__ = ["ConstantTau", "FitResult", "MatthiessenTau", "PowerLawTau", "Response", "chern_number", "fit",
-           "gate_density", "load_measurements", "mu_from_density", "response", "scaling_fit", "sensitivities",
-           "sensitivity_table"]
+           "gate_density", "load_measurements", "mu_from_density", "response", "response_at_density",
+           "scaling_fit", "sensitivities", "sensitivity_table"]

@@ -10,6 +10,8 @@ Mott, Phys. Rev. 181, 1336 (1969); anomalous Nernst effect and its Mott relation
 Fang, Niu, PRL 97, 026603 (2006).  Check numbers (#n) refer to the check-value table of
 docs/theory.md.
 """
+import warnings
+
 import jax
 import jax.numpy as jnp
 import numpy as np
@@ -19,7 +21,8 @@ from scipy import integrate
 from scipy.special import expit, log_expit
 
 from crosswind.models import build
-from crosswind.solver import mu_from_density, response
+from crosswind.solver import mu_from_density, response, response_at_density
+from crosswind.solver.engine import density as density_module
 from crosswind.solver.engine.occupation import entropy_density, fermi, minus_dfermi
 
 KB = sc.k / sc.e                                   # eV/K
@@ -272,6 +275,79 @@ def test_mu_from_density_massive_dirac_band_edges_and_gap():
                     for ni, ti in zip(n, T)])
     assert np.all(np.abs(ref[48:52]) < 0.1)                   # 150 K, ~10¹⁰ cm⁻²: μ in the gap
     np.testing.assert_allclose(mus, ref, rtol=0, atol=1e-9)
+
+
+def test_response_at_density_massive_dirac_against_the_energy_quadrature_root():
+    """μ of the response's own n(μ) (shared rays) against the brentq root of the energy-quadrature
+    density: 1 K just above the band edge (10¹⁰ cm⁻²: the rays' density carries a per-cent error
+    there, so the root falls back to the node mesh placed at μ), deep in the bands, 10 K, and 150 K
+    with μ in the gap.  Every μ within MU_SHARE·rtol·max(k_BT, MU_FLOOR) of the reference (the
+    documented acceptance), and the returned response is the one at the returned μ."""
+    from scipy.optimize import brentq
+    m = build("massive-dirac", velocity=5e5, mass=0.1)
+    dens = np.array([1e14, 1e15, 5e16])
+    n = np.concatenate([dens, -dens] * 3)
+    T = np.repeat([1.0, 10.0, 150.0], 6)
+    mu, r = response_at_density(m, n, T, TAU)
+    ref = np.array([brentq(lambda x, ni=ni, ti=ti: _dirac_density(x, ti) - ni, -0.5, 0.5, xtol=1e-14)
+                    for ni, ti in zip(n, T)])
+    assert np.all(np.abs(ref[12:14]) < 0.1)                   # 150 K, 10¹⁰ cm⁻²: μ in the gap
+    tol = density_module.MU_SHARE * 1e-3 * np.maximum(KB * T, density_module.MU_FLOOR)
+    assert np.all(np.abs(mu - ref) <= tol), np.abs(mu - ref) / tol
+    again = response(m, mu=mu, temperature=T, tau=TAU)
+    np.testing.assert_allclose(np.asarray(r.density), np.asarray(again.density), rtol=1e-12)
+    np.testing.assert_allclose(np.asarray(r.sigma), np.asarray(again.sigma), rtol=1e-12)
+    assert r.resolution.engine == "rays" and r.density.shape == n.shape
+
+
+def _honeycomb_pocket_density(model, mu, n_theta=96):
+    """T = 0 electron density (m⁻², degeneracy applied) of the K/K′ conduction pockets of the
+    honeycomb model below μ: the enclosed areas ½∮r(θ)²dθ (trapezoid in θ, spectral for a smooth
+    contour) with r(θ) from brentq on the plain-numpy band energies (validation/fermi_contour.py)."""
+    from scipy.optimize import brentq
+
+    from validation.fermi_contour import BandEvaluator, band_extremum
+    ev = BandEvaluator(model)
+    b = np.asarray(model.reciprocal_vectors())
+    k = (b[0] - b[1]) / 3.0
+    th = 2 * np.pi * np.arange(n_theta) / n_theta
+    u = np.stack([np.cos(th), np.sin(th)], axis=1)
+    area = 0.0
+    for s in (1, -1):
+        c = band_extremum(model, s * k, 1, "min", ev)
+        band = lambda r, j: ev.energies((c + r * u[j])[None])[0, 1] - mu      # noqa: E731
+        rs = np.array([brentq(band, 0.0, 0.2, args=(j,), xtol=1e-15) for j in range(n_theta)])
+        area += 0.5 * np.sum(rs ** 2) * (2 * np.pi / n_theta)
+    return model.degeneracy * area / (2 * np.pi) ** 2 * 1e20
+
+
+@pytest.mark.slow                 # ≈ 40 s: the ladder at 2 K, several plans compiled
+def test_response_at_density_honeycomb_pocket_at_2K():
+    """Gapped strained honeycomb, 10¹² cm⁻² at 2 K: the root of the ladder's n(μ) against the
+    pocket areas of an independent contour reference (T = 0, plus the Sommerfeld term
+    (π²/6)(k_BT)²n''(μ), common practice).  The uniform level-1 mesh of ``mu_from_density`` does not
+    resolve this pocket: its root was 2.4× off in density (docs/performance.md)."""
+    m = build("honeycomb", staggered=0.2, strain_xx=0.01)
+    n_t, T = 1e16, 2.0
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")            # the root is certain to MU_SHARE·rtol·k_BT
+        mu, r = response_at_density(m, n_t, T, TAU)
+    mu = float(mu)
+    h = 2e-4
+    n0, np_, nm = (_honeycomb_pocket_density(m, mu + d) for d in (0.0, h, -h))
+    sommerfeld = np.pi ** 2 / 6 * (KB * T) ** 2 * (np_ - 2 * n0 + nm) / h ** 2
+    assert abs(n0 + sommerfeld - n_t) <= 2 * float(r.error.density) + 2e-6 * n_t, (n0 + sommerfeld) / n_t - 1
+    assert abs(float(r.density) - n_t) <= 2 * float(r.error.density)
+    assert r.resolution.engine == "ladder" and r.resolution.converged
+
+
+def test_response_at_density_refuses_a_fixed_mesh_and_3d_models_naming_the_fix():
+    m = build("massive-dirac")
+    with pytest.raises(ValueError, match=r"the root follows the automatic engine and resolution; for a fixed "
+                                         r"mesh use mu_from_density\(model, density, temperature, resolution=\.\.\.\)"):
+        response_at_density(m, 1e16, 10.0, TAU, resolution=1)
+    with pytest.raises(ValueError, match=r"2D models only \('weyl-kp' is 3D\); use mu_from_density"):
+        response_at_density(build("weyl-kp"), 1e24, 10.0, TAU)
 
 
 # --------------------------------------------------------------------------------------------

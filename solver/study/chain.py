@@ -1,6 +1,8 @@
 """The one evaluation chain: a scenario's knobs → a device reading.
 
-    gate voltage → carrier density (parallel plate) → μ (:func:`~crosswind.solver.engine.density.mu_from_density`)
+    gate voltage → carrier density (parallel plate) → μ (:func:`~crosswind.solver.engine.density.mu_from_density`
+      at a fixed mesh level; with automatic resolution in 2D the root of the response's own n(μ),
+      :func:`~crosswind.solver.engine.density.response_at_density`)
       → relaxation time (the scenario's scattering kind) → :func:`~crosswind.solver.engine.response.response`
       → Hall-bar readings (:func:`~crosswind.solver.engine.device.hall_bar`)
 
@@ -28,7 +30,7 @@ import numpy as np
 from scipy import constants
 
 from crosswind.models.strain import uniaxial
-from crosswind.solver.engine.density import mu_from_density, parallel_plate_capacitance
+from crosswind.solver.engine.density import mu_from_density, parallel_plate_capacitance, response_at_density
 from crosswind.solver.engine.device import (
     HallBar,
     HallBarReading,
@@ -40,6 +42,7 @@ from crosswind.solver.engine.device import (
     rotate_sigma,
     with_photo,
 )
+from crosswind.solver.engine.inputs import is_traced
 from crosswind.solver.engine.response import Response, response
 from crosswind.solver.engine.scattering import ConstantTau, MatthiessenTau, PowerLawTau
 from crosswind.solver.pytrees import pytree_dataclass
@@ -127,6 +130,9 @@ def evaluate(scn, values: dict, *, resolution: int | None, rtol: float = 1e-3, i
     P = int(np.prod(shape)) if shape else 1
     flat = lambda x: jnp.broadcast_to(x, shape).reshape(P)
     temperature = flat(v["temperature_K"])
+    tau = _SCATTERING_CLASS[scn.scattering](*[flat(v[k]) for k in SCATTERING[scn.scattering]])
+    opts = dict(rtol=rtol, intrinsic=scn.numerics.intrinsic if intrinsic is None else intrinsic)
+    r = None
     if scn.carrier == "mu_eV":
         mu = flat(v["mu_eV"])
     else:
@@ -134,11 +140,17 @@ def evaluate(scn, values: dict, *, resolution: int | None, rtol: float = 1e-3, i
             density = gate_capacitance(scn.device) * (flat(v["gate_V"]) - v["gate_offset_V"]) / constants.e
         else:
             density = flat(v["density_cm2"]) * 1e4
-        mu = mu_from_density(model, density, temperature, resolution=scn.numerics.density_resolution)
-    tau = _SCATTERING_CLASS[scn.scattering](*[flat(v[k]) for k in SCATTERING[scn.scattering]])
-    r = response(model, mu=mu, temperature=temperature, tau=tau, frequency=scn.device.frequency_Hz,
-                 resolution=resolution, rtol=rtol, estimate_error=estimate_error,
-                 intrinsic=scn.numerics.intrinsic if intrinsic is None else intrinsic)
+        if resolution is None and model.dim == 2 and not is_traced(density, temperature, model.params):
+            # automatic resolution: μ is the root of the response's own n(μ) (resolved at any T),
+            # and the response at that root comes with it
+            mu, r = response_at_density(model, density, temperature, tau, scn.device.frequency_Hz,
+                                        start_resolution=scn.numerics.density_resolution, **opts)
+            mu = jnp.asarray(mu)
+        else:
+            mu = mu_from_density(model, density, temperature, resolution=scn.numerics.density_resolution)
+    if r is None:
+        r = response(model, mu=mu, temperature=temperature, tau=tau, frequency=scn.device.frequency_Hz,
+                     resolution=resolution, estimate_error=estimate_error, **opts)
 
     angle = v["current_angle_deg"]
     angle = angle.reshape(P, -1) if angle.ndim == 2 else flat(angle)[:, None]
