@@ -326,7 +326,7 @@ def test_response_at_density_honeycomb_pocket_at_2K():
     """Gapped strained honeycomb, 10¹² cm⁻² at 2 K: the root of the ladder's n(μ) against the
     pocket areas of an independent contour reference (T = 0, plus the Sommerfeld term
     (π²/6)(k_BT)²n''(μ), common practice).  The uniform level-1 mesh of ``mu_from_density`` does not
-    resolve this pocket: its root was 2.4× off in density (docs/performance.md)."""
+    resolve this pocket: its root gave 3.4× the target density (docs/performance.md)."""
     m = build("honeycomb", staggered=0.2, strain_xx=0.01)
     n_t, T = 1e16, 2.0
     with warnings.catch_warnings():

@@ -216,7 +216,7 @@ def response_at_density(model: BandModel, density, temperature, tau, frequency=0
 
     The root is that of the engine's own n(μ), resolved to its rtol at any temperature, whereas the
     uniform mesh of :func:`mu_from_density` resolves a Fermi pocket only to its node spacing (at
-    2 K and 10¹² cm⁻² in gapped graphene its level-1 root was 2.4× off in density).  Steps: a start
+    2 K and 10¹² cm⁻² in gapped graphene its level-1 root gave 3.4× the target density).  Steps: a start
     on band energies computed once (the first phase of :func:`mu_from_density` at
     ``start_resolution``); safeguarded Newton steps μ ← μ − (n(μ) − n_target)/(∂n/∂μ), with n and
     ∂n/∂μ = ``r.dos`` from each call (bisection of the bracket the signs of n − n_target have left
