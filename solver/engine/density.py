@@ -249,7 +249,6 @@ def response_at_density(model: BandModel, density, temperature, tau, frequency=0
     t_f = np.broadcast_to(np.asarray(temperature, dtype=float), shape).reshape(-1)
     mu = np.asarray(_start_mu(model, jnp.asarray(n_t), jnp.asarray(t_f), jnp.asarray(float(lo)),
                               jnp.asarray(float(hi)), resolution=start_resolution, iterations=60))
-    a, b = np.full(mu.shape, float(lo)), np.full(mu.shape, float(hi))
     flat = lambda x: np.asarray(x).reshape(-1)
 
     def call(fixed):
@@ -259,8 +258,10 @@ def response_at_density(model: BandModel, density, temperature, tau, frequency=0
 
     def newton(fixed, calls, floor):
         """Up to ``calls`` calls; returns the last call, its residual and the converged mask (μ
-        stays that of the last call)."""
+        stays that of the last call).  The bracket starts afresh: the coarse and the automatic
+        n(μ) differ by their errors, so signs from one need not bracket the root of the other."""
         nonlocal mu
+        a, b = np.full(mu.shape, float(lo)), np.full(mu.shape, float(hi))
         for i in range(calls):
             r = call(fixed)
             dn = flat(r.density) - n_t
@@ -268,8 +269,8 @@ def response_at_density(model: BandModel, density, temperature, tau, frequency=0
             done = (np.abs(dn) <= np.maximum(floor(r), dos * ROOT_TOL)) | (dn == 0)
             if done.all() or i == calls - 1:
                 return r, dn, done
-            a[:] = np.where(dn < 0, np.maximum(a, mu), a)
-            b[:] = np.where(dn > 0, np.minimum(b, mu), b)
+            a = np.where(dn < 0, np.maximum(a, mu), a)
+            b = np.where(dn > 0, np.minimum(b, mu), b)
             new = mu - dn / np.where(dos > 0, dos, np.inf)
             new = np.where((dos > 0) & (new > a) & (new < b), new, 0.5 * (a + b))
             mu = np.where(done, mu, new)
