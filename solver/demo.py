@@ -8,7 +8,8 @@ along x, where the nonlinear Hall voltage is largest.  Scattering: impurities pl
 (Matthiessen's rule), so the temperature sweep also changes τ and feeds the scaling plot.  The
 sweep (12 gate voltages × 3 temperatures, one batch of 36 points) runs with automatic resolution
 (the shared-ray engine of docs/theory.md §14.3: one ray set for all conditions, converged to rtol
-1e-3) and μ from the gate density on mesh level 1.
+1e-3) and μ from the gate density as the root of that engine's own n(μ) (started on mesh level 1;
+docs/theory.md §11).
 """
 from pathlib import Path
 
