@@ -201,7 +201,7 @@ ROOT_TOL = 1e-9
 #: MU_FLOOR eV): a field varying on the scale k_BT then moves by at most half of rtol
 MU_SHARE = 0.5
 MU_FLOOR = 1e-5
-COARSE_RTOL = 1e-6
+COARSE_RTOL = 1e-4
 COARSE_CALLS = 8
 ROOT_CALLS = 4
 
@@ -221,7 +221,7 @@ def response_at_density(model: BandModel, density, temperature, tau, frequency=0
     ``start_resolution``); safeguarded Newton steps μ ← μ − (n(μ) − n_target)/(∂n/∂μ), with n and
     ∂n/∂μ = ``r.dos`` from each call (bisection of the bracket the signs of n − n_target have left
     where a step would leave it), first with the engine at its coarsest resolution until n is
-    within ``COARSE_RTOL`` of the target, then with the automatic response until
+    within ``COARSE_RTOL`` of the target (and one step more), then with the automatic response until
     |n − n_target| is below twice that call's own density error estimate (its n(μ) is known to
     that estimate only: the plan follows μ) or the change of n over ``ROOT_TOL`` of μ
     (docs/theory.md §11).  The last call is returned: its density is the target.
@@ -256,10 +256,11 @@ def response_at_density(model: BandModel, density, temperature, tau, frequency=0
         return response(model, mu=jnp.asarray(mu.reshape(shape)), temperature=jnp.asarray(t_f.reshape(shape)),
                         tau=tau, frequency=frequency, **kw)
 
-    def newton(fixed, calls, floor):
-        """Up to ``calls`` calls; returns the last call, its residual and the converged mask (μ
-        stays that of the last call).  The bracket starts afresh: the coarse and the automatic
-        n(μ) differ by their errors, so signs from one need not bracket the root of the other."""
+    def newton(fixed, calls, floor, polish):
+        """Up to ``calls`` calls; returns the last call, its residual and the converged mask.  μ
+        stays that of the last call, or (``polish``) takes one more Newton step from it, for every
+        condition.  The bracket starts afresh: the coarse and the automatic n(μ) differ by their
+        errors, so signs from one need not bracket the root of the other."""
         nonlocal mu
         a, b = np.full(mu.shape, float(lo)), np.full(mu.shape, float(hi))
         for i in range(calls):
@@ -267,18 +268,22 @@ def response_at_density(model: BandModel, density, temperature, tau, frequency=0
             dn = flat(r.density) - n_t
             dos = flat(r.dos) * _c.e                              # ∂n/∂μ in m^-2 per eV
             done = (np.abs(dn) <= np.maximum(floor(r), dos * ROOT_TOL)) | (dn == 0)
-            if done.all() or i == calls - 1:
+            last = done.all() or i == calls - 1
+            if last and not polish:
                 return r, dn, done
             a = np.where(dn < 0, np.maximum(a, mu), a)
             b = np.where(dn > 0, np.minimum(b, mu), b)
             new = mu - dn / np.where(dos > 0, dos, np.inf)
-            new = np.where((dos > 0) & (new > a) & (new < b), new, 0.5 * (a + b))
-            mu = np.where(done, mu, new)
+            ok = (dos > 0) & (new > a) & (new < b)
+            new = np.where(ok, new, np.where(done, mu, 0.5 * (a + b)))
+            mu = np.where(done & ~last, mu, new)
+            if last:
+                return r, dn, done
 
-    newton(True, COARSE_CALLS, lambda r: COARSE_RTOL * np.abs(n_t))
-    # the automatic call's n(μ) is known to its error estimate only (the plan follows μ): a residual
-    # within twice the estimate is a root to that accuracy
-    r, dn, done = newton(False, ROOT_CALLS, lambda r: 2 * np.nan_to_num(flat(r.error.density), nan=0.0))
+    # coarse steps until n is within COARSE_RTOL, then one more step: the automatic call starts
+    # within the difference of the two resolutions' n(μ) of its root (for the rays: its estimate)
+    newton(True, COARSE_CALLS, lambda r: COARSE_RTOL * np.abs(n_t), True)
+    r, dn, done = newton(False, ROOT_CALLS, lambda r: 2 * np.nan_to_num(flat(r.error.density), nan=0.0), False)
     # the root is known to δμ = (|n − n_target| + error estimate)/(∂n/∂μ); where that is not small
     # against k_BT (a pocket a few k_BT deep at T -> 0, where the engine's density carries a
     # relative error of a per cent), a continuum model takes μ from the node mesh placed at each
