@@ -11,9 +11,10 @@ import numpy as np
 import pytest
 from scipy import constants
 
+from crosswind.solver import mu_from_density
 from crosswind.solver.fitting.scenario_fit import predictor
 from crosswind.solver.study.chain import ChainResult, evaluate, gate_capacitance
-from crosswind.solver.study.knobs import base_values
+from crosswind.solver.study.knobs import base_model, base_values
 from crosswind.solver.study.scenario import parse_scenario
 from crosswind.solver.study.sweep import run_scenario
 
@@ -98,6 +99,27 @@ def test_the_chain_returns_typed_results_and_solves_the_gate_density(swept):
     n = np.asarray(out.response.density)
     np.testing.assert_allclose(n, cap * (np.array([20.0, 50.0]) - 1.5) / constants.e, rtol=1e-9)
     np.testing.assert_allclose(out.mu, ds["mu"].sel(temperature_K=5.0, gate_V=[20.0, 50.0]).values.ravel(), rtol=1e-12)
+
+
+def test_automatic_resolution_takes_mu_from_the_responses_own_density(swept):
+    """With resolution=None the chain solves the gate density on the response engine itself
+    (density.response_at_density): its density is the gate's to the acceptance of that root (twice
+    its error estimate, or the change of n over ROOT_TOL of μ), and μ agrees with the root on the
+    node mesh placed at each μ (accurate for this continuum model) to MU_SHARE·rtol·k_BT."""
+    from crosswind.solver.engine import density as dm
+    scn, _ = swept
+    gates, T = np.array([20.0, 50.0]), 5.0
+    knobs = base_values(scn, {"gate_V": gates, "temperature_K": T})
+    out = evaluate(scn, knobs, resolution=None)
+    r = out.response
+    assert r.resolution.engine == "rays" and r.resolution.converged
+    target = gate_capacitance(scn.device) * (gates - 1.5) / constants.e
+    dn = np.abs(np.asarray(r.density) - target)
+    accept = np.maximum(2 * np.asarray(r.error.density), np.asarray(r.dos) * constants.e * dm.ROOT_TOL)
+    assert np.all(dn <= accept), dn / accept
+    node = np.asarray(mu_from_density(base_model(scn), target, T, resolution=1))
+    kt = constants.k * T / constants.e
+    assert np.all(np.abs(np.asarray(out.mu) - node) <= dm.MU_SHARE * 1e-3 * kt), np.abs(np.asarray(out.mu) - node)
 
 
 def test_angles_as_a_trailing_axis_rotate_the_same_tensors(swept):
