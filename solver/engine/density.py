@@ -202,6 +202,8 @@ ROOT_TOL = 1e-9
 MU_SHARE = 0.5
 MU_FLOOR = 1e-5
 COARSE_RTOL = 1e-4
+#: the lowest mesh level of a lattice's start grid (energies only; see response_at_density)
+START_LATTICE = 4
 COARSE_CALLS = 8
 ROOT_CALLS = 4
 
@@ -216,15 +218,15 @@ def response_at_density(model: BandModel, density, temperature, tau, frequency=0
 
     The root is that of the engine's own n(μ), resolved to its rtol at any temperature, whereas the
     uniform mesh of :func:`mu_from_density` resolves a Fermi pocket only to its node spacing (at
-    2 K and 10¹² cm⁻² in gapped graphene its level-1 root gave 3.4× the target density).  Steps: a start
-    on band energies computed once (the first phase of :func:`mu_from_density` at
-    ``start_resolution``); safeguarded Newton steps μ ← μ − (n(μ) − n_target)/(∂n/∂μ), with n and
-    ∂n/∂μ = ``r.dos`` from each call (bisection of the bracket the signs of n − n_target have left
-    where a step would leave it), first with the engine at its coarsest resolution until n is
-    within ``COARSE_RTOL`` of the target (and one step more), then with the automatic response until
-    |n − n_target| is below twice that call's own density error estimate (its n(μ) is known to
-    that estimate only: the plan follows μ) or the change of n over ``ROOT_TOL`` of μ
-    (docs/theory.md §11).  The last call is returned: its density is the target.
+    2 K and 10¹² cm⁻² in gapped graphene its level-1 root gave 3.4× the target density).  Steps: a
+    start on band energies computed once (the first phase of :func:`mu_from_density` at
+    ``start_resolution``, for a lattice at least ``START_LATTICE``); safeguarded Newton steps
+    μ ← μ − (n(μ) − n_target)/(∂n/∂μ), with n and ∂n/∂μ = ``r.dos`` from each call (bisection of
+    the bracket the signs of n − n_target have left where a step would leave it), first with the
+    engine at its coarsest resolution until n is within ``COARSE_RTOL`` of the target (and one step
+    more), then with the automatic response until |n − n_target| is below twice that call's own
+    density error estimate (its n(μ) is known to that estimate only: the plan follows μ) or the
+    change of n over ``ROOT_TOL`` of μ (docs/theory.md §11).  The last call is returned: its density is the target.
 
     The root is then known to δμ = (|n − n_target| + error estimate)/(∂n/∂μ).  Where δμ exceeds
     ``MU_SHARE``·rtol·max(k_BT, ``MU_FLOOR``) (a pocket a few k_BT deep near T → 0, where the
@@ -247,8 +249,11 @@ def response_at_density(model: BandModel, density, temperature, tau, frequency=0
     shape = np.broadcast_shapes(np.shape(density), np.shape(temperature))
     n_t = np.broadcast_to(np.asarray(density, dtype=float), shape).reshape(-1)
     t_f = np.broadcast_to(np.asarray(temperature, dtype=float), shape).reshape(-1)
+    # a lattice's uniform start grid must see small pockets: level 1 (48² points on the honeycomb
+    # zone) holds 0.3 points of a 10¹² cm⁻² pocket around K on average, level START_LATTICE (384²) 20
+    start = start_resolution if engine == "rays" else max(start_resolution, START_LATTICE)
     mu = np.asarray(_start_mu(model, jnp.asarray(n_t), jnp.asarray(t_f), jnp.asarray(float(lo)),
-                              jnp.asarray(float(hi)), resolution=start_resolution, iterations=60))
+                              jnp.asarray(float(hi)), resolution=start, iterations=60))
     flat = lambda x: np.asarray(x).reshape(-1)
 
     def call(fixed):
