@@ -297,7 +297,7 @@ def response_at_density(model: BandModel, density, temperature, tau, frequency=0
     err = np.nan_to_num(flat(r.error.density), nan=0.0)
     dmu = (np.abs(dn) + err) / np.where(dos > 0, dos, np.nan)
     rtol = options.get("rtol", 1e-3)
-    loose = ~(dmu <= MU_SHARE * rtol * np.maximum(thermal_energy(t_f), MU_FLOOR)) | ~done
+    loose = ~(dmu <= MU_SHARE * rtol * np.maximum(np.asarray(thermal_energy(t_f)), MU_FLOOR)) | ~done
     if loose.any() and engine == "rays":
         mu = mu.copy()
         mu[loose] = np.asarray(mu_from_density(model, n_t[loose], t_f[loose], bracket=bracket,
