@@ -13,10 +13,11 @@ from scipy import constants
 
 from crosswind.solver import mu_from_density
 from crosswind.solver.fitting.scenario_fit import predictor
-from crosswind.solver.study.chain import ChainResult, evaluate, gate_capacitance
+from crosswind.solver.study.chain import _SCATTERING_CLASS, ChainResult, evaluate, gate_capacitance
 from crosswind.solver.study.knobs import base_model, base_values
 from crosswind.solver.study.scenario import parse_scenario
 from crosswind.solver.study.sweep import run_scenario
+from crosswind.solver.vocabulary import SCATTERING
 
 SCN = """
 [material]
@@ -102,10 +103,10 @@ def test_the_chain_returns_typed_results_and_solves_the_gate_density(swept):
 
 
 def test_automatic_resolution_takes_mu_from_the_responses_own_density(swept):
-    """With resolution=None the chain solves the gate density on the response engine itself
-    (density.response_at_density): its density is the gate's to the acceptance of that root (twice
-    its error estimate, or the change of n over ROOT_TOL of μ), and μ agrees with the root on the
-    node mesh placed at each μ (accurate for this continuum model) to MU_SHARE·rtol·k_BT."""
+    """With resolution=None the chain solves the gate density on the response engine itself: its μ
+    and response are those of density.response_at_density at the gate density (not of the node
+    mesh root followed by a response), and μ agrees with the root on the node mesh placed at each
+    μ (accurate for this continuum model) to MU_SHARE·rtol·k_BT."""
     from crosswind.solver.engine import density as dm
     scn, _ = swept
     gates, T = np.array([20.0, 50.0]), 5.0
@@ -114,10 +115,13 @@ def test_automatic_resolution_takes_mu_from_the_responses_own_density(swept):
     r = out.response
     assert r.resolution.engine == "rays" and r.resolution.converged
     target = gate_capacitance(scn.device) * (gates - 1.5) / constants.e
-    dn = np.abs(np.asarray(r.density) - target)
-    accept = np.maximum(2 * np.asarray(r.error.density), np.asarray(r.dos) * constants.e * dm.ROOT_TOL)
-    assert np.all(dn <= accept), dn / accept
-    node = np.asarray(mu_from_density(base_model(scn), target, T, resolution=1))
+    model = base_model(scn)
+    tau = _SCATTERING_CLASS[scn.scattering](*[knobs[k] for k in SCATTERING[scn.scattering]])
+    mu_root, r_root = dm.response_at_density(model, target, np.full(2, T), tau, scn.device.frequency_Hz,
+                                             start_resolution=scn.numerics.density_resolution)
+    np.testing.assert_allclose(np.asarray(out.mu), mu_root, rtol=1e-13)
+    np.testing.assert_allclose(np.asarray(r.sigma), np.asarray(r_root.sigma), rtol=1e-12)
+    node = np.asarray(mu_from_density(model, target, T, resolution=1))
     kt = constants.k * T / constants.e
     assert np.all(np.abs(np.asarray(out.mu) - node) <= dm.MU_SHARE * 1e-3 * kt), np.abs(np.asarray(out.mu) - node)
 
