@@ -662,6 +662,14 @@ def ladder_moments(model, params, plan: Plan, mu, kt, temp, tau_eval, tau_arr, o
     ``(fine, coarse, extrapolation_error, info)``; conditions are processed in chunks of
     ``condition_chunk`` (memory bounded for any number of conditions)."""
     levels, info = build_tables(model, params, plan, mu, kt, sea, chunk)
+    return moments_from_tables(levels, info, plan, mu, kt, temp, tau_eval, tau_arr, omega, filled, sea,
+                               condition_chunk)
+
+
+def moments_from_tables(levels, info, plan, mu, kt, temp, tau_eval, tau_arr, omega, filled, sea,
+                        condition_chunk=128):
+    """:func:`ladder_moments` from tables already built (also those of
+    :mod:`crosswind.solver.engine.tetra`)."""
     P = mu.shape[0]
     cc = min(condition_chunk, P)
     nch = _chunks(P, cc)

@@ -64,6 +64,7 @@ from crosswind.solver.engine import ladder as _ladder
 from crosswind.solver.engine import mesh as _mesh
 from crosswind.solver.engine import rays as _rays
 from crosswind.solver.engine import shells as _shells
+from crosswind.solver.engine import tetra as _tetra
 from crosswind.solver.engine.inputs import check_arguments
 from crosswind.solver.engine.kernels import Moments, moments, moments_indexed
 from crosswind.solver.engine.memory import budget_bytes, condition_block
@@ -567,6 +568,55 @@ def _ladder_path(model, muf, kt, Tf, tauf, omega, kw, rtol, resolution, max_leve
     return fine, err, bad, info
 
 
+@partial(jax.jit, static_argnames=("meta", "tau_eval", "filled", "sea"))
+def _tetra_at(model, mu, kt, temp, tau_arr, omega, arrays, *, meta, tau_eval, filled, sea):
+    tau_col = jax.tree_util.tree_map(lambda a: a[:, None], tau_arr)
+    f, c, ex, info = _tetra.tetra_moments(model, model.params, meta, arrays, mu, kt, temp, tau_eval, tau_col,
+                                          omega, filled, sea)
+    return f, c, ex, info["overflow"]
+
+
+def _tetra_path(model, muf, kt, Tf, tauf, omega, kw, rtol, resolution, max_level, intrinsic, plan,
+                traced, tau_max):
+    """Linear tetrahedra on refined cells (:mod:`crosswind.solver.engine.tetra`, 3D lattices): one
+    program per resolution computes the fine and the nested coarse sums for every condition."""
+    if not (isinstance(model.domain, Lattice) and model.dim == 3):
+        raise ValueError("response: engine='tetra' integrates 3D lattice models; use engine='ladder' for "
+                         "2D lattices and 'rays' or 'shells' for continuum (k·p) models")
+    nres = len(_tetra.RESOLUTIONS)
+    if traced and plan is None:
+        raise ValueError("response: with engine='tetra' under jax.grad/jit pass plan=..., the plan of "
+                         "a concrete call: response(...).resolution.plan")
+
+    def run(lev, given):
+        pl = given if given is not None else _tetra.make_plan(model, model.params, muf, Tf, lev)
+        f, c, ex, over = _tetra_at(model, muf, kt, Tf, tauf, omega, pl.arrays(), meta=pl.meta, **kw)
+        fine, err = _ladder_errors(f, c, ex, over, model, Tf, intrinsic)
+        return pl, f, fine, err
+
+    bad = None
+    k_points = 0
+    if resolution is None:
+        top = nres - 1 if max_level is None else min(max_level, nres - 1)
+        lev = 1
+        while True:
+            pl, f, fine, err = run(lev, None)
+            k_points += pl.k_points()
+            bad = _converged(fine, err, f, rtol, model, tau_max)
+            if not bad or lev >= top:
+                break
+            lev += 1
+    else:
+        if not (0 <= resolution <= nres - 1):
+            raise ValueError(f"response: resolution must be a level 0..{nres - 1}")
+        lev = resolution
+        pl, f, fine, err = run(lev, plan)
+        k_points = pl.k_points()
+    info = {"engine": "tetra", "level": lev, "plan": pl, "levels": pl.levels, "attempts": 1,
+            "k_points": int(k_points)}
+    return fine, err, bad, info
+
+
 @partial(jax.jit, static_argnames=("plan", "tau_eval", "filled", "sea"))
 def _rays_at(model, grid, mu, kt, temp, tau_arr, omega, *, plan, tau_eval, filled, sea):
     tau_col = jax.tree_util.tree_map(lambda a: a[:, None], tau_arr)
@@ -781,7 +831,7 @@ def response(model: BandModel, mu, temperature, tau, frequency=0.0, *, rtol: flo
     always includes ``k_points``, the distinct k-points where the band geometry was evaluated
     (all passes and conditions).
     """
-    if engine not in ("auto", "mesh", "ladder", "rays", "shells"):
+    if engine not in ("auto", "mesh", "ladder", "tetra", "rays", "shells"):
         raise ValueError("response: engine must be 'auto', 'mesh' (node quadrature, lattices and 2D "
                          "continuum models), 'ladder' (energy-resolved, lattice models), 'rays' (energy-"
                          "resolved, 2D continuum models) or 'shells' (energy-resolved, 3D continuum models)")
@@ -839,6 +889,9 @@ def response(model: BandModel, mu, temperature, tau, frequency=0.0, *, rtol: flo
         fine, err, bad, info = _rays_path(model, muf, kt, Tf, tauf, omega_sums, kw, rtol, resolution,
                                           max_level, intrinsic, plan, traced, tau_max, estimate_error,
                                           _shells if engine == "shells" else _rays)
+    elif engine == "tetra":
+        fine, err, bad, info = _tetra_path(model, muf, kt, Tf, tauf, omega_sums, kw, rtol, resolution,
+                                           max_level, intrinsic, plan, traced, tau_max)
     elif engine == "ladder":
         fine, err, bad, info = _ladder_path(model, muf, kt, Tf, tauf, omega_sums, kw, rtol, resolution,
                                             max_level, intrinsic, plan, traced, tau_max)

@@ -1,0 +1,599 @@
+"""Linear-tetrahedron integration on adaptively refined cells (3D lattices, any temperature).
+
+Every kernel of :mod:`crosswind.solver.engine.kernels` is Σ_n ∫[dk] φ(ε_n(k); μ, T) A_n(k) with φ an
+occupation function times a relaxation-time factor and A a geometric factor.  A point sum needs a
+mesh that resolves the thermal width πk_BT/|∇ε|, which in 3D at 1–20 K means 10⁸–10⁹ points.  Here
+the bands and the geometric factors are instead interpolated linearly inside tetrahedra (Lehmann &
+Taut, phys. stat. sol. (b) 54, 469, 1972; Blöchl, Jepsen & Andersen, PRB 49, 16223, 1994): each
+tetrahedron's energy-resolved measure
+
+    C(E) = ∫_tet A(k) θ(E − ε(k)) d³k
+
+is then known exactly (a cubic polynomial of E between the sorted vertex energies ε1 ≤ … ≤ ε4,
+:func:`piece_coefficients`), so the mesh has to resolve the bands, not k_BT (docs/theory.md §17).
+
+Cells.  Level 0 is a periodic n0³ lattice of cell corners over the Brillouin zone (shifted by a
+generic offset, so that no corner lands on a symmetry point such as a band touching).  A cell whose
+band energies, widened by the largest band speed times its half diagonal (a bound on the band
+inside the cell), reach the energy window of the conditions is split into eight children, down to
+level L; the 8 corners of each cell are evaluated, and each cell is cut into six tetrahedra along
+its main diagonal (Kuhn/Freudenthal).  Unrefined cells are entirely below or above the window: the
+ones below contribute their whole tetrahedron integral (every condition sees them fully occupied),
+the ones above nothing.  The leaves of level L deposit their measure onto energy knots.
+
+Energy axis.  Knots E_lo + jδ per temperature level (δ_l = k_BT_l/ρ, the temperatures k_BT_l of
+:mod:`crosswind.solver.engine.ladder`); a tetrahedron deposits onto knot j the exact integral
+∫ Λ_j(E) dC(E) of the linear hat function Λ_j of the knot: exact for the interior knots of each
+polynomial piece by a difference array of the piece's polynomial (cost independent of the number of
+knots a piece spans), exact for the ≤ 4 knots at each end.  Σ_j table_j φ(E_j) is then ∫ (Iφ) dC
+with Iφ the piecewise-linear interpolant of φ (error O(δ²φ'')).  Every condition reads the tables
+as in the ladder (:func:`crosswind.solver.engine.ladder.condition_sums`, T² extrapolation below the
+deepest temperature level included).
+
+Error estimate, nested in the same program: the same sums with the leaves of level L replaced by
+their parents (spacing doubled, O(h²) error four times larger) on knots 2δ.  Cells that a plan left
+unrefined but that the run finds inside the window (a plan reused at other parameters) make the
+error infinite.  The cell structure comes from the plan (a concrete pass on band energies only);
+derivatives with respect to model parameters are those of the sums over the plan's cells, and μ, T
+and τ enter only through φ (exact derivatives of the energy sums).
+"""
+from __future__ import annotations
+
+import itertools
+from dataclasses import dataclass
+from functools import partial
+
+import jax
+import jax.numpy as jnp
+import numpy as np
+
+from crosswind.models.units import KB_EVK as KB
+from crosswind.solver.engine import ladder as _ladder
+from crosswind.solver.engine.occupation import T_FLOOR
+
+W = _ladder.W
+SLACK = 1.1                # the band-speed bound of the probe grid, widened
+GAP = 4.0                  # cells with a band gap below GAP × (band-speed bound) are split
+#: generic offset of the corner lattice (units of the level-0 spacing): no corner on a symmetry point
+OFFSET = np.array([0.1234567, 0.2718281, 0.3141592])
+#: lowest temperature level (K); colder conditions (T = 0 included) are extrapolated in T²
+T_DEEP = 0.25
+#: (n0, L) per resolution index: level-0 cells per axis and refinement levels
+RESOLUTIONS = ((12, 3), (16, 4), (16, 5), (24, 5), (24, 6), (32, 6))
+RHO = 8.0                  # knots per k_BT of a temperature level
+CELL_CHUNK = 32            # parent cells per chunk of the refined levels (27 corners each)
+POINT_CHUNK = 4096         # level-0 points per chunk
+
+
+# --------------------------------------------------------------------------------------------
+# one tetrahedron: the exact cumulative measure
+# --------------------------------------------------------------------------------------------
+
+def _kuhn():
+    """Six tetrahedra of the unit cube (corner index 4x + 2y + z) along the main diagonal."""
+    tets = []
+    for perm in itertools.permutations(range(3)):
+        v = np.zeros(3, int)
+        path = [v.copy()]
+        for ax in perm:
+            v[ax] = 1
+            path.append(v.copy())
+        tets.append([int(4 * p[0] + 2 * p[1] + p[2]) for p in path])
+    return np.array(tets)
+
+
+TETS = _kuhn()                                        # (6, 4) corner indices
+#: weight of each corner in the integral of a linear interpolant over the whole cube (÷ volume)
+CORNER_W = np.bincount(TETS.ravel(), minlength=8) / 24.0
+
+
+def _safe(x):
+    return jnp.where(x > 0, x, 1.0)
+
+
+def _det_bary(lam):
+    """det of 4×4 barycentric rows (each summing to 1) = the 3×3 determinant of the rows 1–3 minus
+    row 0 in the columns 1–3 (written out: no LAPACK call per tetrahedron)."""
+    d = lam[..., 1:, 1:] - lam[..., :1, 1:]
+    return (d[..., 0, 0] * (d[..., 1, 1] * d[..., 2, 2] - d[..., 1, 2] * d[..., 2, 1])
+            - d[..., 0, 1] * (d[..., 1, 0] * d[..., 2, 2] - d[..., 1, 2] * d[..., 2, 0])
+            + d[..., 0, 2] * (d[..., 1, 0] * d[..., 2, 1] - d[..., 1, 1] * d[..., 2, 0]))
+
+
+def _prism(E, e, A):
+    """∫ A θ(E − ε) over the reference tetrahedron (volume 1) for ε2 ≤ E ≤ ε3: the prism with
+    ends (v1, p13, p14) and (v2, p23, p24), cut into three tetrahedra; p_ij = v_i + t_ij (v_j − v_i).
+    ``E`` (...,), ``e`` (..., 4) sorted, ``A`` (..., 4, nc)."""
+    eye = jnp.eye(4)
+
+    def p(i, j):
+        t = jnp.clip((E - e[..., i]) / _safe(e[..., j] - e[..., i]), 0.0, 1.0)[..., None]
+        unit = lambda n: eye[n].reshape((1,) * (t.ndim - 1) + (4,))
+        return (1 - t) * unit(i) + t * unit(j)
+
+    v1 = jnp.broadcast_to(eye[0], E.shape + (4,))
+    v2 = jnp.broadcast_to(eye[1], E.shape + (4,))
+    p13, p14, p23, p24 = p(0, 2), p(0, 3), p(1, 2), p(1, 3)
+    total = 0.0
+    for verts in ((v1, p13, p14, p24), (v1, p13, p23, p24), (v1, v2, p23, p24)):
+        lam = jnp.stack(verts, axis=-2)                               # (..., 4 vertices, 4 bary)
+        vol = jnp.abs(_det_bary(lam))
+        centre = jnp.mean(lam, axis=-2)                               # (..., 4)
+        total = total + vol[..., None] * jnp.einsum("...i,...ic->...c", centre, A)
+    return total
+
+
+def _corner_tet(E, e, A):
+    """Occupied part for ε1 ≤ E ≤ ε2: the tetrahedron at v1 scaled by t_i = (E−ε1)/(ε_i−ε1)."""
+    t = jnp.clip((E[..., None] - e[..., :1]) / _safe(e[..., 1:] - e[..., :1]), 0.0, 1.0)   # (..., 3)
+    vol = jnp.prod(t, axis=-1)
+    a1 = A[..., 0, :]
+    mean = a1 + jnp.einsum("...i,...ic->...c", t, A[..., 1:, :] - a1[..., None, :]) / 4.0
+    return vol[..., None] * mean
+
+
+def _top_tet(E, e, A):
+    """Occupied part for ε3 ≤ E ≤ ε4: the whole minus the tetrahedron at v4 scaled by
+    s_i = (ε4−E)/(ε4−ε_i)."""
+    s = jnp.clip((e[..., 3:] - E[..., None]) / _safe(e[..., 3:] - e[..., :3]), 0.0, 1.0)
+    vol = jnp.prod(s, axis=-1)
+    a4 = A[..., 3, :]
+    mean = a4 + jnp.einsum("...i,...ic->...c", s, A[..., :3, :] - a4[..., None, :]) / 4.0
+    return jnp.mean(A, axis=-2) - vol[..., None] * mean
+
+
+def cumulative(E, e, A):
+    """C(E)/V = ∫ A θ(E − ε) over a tetrahedron of unit volume with sorted vertex energies ``e``
+    (..., 4) and vertex factors ``A`` (..., 4, nc), for energies ``E`` (...,): exact for linear ε
+    and A (the reference of :func:`piece_coefficients`)."""
+    c1, c2, c3 = _corner_tet(E, e, A), _prism(E, e, A), _top_tet(E, e, A)
+    full = jnp.mean(A, axis=-2)
+    Eb = E[..., None]
+    return jnp.where(Eb <= e[..., :1], 0.0,
+                     jnp.where(Eb <= e[..., 1:2], c1,
+                               jnp.where(Eb <= e[..., 2:3], c2, jnp.where(Eb <= e[..., 3:], c3, full))))
+
+
+#: inverse Vandermonde of s = 0, 1/4, 1/2, 3/4, 1: quartic coefficients from five samples
+_S = np.linspace(0.0, 1.0, 5)
+_VINV = np.linalg.inv(_S[:, None] ** np.arange(5)[None, :])
+
+
+def piece_coefficients(e, A):
+    """Quartic coefficients q (..., 3 pieces, 5 powers, nc) of C on each piece [ε_k, ε_{k+1}] in
+    s ∈ [0, 1] (C(ε_k + s(ε_{k+1} − ε_k)) − C(ε_k) = Σ_m q_m s^m, q_0 = 0 up to rounding; unit
+    volume): the occupied volume is cubic in E and the mean of the linear A over it linear, so
+    five exact samples per piece determine it.  Empty pieces get zeros."""
+    out = []
+    for k, fn in enumerate((_corner_tet, _prism, _top_tet)):
+        lo, hi = e[..., k], e[..., k + 1]
+        Es = lo[..., None] + (hi - lo)[..., None] * jnp.asarray(_S).reshape((1,) * lo.ndim + (5,))
+        samp = fn(Es, e[..., None, :], A[..., None, :, :])                           # (..., 5, nc)
+        samp = samp - samp[..., :1, :]
+        q = jnp.einsum("ms,...sc->...mc", jnp.asarray(_VINV), samp)
+        out.append(jnp.where((hi > lo)[..., None, None], q, 0.0))
+    return jnp.stack(out, axis=-3)
+
+
+# --------------------------------------------------------------------------------------------
+# projection onto the knots of one table
+# --------------------------------------------------------------------------------------------
+
+def _poly_int(alpha, beta, q, s0, s1):
+    """∫_{s0}^{s1} (α + βs) dC(s) with dC = Σ_m m q_m s^{m−1} ds, for per-column q (..., 5, nc):
+    Σ_m m q_m [α (s^m)/m + β s^{m+1}/(m+1)] between the limits."""
+    a, b = alpha[..., None], beta[..., None]
+
+    def F(s):
+        s = s[..., None]
+        return sum(q[..., m, :] * (a * s ** m + b * m * s ** (m + 1) / (m + 1)) for m in range(1, 5))
+    return F(s1) - F(s0)
+
+
+def project(acc, e, q, e_lo, delta, M):
+    """Deposit items (sorted energies ``e`` (N, 4), piece coefficients ``q`` (N, 3, 4, nc) already
+    scaled by the volume) onto a table of M
+    knots E_lo + jδ.  ``acc`` = (table (M, nc), diff (M + 1, 4, nc), below (nc,)).  The measure
+    below the first knot goes to ``below``; above the last knot it is dropped (the plan places every
+    window inside the table)."""
+    table, diff, below = acc
+    nc = table.shape[-1]
+    x = (e - e_lo) / delta                                                   # (N, 4) knot units
+    xs = jax.lax.stop_gradient(x)
+    top = float(M - 1)
+    # below the first knot: the part of each piece's increment at x < 0
+    for k in range(3):
+        lo, hi = x[:, k], x[:, k + 1]
+        s0 = jnp.clip(-lo / _safe(hi - lo), 0.0, 1.0)
+        part = jnp.einsum("nmc,nm->nc", q[:, k], s0[:, None] ** jnp.arange(q.shape[2], dtype=jnp.float64)[None, :])
+        below = below + jnp.sum(jnp.where((lo < 0)[:, None], part, 0.0), axis=0)
+    jref = M // 2
+    for k in range(3):
+        lo, hi = x[:, k], x[:, k + 1]
+        los, his = xs[:, k], xs[:, k + 1]
+        L = hi - lo
+        Ls = _safe(L)
+        a = jnp.clip(lo, 0.0, top)
+        b = jnp.clip(hi, 0.0, top)
+        valid = (jax.lax.stop_gradient(b) > jax.lax.stop_gradient(a)) & (his > los)
+        ja = jnp.floor(jnp.clip(los, 0.0, top)).astype(jnp.int32)
+        jb = jnp.ceil(jnp.clip(his, 0.0, top)).astype(jnp.int32)
+        long = (jb - ja) >= 4
+        qk = q[:, k]                                                          # (N, 4, nc)
+        # boundary knots: exact hat integrals
+        cand = jnp.where(long[:, None], jnp.stack([ja, ja + 1, jb - 1, jb], -1),
+                         ja[:, None] + jnp.arange(4, dtype=jnp.int32)[None, :])
+        ok = valid[:, None] & (cand <= jb[:, None]) & (cand <= M - 1)
+        jf = cand.astype(jnp.float64)
+        sA = lambda xv, lo=lo, Ls=Ls: (xv - lo[:, None]) / Ls[:, None]
+        # left side of the hat: x in [max(a, j−1), min(b, j)], Λ = x − (j − 1)
+        l0, l1 = jnp.maximum(a[:, None], jf - 1), jnp.minimum(b[:, None], jf)
+        r0, r1 = jnp.maximum(a[:, None], jf), jnp.minimum(b[:, None], jf + 1)
+        lo_b = lo[:, None]
+        Lb = L[:, None]
+        qb = qk[:, None]
+        left = _poly_int(lo_b - (jf - 1), Lb, qb, sA(l0), sA(jnp.maximum(l1, l0)))
+        right = _poly_int((jf + 1) - lo_b, -Lb, qb, sA(r0), sA(jnp.maximum(r1, r0)))
+        vals = jnp.where(ok[..., None], left + right, 0.0)                   # (N, 4, nc)
+        idx = jnp.where(ok, cand, M)
+        table = table.at[idx.reshape(-1)].add(vals.reshape(-1, nc), mode="drop")
+        # interior knots ja+2 .. jb−2 of long pieces: ∫Λ_j g = g(j) + g''(j)/12 for the cubic
+        # g = dC/dx = Σ G_m u^m (u = x − lo), as a cubic polynomial of y = j − jref
+        Li = jnp.where(long, L, 1.0)[:, None]
+        G0, G1, G2, G3 = (m * qk[:, m] / Li ** m for m in range(1, 5))
+        d = (jref - lo)[:, None]
+        c0 = G0 + G1 * d + G2 * d * d + G3 * d ** 3 + G2 / 6.0 + G3 * d / 2.0
+        c1 = G1 + 2 * G2 * d + 3 * G3 * d * d + G3 / 2.0
+        c2 = G2 + 3 * G3 * d
+        coef = jnp.stack([c0, c1, c2, G3], axis=1)                             # (N, 4, nc)
+        coef = jnp.where((long & valid)[:, None, None], coef, 0.0)
+        start = jnp.where(long & valid, ja + 2, M)
+        stop = jnp.where(long & valid, jb - 1, M)
+        diff = diff.at[start].add(coef, mode="drop")
+        diff = diff.at[stop].add(-coef, mode="drop")
+    return table, diff, below
+
+
+def finish_table(acc, M):
+    """The table (M, nc) from the boundary part and the cumulated interior polynomial."""
+    table, diff, below = acc
+    c = jnp.cumsum(diff, axis=0)[:M]                                            # (M, 4, nc)
+    y = (jnp.arange(M) - M // 2).astype(jnp.float64)[:, None]
+    return table + c[:, 0] + y * (c[:, 1] + y * (c[:, 2] + y * c[:, 3])), below
+
+
+# --------------------------------------------------------------------------------------------
+# cells, corners and plans
+# --------------------------------------------------------------------------------------------
+
+#: the 27 corner points of the eight children of a cell (index 9a + 3b + c, a, b, c ∈ {0, 1, 2})
+_OFFS27 = np.array(list(itertools.product(range(3), repeat=3)))
+_CUBE = np.array(list(itertools.product(range(2), repeat=3)))            # corner index 4x + 2y + z
+#: children (8) × corners (8) -> index into the 27 points; the parent's own corners
+CHILD_CORNERS = np.array([[9 * (o[0] + d[0]) + 3 * (o[1] + d[1]) + (o[2] + d[2]) for d in _CUBE]
+                          for o in _CUBE])
+PARENT_CORNERS = np.array([9 * 2 * d[0] + 3 * 2 * d[1] + 2 * d[2] for d in _CUBE])
+
+
+@dataclass(frozen=True)
+class TetraMeta:
+    """Static shape of a plan: ``n0`` level-0 cells per axis, ``sizes[l−1]`` parent cells (padded)
+    refined at level l = 1..L, ``nt`` temperature levels below k_BT_0 = ``kt0`` (eV), ``knots``
+    per temperature table, ``rho`` knots per k_BT and ``slack`` (eV Å, the band-speed bound)."""
+
+    n0: int
+    sizes: tuple
+    nt: int
+    knots: int
+    kt0: float
+    rho: float
+    slack: float
+
+    @property
+    def levels(self) -> int:          # temperature levels (as the ladder's condition sums read them)
+        return self.nt
+
+    @property
+    def depth(self) -> int:           # refinement levels
+        return len(self.sizes)
+
+
+@dataclass(frozen=True, eq=False)
+class TetraPlan:
+    """A concrete cell structure: ``meta`` (static) and the arrays ``refine0`` (n0³,) level-0 cells
+    split, ``parents[l−1]`` (sizes[l−1], 3) integer cell coordinates on the level-(l−1) grid (−1:
+    padding), ``refine[l−1]`` (sizes[l−1], 8) which children of those parents are split again
+    (levels 1..L−1), and ``counts`` the valid parents per level."""
+
+    meta: TetraMeta
+    refine0: np.ndarray
+    parents: tuple
+    refine: tuple
+    counts: tuple
+
+    @property
+    def levels(self) -> int:
+        return self.meta.nt
+
+    def k_points(self, dim: int = 3) -> int:
+        """Band-geometry points of the cells: n0³ plus 19 new corners per split cell (the corners
+        on a face shared by two split neighbours are counted by both: an upper bound)."""
+        return self.meta.n0 ** 3 + 19 * int(sum(self.counts))
+
+    def arrays(self):
+        return (jnp.asarray(self.refine0), tuple(jnp.asarray(p) for p in self.parents),
+                tuple(jnp.asarray(r) for r in self.refine))
+
+
+def _halfdiag(b, n):
+    return 0.5 * float(np.sum(np.linalg.norm(np.asarray(b), axis=-1))) / n
+
+
+def _bucket(x):
+    """Round up to 4 buckets per octave (≤ 25 % padding; few distinct compiled shapes)."""
+    x = max(int(x), CELL_CHUNK)
+    step = 2 ** max(int(np.floor(np.log2(x))) - 2, 0)
+    return int(CELL_CHUNK * np.ceil(step * np.ceil(x / step) / CELL_CHUNK))
+
+
+def temperature_levels(temperature):
+    """k_BT_0 (eV) on the binary lattice k_B T_DEEP 2^m and the number of levels below it, for the
+    concrete temperatures of a call."""
+    t = np.maximum(np.atleast_1d(np.asarray(temperature, dtype=float)), T_FLOOR)
+    m = max(2, int(np.ceil(np.log2(max(float(t.max()), T_DEEP) / T_DEEP))))
+    kt0 = KB * T_DEEP * 2.0 ** m
+    target = KB * max(float(t.min()), T_DEEP)
+    nt = max(2, int(np.ceil(np.log2(kt0 / target))))
+    return kt0, nt
+
+
+def table_ranges(mu, ktl, rho, M):
+    """(e_lo (K,), δ (K,), fits) of the temperature tables: M knots of spacing δ_k = k_BT_k/ρ
+    centred on the μ range; level k must hold μ ± W k_BT_{k−1} (level 0: ± W k_BT_0)."""
+    mlo, mhi = jnp.min(mu), jnp.max(mu)
+    delta = ktl / rho
+    centre = jnp.floor(0.5 * (mlo + mhi) / delta) * delta
+    e_lo = centre - (M // 2) * delta
+    kwin = jnp.concatenate([ktl[:1], ktl[:-1]])
+    fits = jnp.all((mhi - mlo + 2 * W * kwin + 12 * delta) <= (M - 1) * delta)
+    return e_lo, delta, fits
+
+
+@partial(jax.jit, static_argnames=("n_bands",))
+def _energies(model, params, red, n_bands):
+    b = model.reciprocal_vectors(params)
+
+    def one(q):
+        w = jnp.linalg.eigvalsh(model.hamiltonian(q @ b, params))
+        return jnp.sort(w.reshape(-1))
+    return jax.vmap(one)(red.reshape(-1, red.shape[-1])).reshape(red.shape[:-1] + (n_bands,))
+
+
+def _points0(n0):
+    idx = np.stack(np.meshgrid(*([np.arange(n0)] * 3), indexing="ij"), -1).reshape(-1, 3)
+    return (OFFSET[None, :] + idx) / n0
+
+
+def _points27(parents, level, n0):
+    """Reduced coordinates (B, 27, 3) of the children's corners of level-(level−1) cells
+    ``parents`` (B, 3): level-l corner c' = 2p + (0, 1, 2)³ at (OFFSET + c'/2^l)/n0."""
+    return (OFFSET[None, None, :] * 2 ** level + 2 * parents[:, None, :] + _OFFS27[None]) / (n0 * 2 ** level)
+
+
+def _cell_corners0(n0):
+    """(n0³, 8) point indices of the corners of every level-0 cell (periodic)."""
+    idx = np.stack(np.meshgrid(*([np.arange(n0)] * 3), indexing="ij"), -1).reshape(-1, 1, 3)
+    c = (idx + _CUBE[None]) % n0
+    return c[..., 0] * n0 * n0 + c[..., 1] * n0 + c[..., 2]
+
+
+def _intersects(Ec, s, lo, hi):
+    """(…, nb) whether a cell with corner energies ``Ec`` (…, 8, nb) reaches [lo, hi] or comes
+    within GAP·s of a band touching (the Berry curvature of the two bands varies there on the scale
+    of the gap: split down to the deepest level), and whether it is entirely below lo (band-speed
+    bound ``s`` on the excursion between corners)."""
+    emin, emax = Ec.min(axis=-2), Ec.max(axis=-2)
+    split = (emin - s <= hi) & (emax + s >= lo)
+    if Ec.shape[-1] > 1:
+        gap = (Ec[..., 1:] - Ec[..., :-1]).min(axis=-2)                    # (…, nb − 1)
+        near = gap < GAP * s
+        pad = near[..., :1] & False
+        split = split | jnp.concatenate([near, pad], -1) | jnp.concatenate([pad, near], -1) \
+            if isinstance(Ec, jax.Array) else \
+            split | np.concatenate([near, pad], -1) | np.concatenate([pad, near], -1)
+    return split, (emax + s < lo) & ~split
+
+
+def make_plan(model, params, mu, temperature, resolution: int, cap: int = 40000) -> TetraPlan:
+    """Cell structure for concrete conditions: level-0 n0³ cells, split down to L levels wherever a
+    cell reaches the window of the level-0 table (energies only, eigvalsh); a level with more than
+    ``cap`` cells to split ends the refinement there (the nested estimate then reports the
+    accuracy reached)."""
+    if model.dim != 3:
+        raise ValueError("response: engine='tetra' integrates 3D lattice models; use engine='ladder' "
+                         "for 2D lattices")
+    n0, L = RESOLUTIONS[resolution]
+    mu = np.atleast_1d(np.asarray(mu, dtype=float)).ravel()
+    kt0, nt = temperature_levels(temperature)
+    ktl = kt0 / 2.0 ** np.arange(nt + 1)
+    span = float(np.ptp(mu))
+    M = max(_ladder._pow2((span + 2 * W * ktl[k - 1 if k else 0]) / (ktl[k] / RHO) + 32)
+            for k in range(nt + 1))
+    e_lo, delta, _ = table_ranges(jnp.asarray(mu), jnp.asarray(ktl), RHO, M)
+    lo, hi = float(e_lo[0]), float(e_lo[0] + (M - 1) * delta[0])
+    b = np.asarray(model.reciprocal_vectors(params))
+    vmax = float(_ladder.probe_speed(model, params))
+    if not np.isfinite(vmax):
+        raise ValueError(f"response: the band energies or velocities of model '{model.name}' are NaN or "
+                         "infinite somewhere in the Brillouin zone (found while planning the tetrahedron "
+                         "cells); check the Hamiltonian and its parameters there")
+    slack = SLACK * max(vmax, 1e-6)
+    nb = model.n_bands
+    E0 = np.asarray(_energies(model, params, jnp.asarray(_points0(n0)), n_bands=nb))
+    cut, _ = _intersects(E0[_cell_corners0(n0)], slack * _halfdiag(b, n0), lo, hi)
+    refine0 = np.any(cut, axis=-1)
+    parents, refine, counts, sizes = [], [], [], []
+    cur = np.argwhere(refine0.reshape(n0, n0, n0))
+    for lev in range(1, L + 1):
+        if cur.shape[0] == 0 or (lev > 1 and cur.shape[0] > cap):
+            break                    # the last split level becomes the deepest one
+        B = _bucket(cur.shape[0])
+        pad = np.full((B - cur.shape[0], 3), -1)
+        par = np.concatenate([cur, pad]).astype(np.int32)
+        parents.append(par)
+        counts.append(int(cur.shape[0]))
+        sizes.append(B)
+        if lev == L:
+            break
+        red = _points27(np.where(par < 0, 0, par), lev, n0)
+        E = np.asarray(_energies(model, params, jnp.asarray(red), n_bands=nb))      # (B, 27, nb)
+        cut, _ = _intersects(E[:, CHILD_CORNERS], slack * _halfdiag(b, n0 * 2 ** lev), lo, hi)
+        r = np.any(cut, axis=-1) & (par[:, :1] >= 0)                                # (B, 8)
+        refine.append(r)
+        ch = 2 * par[:, None, :] + _CUBE[None]
+        cur = ch[r]
+    if not parents:
+        raise ValueError("response: engine='tetra' found no cell near the Fermi level: the window "
+                         f"[{lo:.4g}, {hi:.4g}] eV lies outside every band of model '{model.name}'")
+    refine = refine[:len(parents) - 1]
+    meta = TetraMeta(n0, tuple(sizes), nt, M, float(kt0), RHO, float(slack))
+    return TetraPlan(meta, refine0, tuple(parents), tuple(refine), tuple(counts))
+
+
+# --------------------------------------------------------------------------------------------
+# the tables of one plan (traced)
+# --------------------------------------------------------------------------------------------
+
+def _factors(model, params, k, sea):
+    e, _gn, f = jax.vmap(lambda q: _ladder.point_factors(model, params, q, sea))(k)
+    return e, f
+
+
+def _tet_items(E, F):
+    """Tetrahedra of cells with corner energies ``E`` (..., 8, nb) and factors ``F`` (..., 8, nb, nc):
+    flat sorted vertex energies (N, 4) and factors (N, 4, nc), N = (...)·6·nb."""
+    Et = jnp.moveaxis(E[..., TETS, :], -1, -3)                   # (..., nb, 6, 4)
+    Ft = jnp.moveaxis(F[..., TETS, :, :], -2, -4)                # (..., nb, 6, 4, nc)
+    nc = F.shape[-1]
+    Et, Ft = Et.reshape(-1, 4), Ft.reshape(-1, 4, nc)
+    order = jnp.argsort(jax.lax.stop_gradient(Et), axis=-1)
+    return jnp.take_along_axis(Et, order, -1), jnp.take_along_axis(Ft, order[..., None], -2)
+
+
+def build_tables(model, params, meta: TetraMeta, arrays, mu, sea):
+    """Fine and coarse energy tables of every temperature level; ``(levels, info)`` in the form
+    :func:`crosswind.solver.engine.ladder.condition_sums` reads."""
+    refine0, parents, refine = arrays
+    layout, nc = _ladder.factor_layout(3, sea)
+    b = jax.lax.stop_gradient(model.reciprocal_vectors(params))
+    vol = jnp.abs(jnp.linalg.det(b)) / (2 * jnp.pi) ** 3
+    n0, L, M = meta.n0, meta.depth, meta.knots
+    K = meta.nt + 1
+    Mc = (M + 1) // 2
+    nb = model.n_bands
+    ktl = meta.kt0 / 2.0 ** jnp.arange(K, dtype=jnp.float64)
+    e_lo, delta, fits = table_ranges(jax.lax.stop_gradient(mu), ktl, meta.rho, M)
+    lo, hi = e_lo[0], e_lo[0] + (M - 1) * delta[0]
+    bsum = jnp.sum(jnp.sqrt(jnp.sum(b * b, axis=-1)))
+    slack = lambda n: meta.slack * 0.5 * bsum / n
+    cw = jnp.asarray(CORNER_W)
+
+    # level 0: every point, its cells' fully occupied bands
+    red0 = jnp.asarray(_points0(n0))
+    N0 = red0.shape[0]
+    c0 = min(POINT_CHUNK, N0)
+    nch = -(-N0 // c0)
+    redp = jnp.concatenate([red0, jnp.broadcast_to(red0[:1], (nch * c0 - N0, 3))])
+
+    def body0(_, i):
+        kk = jax.lax.dynamic_slice_in_dim(redp, i * c0, c0) @ b
+        return None, _factors(model, params, kk, sea)
+
+    _, (e0, f0) = jax.lax.scan(jax.checkpoint(body0), None, jnp.arange(nch))
+    e0, f0 = e0.reshape(-1, nb)[:N0], f0.reshape(-1, nb, nc)[:N0]
+    corners = jnp.asarray(_cell_corners0(n0))
+    cut, bel = _intersects(jax.lax.stop_gradient(e0)[corners], slack(n0), lo, hi)
+    leaf0 = ~refine0
+    stale = jnp.any(jnp.any(cut, -1) & leaf0)
+    wcell = jnp.where(bel & leaf0[:, None], vol / n0 ** 3, 0.0)                      # (n0³, nb)
+    pw = jnp.zeros((N0, nb)).at[corners].add(wcell[:, None, :] * cw[None, :, None])
+    below = jnp.einsum("pn,pnc->c", pw, f0)
+    # the nested estimate of the unrefined cells: every block of 2×2×2 cells that are all unrefined
+    # and below the window for a band is integrated as one cell of the n0/2 grid instead
+    h = n0 // 2
+    lb = (bel & leaf0[:, None]).reshape(h, 2, h, 2, h, 2, nb)
+    full = jnp.all(lb, axis=(1, 3, 5))                                                  # (h, h, h, nb)
+    in_full = jnp.broadcast_to(full[:, None, :, None, :, None], lb.shape).reshape(N0, nb)
+    pw_c = jnp.zeros((N0, nb)).at[corners].add(jnp.where(in_full, 0.0, wcell)[:, None, :] * cw[None, :, None])
+    bidx = np.stack(np.meshgrid(*([np.arange(h)] * 3), indexing="ij"), -1).reshape(-1, 1, 3)
+    bc = (2 * bidx + 2 * _CUBE[None]) % n0
+    bcorners = jnp.asarray(bc[..., 0] * n0 * n0 + bc[..., 1] * n0 + bc[..., 2])        # (h³, 8)
+    wblock = jnp.where(full.reshape(-1, nb), 8 * vol / n0 ** 3, 0.0)
+    pw_c = pw_c.at[bcorners].add(wblock[:, None, :] * cw[None, :, None])
+    below_c = jnp.einsum("pn,pnc->c", pw_c, f0)
+
+    proj = lambda m: jax.vmap(partial(project, M=m), in_axes=(0, None, None, 0, 0))
+    acc_f = (jnp.zeros((K, M, nc)), jnp.zeros((K, M + 1, 4, nc)), jnp.zeros((K, nc)))
+    acc_c = (jnp.zeros((K, Mc, nc)), jnp.zeros((K, Mc + 1, 4, nc)), jnp.zeros((K, nc)))
+    for lev in range(1, L + 1):
+        par = parents[lev - 1]
+        B = meta.sizes[lev - 1]
+        nchunk = B // CELL_CHUNK
+        valid = par[:, 0] >= 0
+        parc = jnp.where(par < 0, 0, par)
+        deepest = lev == L
+        R = refine[lev - 1] if not deepest else jnp.zeros((B, 8), bool)
+        n_l = n0 * 2 ** lev
+        V_l = vol / n_l ** 3
+        s_l = slack(n_l)
+
+        def body(carry, i, lev=lev, parc=parc, valid=valid, R=R, V_l=V_l, s_l=s_l, deepest=deepest):
+            below, stale, af, ac = carry
+            sl = lambda x: jax.lax.dynamic_slice_in_dim(x, i * CELL_CHUNK, CELL_CHUNK)
+            p, ok, r = sl(parc), sl(valid), sl(R)
+            red = (jnp.asarray(OFFSET)[None, None, :] * 2 ** lev + 2 * p[:, None, :].astype(jnp.float64)
+                   + jnp.asarray(_OFFS27, dtype=jnp.float64)[None]) / (n0 * 2 ** lev)
+            e, f = _factors(model, params, red.reshape(-1, 3) @ b, sea)
+            e, f = e.reshape(CELL_CHUNK, 27, nb), f.reshape(CELL_CHUNK, 27, nb, nc)
+            ech, fch = e[:, CHILD_CORNERS], f[:, CHILD_CORNERS]               # (c, 8, 8, nb[, nc])
+            if not deepest:
+                cut, bel = _intersects(jax.lax.stop_gradient(ech), s_l, lo, hi)  # (c, 8, nb)
+                leaf = ~r & ok[:, None]
+                stale = stale | jnp.any(jnp.any(cut, -1) & leaf)
+                w = jnp.where(bel & leaf[..., None], V_l, 0.0)
+                below = below + jnp.einsum("kon,d,kodnc->c", w, cw, fch)
+            else:
+                et, ft = _tet_items(ech, fch)
+                vt = jnp.where(jnp.repeat(ok, 8 * nb * 6), V_l / 6, 0.0)
+                q = piece_coefficients(et, ft) * vt[:, None, None, None]
+                af = proj(M)(af, et, q, e_lo, delta)
+                ep, fp = e[:, PARENT_CORNERS], f[:, PARENT_CORNERS]
+                et, ft = _tet_items(ep, fp)
+                vt = jnp.where(jnp.repeat(ok, nb * 6), 8 * V_l / 6, 0.0)
+                q = piece_coefficients(et, ft) * vt[:, None, None, None]
+                ac = proj(Mc)(ac, et, q, e_lo, 2 * delta)
+            return (below, stale, af, ac), None
+
+        (below_l, stale, acc_f, acc_c), _ = jax.lax.scan(
+            jax.checkpoint(body), (jnp.zeros((nc,)), stale, acc_f, acc_c), jnp.arange(nchunk))
+        below = below + below_l
+        below_c = below_c + below_l
+    tab_f, bel_f = jax.vmap(partial(finish_table, M=M))(acc_f)
+    tab_c, bel_c = jax.vmap(partial(finish_table, M=Mc))(acc_c)
+    levels = []
+    for k in range(K):
+        extra, extra_c = (below, below_c) if k == 0 else (0.0, 0.0)
+        levels.append(dict(fine=(tab_f[k], bel_f[k] + extra), coarse=(tab_c[k], bel_c[k] + extra_c),
+                           e_lo=e_lo[k], delta=delta[k]))
+    info = {"kt_ladder": ktl, "overflow": stale | ~fits, "vol": vol, "layout": layout,
+            "flagged": jnp.zeros((0,), int)}
+    return levels, info
+
+
+def tetra_moments(model, params, meta, arrays, mu, kt, temp, tau_eval, tau_arr, omega, filled, sea,
+                  condition_chunk=128):
+    """Fine and coarse kernel sums for P conditions from one cell structure (the ladder's condition
+    sums: :func:`crosswind.solver.engine.ladder.moments_from_tables`)."""
+    levels, info = build_tables(model, params, meta, arrays, mu, sea)
+    return _ladder.moments_from_tables(levels, info, meta, mu, kt, temp, tau_eval, tau_arr, omega, filled,
+                                       sea, condition_chunk)

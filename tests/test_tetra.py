@@ -1,0 +1,114 @@
+"""Linear tetrahedra on refined cells (solver/engine/tetra.py, docs/theory.md §17).
+
+References the project did not write: Monte Carlo sampling of a tetrahedron (uniform barycentric
+coordinates: a flat Dirichlet distribution, common practice), scipy quadrature of the energy
+density, and the anomalous Hall conductivity of a Weyl pair, |σ_yz| = (e²/h)·2k0/(2π) (Burkov &
+Balents, PRL 107, 127205, 2011; Yang, Lu & Ran, PRB 84, 075129, 2011).
+"""
+import jax
+import jax.numpy as jnp
+import numpy as np
+import pytest
+import scipy.constants as sc
+from scipy.integrate import quad
+
+from crosswind.models import build
+from crosswind.solver import response
+from crosswind.solver.engine import tetra as tt
+
+RNG = np.random.default_rng(7)
+E4 = np.sort(RNG.normal(size=4))
+A4 = RNG.normal(size=(4, 3))
+
+
+def test_kuhn_cells_fill_the_cube_and_weight_corners_like_a_trapezoid():
+    # six tetrahedra of volume 1/6 each; every lattice point gets weight 1 over its 8 cells
+    cube = np.array([[(c >> 2) & 1, (c >> 1) & 1, c & 1] for c in range(8)], float)
+    vols = [abs(np.linalg.det(cube[t[1:]] - cube[t[0]])) / 6 for t in tt.TETS]
+    np.testing.assert_allclose(vols, 1 / 6, rtol=1e-14)
+    assert abs(np.sum(tt.CORNER_W) - 1.0) < 1e-15
+    # corner c of the 8 cells around a point: cells at offsets −c, each point weighted Σ_c w_c = 1
+    np.testing.assert_allclose(tt.CORNER_W[[0, 7]], 0.25)
+    np.testing.assert_allclose(np.delete(tt.CORNER_W, [0, 7]), 1 / 12)
+
+
+@pytest.mark.parametrize("frac", [-0.2, 0.3, 0.5, 0.8, 1.3])
+def test_cumulative_measure_matches_monte_carlo(frac):
+    # E below, inside each of the three pieces, above
+    E = E4[0] + frac * (E4[3] - E4[0])
+    lam = RNG.dirichlet(np.ones(4), size=2_000_000)
+    eps, a = lam @ E4, lam @ A4
+    mc = np.mean(a * (eps < E)[:, None], axis=0)
+    sd = np.std(a * (eps < E)[:, None], axis=0) / np.sqrt(len(eps))
+    c = np.asarray(tt.cumulative(jnp.asarray(E), jnp.asarray(E4), jnp.asarray(A4)))
+    assert np.all(np.abs(c - mc) <= 5 * sd + 1e-12)
+
+
+def test_piece_polynomials_reproduce_the_cumulative_measure():
+    q = np.asarray(tt.piece_coefficients(jnp.asarray(E4)[None], jnp.asarray(A4)[None]))[0]
+    for k in range(3):
+        base = np.asarray(tt.cumulative(jnp.asarray(E4[k]), jnp.asarray(E4), jnp.asarray(A4)))
+        for s in (0.1, 0.45, 0.77):
+            E = E4[k] + s * (E4[k + 1] - E4[k])
+            want = np.asarray(tt.cumulative(jnp.asarray(E), jnp.asarray(E4), jnp.asarray(A4))) - base
+            np.testing.assert_allclose(np.sum(q[k] * (s ** np.arange(5))[:, None], axis=0), want,
+                                       atol=1e-13)
+
+
+@pytest.mark.parametrize("delta", [0.002, 0.02, 0.3])
+def test_hat_projection_integrates_smooth_functions_like_scipy_quad(delta):
+    # Σ_j table_j φ(E_j) = ∫ (Iφ) dC, Iφ the linear interpolant: the knot sum of a Gaussian of width
+    # w agrees with scipy's quadrature of φ dC/dE to the interpolation error ~ δ²φ''/12, and the
+    # measure below the first knot is C(E_lo) exactly.  delta = 0.3 makes every piece short.
+    w, centre = 0.25, 0.1
+    phi = lambda x: np.exp(-((x - centre) / w) ** 2)
+    e_lo = E4[1] - 0.013
+    M = int((E4[3] + 1.0 - e_lo) / delta)
+    q = tt.piece_coefficients(jnp.asarray(E4)[None], jnp.asarray(A4)[None])
+    acc = (jnp.zeros((M, 3)), jnp.zeros((M + 1, 4, 3)), jnp.zeros(3))
+    table, below = tt.finish_table(tt.project(acc, jnp.asarray(E4)[None], q, e_lo, delta, M), M)
+    knots = e_lo + delta * np.arange(M)
+    got = np.asarray(table).T @ phi(knots)
+    grad = jax.jit(jax.jacfwd(lambda y: tt.cumulative(y, jnp.asarray(E4), jnp.asarray(A4))))
+    dens = lambda x, c: float(grad(jnp.asarray(x))[c])
+    for c in range(3):
+        want = sum(quad(lambda x: phi(x) * dens(x, c), max(E4[k], e_lo), E4[k + 1], epsabs=1e-13)[0]
+                   for k in range(3) if E4[k + 1] > e_lo)
+        # |Iφ − φ| ≤ δ² max|φ''|/8 with max|φ''| = 2/w², against a measure of total variation ≤ max|A|
+        assert abs(got[c] - want) <= delta ** 2 / (4 * w ** 2) * np.max(np.abs(A4)) + 1e-12
+    np.testing.assert_allclose(np.asarray(below),
+                               np.asarray(tt.cumulative(jnp.asarray(e_lo), jnp.asarray(E4), jnp.asarray(A4))),
+                               atol=1e-14)
+    np.testing.assert_allclose(np.asarray(table).sum(0) + np.asarray(below), A4.mean(0), atol=1e-12)
+
+
+def test_bad_engine_for_the_model_is_refused_with_the_fix():
+    with pytest.raises(ValueError, match="engine='tetra' integrates 3D lattice models; use engine='ladder'"):
+        response(build("haldane"), mu=0.1, temperature=10.0, tau=100.0, engine="tetra", resolution=0)
+
+
+def _weyl_hall_ratio(res, temperature):
+    m = build("weyl", node_position=0.5)
+    r = response(m, mu=0.0, temperature=temperature, tau=100.0, engine="tetra", resolution=res)
+    k0 = 0.5 * np.pi / 3.0
+    ref = sc.e ** 2 / sc.h * 2 * k0 * 1e10 / (2 * np.pi)
+    return r, np.asarray(r.sigma_anomalous).real[1, 2] / ref, np.asarray(r.error.sigma_anomalous)[1, 2] / ref
+
+
+def test_weyl_pair_anomalous_hall_at_the_nodes_at_zero_temperature():
+    # Burkov & Balents (2011): the filled lower band of a Weyl pair gives (e²/h)·2k0/(2π); μ at the
+    # nodes, T = 0 (extrapolated from the deepest temperature level).  Measured: 1.0055 at
+    # resolution 0 (estimate 0.0023: the h-vs-2h estimate is not yet a bound there), 1.0036 at
+    # resolution 1 (estimate 0.0059)
+    r, ratio, _ = _weyl_hall_ratio(0, 0.0)
+    assert abs(ratio - 1.0) < 0.01
+    # particle–hole symmetric at the nodes: no carriers (1/a³ = 3.7e28 m⁻³ per band)
+    assert abs(float(r.density)) < 1e-10 * 3.7e28
+    assert r.resolution.engine == "tetra" and r.resolution.k_points > 12 ** 3
+
+
+@pytest.mark.slow
+def test_weyl_pair_anomalous_hall_within_its_estimate_at_resolution_1():
+    _, ratio, err = _weyl_hall_ratio(1, 10.0)
+    assert abs(ratio - 1.0) <= err
+    assert abs(ratio - 1.0) < 0.005
