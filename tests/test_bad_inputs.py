@@ -674,12 +674,13 @@ def test_lattice_node_quadrature_at_zero_temperature_is_right_or_says_so():
 
 
 def test_3d_lattice_at_low_temperature_names_a_temperature_and_a_model_that_work():
-    """A 3D lattice has no low-temperature engine: the warning must not send the user to the
-    ladder (impractical in 3D) but name the temperature from which the level resolves the window
-    (checked: just above it no condition is flagged) and the k·p models that integrate the nodes."""
+    """The node quadrature of a 3D lattice at low temperature: the warning must not send the user
+    to the ladder (impractical in 3D) but name the temperature from which the level resolves the
+    window (checked: just above it no condition is flagged), engine='tetra' and the k·p models
+    that integrate the nodes."""
     import re
     m = build("weyl", tilt=0.3)
-    with pytest.warns(RuntimeWarning, match=r"3D lattices have no low-temperature engine") as rec:
+    with pytest.warns(RuntimeWarning, match=r"below that use engine='tetra'") as rec:
         r = response(m, mu=0.1, temperature=2.0, tau=100.0, resolution=1)
     msg = str(rec[0].message)
     assert "weyl-kp" in msg and "engine='shells'" in msg and "Use engine='ladder'" not in msg
@@ -688,7 +689,7 @@ def test_3d_lattice_at_low_temperature_names_a_temperature_and_a_model_that_work
     assert t_ok > 2.0
     warm = response(m, mu=0.1, temperature=1.05 * t_ok, tau=100.0, resolution=1)
     assert warm.resolution.window_unresolved == 0
-    with pytest.warns(RuntimeWarning, match=r"3D lattices have no low-temperature engine"):
+    with pytest.warns(RuntimeWarning, match=r"below that use engine='tetra'"):
         cool = response(m, mu=0.1, temperature=0.9 * t_ok, tau=100.0, resolution=1)
     assert cool.resolution.window_unresolved == 1
 

@@ -112,3 +112,21 @@ def test_weyl_pair_anomalous_hall_within_its_estimate_at_resolution_1():
     _, ratio, err = _weyl_hall_ratio(1, 10.0)
     assert abs(ratio - 1.0) <= err
     assert abs(ratio - 1.0) < 0.005
+
+
+@pytest.mark.slow
+def test_forward_derivative_with_a_fixed_plan_matches_finite_differences():
+    # d σ_xx / d mass and d D / d mass through the tetrahedron sums (plan fixed: the cells do not move)
+    m = build("weyl", tilt=0.3, node_position=0.3)
+    plan = response(m, mu=0.1, temperature=10.0, tau=100.0, engine="tetra", resolution=0).resolution.plan
+
+    def fields(mass):
+        r = response(build("weyl", tilt=0.3, node_position=0.3, mass=mass), mu=0.1, temperature=10.0,
+                     tau=100.0, engine="tetra", resolution=0, plan=plan)
+        return jnp.stack([jnp.real(r.sigma[0, 0]), r.density, jnp.real(r.sigma_anomalous[1, 2])])
+
+    _, tangent = jax.jvp(fields, (1.0,), (1.0,))
+    h = 1e-4
+    fd = (fields(1.0 + h) - fields(1.0 - h)) / (2 * h)
+    assert np.all(np.isfinite(np.asarray(tangent)))
+    np.testing.assert_allclose(np.asarray(tangent), np.asarray(fd), rtol=2e-4, atol=1e-6 * np.abs(fd).max())

@@ -798,9 +798,9 @@ def response(model: BandModel, mu, temperature, tau, frequency=0.0, *, rtol: flo
     (Fermi-sea integrals); ``resolution`` metadata then says ``converged=False``,
     ``window_unresolved`` (the number of such conditions) and ``window_ratio`` (spacing / window,
     largest), and a ``RuntimeWarning`` names the fix: ``engine="ladder"`` (automatic for 2D
-    lattices with ``resolution=None``), a finer level or a higher temperature; for 3D lattices,
-    which have no low-temperature engine yet, the temperature from which the level resolves every
-    window and the k·p models (``engine="shells"``) that integrate the same band touchings.  With
+    lattices with ``resolution=None``), a finer level or a higher temperature; for 3D lattices
+    the temperature from which the level resolves every window, ``engine="tetra"`` and the k·p
+    models (``engine="shells"``) that integrate the same band touchings.  With
     ``resolution=None`` and ``engine="mesh"`` the level is raised until the window is resolved or
     the finest level is reached.
 
@@ -830,11 +830,20 @@ def response(model: BandModel, mu, temperature, tau, frequency=0.0, *, rtol: flo
     also pass ``plan=r.resolution.plan`` from a concrete call.  ``resolution`` metadata
     always includes ``k_points``, the distinct k-points where the band geometry was evaluated
     (all passes and conditions).
+
+    ``engine="tetra"`` (3D lattice models, opt-in) integrates linear tetrahedra on cells refined
+    near the conditions' energy window and near band touchings
+    (:mod:`crosswind.solver.engine.tetra`, docs/theory.md §16.6): the mesh resolves the bands, not
+    k_BT, so it reaches 1–20 K and T = 0 (T² extrapolation below 0.25 K); ``resolution`` indexes
+    ``tetra.RESOLUTIONS``; the same ``plan`` rule applies under ``jax.grad``/``jit``.  Its nested
+    estimate compares the deepest cells with their parents and the unrefined level-0 cells with
+    the n0/2 grid; docs/performance.md records where it is not yet a bound.
     """
     if engine not in ("auto", "mesh", "ladder", "tetra", "rays", "shells"):
         raise ValueError("response: engine must be 'auto', 'mesh' (node quadrature, lattices and 2D "
-                         "continuum models), 'ladder' (energy-resolved, lattice models), 'rays' (energy-"
-                         "resolved, 2D continuum models) or 'shells' (energy-resolved, 3D continuum models)")
+                         "continuum models), 'ladder' (energy-resolved, 2D lattice models), 'tetra' (linear "
+                         "tetrahedra, 3D lattice models), 'rays' (energy-resolved, 2D continuum models) or "
+                         "'shells' (energy-resolved, 3D continuum models)")
     if not isinstance(model, BandModel):
         raise TypeError("response: the first argument must be a BandModel from crosswind.models.build(...)")
     if engine == "auto":
@@ -843,6 +852,7 @@ def response(model: BandModel, mu, temperature, tau, frequency=0.0, *, rtol: flo
         if plan is not None:
             # a plan from an earlier call selects its own engine
             engine = ("ladder" if isinstance(plan, _ladder.Plan) else
+                      "tetra" if isinstance(plan, _tetra.TetraPlan) else
                       "shells" if isinstance(plan[0], _shells.ShellPlan) else "rays")
         elif model.dim == 3 and not isinstance(model.domain, Lattice):
             engine = "shells"           # 3D continuum: the only engine that integrates them
@@ -922,11 +932,11 @@ def response(model: BandModel, mu, temperature, tau, frequency=0.0, *, rtol: flo
         if model.dim == 3 and isinstance(model.domain, Lattice):
             # the ladder is no way out here: its refined shells around a 3D Fermi surface grow 4x per
             # level (docs/performance.md, 3D lattices)
-            fix = (f"3D lattices have no low-temperature engine yet: from about {info['_warm_enough']:.3g} K "
-                   "this level resolves the window; below that, integrate a k·p model of the same band "
-                   "touchings (e.g. 'weyl-kp' or 'weyl-pair-kp': engine='shells', any temperature). "
-                   "engine='ladder' is not practical in 3D: a Weyl lattice at 30 K ran 14 minutes into 8.6 GiB "
-                   "without finishing.")
+            fix = (f"From about {info['_warm_enough']:.3g} K this level resolves the window; below that use "
+                   "engine='tetra' (linear tetrahedra on refined cells, 3D lattices at any temperature, e.g. "
+                   "resolution=1), or integrate a k·p model of the same band touchings (e.g. 'weyl-kp' or "
+                   "'weyl-pair-kp': engine='shells'). engine='ladder' is not practical in 3D: a Weyl lattice "
+                   "at 30 K ran 14 minutes into 8.6 GiB without finishing.")
         else:
             better, kind = (("ladder", "lattices") if isinstance(model.domain, Lattice) else
                             ("rays", "continuum models"))

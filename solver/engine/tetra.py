@@ -179,15 +179,23 @@ def piece_coefficients(e, A):
 # projection onto the knots of one table
 # --------------------------------------------------------------------------------------------
 
-def _poly_int(alpha, beta, q, s0, s1):
-    """∫_{s0}^{s1} (α + βs) dC(s) with dC = Σ_m m q_m s^{m−1} ds, for per-column q (..., 5, nc):
-    Σ_m m q_m [α (s^m)/m + β s^{m+1}/(m+1)] between the limits."""
-    a, b = alpha[..., None], beta[..., None]
+def _powers(s, n):
+    """s^0 … s^(n−1) stacked on a new last axis by products (a float power s**0 has a NaN
+    derivative at s = 0, where most pieces start)."""
+    out = [jnp.ones_like(s)]
+    for _ in range(n - 1):
+        out.append(out[-1] * s)
+    return jnp.stack(out, axis=-1)
 
-    def F(s):
-        s = s[..., None]
-        return sum(q[..., m, :] * (a * s ** m + b * m * s ** (m + 1) / (m + 1)) for m in range(1, 5))
-    return F(s1) - F(s0)
+
+def _hat_weights(alpha, beta, s0, s1):
+    """Weights w_m (..., 5) with ∫_{s0}^{s1} (α + βs) dC(s) = Σ_m w_m q_m for dC = Σ_m m q_m s^{m−1} ds:
+    w_m = α (s1^m − s0^m) + β m (s1^{m+1} − s0^{m+1})/(m + 1) (w_0 = 0).  Scalars per item; the
+    contraction with the per-column q is one small matrix product."""
+    m = jnp.arange(5, dtype=jnp.float64).reshape((1,) * s0.ndim + (5,))
+    p0, p1 = _powers(s0, 6), _powers(s1, 6)
+    return (alpha[..., None] * (p1[..., :5] - p0[..., :5])
+            + beta[..., None] * m * (p1[..., 1:] - p0[..., 1:]) / (m + 1))
 
 
 def project(acc, e, q, e_lo, delta, M):
@@ -205,7 +213,7 @@ def project(acc, e, q, e_lo, delta, M):
     for k in range(3):
         lo, hi = x[:, k], x[:, k + 1]
         s0 = jnp.clip(-lo / _safe(hi - lo), 0.0, 1.0)
-        part = jnp.einsum("nmc,nm->nc", q[:, k], s0[:, None] ** jnp.arange(q.shape[2], dtype=jnp.float64)[None, :])
+        part = jnp.einsum("nmc,nm->nc", q[:, k], _powers(s0, q.shape[2]))
         below = below + jnp.sum(jnp.where((lo < 0)[:, None], part, 0.0), axis=0)
     jref = M // 2
     for k in range(3):
@@ -231,10 +239,9 @@ def project(acc, e, q, e_lo, delta, M):
         r0, r1 = jnp.maximum(a[:, None], jf), jnp.minimum(b[:, None], jf + 1)
         lo_b = lo[:, None]
         Lb = L[:, None]
-        qb = qk[:, None]
-        left = _poly_int(lo_b - (jf - 1), Lb, qb, sA(l0), sA(jnp.maximum(l1, l0)))
-        right = _poly_int((jf + 1) - lo_b, -Lb, qb, sA(r0), sA(jnp.maximum(r1, r0)))
-        vals = jnp.where(ok[..., None], left + right, 0.0)                   # (N, 4, nc)
+        w = (_hat_weights(lo_b - (jf - 1), Lb, sA(l0), sA(jnp.maximum(l1, l0)))
+             + _hat_weights((jf + 1) - lo_b, -Lb, sA(r0), sA(jnp.maximum(r1, r0))))       # (N, 4, 5)
+        vals = jnp.einsum("nkm,nmc->nkc", jnp.where(ok[..., None], w, 0.0), qk)         # (N, 4, nc)
         idx = jnp.where(ok, cand, M)
         table = table.at[idx.reshape(-1)].add(vals.reshape(-1, nc), mode="drop")
         # interior knots ja+2 .. jb−2 of long pieces: ∫Λ_j g = g(j) + g''(j)/12 for the cubic
@@ -278,14 +285,13 @@ PARENT_CORNERS = np.array([9 * 2 * d[0] + 3 * 2 * d[1] + 2 * d[2] for d in _CUBE
 @dataclass(frozen=True)
 class TetraMeta:
     """Static shape of a plan: ``n0`` level-0 cells per axis, ``sizes[l−1]`` parent cells (padded)
-    refined at level l = 1..L, ``nt`` temperature levels below k_BT_0 = ``kt0`` (eV), ``knots``
-    per temperature table, ``rho`` knots per k_BT and ``slack`` (eV Å, the band-speed bound)."""
+    refined at level l = 1..L, ``nt`` temperature levels below k_BT_0, ``knots`` per temperature
+    table, ``rho`` knots per k_BT and ``slack`` (eV Å, the band-speed bound)."""
 
     n0: int
     sizes: tuple
     nt: int
     knots: int
-    kt0: float
     rho: float
     slack: float
 
@@ -300,12 +306,14 @@ class TetraMeta:
 
 @dataclass(frozen=True, eq=False)
 class TetraPlan:
-    """A concrete cell structure: ``meta`` (static) and the arrays ``refine0`` (n0³,) level-0 cells
-    split, ``parents[l−1]`` (sizes[l−1], 3) integer cell coordinates on the level-(l−1) grid (−1:
-    padding), ``refine[l−1]`` (sizes[l−1], 8) which children of those parents are split again
-    (levels 1..L−1), and ``counts`` the valid parents per level."""
+    """A concrete cell structure: ``meta`` (static) and the arrays ``kt_ladder`` (nt + 1,) k_BT_l (eV)
+    of the temperature tables, ``refine0`` (n0³,) level-0 cells split, ``parents[l−1]``
+    (sizes[l−1], 3) integer cell coordinates on the level-(l−1) grid (−1: padding), ``refine[l−1]``
+    (sizes[l−1], 8) which children of those parents are split again (levels 1..L−1), and
+    ``counts`` the valid parents per level."""
 
     meta: TetraMeta
+    kt_ladder: np.ndarray
     refine0: np.ndarray
     parents: tuple
     refine: tuple
@@ -321,12 +329,17 @@ class TetraPlan:
         return self.meta.n0 ** 3 + 19 * int(sum(self.counts))
 
     def arrays(self):
-        return (jnp.asarray(self.refine0), tuple(jnp.asarray(p) for p in self.parents),
+        return (jnp.asarray(self.kt_ladder), jnp.asarray(self.refine0), tuple(jnp.asarray(p) for p in self.parents),
                 tuple(jnp.asarray(r) for r in self.refine))
 
 
+_SIGNS = np.array(list(itertools.product((1.0, -1.0), repeat=3)))
+
+
 def _halfdiag(b, n):
-    return 0.5 * float(np.sum(np.linalg.norm(np.asarray(b), axis=-1))) / n
+    """Half the longest diagonal of a cell spanned by b_i/n: no point of the cell is farther from
+    its nearest corner."""
+    return 0.5 * float(np.max(np.linalg.norm(_SIGNS @ np.asarray(b), axis=-1))) / n
 
 
 def _bucket(x):
@@ -337,13 +350,15 @@ def _bucket(x):
 
 
 def temperature_levels(temperature):
-    """k_BT_0 (eV) on the binary lattice k_B T_DEEP 2^m and the number of levels below it, for the
-    concrete temperatures of a call."""
+    """k_BT_0 = k_B max(T) (eV) and the number of halvings below it that reach min(T), for the
+    concrete temperatures of a call: one table for a single temperature; at least two levels when
+    a condition lies below T_DEEP (T = 0 included), for the T² extrapolation."""
     t = np.maximum(np.atleast_1d(np.asarray(temperature, dtype=float)), T_FLOOR)
-    m = max(2, int(np.ceil(np.log2(max(float(t.max()), T_DEEP) / T_DEEP))))
-    kt0 = KB * T_DEEP * 2.0 ** m
+    kt0 = KB * max(float(t.max()), T_DEEP)
     target = KB * max(float(t.min()), T_DEEP)
-    nt = max(2, int(np.ceil(np.log2(kt0 / target))))
+    nt = int(np.ceil(np.log2(kt0 / target) - 1e-9)) if kt0 > target else 0
+    if float(t.min()) < T_DEEP:
+        nt = max(nt, 2)
     return kt0, nt
 
 
@@ -456,8 +471,8 @@ def make_plan(model, params, mu, temperature, resolution: int, cap: int = 40000)
         raise ValueError("response: engine='tetra' found no cell near the Fermi level: the window "
                          f"[{lo:.4g}, {hi:.4g}] eV lies outside every band of model '{model.name}'")
     refine = refine[:len(parents) - 1]
-    meta = TetraMeta(n0, tuple(sizes), nt, M, float(kt0), RHO, float(slack))
-    return TetraPlan(meta, refine0, tuple(parents), tuple(refine), tuple(counts))
+    meta = TetraMeta(n0, tuple(sizes), nt, M, RHO, float(slack))
+    return TetraPlan(meta, ktl, refine0, tuple(parents), tuple(refine), tuple(counts))
 
 
 # --------------------------------------------------------------------------------------------
@@ -483,19 +498,18 @@ def _tet_items(E, F):
 def build_tables(model, params, meta: TetraMeta, arrays, mu, sea):
     """Fine and coarse energy tables of every temperature level; ``(levels, info)`` in the form
     :func:`crosswind.solver.engine.ladder.condition_sums` reads."""
-    refine0, parents, refine = arrays
+    ktl, refine0, parents, refine = arrays
     layout, nc = _ladder.factor_layout(3, sea)
     b = jax.lax.stop_gradient(model.reciprocal_vectors(params))
-    vol = jnp.abs(jnp.linalg.det(b)) / (2 * jnp.pi) ** 3
+    vol = jnp.abs(jnp.dot(b[0], jnp.cross(b[1], b[2]))) / (2 * jnp.pi) ** 3
     n0, L, M = meta.n0, meta.depth, meta.knots
     K = meta.nt + 1
     Mc = (M + 1) // 2
     nb = model.n_bands
-    ktl = meta.kt0 / 2.0 ** jnp.arange(K, dtype=jnp.float64)
     e_lo, delta, fits = table_ranges(jax.lax.stop_gradient(mu), ktl, meta.rho, M)
     lo, hi = e_lo[0], e_lo[0] + (M - 1) * delta[0]
-    bsum = jnp.sum(jnp.sqrt(jnp.sum(b * b, axis=-1)))
-    slack = lambda n: meta.slack * 0.5 * bsum / n
+    diag = jnp.max(jnp.sqrt(jnp.sum((jnp.asarray(_SIGNS) @ b) ** 2, axis=-1)))
+    slack = lambda n: meta.slack * 0.5 * diag / n
     cw = jnp.asarray(CORNER_W)
 
     # level 0: every point, its cells' fully occupied bands
