@@ -932,7 +932,7 @@ def response(model: BandModel, mu, temperature, tau, frequency=0.0, *, rtol: flo
         if model.dim == 3 and isinstance(model.domain, Lattice):
             # the ladder is no way out here: its refined shells around a 3D Fermi surface grow 4x per
             # level (docs/performance.md, 3D lattices)
-            fix = (f"From about {info['_warm_enough']:.3g} K this level resolves the window; below that use "
+            fix = (f"This level resolves the window from about {info['_warm_enough']:.3g} K; below that use "
                    "engine='tetra' (linear tetrahedra on refined cells, 3D lattices at any temperature, e.g. "
                    "resolution=1), or integrate a k·p model of the same band touchings (e.g. 'weyl-kp' or "
                    "'weyl-pair-kp': engine='shells'). engine='ladder' is not practical in 3D: a Weyl lattice "
