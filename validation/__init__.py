@@ -44,7 +44,7 @@ def evaluate_case(case) -> dict:
         cond["mu"] = getattr(references, cond["mu"])(case["params"])
     kwargs = dict(mu=cond["mu"], temperature=cond["temperature"], tau=cond["tau"],
                   frequency=cond.get("frequency", 0.0), rtol=case.get("solver_rtol", 1e-3),
-                  engine=case.get("engine", "mesh"))
+                  engine=case.get("engine", "mesh"), resolution=case.get("resolution"))
     r = response(build(case["model"], **case["params"]), **kwargs)
     value = _pick(r, case["quantity"])
     if "ratio_to" in case:

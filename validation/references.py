@@ -72,6 +72,13 @@ def tilted_dipole_quadrature(params, cond):
     return val / (2 * np.pi) ** 2 * 1e-10
 
 
+def weyl_pair_hall(params, cond):
+    """(e²/h)·2k0/(2π) in S/m for the `weyl` lattice, k0 = node_position·π/a (Burkov & Balents 2011)."""
+    a = params.get("lattice_constant", 3.0) * 1e-10
+    k0 = params.get("node_position", 0.5) * np.pi / a
+    return C.e ** 2 / C.h * 2 * k0 / (2 * np.pi)
+
+
 def minus_e2_over_h(params, cond):
     return -C.e ** 2 / C.h
 
