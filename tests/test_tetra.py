@@ -1,4 +1,4 @@
-"""Linear tetrahedra on refined cells (solver/engine/tetra.py, docs/theory.md §17).
+"""Linear tetrahedra on refined cells (solver/engine/tetra.py, docs/theory.md §16.6).
 
 References the project did not write: Monte Carlo sampling of a tetrahedron (uniform barycentric
 coordinates: a flat Dirichlet distribution, common practice), scipy quadrature of the energy
@@ -55,31 +55,34 @@ def test_piece_polynomials_reproduce_the_cumulative_measure():
                                        atol=1e-13)
 
 
-@pytest.mark.parametrize("delta", [0.002, 0.02, 0.3])
-def test_hat_projection_integrates_smooth_functions_like_scipy_quad(delta):
-    # Σ_j table_j φ(E_j) = ∫ (Iφ) dC, Iφ the linear interpolant: the knot sum of a Gaussian of width
-    # w agrees with scipy's quadrature of φ dC/dE to the interpolation error ~ δ²φ''/12, and the
-    # measure below the first knot is C(E_lo) exactly.  delta = 0.3 makes every piece short.
-    w, centre = 0.25, 0.1
-    phi = lambda x: np.exp(-((x - centre) / w) ** 2)
-    e_lo = E4[1] - 0.013
-    M = int((E4[3] + 1.0 - e_lo) / delta)
+@pytest.mark.parametrize("delta,e_lo,M", [(0.002, E4[1] - 0.013, 1500),   # long pieces, top clipped
+                                         (0.02, E4[0] - 0.5, 400),        # long pieces, all inside
+                                         (0.3, E4[0] + 0.07, 9),          # short pieces, both ends clipped
+                                         (0.9, E4[0] - 0.4, 4)])          # every piece inside two knots
+def test_hat_projection_is_exact_for_piecewise_linear_knot_functions(delta, e_lo, M):
+    # Σ_j table_j v_j = ∫ (I v) dC over [E_lo, E_lo + (M−1)δ] for any knot values v, I v the
+    # piecewise-linear interpolant, and the measure below E_lo is C(E_lo): checked with random v
+    # against scipy's quadrature of (I v) dC/dE (breakpoints at knots and vertex energies)
     q = tt.piece_coefficients(jnp.asarray(E4)[None], jnp.asarray(A4)[None])
     acc = (jnp.zeros((M, 3)), jnp.zeros((M + 1, 4, 3)), jnp.zeros(3))
     table, below = tt.finish_table(tt.project(acc, jnp.asarray(E4)[None], q, e_lo, delta, M), M)
     knots = e_lo + delta * np.arange(M)
-    got = np.asarray(table).T @ phi(knots)
+    v = np.random.default_rng(3).normal(size=M)
+    got = np.asarray(table).T @ v
     grad = jax.jit(jax.jacfwd(lambda y: tt.cumulative(y, jnp.asarray(E4), jnp.asarray(A4))))
-    dens = lambda x, c: float(grad(jnp.asarray(x))[c])
+    top = knots[-1]
+    pts = np.sort(np.concatenate([knots, E4]))
     for c in range(3):
-        want = sum(quad(lambda x: phi(x) * dens(x, c), max(E4[k], e_lo), E4[k + 1], epsabs=1e-13)[0]
-                   for k in range(3) if E4[k + 1] > e_lo)
-        # |Iφ − φ| ≤ δ² max|φ''|/8 with max|φ''| = 2/w², against a measure of total variation ≤ max|A|
-        assert abs(got[c] - want) <= delta ** 2 / (4 * w ** 2) * np.max(np.abs(A4)) + 1e-12
+        f = lambda x: np.interp(x, knots, v) * float(grad(jnp.asarray(x))[c])
+        want = 0.0
+        for lo_, hi_ in zip(pts[:-1], pts[1:]):
+            lo_, hi_ = max(lo_, e_lo), min(hi_, top)
+            if hi_ > lo_:
+                want += quad(f, lo_, hi_, epsabs=1e-14, epsrel=1e-12)[0]
+        assert abs(got[c] - want) <= 1e-10 * (1 + np.abs(v).max())
     np.testing.assert_allclose(np.asarray(below),
                                np.asarray(tt.cumulative(jnp.asarray(e_lo), jnp.asarray(E4), jnp.asarray(A4))),
                                atol=1e-14)
-    np.testing.assert_allclose(np.asarray(table).sum(0) + np.asarray(below), A4.mean(0), atol=1e-12)
 
 
 def test_bad_engine_for_the_model_is_refused_with_the_fix():
@@ -110,7 +113,7 @@ def test_weyl_pair_anomalous_hall_at_the_nodes_at_zero_temperature():
 
 @pytest.mark.slow
 def test_weyl_pair_anomalous_hall_within_its_estimate_at_resolution_1():
-    # measured: 1.0107 with an estimate of 0.030 at T = 0
+    # measured: 1.0107 with an estimate of 0.030 (at T = 0 and 10 K alike)
     _, ratio, err = _weyl_hall_ratio(1, 10.0)
     assert abs(ratio - 1.0) <= err
     assert abs(ratio - 1.0) < 0.015
@@ -132,3 +135,23 @@ def test_forward_derivative_with_a_fixed_plan_matches_finite_differences():
     fd = (fields(1.0 + h) - fields(1.0 - h)) / (2 * h)
     assert np.all(np.isfinite(np.asarray(tangent)))
     np.testing.assert_allclose(np.asarray(tangent), np.asarray(fd), rtol=2e-4, atol=1e-6 * np.abs(fd).max())
+
+
+def test_a_plan_reused_at_a_higher_temperature_reports_an_infinite_error():
+    # the level-0 table of a plan made at 10 K cannot hold the thermal window at 20 K
+    m = build("weyl", node_position=0.5)
+    plan = tt.make_plan(m, m.params, np.array([0.0]), np.array([10.0]), 0)
+    r = response(m, mu=0.0, temperature=20.0, tau=100.0, engine="tetra", resolution=0, plan=plan)
+    assert np.isposinf(float(r.error.sigma[0, 0])) and np.isposinf(float(r.error.density))
+
+
+def test_temperature_levels_reach_the_coldest_condition():
+    # one table for one temperature; colder than T_DEEP: levels 4, 2, 1 × T_DEEP (T² extrapolation
+    # from T_DEEP and 2 T_DEEP); every level list ends at or below the coldest condition
+    from crosswind.models.units import KB_EVK
+    assert tt.temperature_levels([10.0]) == (KB_EVK * 10.0, 0)
+    kt0, nt = tt.temperature_levels([0.0])
+    np.testing.assert_allclose(kt0 / 2.0 ** np.arange(nt + 1) / KB_EVK, [1.0, 0.5, 0.25])
+    for temps in ([1.0, 20.0], [2.0, 3.0, 17.3], [0.3, 100.0]):
+        kt0, nt = tt.temperature_levels(temps)
+        assert kt0 / 2.0 ** nt <= KB_EVK * min(temps) * (1 + 1e-12) and kt0 / 2.0 ** (nt - 1) > KB_EVK * min(temps)

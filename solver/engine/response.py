@@ -124,13 +124,14 @@ class Resolution:
     * ``window_ratio`` (float): the largest node spacing / thermal window (only when some
       window is unresolved, else None).
 
-    Energy-resolved engines (``"ladder"``, ``"rays"``; None for the node quadrature):
+    Energy-resolved engines (``"ladder"``, ``"tetra"``, ``"rays"``, ``"shells"``; None for the node
+    quadrature):
 
     * ``plan``: the plan of the last pass (ladder: :class:`~crosswind.solver.engine.ladder.Plan`;
-      rays: ``(RayPlan, RayGrid)``); pass ``plan=r.resolution.plan`` to ``response`` under
-      ``jax.grad``/``jax.jit``;
+      tetra: :class:`~crosswind.solver.engine.tetra.TetraPlan`; rays: ``(RayPlan, RayGrid)``); pass
+      ``plan=r.resolution.plan`` to ``response`` under ``jax.grad``/``jax.jit``;
     * ``attempts`` (int): passes at ``level`` (a run whose budget overflowed is repeated);
-    * ``levels`` (int, ladder only): temperature levels of the plan.
+    * ``levels`` (int, ladder and tetra): temperature levels of the plan.
     """
 
     engine: str
@@ -834,7 +835,8 @@ def response(model: BandModel, mu, temperature, tau, frequency=0.0, *, rtol: flo
     ``engine="tetra"`` (3D lattice models, opt-in) integrates linear tetrahedra on cells refined
     near the conditions' energy window and near band touchings
     (:mod:`crosswind.solver.engine.tetra`, docs/theory.md §16.6): the mesh resolves the bands, not
-    k_BT, so it reaches 1–20 K and T = 0 (T² extrapolation below 0.25 K); ``resolution`` indexes
+    k_BT, so it reaches 1–20 K and T = 0 (below 0.25 K by T² extrapolation from 0.25 and 0.5 K);
+    a plan reused at a temperature above the one it was made for gives ``error = inf``; ``resolution`` indexes
     ``tetra.RESOLUTIONS``; the same ``plan`` rule applies under ``jax.grad``/``jit``.  Its nested
     estimate compares the deepest cells with their parents and the unrefined level-0 cells with
     the n0/2 grid; docs/performance.md records where it is not yet a bound.

@@ -10,12 +10,13 @@ tetrahedron's energy-resolved measure
     C(E) = ∫_tet A(k) θ(E − ε(k)) d³k
 
 is then known exactly (a cubic polynomial of E between the sorted vertex energies ε1 ≤ … ≤ ε4,
-:func:`piece_coefficients`), so the mesh has to resolve the bands, not k_BT (docs/theory.md §17).
+:func:`piece_coefficients`), so the mesh has to resolve the bands, not k_BT (docs/theory.md §16.6).
 
 Cells.  Level 0 is a periodic n0³ lattice of cell corners over the Brillouin zone (shifted by a
 generic offset, so that no corner lands on a symmetry point such as a band touching).  A cell whose
 band energies, widened by the largest band speed times its half diagonal (a bound on the band
-inside the cell), reach the energy window of the conditions is split into eight children, down to
+inside the cell), reach the energy window of the conditions (μ ± W k_BT_0, :func:`table_ranges`),
+or that lies near a touching of two bands straddling it, is split into eight children, down to
 level L; the 8 corners of each cell are evaluated, and each cell is cut into six tetrahedra along
 its main diagonal (Kuhn/Freudenthal).  Unrefined cells are entirely below or above the window: the
 ones below contribute their whole tetrahedron integral (every condition sees them fully occupied),
@@ -25,7 +26,8 @@ Energy axis.  Knots E_lo + jδ per temperature level (δ_l = k_BT_l/ρ, the temp
 :mod:`crosswind.solver.engine.ladder`); a tetrahedron deposits onto knot j the exact integral
 ∫ Λ_j(E) dC(E) of the linear hat function Λ_j of the knot: exact for the interior knots of each
 polynomial piece by a difference array of the piece's polynomial (cost independent of the number of
-knots a piece spans), exact for the ≤ 4 knots at each end.  Σ_j table_j φ(E_j) is then ∫ (Iφ) dC
+knots a piece spans), and directly for the knots near its ends (two at each end of a long piece,
+at most four for a short one).  Σ_j table_j φ(E_j) is then ∫ (Iφ) dC
 with Iφ the piecewise-linear interpolant of φ (error O(δ²φ'')).  Every condition reads the tables
 as in the ladder (:func:`crosswind.solver.engine.ladder.condition_sums`, T² extrapolation below the
 deepest temperature level included).
@@ -56,8 +58,12 @@ SLACK = 1.1                # the band-speed bound of the probe grid, widened
 GAP = 4.0                  # cells with a band gap below GAP × (band-speed bound) are split
 #: generic offset of the corner lattice (units of the level-0 spacing): no corner on a symmetry point
 OFFSET = np.array([0.1234567, 0.2718281, 0.3141592])
-#: lowest temperature level (K); colder conditions (T = 0 included) are extrapolated in T²
+#: lowest temperature level (K); colder conditions (T = 0 included) are extrapolated in T² from
+#: T_DEEP and 2 T_DEEP
 T_DEEP = 0.25
+#: largest energy table (knots): the cubic difference arrays are expanded about the table centre
+#: (rounding grows with the distance in knots) and cost K (M + 1) 4 nc doubles
+M_MAX = 16384
 #: (n0, L) per resolution index: level-0 cells per axis and refinement levels
 RESOLUTIONS = ((12, 3), (16, 4), (16, 5), (24, 5), (24, 6), (32, 6))
 RHO = 8.0                  # knots per k_BT of a temperature level
@@ -199,7 +205,7 @@ def _hat_weights(alpha, beta, s0, s1):
 
 
 def project(acc, e, q, e_lo, delta, M):
-    """Deposit items (sorted energies ``e`` (N, 4), piece coefficients ``q`` (N, 3, 4, nc) already
+    """Deposit items (sorted energies ``e`` (N, 4), piece coefficients ``q`` (N, 3, 5, nc) already
     scaled by the volume) onto a table of M
     knots E_lo + jδ.  ``acc`` = (table (M, nc), diff (M + 1, 4, nc), below (nc,)).  The measure
     below the first knot goes to ``below``; above the last knot it is dropped (the plan places every
@@ -343,7 +349,8 @@ def _halfdiag(b, n):
 
 
 def _bucket(x):
-    """Round up to 4 buckets per octave (≤ 25 % padding; few distinct compiled shapes)."""
+    """Round up to 4 buckets per octave and to a multiple of CELL_CHUNK (few distinct compiled
+    shapes; at most 25 % padding above 4·CELL_CHUNK)."""
     x = max(int(x), CELL_CHUNK)
     step = 2 ** max(int(np.floor(np.log2(x))) - 2, 0)
     return int(CELL_CHUNK * np.ceil(step * np.ceil(x / step) / CELL_CHUNK))
@@ -354,34 +361,43 @@ def temperature_levels(temperature):
     concrete temperatures of a call: one table for a single temperature; at least two levels when
     a condition lies below T_DEEP (T = 0 included), for the T² extrapolation."""
     t = np.maximum(np.atleast_1d(np.asarray(temperature, dtype=float)), T_FLOOR)
-    kt0 = KB * max(float(t.max()), T_DEEP)
+    cold = float(t.min()) < T_DEEP
+    # colder than T_DEEP: levels down to T_DEEP, extrapolated from T_DEEP and 2 T_DEEP
+    kt0 = KB * max(float(t.max()), 4 * T_DEEP if cold else T_DEEP)
     target = KB * max(float(t.min()), T_DEEP)
-    nt = int(np.ceil(np.log2(kt0 / target) - 1e-9)) if kt0 > target else 0
-    if float(t.min()) < T_DEEP:
-        nt = max(nt, 2)
+    nt = 0
+    while kt0 / 2.0 ** nt > target * (1 + 1e-12):
+        nt += 1
     return kt0, nt
 
 
 def table_ranges(mu, ktl, rho, M):
-    """(e_lo (K,), δ (K,), fits) of the temperature tables: M knots of spacing δ_k = k_BT_k/ρ
-    centred on the μ range; level k must hold μ ± W k_BT_{k−1} (level 0: ± W k_BT_0)."""
+    """(e_lo (K,), δ (K,), fits, (w_lo, w_hi)) of the temperature tables: M knots of spacing
+    δ_k = k_BT_k/ρ centred on the μ range; level k must hold μ ± W k_BT_{k−1} (level 0: ± W k_BT_0).
+    [w_lo, w_hi] = [min μ − W k_BT_0 − 6δ_0, max μ + W k_BT_0 + 6δ_0] is the window of the cells:
+    below it every condition's occupation is 1, above it 0 (to e^{−W}), and every level's window
+    lies inside it."""
     mlo, mhi = jnp.min(mu), jnp.max(mu)
     delta = ktl / rho
     centre = jnp.floor(0.5 * (mlo + mhi) / delta) * delta
     e_lo = centre - (M // 2) * delta
     kwin = jnp.concatenate([ktl[:1], ktl[:-1]])
     fits = jnp.all((mhi - mlo + 2 * W * kwin + 12 * delta) <= (M - 1) * delta)
-    return e_lo, delta, fits
+    reach = W * ktl[0] + 6 * delta[0]
+    return e_lo, delta, fits, (mlo - reach, mhi + reach)
 
 
-@partial(jax.jit, static_argnames=("n_bands",))
-def _energies(model, params, red, n_bands):
+@jax.jit
+def _energies(model, params, red):
+    """Band energies per block (…, S, m) at reduced points ``red`` (…, 3): eigvalsh only."""
     b = model.reciprocal_vectors(params)
+    w = jax.vmap(lambda q: jnp.linalg.eigvalsh(model.hamiltonian(q @ b, params)))(red.reshape(-1, red.shape[-1]))
+    return w.reshape(red.shape[:-1] + w.shape[1:])
 
-    def one(q):
-        w = jnp.linalg.eigvalsh(model.hamiltonian(q @ b, params))
-        return jnp.sort(w.reshape(-1))
-    return jax.vmap(one)(red.reshape(-1, red.shape[-1])).reshape(red.shape[:-1] + (n_bands,))
+
+def _merged(Eb):
+    """Per-block energies (…, S, m) merged and sorted (…, S·m), the order of geometry_at."""
+    return np.sort(Eb.reshape(Eb.shape[:-2] + (-1,)), axis=-1)
 
 
 def _points0(n0):
@@ -403,20 +419,25 @@ def _cell_corners0(n0):
 
 
 def _intersects(Ec, s, lo, hi):
-    """(…, nb) whether a cell with corner energies ``Ec`` (…, 8, nb) reaches [lo, hi] or comes
-    within GAP·s of a band touching (the Berry curvature of the two bands varies there on the scale
-    of the gap: split down to the deepest level), and whether it is entirely below lo (band-speed
-    bound ``s`` on the excursion between corners)."""
+    """(…, nb) whether a cell with corner energies ``Ec`` (…, 8, nb) reaches [lo, hi] (band-speed
+    bound ``s`` on the excursion between corners), and whether it lies below lo (for a cell that
+    does not reach the window: its highest corner below lo)."""
     emin, emax = Ec.min(axis=-2), Ec.max(axis=-2)
-    split = (emin - s <= hi) & (emax + s >= lo)
-    if Ec.shape[-1] > 1:
-        gap = (Ec[..., 1:] - Ec[..., :-1]).min(axis=-2)                    # (…, nb − 1)
-        near = gap < GAP * s
-        pad = near[..., :1] & False
-        split = split | jnp.concatenate([near, pad], -1) | jnp.concatenate([pad, near], -1) \
-            if isinstance(Ec, jax.Array) else \
-            split | np.concatenate([near, pad], -1) | np.concatenate([pad, near], -1)
-    return split, (emax + s < lo) & ~split
+    return (emin - s <= hi) & (emax + s >= lo), emax < lo
+
+
+def _near_touching(Eb, s, lo, hi):
+    """(…,) whether a cell with per-block corner energies ``Eb`` (…, 8, S, m) comes within GAP·s
+    of a touching of two adjacent bands of one block that straddle the window (the lower one
+    reaching down into or below it, the upper one up into or above it): the Berry curvature of
+    the pair varies there on the scale of the gap, so such cells are split down to the deepest
+    level.  Pairs both below the window (their curvatures cancel) or both above it are left."""
+    if Eb.shape[-1] < 2:
+        return np.zeros(Eb.shape[:-3], bool)
+    gap = (Eb[..., 1:] - Eb[..., :-1]).min(axis=-3)                           # (…, S, m − 1)
+    low = Eb[..., :-1].min(axis=-3) - s <= hi
+    high = Eb[..., 1:].max(axis=-3) + s >= lo
+    return np.any((gap < GAP * s) & low & high, axis=(-2, -1))
 
 
 def make_plan(model, params, mu, temperature, resolution: int, cap: int = 40000) -> TetraPlan:
@@ -434,8 +455,12 @@ def make_plan(model, params, mu, temperature, resolution: int, cap: int = 40000)
     span = float(np.ptp(mu))
     M = max(_ladder._pow2((span + 2 * W * ktl[k - 1 if k else 0]) / (ktl[k] / RHO) + 32)
             for k in range(nt + 1))
-    e_lo, delta, _ = table_ranges(jnp.asarray(mu), jnp.asarray(ktl), RHO, M)
-    lo, hi = float(e_lo[0]), float(e_lo[0] + (M - 1) * delta[0])
+    if M > M_MAX:
+        raise ValueError(f"response: engine='tetra' would need energy tables of {M} knots (μ range "
+                         f"{span:.3g} eV at {float(ktl[-1]) / KB:.3g} K); at most {M_MAX}: split the sweep into "
+                         "μ ranges a few hundred k_BT wide, or raise the lowest temperature")
+    _, _, _, (wlo, whi) = table_ranges(jnp.asarray(mu), jnp.asarray(ktl), RHO, M)
+    lo, hi = float(wlo), float(whi)
     b = np.asarray(model.reciprocal_vectors(params))
     vmax = float(_ladder.probe_speed(model, params))
     if not np.isfinite(vmax):
@@ -443,10 +468,10 @@ def make_plan(model, params, mu, temperature, resolution: int, cap: int = 40000)
                          "infinite somewhere in the Brillouin zone (found while planning the tetrahedron "
                          "cells); check the Hamiltonian and its parameters there")
     slack = SLACK * max(vmax, 1e-6)
-    nb = model.n_bands
-    E0 = np.asarray(_energies(model, params, jnp.asarray(_points0(n0)), n_bands=nb))
-    cut, _ = _intersects(E0[_cell_corners0(n0)], slack * _halfdiag(b, n0), lo, hi)
-    refine0 = np.any(cut, axis=-1)
+    Eb = np.asarray(_energies(model, params, jnp.asarray(_points0(n0))))[_cell_corners0(n0)]
+    s0 = slack * _halfdiag(b, n0)
+    cut, _ = _intersects(_merged(Eb), s0, lo, hi)
+    refine0 = np.any(cut, axis=-1) | _near_touching(Eb, s0, lo, hi)
     parents, refine, counts, sizes = [], [], [], []
     cur = np.argwhere(refine0.reshape(n0, n0, n0))
     for lev in range(1, L + 1):
@@ -461,16 +486,15 @@ def make_plan(model, params, mu, temperature, resolution: int, cap: int = 40000)
         if lev == L:
             break
         red = _points27(np.where(par < 0, 0, par), lev, n0)
-        E = np.asarray(_energies(model, params, jnp.asarray(red), n_bands=nb))      # (B, 27, nb)
-        cut, _ = _intersects(E[:, CHILD_CORNERS], slack * _halfdiag(b, n0 * 2 ** lev), lo, hi)
-        r = np.any(cut, axis=-1) & (par[:, :1] >= 0)                                # (B, 8)
+        Eb = np.asarray(_energies(model, params, jnp.asarray(red)))[:, CHILD_CORNERS]   # (B, 8, 8, S, m)
+        s_l = slack * _halfdiag(b, n0 * 2 ** lev)
+        cut, _ = _intersects(_merged(Eb), s_l, lo, hi)
+        r = (np.any(cut, axis=-1) | _near_touching(Eb, s_l, lo, hi)) & (par[:, :1] >= 0)   # (B, 8)
         refine.append(r)
         ch = 2 * par[:, None, :] + _CUBE[None]
         cur = ch[r]
-    if not parents:
-        raise ValueError("response: engine='tetra' found no cell near the Fermi level: the window "
-                         f"[{lo:.4g}, {hi:.4g}] eV lies outside every band of model '{model.name}'")
-    refine = refine[:len(parents) - 1]
+    # no cell to split (μ in a gap far from every band): the level-0 cells alone, depth 0
+    refine = refine[:max(len(parents) - 1, 0)]
     meta = TetraMeta(n0, tuple(sizes), nt, M, RHO, float(slack))
     return TetraPlan(meta, ktl, refine0, tuple(parents), tuple(refine), tuple(counts))
 
@@ -495,7 +519,7 @@ def _tet_items(E, F):
     return jnp.take_along_axis(Et, order, -1), jnp.take_along_axis(Ft, order[..., None], -2)
 
 
-def build_tables(model, params, meta: TetraMeta, arrays, mu, sea):
+def build_tables(model, params, meta: TetraMeta, arrays, mu, kt, sea):
     """Fine and coarse energy tables of every temperature level; ``(levels, info)`` in the form
     :func:`crosswind.solver.engine.ladder.condition_sums` reads."""
     ktl, refine0, parents, refine = arrays
@@ -506,8 +530,11 @@ def build_tables(model, params, meta: TetraMeta, arrays, mu, sea):
     K = meta.nt + 1
     Mc = (M + 1) // 2
     nb = model.n_bands
-    e_lo, delta, fits = table_ranges(jax.lax.stop_gradient(mu), ktl, meta.rho, M)
-    lo, hi = e_lo[0], e_lo[0] + (M - 1) * delta[0]
+    e_lo, delta, fits, (lo, hi) = table_ranges(jax.lax.stop_gradient(mu), ktl, meta.rho, M)
+    # a plan made for colder conditions: the level-0 table would cut their windows short
+    fits = fits & (jnp.max(jax.lax.stop_gradient(kt)) <= ktl[0] * (1 + 1e-9))
+    # stale: a leaf that reaches the window by more than rounding (plan: eigvalsh in numpy)
+    tight = 1 - 1e-9
     diag = jnp.max(jnp.sqrt(jnp.sum((jnp.asarray(_SIGNS) @ b) ** 2, axis=-1)))
     slack = lambda n: meta.slack * 0.5 * diag / n
     cw = jnp.asarray(CORNER_W)
@@ -526,7 +553,7 @@ def build_tables(model, params, meta: TetraMeta, arrays, mu, sea):
     _, (e0, f0) = jax.lax.scan(jax.checkpoint(body0), None, jnp.arange(nch))
     e0, f0 = e0.reshape(-1, nb)[:N0], f0.reshape(-1, nb, nc)[:N0]
     corners = jnp.asarray(_cell_corners0(n0))
-    cut, bel = _intersects(jax.lax.stop_gradient(e0)[corners], slack(n0), lo, hi)
+    cut, bel = _intersects(jax.lax.stop_gradient(e0)[corners], slack(n0) * tight, lo, hi)
     leaf0 = ~refine0
     stale = jnp.any(jnp.any(cut, -1) & leaf0)
     wcell = jnp.where(bel & leaf0[:, None], vol / n0 ** 3, 0.0)                      # (n0³, nb)
@@ -571,7 +598,7 @@ def build_tables(model, params, meta: TetraMeta, arrays, mu, sea):
             e, f = e.reshape(CELL_CHUNK, 27, nb), f.reshape(CELL_CHUNK, 27, nb, nc)
             ech, fch = e[:, CHILD_CORNERS], f[:, CHILD_CORNERS]               # (c, 8, 8, nb[, nc])
             if not deepest:
-                cut, bel = _intersects(jax.lax.stop_gradient(ech), s_l, lo, hi)  # (c, 8, nb)
+                cut, bel = _intersects(jax.lax.stop_gradient(ech), s_l * tight, lo, hi)  # (c, 8, nb)
                 leaf = ~r & ok[:, None]
                 stale = stale | jnp.any(jnp.any(cut, -1) & leaf)
                 w = jnp.where(bel & leaf[..., None], V_l, 0.0)
@@ -608,6 +635,6 @@ def tetra_moments(model, params, meta, arrays, mu, kt, temp, tau_eval, tau_arr, 
                   condition_chunk=128):
     """Fine and coarse kernel sums for P conditions from one cell structure (the ladder's condition
     sums: :func:`crosswind.solver.engine.ladder.moments_from_tables`)."""
-    levels, info = build_tables(model, params, meta, arrays, mu, sea)
+    levels, info = build_tables(model, params, meta, arrays, mu, kt, sea)
     return _ladder.moments_from_tables(levels, info, meta, mu, kt, temp, tau_eval, tau_arr, omega, filled,
                                        sea, condition_chunk)
