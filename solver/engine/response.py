@@ -531,6 +531,31 @@ def _mesh_path(model, muf, kt, Tf, tauf, omega, kw, rtol, resolution, max_level,
     return fine, err, bad, info
 
 
+def _resolution_loop(run, nres, resolution, max_level, plan, rtol, model, tau_max):
+    """``run(level, plan)`` → (plans tried, fine moments, fine Response, error) at the fixed
+    ``resolution`` (with ``plan``), or from level 1 up until every field converges (or the top
+    level).  Returns (level, plans tried, fine, err, unconverged fields or None, k-points of every
+    run)."""
+    bad = None
+    if resolution is None:
+        top = nres - 1 if max_level is None else min(max_level, nres - 1)
+        lev, k_points = 1, 0
+        while True:
+            tried, f, fine, err = run(lev, None)
+            k_points += sum(p.k_points(model.dim) for p in tried)
+            bad = _converged(fine, err, f, rtol, model, tau_max)
+            if not bad or lev >= top:
+                break
+            lev += 1
+    else:
+        if not (0 <= resolution <= nres - 1):
+            raise ValueError(f"response: resolution must be a level 0..{nres - 1}")
+        lev = resolution
+        tried, f, fine, err = run(lev, plan)
+        k_points = sum(p.k_points(model.dim) for p in tried)
+    return lev, tried, fine, err, bad, k_points
+
+
 def _ladder_path(model, muf, kt, Tf, tauf, omega, kw, rtol, resolution, max_level, intrinsic, plan,
                  traced, tau_max):
     """Energy-resolved ladder (:mod:`crosswind.solver.engine.ladder`): one program per resolution
@@ -542,26 +567,13 @@ def _ladder_path(model, muf, kt, Tf, tauf, omega, kw, rtol, resolution, max_leve
     if traced and plan is None:
         raise ValueError("response: with engine='ladder' under jax.grad/jit pass plan=..., the plan of "
                          "a concrete call: response(...).resolution.plan")
-    bad = None
-    k_points = 0
-    if resolution is None:
-        top = nres - 1 if max_level is None else min(max_level, nres - 1)
-        lev = 1
-        while True:
-            f, c, ex, over, tried = _run_ladder(model, muf, kt, Tf, tauf, omega, lev, kw, None, False)
-            k_points += sum(p.k_points(model.dim) for p in tried)
-            fine, err = _ladder_errors(f, c, ex, over, model, Tf, intrinsic)
-            bad = _converged(fine, err, f, rtol, model, tau_max)
-            if not bad or lev >= top:
-                break
-            lev += 1
-    else:
-        if not (0 <= resolution <= nres - 1):
-            raise ValueError(f"response: resolution must be a level 0..{nres - 1}")
-        lev = resolution
-        f, c, ex, over, tried = _run_ladder(model, muf, kt, Tf, tauf, omega, lev, kw, plan, traced)
-        k_points = sum(p.k_points(model.dim) for p in tried)
-        fine, err = _ladder_errors(f, c, ex, over, model, Tf, intrinsic)
+
+    def run(lev, given):
+        f, c, ex, over, tried = _run_ladder(model, muf, kt, Tf, tauf, omega, lev, kw, given, traced)
+        return (tried, f) + _ladder_errors(f, c, ex, over, model, Tf, intrinsic)
+
+    lev, tried, fine, err, bad, k_points = _resolution_loop(run, nres, resolution, max_level, plan, rtol,
+                                                            model, tau_max)
     # every attempt counts: a run that overflowed a budget evaluated its points too
     info = {"engine": "ladder", "level": lev, "plan": tried[-1], "levels": tried[-1].levels,
             "attempts": len(tried),
@@ -592,27 +604,11 @@ def _tetra_path(model, muf, kt, Tf, tauf, omega, kw, rtol, resolution, max_level
     def run(lev, given):
         pl = given if given is not None else _tetra.make_plan(model, model.params, muf, Tf, lev)
         f, c, ex, over = _tetra_at(model, muf, kt, Tf, tauf, omega, pl.arrays(), meta=pl.meta, **kw)
-        fine, err = _ladder_errors(f, c, ex, over, model, Tf, intrinsic)
-        return pl, f, fine, err
+        return ([pl], f) + _ladder_errors(f, c, ex, over, model, Tf, intrinsic)
 
-    bad = None
-    k_points = 0
-    if resolution is None:
-        top = nres - 1 if max_level is None else min(max_level, nres - 1)
-        lev = 1
-        while True:
-            pl, f, fine, err = run(lev, None)
-            k_points += pl.k_points()
-            bad = _converged(fine, err, f, rtol, model, tau_max)
-            if not bad or lev >= top:
-                break
-            lev += 1
-    else:
-        if not (0 <= resolution <= nres - 1):
-            raise ValueError(f"response: resolution must be a level 0..{nres - 1}")
-        lev = resolution
-        pl, f, fine, err = run(lev, plan)
-        k_points = pl.k_points()
+    lev, tried, fine, err, bad, k_points = _resolution_loop(run, nres, resolution, max_level, plan, rtol,
+                                                            model, tau_max)
+    pl = tried[-1]
     info = {"engine": "tetra", "level": lev, "plan": pl, "levels": pl.levels, "attempts": 1,
             "k_points": int(k_points)}
     return fine, err, bad, info
