@@ -626,8 +626,7 @@ def build_tables(model, params, meta: TetraMeta, arrays, mu, kt, sea):
         extra, extra_c = (below, below_c) if k == 0 else (0.0, 0.0)
         levels.append(dict(fine=(tab_f[k], bel_f[k] + extra), coarse=(tab_c[k], bel_c[k] + extra_c),
                            e_lo=e_lo[k], delta=delta[k]))
-    info = {"kt_ladder": ktl, "overflow": stale | ~fits, "vol": vol, "layout": layout,
-            "flagged": jnp.zeros((0,), int)}
+    info = {"kt_ladder": ktl, "overflow": stale | ~fits, "vol": vol, "layout": layout}
     return levels, info
 
 
