@@ -63,9 +63,10 @@ def test_hat_projection_is_exact_for_piecewise_linear_knot_functions(delta, e_lo
     # Σ_j table_j v_j = ∫ (I v) dC over [E_lo, E_lo + (M−1)δ] for any knot values v, I v the
     # piecewise-linear interpolant, and the measure below E_lo is C(E_lo): checked with random v
     # against scipy's quadrature of (I v) dC/dE (breakpoints at knots and vertex energies)
-    q = tt.piece_coefficients(jnp.asarray(E4)[None], jnp.asarray(A4)[None])
+    qv = tt.vertex_coefficients(jnp.asarray(E4)[None])
     acc = (jnp.zeros((M, 3)), jnp.zeros((M + 1, 4, 3)), jnp.zeros(3))
-    table, below = tt.finish_table(tt.project(acc, jnp.asarray(E4)[None], q, e_lo, delta, M), M)
+    table, below = tt.finish_table(tt.project(acc, jnp.asarray(E4)[None], qv, jnp.asarray(A4)[None], e_lo,
+                                              delta, M), M)
     knots = e_lo + delta * np.arange(M)
     v = np.random.default_rng(3).normal(size=M)
     got = np.asarray(table).T @ v
@@ -143,6 +144,24 @@ def test_a_plan_reused_at_a_higher_temperature_reports_an_infinite_error():
     plan = tt.make_plan(m, m.params, np.array([0.0]), np.array([10.0]), 0)
     r = response(m, mu=0.0, temperature=20.0, tau=100.0, engine="tetra", resolution=0, plan=plan)
     assert np.isposinf(float(r.error.sigma[0, 0])) and np.isposinf(float(r.error.density))
+
+
+def test_deepest_items_are_balanced_and_an_overfull_chunk_reports_an_infinite_error():
+    # the deepest level deposits only the (cell, band) items that reach the window, at most
+    # meta.caps per chunk; parents are dealt so that the chunks hold about equal counts
+    import dataclasses
+    m = build("weyl", tilt=0.3, node_position=0.3)
+    plan = tt.make_plan(m, m.params, np.array([0.1]), np.array([10.0]), 0)
+    cf, cc = plan.meta.caps
+    assert 0 < cf < tt.CELL_CHUNK * 8 * m.n_bands and 0 < cc <= tt.CELL_CHUNK * m.n_bands
+    n = np.array([5, 0, 9, 1, 7, 3, 3, 8])
+    tot = n[tt._balanced(n, 2)].reshape(2, -1).sum(axis=1)
+    assert sorted(tot) == [17, 19]
+    small = dataclasses.replace(plan, meta=dataclasses.replace(plan.meta, caps=(16, cc)))
+    r = response(m, mu=0.1, temperature=10.0, tau=100.0, resolution=0, plan=small)
+    assert np.isposinf(float(r.error.sigma[0, 0])) and np.isposinf(float(r.error.density))
+    r = response(m, mu=0.1, temperature=10.0, tau=100.0, resolution=0, plan=plan)
+    assert np.isfinite(float(r.error.sigma[0, 0])) and np.isfinite(float(r.error.density))
 
 
 def test_temperature_levels_reach_the_coldest_condition():

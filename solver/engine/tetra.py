@@ -204,24 +204,36 @@ def _hat_weights(alpha, beta, s0, s1):
             + beta[..., None] * m * (p1[..., 1:] - p0[..., 1:]) / (m + 1))
 
 
-def project(acc, e, q, e_lo, delta, M):
-    """Deposit items (sorted energies ``e`` (N, 4), piece coefficients ``q`` (N, 3, 5, nc) already
-    scaled by the volume) onto a table of M
-    knots E_lo + jδ.  ``acc`` = (table (M, nc), diff (M + 1, 4, nc), below (nc,)).  The measure
-    below the first knot goes to ``below``; above the last knot it is dropped (the plan places every
-    window inside the table)."""
+def vertex_coefficients(e):
+    """Piece polynomials of the four barycentric weights, (..., 3, 5, 4): C is linear in the vertex
+    factors, C(E) = Σ_v C_v(E) A_v with C_v the measure of the barycentric coordinate λ_v, so the
+    quartic fit and the projection run on four columns and the factors enter once, at the end."""
+    eye = jnp.broadcast_to(jnp.eye(4), e.shape[:-1] + (4, 4))
+    return piece_coefficients(e, eye)
+
+
+def project(acc, e, qv, A, e_lo, delta, M):
+    """Deposit items (sorted energies ``e`` (N, 4), vertex piece coefficients ``qv`` (N, 3, 5, 4) of
+    :func:`vertex_coefficients` already scaled by the volume, vertex factors ``A`` (N, 4, nc)) onto
+    a table of M knots E_lo + jδ.  ``acc`` = (table (M, nc), diff (M + 1, 4, nc), below (nc,)).  The
+    measure below the first knot goes to ``below``; above the last knot it is dropped (the plan
+    places every window inside the table).  Every weight is computed per vertex and contracted with
+    ``A`` last (C is linear in the vertex factors)."""
     table, diff, below = acc
     nc = table.shape[-1]
     x = (e - e_lo) / delta                                                   # (N, 4) knot units
     xs = jax.lax.stop_gradient(x)
     top = float(M - 1)
     # below the first knot: the part of each piece's increment at x < 0
+    part = 0.0
     for k in range(3):
         lo, hi = x[:, k], x[:, k + 1]
         s0 = jnp.clip(-lo / _safe(hi - lo), 0.0, 1.0)
-        part = jnp.einsum("nmc,nm->nc", q[:, k], _powers(s0, q.shape[2]))
-        below = below + jnp.sum(jnp.where((lo < 0)[:, None], part, 0.0), axis=0)
+        pk = jnp.einsum("nmv,nm->nv", qv[:, k], _powers(s0, qv.shape[2]))
+        part = part + jnp.where((lo < 0)[:, None], pk, 0.0)
+    below = below + jnp.einsum("nv,nvc->c", part, A)
     jref = M // 2
+    rows, idx, starts, stops = [], [], [], []
     for k in range(3):
         lo, hi = x[:, k], x[:, k + 1]
         los, his = xs[:, k], xs[:, k + 1]
@@ -233,7 +245,7 @@ def project(acc, e, q, e_lo, delta, M):
         ja = jnp.floor(jnp.clip(los, 0.0, top)).astype(jnp.int32)
         jb = jnp.ceil(jnp.clip(his, 0.0, top)).astype(jnp.int32)
         long = (jb - ja) >= 4
-        qk = q[:, k]                                                          # (N, 4, nc)
+        qk = qv[:, k]                                                         # (N, 5, 4)
         # boundary knots: exact hat integrals
         cand = jnp.where(long[:, None], jnp.stack([ja, ja + 1, jb - 1, jb], -1),
                          ja[:, None] + jnp.arange(4, dtype=jnp.int32)[None, :])
@@ -247,23 +259,27 @@ def project(acc, e, q, e_lo, delta, M):
         Lb = L[:, None]
         w = (_hat_weights(lo_b - (jf - 1), Lb, sA(l0), sA(jnp.maximum(l1, l0)))
              + _hat_weights((jf + 1) - lo_b, -Lb, sA(r0), sA(jnp.maximum(r1, r0))))       # (N, 4, 5)
-        vals = jnp.einsum("nkm,nmc->nkc", jnp.where(ok[..., None], w, 0.0), qk)         # (N, 4, nc)
-        idx = jnp.where(ok, cand, M)
-        table = table.at[idx.reshape(-1)].add(vals.reshape(-1, nc), mode="drop")
+        rows.append(jnp.einsum("nkm,nmv->nkv", jnp.where(ok[..., None], w, 0.0), qk))   # (N, 4, 4)
+        idx.append(jnp.where(ok, cand, M))
         # interior knots ja+2 .. jb−2 of long pieces: ∫Λ_j g = g(j) + g''(j)/12 for the cubic
         # g = dC/dx = Σ G_m u^m (u = x − lo), as a cubic polynomial of y = j − jref
         Li = jnp.where(long, L, 1.0)[:, None]
-        G0, G1, G2, G3 = (m * qk[:, m] / Li ** m for m in range(1, 5))
+        G0, G1, G2, G3 = (m * qk[:, m] / Li ** m for m in range(1, 5))                # (N, 4 vertices)
         d = (jref - lo)[:, None]
         c0 = G0 + G1 * d + G2 * d * d + G3 * d ** 3 + G2 / 6.0 + G3 * d / 2.0
         c1 = G1 + 2 * G2 * d + 3 * G3 * d * d + G3 / 2.0
         c2 = G2 + 3 * G3 * d
-        coef = jnp.stack([c0, c1, c2, G3], axis=1)                             # (N, 4, nc)
-        coef = jnp.where((long & valid)[:, None, None], coef, 0.0)
-        start = jnp.where(long & valid, ja + 2, M)
-        stop = jnp.where(long & valid, jb - 1, M)
-        diff = diff.at[start].add(coef, mode="drop")
-        diff = diff.at[stop].add(-coef, mode="drop")
+        rows.append(jnp.where((long & valid)[:, None, None], jnp.stack([c0, c1, c2, G3], axis=1), 0.0))
+        starts.append(jnp.where(long & valid, ja + 2, M))
+        stops.append(jnp.where(long & valid, jb - 1, M))
+    # every knot weight and interior coefficient (N, 24 rows, 4 vertices) times the vertex factors:
+    # written as four broadcast products (a batched 4×4 matrix product is several times slower here)
+    R = jnp.concatenate(rows, axis=1)
+    vals = sum(R[:, :, v, None] * A[:, None, v, :] for v in range(4)).reshape(-1, 3, 2, 4, nc)
+    table = table.at[jnp.stack(idx, 1).reshape(-1)].add(vals[:, :, 0].reshape(-1, nc), mode="drop")
+    coef = vals[:, :, 1].reshape(-1, 4, nc)
+    diff = diff.at[jnp.stack(starts, 1).reshape(-1)].add(coef, mode="drop")
+    diff = diff.at[jnp.stack(stops, 1).reshape(-1)].add(-coef, mode="drop")
     return table, diff, below
 
 
@@ -292,7 +308,9 @@ PARENT_CORNERS = np.array([9 * 2 * d[0] + 3 * 2 * d[1] + 2 * d[2] for d in _CUBE
 class TetraMeta:
     """Static shape of a plan: ``n0`` level-0 cells per axis, ``sizes[l−1]`` parent cells (padded)
     refined at level l = 1..L, ``nt`` temperature levels below k_BT_0, ``knots`` per temperature
-    table, ``rho`` knots per k_BT and ``slack`` (eV Å, the band-speed bound)."""
+    table, ``rho`` knots per k_BT, ``slack`` (eV Å, the band-speed bound) and ``caps``: the most
+    (cell, band) items of one chunk of the deepest level that reach the window, children (fine
+    tables) and parents (coarse tables); only those are deposited."""
 
     n0: int
     sizes: tuple
@@ -300,6 +318,7 @@ class TetraMeta:
     knots: int
     rho: float
     slack: float
+    caps: tuple = (0, 0)
 
     @property
     def levels(self) -> int:          # temperature levels (as the ladder's condition sums read them)
@@ -440,6 +459,23 @@ def _near_touching(Eb, s, lo, hi):
     return np.any((gap < GAP * s) & low & high, axis=(-2, -1))
 
 
+def _balanced(n, nchunk):
+    """An order of the rows with item counts ``n`` that deals them, largest first, into ``nchunk``
+    consecutive chunks in alternating direction, so that every chunk holds about the same total."""
+    srt = np.argsort(-n, kind="stable")
+    i = np.arange(len(n))
+    rnd, pos = i // nchunk, i % nchunk
+    chunk = np.where(rnd % 2 == 0, pos, nchunk - 1 - pos)
+    return srt[np.argsort(chunk, kind="stable")]
+
+
+def _cap(n):
+    """Items per chunk to reserve for per-row counts ``n`` (ordered by :func:`_balanced`): the
+    largest chunk total, rounded up to a multiple of 16 (fewer distinct compiled shapes)."""
+    tot = n.reshape(-1, CELL_CHUNK).sum(axis=1)
+    return int(16 * np.ceil(max(int(tot.max()), 1) / 16))
+
+
 def make_plan(model, params, mu, temperature, resolution: int, cap: int = 40000) -> TetraPlan:
     """Cell structure for concrete conditions: level-0 n0³ cells, split down to L levels wherever a
     cell reaches the window of the level-0 table (energies only, eigvalsh); a level with more than
@@ -473,29 +509,42 @@ def make_plan(model, params, mu, temperature, resolution: int, cap: int = 40000)
     cut, _ = _intersects(_merged(Eb), s0, lo, hi)
     refine0 = np.any(cut, axis=-1) | _near_touching(Eb, s0, lo, hi)
     parents, refine, counts, sizes = [], [], [], []
+    caps = (0, 0)
     cur = np.argwhere(refine0.reshape(n0, n0, n0))
     for lev in range(1, L + 1):
-        if cur.shape[0] == 0 or (lev > 1 and cur.shape[0] > cap):
-            break                    # the last split level becomes the deepest one
+        if cur.shape[0] == 0:
+            break
         B = _bucket(cur.shape[0])
         pad = np.full((B - cur.shape[0], 3), -1)
         par = np.concatenate([cur, pad]).astype(np.int32)
+        red = _points27(np.where(par < 0, 0, par), lev, n0)
+        E27 = np.asarray(_energies(model, params, jnp.asarray(red)))                    # (B, 27, S, m)
+        Eb = E27[:, CHILD_CORNERS]                                                     # (B, 8, 8, S, m)
+        s_l = slack * _halfdiag(b, n0 * 2 ** lev)
+        cut, _ = _intersects(_merged(Eb), s_l, lo, hi)                                 # (B, 8, nb)
+        valid = par[:, :1] >= 0
+        r = (np.any(cut, axis=-1) | _near_touching(Eb, s_l, lo, hi)) & valid            # (B, 8)
+        nxt = (2 * par[:, None, :] + _CUBE[None])[r]
+        if lev == L or nxt.shape[0] == 0 or nxt.shape[0] > cap:
+            # the deepest level: only (cell, band) items that reach the window are deposited
+            nf = np.sum(cut & valid[..., None], axis=(1, 2))
+            cutp, _ = _intersects(_merged(E27[:, PARENT_CORNERS]), 2 * s_l, lo, hi)    # (B, nb)
+            nc_ = np.sum(cutp & valid, axis=-1)
+            order = _balanced(nf, B // CELL_CHUNK)
+            par, nf, nc_ = par[order], nf[order], nc_[order]
+            caps = (_cap(nf), _cap(nc_))
+            parents.append(par)
+            counts.append(int(cur.shape[0]))
+            sizes.append(B)
+            break
         parents.append(par)
         counts.append(int(cur.shape[0]))
         sizes.append(B)
-        if lev == L:
-            break
-        red = _points27(np.where(par < 0, 0, par), lev, n0)
-        Eb = np.asarray(_energies(model, params, jnp.asarray(red)))[:, CHILD_CORNERS]   # (B, 8, 8, S, m)
-        s_l = slack * _halfdiag(b, n0 * 2 ** lev)
-        cut, _ = _intersects(_merged(Eb), s_l, lo, hi)
-        r = (np.any(cut, axis=-1) | _near_touching(Eb, s_l, lo, hi)) & (par[:, :1] >= 0)   # (B, 8)
         refine.append(r)
-        ch = 2 * par[:, None, :] + _CUBE[None]
-        cur = ch[r]
+        cur = nxt
     # no cell to split (μ in a gap far from every band): the level-0 cells alone, depth 0
     refine = refine[:max(len(parents) - 1, 0)]
-    meta = TetraMeta(n0, tuple(sizes), nt, M, RHO, float(slack))
+    meta = TetraMeta(n0, tuple(sizes), nt, M, RHO, float(slack), caps)
     return TetraPlan(meta, ktl, refine0, tuple(parents), tuple(refine), tuple(counts))
 
 
@@ -573,7 +622,7 @@ def build_tables(model, params, meta: TetraMeta, arrays, mu, kt, sea):
     pw_c = pw_c.at[bcorners].add(wblock[:, None, :] * cw[None, :, None])
     below_c = jnp.einsum("pn,pnc->c", pw_c, f0)
 
-    proj = lambda m: jax.vmap(partial(project, M=m), in_axes=(0, None, None, 0, 0))
+    proj = lambda m: jax.vmap(partial(project, M=m), in_axes=(0, None, None, None, 0, 0))
     acc_f = (jnp.zeros((K, M, nc)), jnp.zeros((K, M + 1, 4, nc)), jnp.zeros((K, nc)))
     acc_c = (jnp.zeros((K, Mc, nc)), jnp.zeros((K, Mc + 1, 4, nc)), jnp.zeros((K, nc)))
     for lev in range(1, L + 1):
@@ -589,7 +638,7 @@ def build_tables(model, params, meta: TetraMeta, arrays, mu, kt, sea):
         s_l = slack(n_l)
 
         def body(carry, i, lev=lev, parc=parc, valid=valid, R=R, V_l=V_l, s_l=s_l, deepest=deepest):
-            below, stale, af, ac = carry
+            below, bf, bc, stale, af, ac = carry
             sl = lambda x: jax.lax.dynamic_slice_in_dim(x, i * CELL_CHUNK, CELL_CHUNK)
             p, ok, r = sl(parc), sl(valid), sl(R)
             red = (jnp.asarray(OFFSET)[None, None, :] * 2 ** lev + 2 * p[:, None, :].astype(jnp.float64)
@@ -604,21 +653,40 @@ def build_tables(model, params, meta: TetraMeta, arrays, mu, kt, sea):
                 w = jnp.where(bel & leaf[..., None], V_l, 0.0)
                 below = below + jnp.einsum("kon,d,kodnc->c", w, cw, fch)
             else:
-                et, ft = _tet_items(ech, fch)
-                vt = jnp.where(jnp.repeat(ok, 8 * nb * 6), V_l / 6, 0.0)
-                q = piece_coefficients(et, ft) * vt[:, None, None, None]
-                af = proj(M)(af, et, q, e_lo, delta)
-                ep, fp = e[:, PARENT_CORNERS], f[:, PARENT_CORNERS]
-                et, ft = _tet_items(ep, fp)
-                vt = jnp.where(jnp.repeat(ok, nb * 6), 8 * V_l / 6, 0.0)
-                q = piece_coefficients(et, ft) * vt[:, None, None, None]
-                ac = proj(Mc)(ac, et, q, e_lo, 2 * delta)
-            return (below, stale, af, ac), None
+                # children (fine tables) and the parents themselves (coarse tables, spacing 2h):
+                # a (cell, band) item below the window adds its corner-weighted integral, one
+                # that reaches it is deposited (at most caps per chunk, or the plan overflowed); a
+                # reaching item can also have its highest corner below the window: deposited only
+                cf, cc = meta.caps
+                cut, bel = _intersects(jax.lax.stop_gradient(ech), s_l * tight, lo, hi)      # (c, 8, nb)
+                okc = ok[:, None, None]
+                bf = bf + jnp.einsum("kon,d,kodnc->c", jnp.where(bel & ~cut & okc, V_l, 0.0), cw, fch)
+                ep, fp = e[:, PARENT_CORNERS], f[:, PARENT_CORNERS]                          # (c, 8, nb[, nc])
+                cutp, belp = _intersects(jax.lax.stop_gradient(ep), 2 * s_l * tight, lo, hi)  # (c, nb)
+                bc = bc + jnp.einsum("kn,d,kdnc->c", jnp.where(belp & ~cutp & ok[:, None], 8 * V_l, 0.0), cw, fp)
+                for sel, cap_, Ecell, Fcell, V, tabs, m_, dl in (
+                        ((cut & okc).reshape(-1), cf, jnp.moveaxis(ech, -1, 2).reshape(-1, 8),
+                         jnp.moveaxis(fch, -2, 2).reshape(-1, 8, fch.shape[-1]), V_l, "f", M, delta),
+                        ((cutp & ok[:, None]).reshape(-1), cc, jnp.moveaxis(ep, -1, 1).reshape(-1, 8),
+                         jnp.moveaxis(fp, -2, 1).reshape(-1, 8, fp.shape[-1]), 8 * V_l, "c", Mc, 2 * delta)):
+                    nsel = jnp.sum(sel)
+                    stale = stale | (nsel > cap_)
+                    pick = jnp.nonzero(sel, size=cap_, fill_value=0)[0]
+                    live = jnp.arange(cap_) < nsel
+                    et, ft = _tet_items(Ecell[pick][..., None], Fcell[pick][..., None, :])
+                    vt = jnp.where(jnp.repeat(live, 6), V / 6, 0.0)
+                    qv = vertex_coefficients(et) * vt[:, None, None, None]
+                    if tabs == "f":
+                        af = proj(m_)(af, et, qv, ft, e_lo, dl)
+                    else:
+                        ac = proj(m_)(ac, et, qv, ft, e_lo, dl)
+            return (below, bf, bc, stale, af, ac), None
 
-        (below_l, stale, acc_f, acc_c), _ = jax.lax.scan(
-            jax.checkpoint(body), (jnp.zeros((nc,)), stale, acc_f, acc_c), jnp.arange(nchunk))
-        below = below + below_l
-        below_c = below_c + below_l
+        zero = jnp.zeros((nc,))
+        (below_l, bf_l, bc_l, stale, acc_f, acc_c), _ = jax.lax.scan(
+            jax.checkpoint(body), (zero, zero, zero, stale, acc_f, acc_c), jnp.arange(nchunk))
+        below = below + below_l + bf_l
+        below_c = below_c + below_l + bc_l
     tab_f, bel_f = jax.vmap(partial(finish_table, M=M))(acc_f)
     tab_c, bel_c = jax.vmap(partial(finish_table, M=Mc))(acc_c)
     levels = []
