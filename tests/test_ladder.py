@@ -123,9 +123,10 @@ def test_response_engine_option_and_k_point_count():
     assert abs(s1 - s2) <= 2 * (float(r.error.sigma[0, 0]) + float(m.error.sigma[0, 0])) + 1e-9 * abs(s2)
 
 
-def test_auto_engine_keeps_the_node_quadrature_for_3d_lattices():
-    """The ladder is not yet affordable in 3D (measured: Weyl model at 30 K above 8 GiB after
-    14 min): 'auto' must route a 3D lattice to the node quadrature."""
+def test_auto_engine_keeps_the_node_quadrature_for_hot_3d_lattices():
+    """The ladder is not affordable in 3D (measured: Weyl model at 30 K above 8 GiB after 14 min):
+    'auto' routes a 3D lattice above TETRA_AUTO_MAX_T to the node quadrature (below it to the
+    tetrahedra: tests/test_tetra.py)."""
     r = response(build("weyl"), mu=0.05, temperature=300.0, tau=TAU, max_level=1)
     assert r.resolution.engine == "mesh"
 

@@ -589,6 +589,13 @@ def _tetra_at(model, mu, kt, temp, tau_arr, omega, arrays, *, meta, tau_eval, fi
     return f, c, ex, info["overflow"]
 
 
+#: highest temperature (K) at which engine="auto" takes the tetrahedra for a 3D lattice model with
+#: automatic resolution (measured on the Weyl lattice, docs/performance.md "3D lattices": at 100 K
+#: their density estimate reaches 1e-3 where the node quadrature's top level estimates 2e-2; at
+#: 300 K their refined window is wide and a point mesh resolves k_BT)
+TETRA_AUTO_MAX_T = 150.0
+
+
 def _tetra_path(model, muf, kt, Tf, tauf, omega, kw, rtol, resolution, max_level, intrinsic, plan,
                 traced, tau_max):
     """Linear tetrahedra on refined cells (:mod:`crosswind.solver.engine.tetra`, 3D lattices): one
@@ -816,9 +823,10 @@ def response(model: BandModel, mu, temperature, tau, frequency=0.0, *, rtol: flo
     ``engine="auto"`` (default) takes the shared shells of :mod:`crosswind.solver.engine.shells` for
     3D continuum (k·p) models at any resolution (docs/theory.md §16.3; a fixed ``resolution`` indexes
     ``shells.RESOLUTIONS``, under ``jax.grad`` pass ``plan=r.resolution.plan``; ``dipole_route="both"``
-    is refused there: the Fermi-sea form misses the monopole at each node, §16.2), and the ladder for
-    2D lattice models with automatic resolution
-    (``resolution=None``) and the node quadrature ("mesh") otherwise.
+    is refused there: the Fermi-sea form misses the monopole at each node, §16.2), the ladder for
+    2D lattice models with automatic resolution (``resolution=None``), the tetrahedra for 3D
+    lattice models with automatic resolution when no temperature exceeds ``TETRA_AUTO_MAX_T``
+    (150 K), and the node quadrature ("mesh") otherwise.
     ``engine="ladder"`` (lattice models) uses the energy-resolved ladder of
     :mod:`crosswind.solver.engine.ladder`: the band geometry is evaluated once per call for all
     conditions (sweeps over μ, T, τ and ω cost energy sums, not k-points) on shells around the
@@ -828,14 +836,13 @@ def response(model: BandModel, mu, temperature, tau, frequency=0.0, *, rtol: flo
     always includes ``k_points``, the distinct k-points where the band geometry was evaluated
     (all passes and conditions).
 
-    ``engine="tetra"`` (3D lattice models, opt-in) integrates linear tetrahedra on cells refined
+    ``engine="tetra"`` (3D lattice models) integrates linear tetrahedra on cells refined
     near the conditions' energy window and near band touchings
     (:mod:`crosswind.solver.engine.tetra`, docs/theory.md §16.6): the mesh resolves the bands, not
     k_BT, so it reaches 1–20 K and T = 0 (below 0.25 K by T² extrapolation from 0.25 and 0.5 K);
     a plan reused at a temperature above the one it was made for gives ``error = inf``; ``resolution`` indexes
     ``tetra.RESOLUTIONS``; the same ``plan`` rule applies under ``jax.grad``/``jit``.  Its nested
-    estimate compares the deepest cells with their parents and the unrefined level-0 cells with
-    the n0/2 grid; docs/performance.md records where it is not yet a bound.
+    estimate compares every cell with the interpolant of its parent (level-0 cells: the n0/2 grid).
     """
     if engine not in ("auto", "mesh", "ladder", "tetra", "rays", "shells"):
         raise ValueError("response: engine must be 'auto', 'mesh' (node quadrature, lattices and 2D "
@@ -846,7 +853,8 @@ def response(model: BandModel, mu, temperature, tau, frequency=0.0, *, rtol: flo
         raise TypeError("response: the first argument must be a BandModel from crosswind.models.build(...)")
     if engine == "auto":
         # the ladder's shells are surfaces in 3D (budgets grow 4× per level): measured far too
-        # costly for the Weyl model, so 3D lattices keep the node quadrature unless asked for
+        # costly for the Weyl model; 3D lattices take the tetrahedra up to TETRA_AUTO_MAX_T and the
+        # node quadrature above (where a point mesh resolves k_BT and the refined window is wide)
         if plan is not None:
             # a plan from an earlier call selects its own engine
             engine = ("ladder" if isinstance(plan, _ladder.Plan) else
@@ -854,6 +862,9 @@ def response(model: BandModel, mu, temperature, tau, frequency=0.0, *, rtol: flo
                       "shells" if isinstance(plan[0], _shells.ShellPlan) else "rays")
         elif model.dim == 3 and not isinstance(model.domain, Lattice):
             engine = "shells"           # 3D continuum: the only engine that integrates them
+        elif (model.dim == 3 and resolution is None and not _is_traced(temperature)
+              and float(np.max(np.asarray(temperature, dtype=float))) <= TETRA_AUTO_MAX_T):
+            engine = "tetra"
         elif resolution is not None or model.dim != 2:
             engine = "mesh"
         else:

@@ -20,20 +20,26 @@ or that lies near a touching of two bands straddling it, is split into eight chi
 level L; the 8 corners of each cell are evaluated, and each cell is cut into six tetrahedra along
 its main diagonal (Kuhn/Freudenthal).  Unrefined cells are entirely below or above the window: the
 ones below contribute their whole tetrahedron integral (every condition sees them fully occupied),
-the ones above nothing.  The leaves of level L deposit their measure onto energy knots.
+the ones above nothing.  The leaves of level L deposit their measure onto energy knots, band by
+band: only the (leaf, band) items that reach the window are cut into tetrahedra (the plan records
+the most per chunk, ``TetraMeta.caps``); the others add their corner-weighted integral or nothing.
 
 Energy axis.  Knots E_lo + jδ per temperature level (δ_l = k_BT_l/ρ, the temperatures k_BT_l of
 :mod:`crosswind.solver.engine.ladder`); a tetrahedron deposits onto knot j the exact integral
 ∫ Λ_j(E) dC(E) of the linear hat function Λ_j of the knot: exact for the interior knots of each
 polynomial piece by a difference array of the piece's polynomial (cost independent of the number of
 knots a piece spans), and directly for the knots near its ends (two at each end of a long piece,
-at most four for a short one).  Σ_j table_j φ(E_j) is then ∫ (Iφ) dC
+at most four for a short one); every weight is computed for the four barycentric coordinates and
+contracted with the vertex factors last.  Σ_j table_j φ(E_j) is then ∫ (Iφ) dC
 with Iφ the piecewise-linear interpolant of φ (error O(δ²φ'')).  Every condition reads the tables
 as in the ladder (:func:`crosswind.solver.engine.ladder.condition_sums`, T² extrapolation below the
 deepest temperature level included).
 
-Error estimate, nested in the same program: the same sums with the leaves of level L replaced by
-their parents (spacing doubled, O(h²) error four times larger) on knots 2δ.  Cells that a plan left
+Error estimate, nested in the same program: the same sums with every cell's integral taken from
+its parent's interpolant (spacing doubled, O(h²) error four times larger): the leaves of level L
+replaced by their parents on knots 2δ, the unsplit leaves of the other levels and the unsplit
+level-0 cells integrating the parent's (level 0: the n0/2 grid's) interpolant over themselves
+(docs/theory.md §16.6).  Cells that a plan left
 unrefined but that the run finds inside the window (a plan reused at other parameters) make the
 error infinite.  The cell structure comes from the plan (a concrete pass on band energies only);
 derivatives with respect to model parameters are those of the sums over the plan's cells, and μ, T
@@ -55,7 +61,8 @@ from crosswind.solver.engine.occupation import T_FLOOR
 
 W = _ladder.W
 SLACK = 1.1                # the band-speed bound of the probe grid, widened
-GAP = 4.0                  # cells with a band gap below GAP × (band-speed bound) are split
+DEPOSIT_MARGIN = 1e-9      # the plan's count of deposited items: corners widened by this × slack
+GAP = 8.0                  # cells with a band gap below GAP × (band-speed bound) are split
 #: generic offset of the corner lattice (units of the level-0 spacing): no corner on a symmetry point
 OFFSET = np.array([0.1234567, 0.2718281, 0.3141592])
 #: lowest temperature level (K); colder conditions (T = 0 included) are extrapolated in T² from
@@ -65,7 +72,7 @@ T_DEEP = 0.25
 #: (rounding grows with the distance in knots) and cost K (M + 1) 4 nc doubles
 M_MAX = 16384
 #: (n0, L) per resolution index: level-0 cells per axis and refinement levels
-RESOLUTIONS = ((12, 3), (16, 4), (16, 5), (24, 5), (24, 6), (32, 6))
+RESOLUTIONS = ((12, 3), (16, 4), (16, 5), (24, 5), (32, 5), (40, 5))
 RHO = 8.0                  # knots per k_BT of a temperature level
 CELL_CHUNK = 32            # parent cells per chunk of the refined levels (27 corners each)
 POINT_CHUNK = 4096         # level-0 points per chunk
@@ -302,6 +309,23 @@ _CUBE = np.array(list(itertools.product(range(2), repeat=3)))            # corne
 CHILD_CORNERS = np.array([[9 * (o[0] + d[0]) + 3 * (o[1] + d[1]) + (o[2] + d[2]) for d in _CUBE]
                           for o in _CUBE])
 PARENT_CORNERS = np.array([9 * 2 * d[0] + 3 * 2 * d[1] + 2 * d[2] for d in _CUBE])
+#: the parent's linear interpolant at the 27 points: the Kuhn triangulation of the children
+#: refines the parent's (both are the arrangements x_i ∈ Z, x_i − x_j ∈ Z at their spacing), so the
+#: point q ∈ {0, 1, 2}³ is the midpoint of the parent edge 2⌊q/2⌋–2⌈q/2⌉ and takes the mean of its ends
+_HALF_LO = np.array([9 * 2 * (o[0] // 2) + 3 * 2 * (o[1] // 2) + 2 * (o[2] // 2) for o in _OFFS27])
+_HALF_HI = np.array([9 * 2 * (-(-o[0] // 2)) + 3 * 2 * (-(-o[1] // 2)) + 2 * (-(-o[2] // 2)) for o in _OFFS27])
+#: corner weights folded onto the 27 points: S_FINE[o, p] = Σ_d w_d [corner d of child o is p]; S_HALF
+#: the same for the parent's interpolant at those corners; S_PARENT[p] for the parent cell itself
+S_FINE = np.zeros((8, 27))
+S_HALF = np.zeros((8, 27))
+for _o in range(8):
+    for _d in range(8):
+        _p = CHILD_CORNERS[_o, _d]
+        S_FINE[_o, _p] += CORNER_W[_d]
+        S_HALF[_o, _HALF_LO[_p]] += 0.5 * CORNER_W[_d]
+        S_HALF[_o, _HALF_HI[_p]] += 0.5 * CORNER_W[_d]
+S_PARENT = np.zeros(27)
+S_PARENT[PARENT_CORNERS] = CORNER_W
 
 
 @dataclass(frozen=True)
@@ -437,6 +461,18 @@ def _cell_corners0(n0):
     return c[..., 0] * n0 * n0 + c[..., 1] * n0 + c[..., 2]
 
 
+def _block_ends(n0):
+    """Two (n0³, 8) point-index arrays: for corner d of level-0 cell c, the ends of the edge of its
+    2×2×2 block (the n0/2 grid) whose midpoint or end it is (n0 even)."""
+    idx = np.stack(np.meshgrid(*([np.arange(n0)] * 3), indexing="ij"), -1).reshape(-1, 1, 3)
+    blk, q = 2 * (idx // 2), (idx % 2) + _CUBE[None]                                 # (n0³, 8, 3)
+    out = []
+    for end in (2 * (q // 2), 2 * (-(-q // 2))):
+        c = (blk + end) % n0
+        out.append(c[..., 0] * n0 * n0 + c[..., 1] * n0 + c[..., 2])
+    return out
+
+
 def _intersects(Ec, s, lo, hi):
     """(…, nb) whether a cell with corner energies ``Ec`` (…, 8, nb) reaches [lo, hi] (band-speed
     bound ``s`` on the excursion between corners), and whether it lies below lo (for a cell that
@@ -476,7 +512,7 @@ def _cap(n):
     return int(16 * np.ceil(max(int(tot.max()), 1) / 16))
 
 
-def make_plan(model, params, mu, temperature, resolution: int, cap: int = 40000) -> TetraPlan:
+def make_plan(model, params, mu, temperature, resolution: int, cap: int = 250000) -> TetraPlan:
     """Cell structure for concrete conditions: level-0 n0³ cells, split down to L levels wherever a
     cell reaches the window of the level-0 table (energies only, eigvalsh); a level with more than
     ``cap`` cells to split ends the refinement there (the nested estimate then reports the
@@ -526,9 +562,12 @@ def make_plan(model, params, mu, temperature, resolution: int, cap: int = 40000)
         r = (np.any(cut, axis=-1) | _near_touching(Eb, s_l, lo, hi)) & valid            # (B, 8)
         nxt = (2 * par[:, None, :] + _CUBE[None])[r]
         if lev == L or nxt.shape[0] == 0 or nxt.shape[0] > cap:
-            # the deepest level: only (cell, band) items that reach the window are deposited
+            # the deepest level: only (cell, band) items whose corners reach the window are
+            # deposited (their linear interpolant lies between the corner values: no slack; a
+            # rounding margin keeps the plan's count at or above the run's)
+            cut, _ = _intersects(_merged(Eb), DEPOSIT_MARGIN * s_l, lo, hi)
             nf = np.sum(cut & valid[..., None], axis=(1, 2))
-            cutp, _ = _intersects(_merged(E27[:, PARENT_CORNERS]), 2 * s_l, lo, hi)    # (B, nb)
+            cutp, _ = _intersects(_merged(E27[:, PARENT_CORNERS]), DEPOSIT_MARGIN * s_l, lo, hi)    # (B, nb)
             nc_ = np.sum(cutp & valid, axis=-1)
             order = _balanced(nf, B // CELL_CHUNK)
             par, nf, nc_ = par[order], nf[order], nc_[order]
@@ -608,18 +647,12 @@ def build_tables(model, params, meta: TetraMeta, arrays, mu, kt, sea):
     wcell = jnp.where(bel & leaf0[:, None], vol / n0 ** 3, 0.0)                      # (n0³, nb)
     pw = jnp.zeros((N0, nb)).at[corners].add(wcell[:, None, :] * cw[None, :, None])
     below = jnp.einsum("pn,pnc->c", pw, f0)
-    # the nested estimate of the unrefined cells: every block of 2×2×2 cells that are all unrefined
-    # and below the window for a band is integrated as one cell of the n0/2 grid instead
-    h = n0 // 2
-    lb = (bel & leaf0[:, None]).reshape(h, 2, h, 2, h, 2, nb)
-    full = jnp.all(lb, axis=(1, 3, 5))                                                  # (h, h, h, nb)
-    in_full = jnp.broadcast_to(full[:, None, :, None, :, None], lb.shape).reshape(N0, nb)
-    pw_c = jnp.zeros((N0, nb)).at[corners].add(jnp.where(in_full, 0.0, wcell)[:, None, :] * cw[None, :, None])
-    bidx = np.stack(np.meshgrid(*([np.arange(h)] * 3), indexing="ij"), -1).reshape(-1, 1, 3)
-    bc = (2 * bidx + 2 * _CUBE[None]) % n0
-    bcorners = jnp.asarray(bc[..., 0] * n0 * n0 + bc[..., 1] * n0 + bc[..., 2])        # (h³, 8)
-    wblock = jnp.where(full.reshape(-1, nb), 8 * vol / n0 ** 3, 0.0)
-    pw_c = pw_c.at[bcorners].add(wblock[:, None, :] * cw[None, :, None])
+    # the nested estimate of the unrefined cells: each cell integrates the linear interpolant of
+    # its 2×2×2 block of the n0/2 grid instead (corner q of the block's 27 points: the mean of the
+    # block corners 2⌊q/2⌋ and 2⌈q/2⌉); a whole block of such cells adds the block's own integral
+    pw_c = jnp.zeros((N0, nb))
+    for ends in _block_ends(n0):
+        pw_c = pw_c.at[jnp.asarray(ends)].add(0.5 * wcell[:, None, :] * cw[None, :, None])
     below_c = jnp.einsum("pn,pnc->c", pw_c, f0)
 
     proj = lambda m: jax.vmap(partial(project, M=m), in_axes=(0, None, None, None, 0, 0))
@@ -638,55 +671,67 @@ def build_tables(model, params, meta: TetraMeta, arrays, mu, kt, sea):
         s_l = slack(n_l)
 
         def body(carry, i, lev=lev, parc=parc, valid=valid, R=R, V_l=V_l, s_l=s_l, deepest=deepest):
-            below, bf, bc, stale, af, ac = carry
+            bf, bc, stale, af, ac = carry
             sl = lambda x: jax.lax.dynamic_slice_in_dim(x, i * CELL_CHUNK, CELL_CHUNK)
             p, ok, r = sl(parc), sl(valid), sl(R)
             red = (jnp.asarray(OFFSET)[None, None, :] * 2 ** lev + 2 * p[:, None, :].astype(jnp.float64)
                    + jnp.asarray(_OFFS27, dtype=jnp.float64)[None]) / (n0 * 2 ** lev)
             e, f = _factors(model, params, red.reshape(-1, 3) @ b, sea)
             e, f = e.reshape(CELL_CHUNK, 27, nb), f.reshape(CELL_CHUNK, 27, nb, nc)
-            ech, fch = e[:, CHILD_CORNERS], f[:, CHILD_CORNERS]               # (c, 8, 8, nb[, nc])
+            ech = e[:, CHILD_CORNERS]                                          # (c, 8, 8, nb)
+            # corner-weighted integrals of children (S_FINE) or of the parent's interpolant over
+            # them (S_HALF) with weights w (c, 8, nb): folded onto the 27 points first
+            on27 = lambda w, S: jnp.einsum("kpn,kpnc->c", jnp.einsum("kon,op->kpn", w, jnp.asarray(S)), f)
             if not deepest:
                 cut, bel = _intersects(jax.lax.stop_gradient(ech), s_l * tight, lo, hi)  # (c, 8, nb)
                 leaf = ~r & ok[:, None]
                 stale = stale | jnp.any(jnp.any(cut, -1) & leaf)
                 w = jnp.where(bel & leaf[..., None], V_l, 0.0)
-                below = below + jnp.einsum("kon,d,kodnc->c", w, cw, fch)
+                bf = bf + on27(w, S_FINE)
+                # nested estimate: the parent's interpolant over the same leaves
+                bc = bc + on27(w, S_HALF)
             else:
                 # children (fine tables) and the parents themselves (coarse tables, spacing 2h):
-                # a (cell, band) item below the window adds its corner-weighted integral, one
-                # that reaches it is deposited (at most caps per chunk, or the plan overflowed); a
-                # reaching item can also have its highest corner below the window: deposited only
+                # the deposit integrates the linear interpolant, which lies between the corner
+                # values, so a (cell, band) item whose corners all lie below the window adds its
+                # corner-weighted integral and one whose corners reach it is deposited (at most
+                # caps per chunk, or the plan overflowed)
                 cf, cc = meta.caps
-                cut, bel = _intersects(jax.lax.stop_gradient(ech), s_l * tight, lo, hi)      # (c, 8, nb)
+                cut, bel = _intersects(jax.lax.stop_gradient(ech), 0.0, lo, hi)              # (c, 8, nb)
                 okc = ok[:, None, None]
-                bf = bf + jnp.einsum("kon,d,kodnc->c", jnp.where(bel & ~cut & okc, V_l, 0.0), cw, fch)
-                ep, fp = e[:, PARENT_CORNERS], f[:, PARENT_CORNERS]                          # (c, 8, nb[, nc])
-                cutp, belp = _intersects(jax.lax.stop_gradient(ep), 2 * s_l * tight, lo, hi)  # (c, nb)
-                bc = bc + jnp.einsum("kn,d,kdnc->c", jnp.where(belp & ~cutp & ok[:, None], 8 * V_l, 0.0), cw, fp)
-                for sel, cap_, Ecell, Fcell, V, tabs, m_, dl in (
-                        ((cut & okc).reshape(-1), cf, jnp.moveaxis(ech, -1, 2).reshape(-1, 8),
-                         jnp.moveaxis(fch, -2, 2).reshape(-1, 8, fch.shape[-1]), V_l, "f", M, delta),
-                        ((cutp & ok[:, None]).reshape(-1), cc, jnp.moveaxis(ep, -1, 1).reshape(-1, 8),
-                         jnp.moveaxis(fp, -2, 1).reshape(-1, 8, fp.shape[-1]), 8 * V_l, "c", Mc, 2 * delta)):
+                bf = bf + on27(jnp.where(bel & ~cut & okc, V_l, 0.0), S_FINE)
+                ep = e[:, PARENT_CORNERS]                                                    # (c, 8, nb)
+                cutp, belp = _intersects(jax.lax.stop_gradient(ep), 0.0, lo, hi)              # (c, nb)
+                wp = jnp.where(belp & ~cutp & ok[:, None], 8 * V_l, 0.0)
+                bc = bc + jnp.einsum("kn,p,kpnc->c", wp, jnp.asarray(S_PARENT), f)
+                cc8 = jnp.asarray(CHILD_CORNERS)
+                for sel, cap_, per, V, tabs, m_, dl in (((cut & okc).reshape(-1), cf, 8, V_l, "f", M, delta),
+                                                        ((cutp & ok[:, None]).reshape(-1), cc, 1, 8 * V_l, "c",
+                                                         Mc, 2 * delta)):
                     nsel = jnp.sum(sel)
                     stale = stale | (nsel > cap_)
                     pick = jnp.nonzero(sel, size=cap_, fill_value=0)[0]
                     live = jnp.arange(cap_) < nsel
-                    et, ft = _tet_items(Ecell[pick][..., None], Fcell[pick][..., None, :])
+                    # item (cell, child, band) or (cell, band) -> its 8 corner points among the 27
+                    kk, nn = pick // (per * nb), pick % nb
+                    pts = cc8[(pick // nb) % 8] if per == 8 else jnp.broadcast_to(
+                        jnp.asarray(PARENT_CORNERS), (cap_, 8))
+                    Ei = e[kk[:, None], pts, nn[:, None]]                                     # (cap, 8)
+                    Fi = f[kk[:, None], pts, nn[:, None]]                                     # (cap, 8, nc)
+                    et, ft = _tet_items(Ei[..., None], Fi[..., None, :])
                     vt = jnp.where(jnp.repeat(live, 6), V / 6, 0.0)
                     qv = vertex_coefficients(et) * vt[:, None, None, None]
                     if tabs == "f":
                         af = proj(m_)(af, et, qv, ft, e_lo, dl)
                     else:
                         ac = proj(m_)(ac, et, qv, ft, e_lo, dl)
-            return (below, bf, bc, stale, af, ac), None
+            return (bf, bc, stale, af, ac), None
 
         zero = jnp.zeros((nc,))
-        (below_l, bf_l, bc_l, stale, acc_f, acc_c), _ = jax.lax.scan(
-            jax.checkpoint(body), (zero, zero, zero, stale, acc_f, acc_c), jnp.arange(nchunk))
-        below = below + below_l + bf_l
-        below_c = below_c + below_l + bc_l
+        (bf_l, bc_l, stale, acc_f, acc_c), _ = jax.lax.scan(
+            jax.checkpoint(body), (zero, zero, stale, acc_f, acc_c), jnp.arange(nchunk))
+        below = below + bf_l
+        below_c = below_c + bc_l
     tab_f, bel_f = jax.vmap(partial(finish_table, M=M))(acc_f)
     tab_c, bel_c = jax.vmap(partial(finish_table, M=Mc))(acc_c)
     levels = []
