@@ -29,3 +29,16 @@ def test_continuum_integration_benchmark_quick_run():
                              mu_range=(0.14, 0.16), t_range=(10.0, 20.0))
     assert [r[0] for r in rows] == ["sweep rays", "sweep mesh", "memory"]
     assert all(r[2] > 0 for r in rows)
+
+
+@pytest.mark.slow
+def test_numpy_reference_benchmark_runs_end_to_end():
+    """The plain-numpy comparison on a small top grid (its D_x is far from 1e-3 there: only the
+    code path is checked, with the project's automatic and fixed-resolution calls)."""
+    path = pathlib.Path(__file__).resolve().parents[1] / "benchmarks" / "bench_numpy_reference.py"
+    spec = importlib.util.spec_from_file_location("bench_numpy_reference", path)
+    mod = importlib.util.module_from_spec(spec)
+    spec.loader.exec_module(mod)
+    t_np, t_first, t_warm, n, err_np, err_cw = mod.run(max_n=1024)
+    assert n <= 1024 and t_np > 0 and t_first > 0 and t_warm > 0
+    assert err_cw < 1e-3            # the project's automatic call at rtol 1e-3 (measured 1.2e-4)

@@ -24,6 +24,7 @@ giving (e²/h)(2π/a − 2k0)/(2π).)  A generic lattice model of this type is c
 """
 from __future__ import annotations
 
+import jax
 import jax.numpy as jnp
 import numpy as np
 
@@ -54,6 +55,36 @@ def dvector(k, p, a=3.0):
     return d0[None], d[None]
 
 
+def hamiltonian_jet(k, p, a=3.0):
+    """H (1, 2, 2) and its first and second k-derivatives written out (the cosines and sines of
+    k_i a and their derivatives a·(−sin, cos), a²·(−cos, −sin)): d0 and d depend on one component
+    of k each term, so every second derivative is diagonal in the axes."""
+    ka = k * a
+    t, m, w = p["hopping"], p["mass"], p["tilt"]
+    k0a = p["node_position"] * np.pi
+    c, s = jnp.cos(ka), jnp.sin(ka)
+    dx = t * (jnp.cos(k0a) - c[0]) + m * (2.0 - c[1] - c[2])
+    d0, dy, dz = w * s[0], t * s[1], t * s[2]
+    zero = jnp.zeros_like(dx)
+    # first derivatives along (x, y, z)
+    g0 = jnp.stack([w * a * c[0], zero, zero])
+    gx = jnp.stack([t * a * s[0], m * a * s[1], m * a * s[2]])
+    gy = jnp.stack([zero, t * a * c[1], zero])
+    gz = jnp.stack([zero, zero, t * a * c[2]])
+    # second derivatives (diagonal)
+    h0 = jnp.diag(jnp.stack([-w * a * a * s[0], zero, zero]))
+    hx = jnp.diag(jnp.stack([t * a * a * c[0], m * a * a * c[1], m * a * a * c[2]]))
+    hy = jnp.diag(jnp.stack([zero, -t * a * a * s[1], zero]))
+    hz = jnp.diag(jnp.stack([zero, zero, -t * a * a * s[2]]))
+
+    def mat(e0, ex, ey, ez):
+        cx = jax.lax.complex
+        return jnp.stack([jnp.stack([cx(e0 + ez, zero * ez), cx(ex, -ey)]),
+                          jnp.stack([cx(ex, ey), cx(e0 - ez, zero * ez)])])
+
+    return mat(d0, dx, dy, dz)[None], mat(g0, gx, gy, gz)[None], mat(h0, hx, hy, hz)[None]
+
+
 @register("weyl", SPEC,
           summary="magnetic Weyl semimetal, one pair of tilted nodes at (±k0, 0, 0) (3D cubic lattice)",
           hamiltonian="w sin k_xa + [t(cos k0a − cos k_xa) + m(2 − cos k_ya − cos k_za)]σx "
@@ -67,6 +98,6 @@ def build_weyl(p, s) -> BandModel:
     lattice = Lattice(vectors=((a, 0.0, 0.0), (0.0, a, 0.0), (0.0, 0.0, a)),
                       positions=((0.0, 0.0, 0.0), (0.0, 0.0, 0.0)))
     return BandModel(name="weyl", dim=3, hamiltonian=h, params=p, spec=SPEC, domain=lattice,
-                     degeneracy=1.0, blocks=1, block_size=2, dvector=dv,
+                     degeneracy=1.0, blocks=1, block_size=2, dvector=dv, jet=bind_length(hamiltonian_jet, a),
                      static=(("lattice_constant", a),), description="Weyl pair on a cubic lattice",
                      source="common practice")
