@@ -223,3 +223,47 @@ def test_temperature_levels_reach_the_coldest_condition():
     for temps in ([1.0, 20.0], [2.0, 3.0, 17.3], [0.3, 100.0]):
         kt0, nt = tt.temperature_levels(temps)
         assert kt0 / 2.0 ** nt <= KB_EVK * min(temps) * (1 + 1e-12) and kt0 / 2.0 ** (nt - 1) > KB_EVK * min(temps)
+
+
+def test_mu_groups_are_the_fewest_that_fit_the_tables():
+    # greedy cuts from the lowest μ: every group spans at most the limit, and a group plus the next
+    # μ value would not (so no two neighbouring groups could merge)
+    mu = np.array([0.3, 0.0, 0.01, 0.05, 0.05, 0.2, 0.21, 0.26])
+    cuts = tt.mu_groups(mu, [1.0], limit=0.065)
+    assert cuts == (0.2, 0.3)
+    g = tt.TetraGroups(cuts).group_of(mu)
+    for k in range(len(cuts) + 1):
+        assert np.ptp(mu[g == k]) <= 0.065
+    assert tt.mu_groups(mu, [1.0], limit=0.3) == ()
+    # the limit is the widest range whose knot tables fit M_MAX (make_plan's count)
+    for temps in ([0.0], [1.0], [2.0, 20.0]):
+        span = tt.span_limit(temps)
+        kt0, nt = tt.temperature_levels(temps)
+        ktl = kt0 / 2.0 ** np.arange(nt + 1)
+        need = max((span + 2 * tt.W * ktl[k - 1 if k else 0]) / (ktl[k] / tt.RHO) + 32 for k in range(nt + 1))
+        assert abs(need - tt.M_MAX) < 1e-6 * tt.M_MAX
+
+
+def test_a_sweep_wider_than_one_table_runs_as_mu_groups():
+    # at T = 0 one plan's tables hold about 42 meV of μ: a 90 meV gate sweep runs as two groups,
+    # each exactly the call made for its own μ values; the groups' plans are reused by a later call
+    m = build("weyl", tilt=0.3, node_position=0.3)
+    mu = np.array([0.0, 0.03, 0.06, 0.09])
+    with pytest.raises(ValueError, match="split the sweep into μ ranges"):
+        tt.make_plan(m, m.params, mu, np.zeros(4), 0)
+    r = response(m, mu=mu, temperature=0.0, tau=100.0, engine="tetra", resolution=0)
+    plan = r.resolution.plan
+    assert isinstance(plan, tt.TetraGroups) and plan.cuts == (0.06,)
+    a = response(m, mu=mu[:2], temperature=0.0, tau=100.0, engine="tetra", resolution=0)
+    b = response(m, mu=mu[2:], temperature=0.0, tau=100.0, engine="tetra", resolution=0)
+    for name in ("density", "sigma", "dipole"):
+        np.testing.assert_array_equal(np.asarray(getattr(r, name)),
+                                      np.concatenate([np.asarray(getattr(a, name)), np.asarray(getattr(b, name))]))
+        np.testing.assert_array_equal(np.asarray(getattr(r.error, name)),
+                                      np.concatenate([np.asarray(getattr(a.error, name)),
+                                                      np.asarray(getattr(b.error, name))]))
+    assert r.resolution.k_points == a.resolution.k_points + b.resolution.k_points
+    # reuse in another order; the density grows with μ (electron doping above the nodes)
+    again = response(m, mu=mu[::-1], temperature=0.0, tau=100.0, resolution=0, plan=plan)
+    np.testing.assert_array_equal(np.asarray(again.density)[::-1], np.asarray(r.density))
+    assert np.all(np.diff(np.asarray(r.density)) > 0)

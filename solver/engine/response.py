@@ -128,8 +128,10 @@ class Resolution:
     quadrature):
 
     * ``plan``: the plan of the last pass (ladder: :class:`~crosswind.solver.engine.ladder.Plan`;
-      tetra: :class:`~crosswind.solver.engine.tetra.TetraPlan`; rays: ``(RayPlan, RayGrid)``); pass
-      ``plan=r.resolution.plan`` to ``response`` under ``jax.grad``/``jax.jit``;
+      tetra: :class:`~crosswind.solver.engine.tetra.TetraPlan`, or
+      :class:`~crosswind.solver.engine.tetra.TetraGroups` for a sweep split into μ groups; rays:
+      ``(RayPlan, RayGrid)``); pass ``plan=r.resolution.plan`` to ``response`` under
+      ``jax.grad``/``jax.jit``;
     * ``attempts`` (int): passes at ``level`` (a run whose budget overflowed is repeated);
     * ``levels`` (int, ladder and tetra): temperature levels of the plan.
     """
@@ -599,14 +601,81 @@ TETRA_AUTO_MAX_T = 150.0
 def _tetra_path(model, muf, kt, Tf, tauf, omega, kw, rtol, resolution, max_level, intrinsic, plan,
                 traced, tau_max):
     """Linear tetrahedra on refined cells (:mod:`crosswind.solver.engine.tetra`, 3D lattices): one
-    program per resolution computes the fine and the nested coarse sums for every condition."""
+    program per resolution computes the fine and the nested coarse sums for every condition.  A
+    concrete sweep whose μ range does not fit one plan's energy tables (a few hundred k_BT at the
+    lowest temperature) runs as μ groups, each with its own plan (:class:`~crosswind.solver.engine.
+    tetra.TetraGroups`)."""
     if not (isinstance(model.domain, Lattice) and model.dim == 3):
         raise ValueError("response: engine='tetra' integrates 3D lattice models; use engine='ladder' for "
                          "2D lattices and 'rays' or 'shells' for continuum (k·p) models")
-    nres = len(_tetra.RESOLUTIONS)
     if traced and plan is None:
         raise ValueError("response: with engine='tetra' under jax.grad/jit pass plan=..., the plan of "
                          "a concrete call: response(...).resolution.plan")
+    if isinstance(plan, _tetra.TetraGroups):
+        if _is_traced(muf):
+            raise ValueError("response: this tetra plan splits the sweep into μ groups "
+                             f"(cuts {plan.cuts} eV), which needs concrete μ values; differentiate with "
+                             "respect to μ in a call whose μ range fits one group (its plan is a TetraPlan)")
+        groups = plan
+    elif plan is None:
+        cuts = _tetra.mu_groups(np.asarray(muf), np.asarray(Tf))
+        groups = _tetra.TetraGroups(cuts) if cuts else None
+    else:
+        groups = None
+    args = (model, kt, Tf, tauf, omega, kw, rtol, resolution, max_level, intrinsic)
+    if groups is None:
+        return _tetra_group(muf, *args, plan, tau_max)
+    gid = groups.group_of(np.asarray(muf))
+    idxs, parts = [], []
+    for g in range(len(groups.cuts) + 1):
+        idx = np.nonzero(gid == g)[0]
+        if idx.size == 0:
+            if groups.plans:
+                idxs.append(idx)
+                parts.append(None)
+                continue
+            raise ValueError("response: an empty μ group (internal)")     # cuts are μ values of the call
+        sub = lambda a, idx=idx: a[idx]
+        given = groups.plans[g] if groups.plans else None
+        idxs.append(idx)
+        parts.append(_tetra_group(muf[idx], model, kt[idx], Tf[idx], jax.tree_util.tree_map(sub, tauf), omega,
+                                  kw, rtol, resolution, max_level, intrinsic, given, tau_max))
+    return _stitch_groups(parts, idxs, int(muf.shape[0]), groups)
+
+
+def _stitch_groups(parts, idxs, P, groups):
+    """One result from the μ groups' (fine, err, bad, info): fields scattered back to their
+    conditions, the unconverged fields of every group (largest error), the k-points summed."""
+    used = [(p, i) for p, i in zip(parts, idxs) if p is not None]
+
+    def scatter(*leaves):
+        out = jnp.zeros((P,) + leaves[0].shape[1:], dtype=leaves[0].dtype)
+        for leaf, (_, i) in zip(leaves, used):
+            out = out.at[i].set(leaf)
+        return out
+
+    fine = jax.tree_util.tree_map(scatter, *[p[0] for p, _ in used])
+    err = jax.tree_util.tree_map(scatter, *[p[1] for p, _ in used])
+    bads = [p[2] for p, _ in used]
+    bad = None
+    if any(b is not None for b in bads):
+        worst = {}
+        for name, diff, size in (x for b in bads if b for x in b):
+            d0, s0 = worst.get(name, (0.0, 0.0))
+            worst[name] = (max(d0, diff), max(s0, size))
+        bad = [(name, d, s) for name, (d, s) in worst.items()]
+    plans = tuple(p[3]["plan"] if p is not None else None for p in parts)
+    infos = [p[3] for p, _ in used]
+    info = {"engine": "tetra", "level": max(x["level"] for x in infos),
+            "plan": _tetra.TetraGroups(groups.cuts, plans),
+            "levels": max(x["levels"] for x in infos), "attempts": 1,
+            "k_points": int(sum(x["k_points"] for x in infos))}
+    return fine, err, bad, info
+
+
+def _tetra_group(muf, model, kt, Tf, tauf, omega, kw, rtol, resolution, max_level, intrinsic, plan, tau_max):
+    """:func:`_tetra_path` for conditions whose μ range fits one plan."""
+    nres = len(_tetra.RESOLUTIONS)
 
     def run(lev, given):
         pl = given if given is not None else _tetra.make_plan(model, model.params, muf, Tf, lev)
@@ -843,6 +912,10 @@ def response(model: BandModel, mu, temperature, tau, frequency=0.0, *, rtol: flo
     a plan reused at a temperature above the one it was made for gives ``error = inf``; ``resolution`` indexes
     ``tetra.RESOLUTIONS``; the same ``plan`` rule applies under ``jax.grad``/``jit``.  Its nested
     estimate compares every cell with the interpolant of its parent (level-0 cells: the n0/2 grid).
+    A concrete sweep whose μ range is wider than one plan's energy tables hold (``tetra.span_limit``:
+    about 0.17 eV at 1 K, a few tens of meV when T = 0 is among the conditions) runs as the fewest
+    contiguous μ groups that fit, each with its own plan and level (``resolution.plan`` is then a
+    ``tetra.TetraGroups``, ``level`` the highest, ``k_points`` the sum).
     """
     if engine not in ("auto", "mesh", "ladder", "tetra", "rays", "shells"):
         raise ValueError("response: engine must be 'auto', 'mesh' (node quadrature, lattices and 2D "
@@ -858,7 +931,7 @@ def response(model: BandModel, mu, temperature, tau, frequency=0.0, *, rtol: flo
         if plan is not None:
             # a plan from an earlier call selects its own engine
             engine = ("ladder" if isinstance(plan, _ladder.Plan) else
-                      "tetra" if isinstance(plan, _tetra.TetraPlan) else
+                      "tetra" if isinstance(plan, (_tetra.TetraPlan, _tetra.TetraGroups)) else
                       "shells" if isinstance(plan[0], _shells.ShellPlan) else "rays")
         elif model.dim == 3 and not isinstance(model.domain, Lattice):
             engine = "shells"           # 3D continuum: the only engine that integrates them

@@ -430,6 +430,49 @@ def table_ranges(mu, ktl, rho, M):
     return e_lo, delta, fits, (mlo - reach, mhi + reach)
 
 
+def span_limit(temperature) -> float:
+    """Widest μ range (eV) whose energy tables fit :data:`M_MAX` knots at these temperatures (the
+    knot count of :func:`make_plan`: span + 2W k_BT_{k−1} at spacing k_BT_k/ρ, plus 32, per level)."""
+    kt0, nt = temperature_levels(temperature)
+    ktl = kt0 / 2.0 ** np.arange(nt + 1)
+    return min((M_MAX - 32) * ktl[k] / RHO - 2 * W * ktl[k - 1 if k else 0] for k in range(nt + 1))
+
+
+@dataclass(frozen=True, eq=False)
+class TetraGroups:
+    """A call split into μ groups whose tables each fit :data:`M_MAX` knots (a sweep wider than
+    a few hundred k_BT at the lowest temperature): condition i belongs to group
+    ``searchsorted(cuts, μ_i, side="right")``; ``plans[g]`` is the plan of group g (None before
+    it is made)."""
+
+    cuts: tuple
+    plans: tuple = ()
+
+    def group_of(self, mu):
+        return np.searchsorted(np.asarray(self.cuts, dtype=float), np.asarray(mu, dtype=float), side="right")
+
+    @property
+    def levels(self) -> int:
+        return max(p.levels for p in self.plans)
+
+    def k_points(self, dim: int = 3) -> int:
+        return sum(p.k_points(dim) for p in self.plans)
+
+
+def mu_groups(mu, temperature, limit: float | None = None):
+    """The cuts between contiguous μ groups of the concrete ``mu`` such that every group spans at
+    most ``limit`` (default: :func:`span_limit` of all temperatures, 0.1 % margin); () when one
+    group holds them all.  Greedy from the lowest μ: the fewest groups."""
+    mu = np.unique(np.asarray(mu, dtype=float).ravel())
+    limit = 0.999 * span_limit(temperature) if limit is None else float(limit)
+    cuts, start = [], mu[0]
+    for m in mu[1:]:
+        if m - start > limit:
+            cuts.append(float(m))
+            start = m
+    return tuple(cuts)
+
+
 @jax.jit
 def _energies(model, params, red):
     """Band energies per block (…, S, m) at reduced points ``red`` (…, 3): eigvalsh only."""
