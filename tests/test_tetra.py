@@ -267,3 +267,33 @@ def test_a_sweep_wider_than_one_table_runs_as_mu_groups():
     again = response(m, mu=mu[::-1], temperature=0.0, tau=100.0, resolution=0, plan=plan)
     np.testing.assert_array_equal(np.asarray(again.density)[::-1], np.asarray(r.density))
     assert np.all(np.diff(np.asarray(r.density)) > 0)
+
+
+def test_automatic_refinement_predicts_the_level_from_the_observed_order():
+    # error ∝ h^p between the last two levels: go straight to the first level whose spacing brings
+    # the error to the allowed value (the top level if none does); step one level when the order
+    # is unknown or small; converged fields do not vote
+    from crosswind.solver.engine.response import JUMP_MIN_ORDER, _predicted_level
+    h = tt.finest_spacings()
+    assert all(a > b for a, b in zip(h, h[1:]))
+    # the D_xx estimates measured on the Weyl lattice at 10 K (resolutions 1, 2): order 2.0, too
+    # far for any resolution
+    prev, cur = {"dipole": (2.2e-4, 6.3e-7, 6.3e-4)}, {"dipole": (0.54e-4, 6.3e-7, 6.3e-4)}
+    assert _predicted_level(prev, cur, 2, 5, h) == 5
+    assert _predicted_level(prev, cur, 2, 4, h) == 4                 # max_level caps it
+    # order 2, a factor 2 to go: h/√2 is first reached at resolution 3 (h2/1.5)
+    prev, cur = {"sigma": (0.08, 0.01, 10.0)}, {"sigma": (0.02, 0.01, 10.0)}
+    assert _predicted_level(prev, cur, 2, 5, h) == 3
+    # a factor 2.5 at order 2 needs h2/1.58: resolution 4 (h2/2)
+    cur = {"sigma": (0.025, 0.01, 10.0)}
+    prev = {"sigma": (0.1, 0.01, 10.0)}
+    assert _predicted_level(prev, cur, 2, 5, h) == 4
+    # order below JUMP_MIN_ORDER, an error that grew, an unknown or infinite earlier error: one step
+    slow = {"sigma_anomalous": (0.0425 * 2 ** JUMP_MIN_ORDER * 0.99, 0.0038, 3.8)}
+    assert _predicted_level(slow, {"sigma_anomalous": (0.0425, 0.0038, 3.8)}, 2, 5, h) == 3
+    assert _predicted_level({"sigma": (0.01, 0.001, 1.0)}, {"sigma": (0.02, 0.001, 1.0)}, 2, 5, h) == 3
+    assert _predicted_level({}, {"sigma": (0.02, 0.001, 1.0)}, 2, 5, h) == 3
+    assert _predicted_level({"sigma": (np.inf, 0.001, 1.0)}, {"sigma": (0.02, 0.001, 1.0)}, 2, 5, h) == 3
+    # a converged field does not vote; the slowest unconverged one decides
+    both = {"density": (1e-9, 1e-3, 1.0), "dipole": (0.54e-4, 6.3e-7, 6.3e-4)}
+    assert _predicted_level({"density": (1.0, 1e-3, 1.0), "dipole": (2.2e-4, 0, 0)}, both, 2, 5, h) == 5

@@ -385,19 +385,56 @@ def _floors(mom, model, tau_max):
             "dipole": dip * L ** (3 - d), "chi": chi, "chi_dc": chi}
 
 
-def _converged(fine, err, mom_fine, rtol, model, tau_max):
-    """Fields whose estimated error ``err`` exceeds ``rtol`` times their size (or, for a field
-    that vanishes by symmetry, 1e-2 of its integrand magnitude)."""
-    bad = []
+def _field_status(fine, err, mom_fine, rtol, model, tau_max):
+    """{field: (largest estimated error, allowed error)}: ``rtol`` times the field's size, or, for
+    a field that vanishes by symmetry, times 1e-2 of its integrand magnitude."""
+    out = {}
     floors = _floors(mom_fine, model, tau_max)
     for name in ("density", "sigma", "sigma_anomalous", "dipole", "chi", "chi_dc"):
         a, e = np.asarray(getattr(fine, name)), np.asarray(getattr(err, name))
         size = float(np.max(np.abs(a))) if a.size else 0.0
         floor = floors.get(name, 0.0) * 1e-2
         diff = float(np.max(e)) if e.size else 0.0
-        if not diff <= rtol * max(size, floor) and diff > 0:
-            bad.append((name, diff, size))
-    return bad
+        out[name] = (diff, rtol * max(size, floor), size)
+    return out
+
+
+def _converged(fine, err, mom_fine, rtol, model, tau_max, status=None):
+    """Fields whose estimated error ``err`` exceeds the allowed error of :func:`_field_status`
+    (``status``, when already computed)."""
+    status = _field_status(fine, err, mom_fine, rtol, model, tau_max) if status is None else status
+    return [(name, diff, size) for name, (diff, allowed, size) in status.items()
+            if not diff <= allowed and diff > 0]
+
+
+#: smallest convergence order (error ∝ h^p between two levels) from which automatic refinement
+#: predicts the level it needs instead of stepping one level
+JUMP_MIN_ORDER = 0.5
+
+
+def _predicted_level(prev, cur, lev, top, spacing):
+    """The level automatic refinement tries after ``lev`` (> ``lev``, at most ``top``): for every
+    unconverged field whose estimated error fell from level lev−1 (``prev``) to lev (``cur``,
+    {field: (error, allowed, size)}) with order p = ln(e_{lev−1}/e_lev)/ln(h_{lev−1}/h_lev) ≥
+    JUMP_MIN_ORDER (h = ``spacing`` per level), the first level whose spacing brings
+    e_lev (h/h_lev)^p to the allowed error (the top level if none does); lev + 1 for any other
+    unconverged field.  The slowest field decides.  Skipped levels save their whole cost; a level
+    reached by prediction still reports its own nested estimate, and stepping resumes if it does
+    not converge."""
+    nxt = lev + 1
+    for name, (e1, allowed, _size) in cur.items():
+        if e1 <= allowed or not (np.isfinite(e1) and e1 > 0):
+            continue
+        e0 = prev.get(name, (np.nan,))[0]
+        if not (np.isfinite(e0) and e0 > e1):
+            continue
+        p = np.log(e0 / e1) / np.log(spacing[lev - 1] / spacing[lev])
+        if not p >= JUMP_MIN_ORDER:
+            continue
+        need = spacing[lev] * (allowed / e1) ** (1.0 / p)
+        c = next((c for c in range(lev + 1, top + 1) if spacing[c] <= need * (1 + 1e-9)), top)
+        nxt = max(nxt, c)
+    return min(nxt, top)
 
 
 @jax.jit
@@ -533,22 +570,27 @@ def _mesh_path(model, muf, kt, Tf, tauf, omega, kw, rtol, resolution, max_level,
     return fine, err, bad, info
 
 
-def _resolution_loop(run, nres, resolution, max_level, plan, rtol, model, tau_max):
+def _resolution_loop(run, nres, resolution, max_level, plan, rtol, model, tau_max, spacing=None):
     """``run(level, plan)`` → (plans tried, fine moments, fine Response, error) at the fixed
     ``resolution`` (with ``plan``), or from level 1 up until every field converges (or the top
-    level).  Returns (level, plans tried, fine, err, unconverged fields or None, k-points of every
-    run)."""
+    level): one level at a time, or, with ``spacing`` (a length per level, finest first reached
+    last), to the level :func:`_predicted_level` predicts from the last two levels' estimates.
+    Returns (level, plans tried, fine, err, unconverged fields or None, k-points of every run)."""
     bad = None
     if resolution is None:
         top = nres - 1 if max_level is None else min(max_level, nres - 1)
-        lev, k_points = 1, 0
+        lev, k_points, status = 1, 0, {}
         while True:
             tried, f, fine, err = run(lev, None)
             k_points += sum(p.k_points(model.dim) for p in tried)
-            bad = _converged(fine, err, f, rtol, model, tau_max)
+            status[lev] = _field_status(fine, err, f, rtol, model, tau_max)
+            bad = _converged(fine, err, f, rtol, model, tau_max, status[lev])
             if not bad or lev >= top:
                 break
-            lev += 1
+            if spacing is not None and lev - 1 in status:
+                lev = _predicted_level(status[lev - 1], status[lev], lev, top, spacing)
+            else:
+                lev += 1
     else:
         if not (0 <= resolution <= nres - 1):
             raise ValueError(f"response: resolution must be a level 0..{nres - 1}")
@@ -683,7 +725,7 @@ def _tetra_group(muf, model, kt, Tf, tauf, omega, kw, rtol, resolution, max_leve
         return ([pl], f) + _ladder_errors(f, c, ex, over, model, Tf, intrinsic)
 
     lev, tried, fine, err, bad, k_points = _resolution_loop(run, nres, resolution, max_level, plan, rtol,
-                                                            model, tau_max)
+                                                            model, tau_max, _tetra.finest_spacings())
     pl = tried[-1]
     info = {"engine": "tetra", "level": lev, "plan": pl, "levels": pl.levels, "attempts": 1,
             "k_points": int(k_points)}

@@ -430,6 +430,11 @@ def table_ranges(mu, ktl, rho, M):
     return e_lo, delta, fits, (mlo - reach, mhi + reach)
 
 
+def finest_spacings():
+    """Finest cell edge per resolution (units of the reciprocal vectors): 1/(n0·2^L)."""
+    return tuple(1.0 / (n0 * 2 ** L) for n0, L in RESOLUTIONS)
+
+
 def span_limit(temperature) -> float:
     """Widest μ range (eV) whose energy tables fit :data:`M_MAX` knots at these temperatures (the
     knot count of :func:`make_plan`: span + 2W k_BT_{k−1} at spacing k_BT_k/ρ, plus 32, per level)."""
