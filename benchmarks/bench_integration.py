@@ -11,7 +11,8 @@ Prints, for a lattice model:
 
 and for a continuum (k·p) model (strained MoS2, ``tmd``): the automatic ``response`` call (shared
 rays, rtol 1e-3) over N_mu × N_T conditions against one condition, and the node rule's cost of 8
-conditions against one.
+conditions against one; for a 3D lattice (tilted ``weyl``, tetrahedra at resolution 1): the sweep
+against one condition and one condition against a bare batched ``eigh`` on the plan's k-points.
 
 Default case: honeycomb (staggered 0.2, strain_xx 0.01), μ in [0.28, 0.32] eV, T in [10, 40] K.
 
@@ -127,6 +128,41 @@ def run_continuum(n_mu=200, n_t=20, model=TMD, mu_range=(0.84, 0.88), t_range=(1
     return rows
 
 
+WEYL = dict(name="weyl", params=dict(tilt=0.3, node_position=0.3))
+
+
+def run_lattice3d(n_mu=200, n_t=20, resolution=1, model=WEYL, mu_range=(0.08, 0.12), t_range=(10.0, 40.0)):
+    """3D lattice (tetrahedra, ``engine="tetra"`` at a fixed resolution, plans made once as a fit
+    or a repeated sweep reuses them): N_mu × N_T conditions against one condition, and one
+    condition against a bare batched ``jnp.linalg.eigh`` on as many k-points as the plan holds."""
+    model_name = model["name"]
+    model = build(model_name, **model.get("params", {}))
+    mus = np.linspace(*mu_range, n_mu)
+    temps = np.geomspace(*t_range, n_t)
+    mu_grid, t_grid = np.meshgrid(mus, temps, indexing="ij")
+    one = dict(mu=float(mus[n_mu // 2]), temperature=float(temps[0]), tau=50.0, resolution=resolution,
+               engine="tetra")
+    sweep = dict(mu=mu_grid, temperature=t_grid, tau=50.0, resolution=resolution, engine="tetra")
+    rows = []
+    r1 = _block(response(model, **one))
+    plan = r1.resolution.plan
+    t_one = _warm(lambda: _block(response(model, plan=plan, **one)))
+    rs = _block(response(model, **sweep))
+    t_sweep = _warm(lambda: _block(response(model, plan=rs.resolution.plan, **sweep)))
+    rows.append(("sweep tetra", f"{n_mu * n_t} conditions / 1", t_sweep / t_one,
+                 f"{t_sweep:.2f} s / {t_one:.2f} s; k-points {rs.resolution.k_points} / {r1.resolution.k_points}"))
+    nk = plan.k_points(model.dim)
+    b = np.asarray(model.reciprocal_vectors())
+    ks = jnp.asarray(np.random.default_rng(0).random((nk, model.dim)) @ b)
+    eig = jax.jit(lambda k: jnp.linalg.eigh(jax.vmap(lambda q: model.hamiltonian(q, model.params))(k)))
+    t_eig = _warm(lambda: jax.block_until_ready(eig(ks)))
+    rows.append(("eigh", f"tetra 1 condition / eigh on {nk} k", t_one / t_eig, f"{t_one:.2f} s / {t_eig:.3f} s"))
+    peak = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
+    rows.append(("memory", "peak RSS (MiB)", peak, f"after {n_mu * n_t} conditions"))
+    _table(f"model {model_name} (3D lattice), resolution {resolution}", rows)
+    return rows
+
+
 if __name__ == "__main__":
     ap = argparse.ArgumentParser()
     ap.add_argument("--quick", action="store_true")
@@ -135,6 +171,8 @@ if __name__ == "__main__":
         run(n_mu=8, n_t=2, resolution=0, model=dict(name="haldane"), mu_range=(1.1, 1.4),
             t_range=(150.0, 300.0))
         run_continuum(n_mu=8, n_t=2)
+        run_lattice3d(n_mu=4, n_t=2, resolution=0)
     else:
         run()
         run_continuum()
+        run_lattice3d()

@@ -42,3 +42,14 @@ def test_numpy_reference_benchmark_runs_end_to_end():
     t_np, t_first, t_warm, n, err_np, err_cw = mod.run(max_n=1024)
     assert n <= 1024 and t_np > 0 and t_first > 0 and t_warm > 0
     assert err_cw < 1e-3            # the project's automatic call at rtol 1e-3 (measured 1.2e-4)
+
+
+def test_lattice3d_integration_benchmark_quick_run():
+    """The 3D-lattice part (tetrahedra) at resolution 0 and 2 × 2 conditions (fast)."""
+    path = pathlib.Path(__file__).resolve().parents[1] / "benchmarks" / "bench_integration.py"
+    spec = importlib.util.spec_from_file_location("bench_integration", path)
+    mod = importlib.util.module_from_spec(spec)
+    spec.loader.exec_module(mod)
+    rows = mod.run_lattice3d(n_mu=2, n_t=2, resolution=0, t_range=(20.0, 40.0))
+    assert [r[0] for r in rows] == ["sweep tetra", "eigh", "memory"]
+    assert all(r[2] > 0 for r in rows)

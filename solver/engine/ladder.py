@@ -607,19 +607,20 @@ def condition_sums(levels, info, plan: Plan, mu, kt, temp, tau_eval, tau_arr, om
     ktl = info["kt_ladder"]
     L = plan.levels
     layout, vol = info["layout"], info["vol"]
-    rho = plan.rho if which == "fine" else plan.rho / 2
     kstar = [jnp.maximum(kt, ktl[lv]) for lv in range(L + 1)]
     partial = []
     total = None
     for lv in range(L + 1):
         lev = levels[lv]
+        # knots per k_BT of the level (a table shared by several levels carries its own)
+        rho = lev.get("rho", plan.rho) * (1.0 if which == "fine" else 0.5)
         delta = lev["delta"] if which == "fine" else 2 * lev["delta"]
         acc = lev[which]
         if lv == 0:
             part = _level_sums(acc, lev["e_lo"], delta, mu, kstar[0], None, kstar[0], temp, tau_eval,
                                tau_arr, omega, layout, sea, rho, True, filled * vol)
         else:
-            def refined(acc=acc, lev=lev, delta=delta, lv=lv):
+            def refined(acc=acc, lev=lev, delta=delta, lv=lv, rho=rho):
                 return _level_sums(acc, lev["e_lo"], delta, mu, kstar[lv], kstar[lv - 1], ktl[lv - 1], temp,
                                    tau_eval, tau_arr, omega, layout, sea, rho, False, 0.0)
             # a condition with k_BT ≥ k_BT_{l−1} has φ(T*_l) = φ(T*_{l−1}): its level-l sum is

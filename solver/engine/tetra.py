@@ -25,7 +25,9 @@ band: only the (leaf, band) items that reach the window are cut into tetrahedra 
 the most per chunk, ``TetraMeta.caps``); the others add their corner-weighted integral or nothing.
 
 Energy axis.  Knots E_lo + jδ per temperature level (δ_l = k_BT_l/ρ, the temperatures k_BT_l of
-:mod:`crosswind.solver.engine.ladder`); a tetrahedron deposits onto knot j the exact integral
+:mod:`crosswind.solver.engine.ladder`), or one table at the deepest level's δ shared by every level
+when their windows fit it (:data:`M_SHARED`; each cell is then deposited once, not once per
+level); a tetrahedron deposits onto knot j the exact integral
 ∫ Λ_j(E) dC(E) of the linear hat function Λ_j of the knot: exact for the interior knots of each
 polynomial piece by a difference array of the piece's polynomial (cost independent of the number of
 knots a piece spans), and directly for the knots near its ends (two at each end of a long piece,
@@ -76,6 +78,10 @@ M_MAX = 16384
 #: (n0, L) per resolution index: level-0 cells per axis and refinement levels
 RESOLUTIONS = ((12, 3), (16, 4), (16, 5), (24, 5), (32, 5), (40, 5))
 RHO = 8.0                  # knots per k_BT of a temperature level
+#: largest shared table: a plan with several temperature levels whose windows all fit one table at
+#: the deepest level's spacing (at most this many knots) deposits every cell once, into that table
+#: (the levels' condition sums read it with ρ·2^(nt−k) knots per k_BT_k), instead of once per level
+M_SHARED = 4096
 CELL_CHUNK = 32            # parent cells per chunk of the refined levels (27 corners each)
 POINT_CHUNK = 4096         # level-0 points per chunk
 
@@ -336,7 +342,8 @@ class TetraMeta:
     refined at level l = 1..L, ``nt`` temperature levels below k_BT_0, ``knots`` per temperature
     table, ``rho`` knots per k_BT, ``slack`` (eV Å, the band-speed bound) and ``caps``: the most
     (cell, band) items of one chunk of the deepest level that reach the window, children (fine
-    tables) and parents (coarse tables); only those are deposited."""
+    tables) and parents (coarse tables); only those are deposited.  ``shared``: every temperature
+    level reads one table at the deepest level's spacing (:data:`M_SHARED`)."""
 
     n0: int
     sizes: tuple
@@ -345,6 +352,11 @@ class TetraMeta:
     rho: float
     slack: float
     caps: tuple = (0, 0)
+    shared: bool = False
+
+    @property
+    def tables(self) -> int:          # energy tables deposited: one when shared, else one per level
+        return 1 if self.shared else self.nt + 1
 
     @property
     def levels(self) -> int:          # temperature levels (as the ladder's condition sums read them)
@@ -416,14 +428,15 @@ def temperature_levels(temperature):
     return kt0, nt
 
 
-def table_ranges(mu, ktl, rho, M):
+def table_ranges(mu, ktl, rho, M, shared=False):
     """(e_lo (K,), δ (K,), fits, (w_lo, w_hi)) of the temperature tables: M knots of spacing
-    δ_k = k_BT_k/ρ centred on the μ range; level k must hold μ ± W k_BT_{k−1} (level 0: ± W k_BT_0).
+    δ_k = k_BT_k/ρ (``shared``: the deepest level's δ for every level, one table) centred on the μ
+    range; level k must hold μ ± W k_BT_{k−1} (level 0: ± W k_BT_0).
     [w_lo, w_hi] = [min μ − W k_BT_0 − 6δ_0, max μ + W k_BT_0 + 6δ_0] is the window of the cells:
     below it every condition's occupation is 1, above it 0 (to e^{−W}), and every level's window
     lies inside it."""
     mlo, mhi = jnp.min(mu), jnp.max(mu)
-    delta = ktl / rho
+    delta = ktl / rho if not shared else jnp.full(ktl.shape, ktl[-1] / rho)
     centre = jnp.floor(0.5 * (mlo + mhi) / delta) * delta
     e_lo = centre - (M // 2) * delta
     kwin = jnp.concatenate([ktl[:1], ktl[:-1]])
@@ -581,7 +594,12 @@ def make_plan(model, params, mu, temperature, resolution: int, cap: int = 250000
         raise ValueError(f"response: engine='tetra' would need energy tables of {M} knots (μ range "
                          f"{span:.3g} eV at {float(ktl[-1]) / KB:.3g} K); at most {M_MAX}: split the sweep into "
                          "μ ranges a few hundred k_BT wide, or raise the lowest temperature")
-    _, _, _, (wlo, whi) = table_ranges(jnp.asarray(mu), jnp.asarray(ktl), RHO, M)
+    # one table for every level when their windows fit it at the deepest spacing
+    M_sh = _ladder._pow2((span + 2 * W * ktl[0]) / (ktl[-1] / RHO) + 32)
+    shared = nt >= 1 and M_sh <= M_SHARED
+    if shared:
+        M = M_sh
+    _, _, _, (wlo, whi) = table_ranges(jnp.asarray(mu), jnp.asarray(ktl), RHO, M, shared)
     lo, hi = float(wlo), float(whi)
     b = np.asarray(model.reciprocal_vectors(params))
     vmax = float(_ladder.probe_speed(model, params))
@@ -633,7 +651,7 @@ def make_plan(model, params, mu, temperature, resolution: int, cap: int = 250000
         cur = nxt
     # no cell to split (μ in a gap far from every band): the level-0 cells alone, depth 0
     refine = refine[:max(len(parents) - 1, 0)]
-    meta = TetraMeta(n0, tuple(sizes), nt, M, RHO, float(slack), caps)
+    meta = TetraMeta(n0, tuple(sizes), nt, M, RHO, float(slack), caps, shared)
     return TetraPlan(meta, ktl, refine0, tuple(parents), tuple(refine), tuple(counts))
 
 
@@ -665,10 +683,10 @@ def build_tables(model, params, meta: TetraMeta, arrays, mu, kt, sea):
     b = jax.lax.stop_gradient(model.reciprocal_vectors(params))
     vol = jnp.abs(jnp.dot(b[0], jnp.cross(b[1], b[2]))) / (2 * jnp.pi) ** 3
     n0, L, M = meta.n0, meta.depth, meta.knots
-    K = meta.nt + 1
+    K, KT = meta.nt + 1, meta.tables
     Mc = (M + 1) // 2
     nb = model.n_bands
-    e_lo, delta, fits, (lo, hi) = table_ranges(jax.lax.stop_gradient(mu), ktl, meta.rho, M)
+    e_lo, delta, fits, (lo, hi) = table_ranges(jax.lax.stop_gradient(mu), ktl, meta.rho, M, meta.shared)
     # a plan made for colder conditions: the level-0 table would cut their windows short
     fits = fits & (jnp.max(jax.lax.stop_gradient(kt)) <= ktl[0] * (1 + 1e-9))
     # stale: a leaf that reaches the window by more than rounding (plan: eigvalsh in numpy)
@@ -706,8 +724,9 @@ def build_tables(model, params, meta: TetraMeta, arrays, mu, kt, sea):
     below_c = jnp.einsum("pn,pnc->c", pw_c, f0)
 
     proj = lambda m: jax.vmap(partial(project, M=m), in_axes=(0, None, None, None, 0, 0))
-    acc_f = (jnp.zeros((K, M, nc)), jnp.zeros((K, M + 1, 4, nc)), jnp.zeros((K, nc)))
-    acc_c = (jnp.zeros((K, Mc, nc)), jnp.zeros((K, Mc + 1, 4, nc)), jnp.zeros((K, nc)))
+    acc_f = (jnp.zeros((KT, M, nc)), jnp.zeros((KT, M + 1, 4, nc)), jnp.zeros((KT, nc)))
+    acc_c = (jnp.zeros((KT, Mc, nc)), jnp.zeros((KT, Mc + 1, 4, nc)), jnp.zeros((KT, nc)))
+    e_lo_t, delta_t = e_lo[:KT], delta[:KT]
     for lev in range(1, L + 1):
         par = parents[lev - 1]
         B = meta.sizes[lev - 1]
@@ -755,9 +774,9 @@ def build_tables(model, params, meta: TetraMeta, arrays, mu, kt, sea):
                 wp = jnp.where(belp & ~cutp & ok[:, None], 8 * V_l, 0.0)
                 bc = bc + jnp.einsum("kn,p,kpnc->c", wp, jnp.asarray(S_PARENT), f)
                 cc8 = jnp.asarray(CHILD_CORNERS)
-                for sel, cap_, per, V, tabs, m_, dl in (((cut & okc).reshape(-1), cf, 8, V_l, "f", M, delta),
+                for sel, cap_, per, V, tabs, m_, dl in (((cut & okc).reshape(-1), cf, 8, V_l, "f", M, delta_t),
                                                         ((cutp & ok[:, None]).reshape(-1), cc, 1, 8 * V_l, "c",
-                                                         Mc, 2 * delta)):
+                                                         Mc, 2 * delta_t)):
                     nsel = jnp.sum(sel)
                     stale = stale | (nsel > cap_)
                     pick = jnp.nonzero(sel, size=cap_, fill_value=0)[0]
@@ -772,9 +791,9 @@ def build_tables(model, params, meta: TetraMeta, arrays, mu, kt, sea):
                     vt = jnp.where(jnp.repeat(live, 6), V / 6, 0.0)
                     qv = vertex_coefficients(et) * vt[:, None, None, None]
                     if tabs == "f":
-                        af = proj(m_)(af, et, qv, ft, e_lo, dl)
+                        af = proj(m_)(af, et, qv, ft, e_lo_t, dl)
                     else:
-                        ac = proj(m_)(ac, et, qv, ft, e_lo, dl)
+                        ac = proj(m_)(ac, et, qv, ft, e_lo_t, dl)
             return (bf, bc, stale, af, ac), None
 
         zero = jnp.zeros((nc,))
@@ -787,8 +806,11 @@ def build_tables(model, params, meta: TetraMeta, arrays, mu, kt, sea):
     levels = []
     for k in range(K):
         extra, extra_c = (below, below_c) if k == 0 else (0.0, 0.0)
-        levels.append(dict(fine=(tab_f[k], bel_f[k] + extra), coarse=(tab_c[k], bel_c[k] + extra_c),
-                           e_lo=e_lo[k], delta=delta[k]))
+        t = 0 if meta.shared else k
+        # shared: level k reads the one table, ρ·2^(nt−k) knots per k_BT_k
+        rho_k = meta.rho * 2 ** (meta.nt - k) if meta.shared else meta.rho
+        levels.append(dict(fine=(tab_f[t], bel_f[t] + extra), coarse=(tab_c[t], bel_c[t] + extra_c),
+                           e_lo=e_lo[t], delta=delta[t], rho=rho_k))
     info = {"kt_ladder": ktl, "overflow": stale | ~fits, "vol": vol, "layout": layout}
     return levels, info
 
