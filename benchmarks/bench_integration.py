@@ -79,17 +79,21 @@ def run(n_mu=200, n_t=20, resolution=1, model=HARD, mu_range=(0.28, 0.32), t_ran
     tm8 = _warm(lambda: _block(response(model, **m_sweep)))
     rows.append(("sweep mesh", "8 conditions / 1", tm8 / tm1, f"{tm8:.2f} s / {tm1:.2f} s"))
     # bare eigensolver on as many k-points as the ladder evaluated
-    nk = plan.k_points(model.dim)
-    b = np.asarray(model.reciprocal_vectors())
-    red = np.random.default_rng(0).random((nk, model.dim))
-    ks = jnp.asarray(red @ b)
-    eig = jax.jit(lambda k: jnp.linalg.eigh(jax.vmap(lambda q: model.hamiltonian(q, model.params))(k)))
-    t_eig = _warm(lambda: jax.block_until_ready(eig(ks)))
-    rows.append(("eigh", f"ladder 1 condition / eigh on {nk} k", t_one / t_eig, f"{t_one:.2f} s / {t_eig:.3f} s"))
-    peak = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
-    rows.append(("memory", "peak RSS (MiB)", peak, f"after {n_mu * n_t} conditions"))
+    rows += _eigh_and_memory(model, plan.k_points(model.dim), t_one, "ladder", n_mu * n_t)
     _table(f"model {model_name}, resolution {resolution}, plan of one condition {plan}", rows)
     return rows
+
+
+def _eigh_and_memory(model, nk, t_one, engine, n_cond):
+    """Rows: one condition against a bare batched ``jnp.linalg.eigh`` on ``nk`` random k-points,
+    and the peak resident memory after the sweep."""
+    b = np.asarray(model.reciprocal_vectors())
+    ks = jnp.asarray(np.random.default_rng(0).random((nk, model.dim)) @ b)
+    eig = jax.jit(lambda k: jnp.linalg.eigh(jax.vmap(lambda q: model.hamiltonian(q, model.params))(k)))
+    t_eig = _warm(lambda: jax.block_until_ready(eig(ks)))
+    peak = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
+    return [("eigh", f"{engine} 1 condition / eigh on {nk} k", t_one / t_eig, f"{t_one:.2f} s / {t_eig:.3f} s"),
+            ("memory", "peak RSS (MiB)", peak, f"after {n_cond} conditions")]
 
 
 TMD = dict(name="tmd", params=dict(material="MoS2", strain_xx=0.01))
@@ -151,14 +155,7 @@ def run_lattice3d(n_mu=200, n_t=20, resolution=1, model=WEYL, mu_range=(0.08, 0.
     t_sweep = _warm(lambda: _block(response(model, plan=rs.resolution.plan, **sweep)))
     rows.append(("sweep tetra", f"{n_mu * n_t} conditions / 1", t_sweep / t_one,
                  f"{t_sweep:.2f} s / {t_one:.2f} s; k-points {rs.resolution.k_points} / {r1.resolution.k_points}"))
-    nk = plan.k_points(model.dim)
-    b = np.asarray(model.reciprocal_vectors())
-    ks = jnp.asarray(np.random.default_rng(0).random((nk, model.dim)) @ b)
-    eig = jax.jit(lambda k: jnp.linalg.eigh(jax.vmap(lambda q: model.hamiltonian(q, model.params))(k)))
-    t_eig = _warm(lambda: jax.block_until_ready(eig(ks)))
-    rows.append(("eigh", f"tetra 1 condition / eigh on {nk} k", t_one / t_eig, f"{t_one:.2f} s / {t_eig:.3f} s"))
-    peak = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
-    rows.append(("memory", "peak RSS (MiB)", peak, f"after {n_mu * n_t} conditions"))
+    rows += _eigh_and_memory(model, plan.k_points(model.dim), t_one, "tetra", n_mu * n_t)
     _table(f"model {model_name} (3D lattice), resolution {resolution}", rows)
     return rows
 
