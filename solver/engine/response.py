@@ -484,10 +484,10 @@ def _richardson_errors(fine_m, coarse_m, ex_m, over, model, temp, intrinsic):
     """Tetrahedra: fine sums at spacing h and the nested coarse ones at 2h both carry the O(h²)
     error of linear interpolation, so the returned moments are the Richardson combination
     R = fine + (fine − coarse)/3 (the h² terms cancel; docs/theory.md §16.6); the error stays
-    |fine − coarse| (SI) plus the T² extrapolation's spread: three times the correction applied,
-    so it bounds R's error whenever the error falls with an order between 1 and 2.8 (for
-    e(2h) = 2^p e(h): |R − X| = |4 − 2^p| e/3 ≤ (2^p − 1) e), and wherever it bounded the fine
-    sums' error before.  Returns (R moments, R in SI, error)."""
+    |fine − coarse| (SI) plus the T² extrapolation's spread: three times the correction applied.
+    For errors e(2h) = 2^p e(h) of one sign, |R − X| = |4 − 2^p| e/3, which is at most
+    |fine − coarse| = (2^p − 1) e for every order p ≥ 0.81 and at most the fine sums' own error e
+    for 0 ≤ p ≤ 2.8.  Returns (R moments, R in SI, error)."""
     rich = jax.tree_util.tree_map(lambda a, b: a + (a - b) / 3.0, fine_m, coarse_m)
     out = _to_si(rich, model, temp, intrinsic)
     shifted = _to_si(jax.tree_util.tree_map(lambda a, b: a + b.astype(a.dtype), rich, ex_m), model, temp,

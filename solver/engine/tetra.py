@@ -473,10 +473,10 @@ class TetraGroups:
 
     @property
     def levels(self) -> int:
-        return max(p.levels for p in self.plans)
+        return max((p.levels for p in self.plans if p is not None), default=0)
 
     def k_points(self, dim: int = 3) -> int:
-        return sum(p.k_points(dim) for p in self.plans)
+        return sum(p.k_points(dim) for p in self.plans if p is not None)
 
 
 def mu_groups(mu, temperature, limit: float | None = None):
