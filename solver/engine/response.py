@@ -469,32 +469,25 @@ def _run_ladder(model, mu, kt, temp, tau_arr, omega, res, kw, plan, traced):
     return f, c, ex, over, tried
 
 
-def _ladder_errors(fine_m, coarse_m, ex_m, over, model, temp, intrinsic):
-    fine = _to_si(fine_m, model, temp, intrinsic)
-    coarse = _to_si(coarse_m, model, temp, intrinsic)
-    shifted = _to_si(jax.tree_util.tree_map(lambda a, b: a + b.astype(a.dtype), fine_m, ex_m), model, temp,
+def _nested_errors(fine_m, coarse_m, ex_m, over, model, temp, intrinsic, richardson=False):
+    """(moments returned, the same in SI, error) from the fine and the nested coarse sums of one
+    run: the error is |fine − coarse| (SI) plus the T² extrapolation's spread, inf where a plan
+    overflowed.  The ladder returns the fine sums (its trapezoid sums converge spectrally: the
+    coarse sums are far worse).  ``richardson`` (tetrahedra): fine and coarse both carry the O(h²)
+    error of linear interpolation, so the moments returned are R = fine + (fine − coarse)/3, in
+    which the h² terms cancel (docs/theory.md §16.6), and the error stays |fine − coarse|: three
+    times the correction applied.  For errors e(2h) = 2^p e(h) of one sign, |R − X| = |4 − 2^p| e/3,
+    which is at most |fine − coarse| = (2^p − 1) e for every order p ≥ 0.81 and at most the fine
+    sums' own error e for 0 ≤ p ≤ 2.8."""
+    val = (jax.tree_util.tree_map(lambda a, b: a + (a - b) / 3.0, fine_m, coarse_m) if richardson
+           else fine_m)
+    out = _to_si(val, model, temp, intrinsic)
+    shifted = _to_si(jax.tree_util.tree_map(lambda a, b: a + b.astype(a.dtype), val, ex_m), model, temp,
                      intrinsic)
-    # nested-grid difference + the T² extrapolation's own spread; a budget overflow is no estimate
-    err = jax.tree_util.tree_map(lambda u, v: jnp.where(over, jnp.inf, u + v),
-                                 _field_errors(fine, coarse), _field_errors(shifted, fine))
-    return fine, err
-
-
-def _richardson_errors(fine_m, coarse_m, ex_m, over, model, temp, intrinsic):
-    """Tetrahedra: fine sums at spacing h and the nested coarse ones at 2h both carry the O(h²)
-    error of linear interpolation, so the returned moments are the Richardson combination
-    R = fine + (fine − coarse)/3 (the h² terms cancel; docs/theory.md §16.6); the error stays
-    |fine − coarse| (SI) plus the T² extrapolation's spread: three times the correction applied.
-    For errors e(2h) = 2^p e(h) of one sign, |R − X| = |4 − 2^p| e/3, which is at most
-    |fine − coarse| = (2^p − 1) e for every order p ≥ 0.81 and at most the fine sums' own error e
-    for 0 ≤ p ≤ 2.8.  Returns (R moments, R in SI, error)."""
-    rich = jax.tree_util.tree_map(lambda a, b: a + (a - b) / 3.0, fine_m, coarse_m)
-    out = _to_si(rich, model, temp, intrinsic)
-    shifted = _to_si(jax.tree_util.tree_map(lambda a, b: a + b.astype(a.dtype), rich, ex_m), model, temp,
-                     intrinsic)
-    diff = _field_errors(_to_si(fine_m, model, temp, intrinsic), _to_si(coarse_m, model, temp, intrinsic))
+    fine = _to_si(fine_m, model, temp, intrinsic) if richardson else out
+    diff = _field_errors(fine, _to_si(coarse_m, model, temp, intrinsic))
     err = jax.tree_util.tree_map(lambda u, v: jnp.where(over, jnp.inf, u + v), diff, _field_errors(shifted, out))
-    return rich, out, err
+    return val, out, err
 
 
 # fields integrated over the Fermi sea with the uniform rule; every other field lives in the
@@ -631,7 +624,7 @@ def _ladder_path(model, muf, kt, Tf, tauf, omega, kw, rtol, resolution, max_leve
 
     def run(lev, given):
         f, c, ex, over, tried = _run_ladder(model, muf, kt, Tf, tauf, omega, lev, kw, given, traced)
-        return (tried, f) + _ladder_errors(f, c, ex, over, model, Tf, intrinsic)
+        return (tried,) + _nested_errors(f, c, ex, over, model, Tf, intrinsic)
 
     lev, tried, fine, err, bad, k_points = _resolution_loop(run, nres, resolution, max_level, plan, rtol,
                                                             model, tau_max)
@@ -688,15 +681,12 @@ def _tetra_path(model, muf, kt, Tf, tauf, omega, kw, rtol, resolution, max_level
     idxs, parts = [], []
     for g in range(len(groups.cuts) + 1):
         idx = np.nonzero(gid == g)[0]
-        if idx.size == 0:
-            if groups.plans:
-                idxs.append(idx)
-                parts.append(None)
-                continue
-            raise ValueError("response: an empty μ group (internal)")     # cuts are μ values of the call
+        idxs.append(idx)
+        if idx.size == 0:           # a reused plan's group that this call leaves empty
+            parts.append(None)
+            continue
         sub = lambda a, idx=idx: a[idx]
         given = groups.plans[g] if groups.plans else None
-        idxs.append(idx)
         parts.append(_tetra_group(muf[idx], model, kt[idx], Tf[idx], jax.tree_util.tree_map(sub, tauf), omega,
                                   kw, rtol, resolution, max_level, intrinsic, given, tau_max))
     return _stitch_groups(parts, idxs, int(muf.shape[0]), groups)
@@ -739,7 +729,7 @@ def _tetra_group(muf, model, kt, Tf, tauf, omega, kw, rtol, resolution, max_leve
     def run(lev, given):
         pl = given if given is not None else _tetra.make_plan(model, model.params, muf, Tf, lev)
         f, c, ex, over = _tetra_at(model, muf, kt, Tf, tauf, omega, pl.arrays(), meta=pl.meta, **kw)
-        return ([pl],) + _richardson_errors(f, c, ex, over, model, Tf, intrinsic)
+        return ([pl],) + _nested_errors(f, c, ex, over, model, Tf, intrinsic, richardson=True)
 
     lev, tried, fine, err, bad, k_points = _resolution_loop(run, nres, resolution, max_level, plan, rtol,
                                                             model, tau_max, _tetra.finest_spacings())

@@ -42,7 +42,7 @@ its parent's interpolant (spacing doubled, O(h²) error four times larger): the 
 replaced by their parents on knots 2δ, the unsplit leaves of the other levels and the unsplit
 level-0 cells integrating the parent's (level 0: the n0/2 grid's) interpolant over themselves
 (docs/theory.md §16.6).  The response returns the Richardson combination fine + (fine − coarse)/3
-of the two (the h² terms cancel) with |fine − coarse| as its error (``response._richardson_errors``).
+of the two (the h² terms cancel) with |fine − coarse| as its error (``response._nested_errors``).
 Cells that a plan left
 unrefined but that the run finds inside the window (a plan reused at other parameters) make the
 error infinite.  The cell structure comes from the plan (a concrete pass on band energies only);
