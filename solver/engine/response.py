@@ -713,11 +713,10 @@ def _stitch_groups(parts, idxs, P, groups):
             d0, s0 = worst.get(name, (0.0, 0.0))
             worst[name] = (max(d0, diff), max(s0, size))
         bad = [(name, d, s) for name, (d, s) in worst.items()]
-    plans = tuple(p[3]["plan"] if p is not None else None for p in parts)
+    plan = _tetra.TetraGroups(groups.cuts, tuple(p[3]["plan"] if p is not None else None for p in parts))
     infos = [p[3] for p, _ in used]
-    info = {"engine": "tetra", "level": max(x["level"] for x in infos),
-            "plan": _tetra.TetraGroups(groups.cuts, plans),
-            "levels": max(x["levels"] for x in infos), "attempts": 1,
+    info = {"engine": "tetra", "level": max(x["level"] for x in infos), "plan": plan,
+            "levels": plan.levels, "attempts": 1,
             "k_points": int(sum(x["k_points"] for x in infos))}
     return fine, err, bad, info
 
