@@ -55,6 +55,32 @@ def test_piece_polynomials_reproduce_the_cumulative_measure():
                                        atol=1e-13)
 
 
+def test_barycentric_measures_equal_the_general_rule_with_unit_factors():
+    # vertex_coefficients takes a short path for A = identity (the four barycentric measures);
+    # it must equal the general path with the identity matrix as vertex factors, degenerate
+    # vertex energies (equal pairs, all equal) included
+    cases = np.array([E4, [0.0, 0.0, 1.0, 2.0], [0.0, 1.0, 1.0, 2.0], [0.0, 1.0, 2.0, 2.0],
+                      [1.0, 1.0, 1.0, 1.0], [-1.0, 0.5, 0.5, 0.5]])
+    eye = jnp.broadcast_to(jnp.eye(4), (len(cases), 4, 4))
+    np.testing.assert_allclose(np.asarray(tt.vertex_coefficients(jnp.asarray(cases))),
+                               np.asarray(tt.piece_coefficients(jnp.asarray(cases), eye)), atol=1e-14)
+
+
+def test_tetrahedra_are_sorted_stably_and_carry_their_factors():
+    # _tet_items orders each tetrahedron's vertices by energy without a general sort: it must equal
+    # a stable argsort (ties by vertex index), the factors following their vertices
+    rng = np.random.default_rng(5)
+    E = rng.integers(0, 3, (20, 8, 2)).astype(float)          # many ties
+    E[:5] = rng.random((5, 8, 2))
+    F = rng.random((20, 8, 2, 3))
+    et, ft = tt._tet_items(jnp.asarray(E), jnp.asarray(F))
+    Et = np.moveaxis(E[:, tt.TETS, :], -1, -3).reshape(-1, 4)
+    Ft = np.moveaxis(F[:, tt.TETS, :, :], -2, -4).reshape(-1, 4, 3)
+    o = np.argsort(Et, axis=-1, kind="stable")
+    np.testing.assert_array_equal(np.asarray(et), np.take_along_axis(Et, o, -1))
+    np.testing.assert_array_equal(np.asarray(ft), np.take_along_axis(Ft, o[..., None], -2))
+
+
 @pytest.mark.parametrize("delta,e_lo,M", [(0.002, E4[1] - 0.013, 1500),   # long pieces, top clipped
                                          (0.02, E4[0] - 0.5, 400),        # long pieces, all inside
                                          (0.3, E4[0] + 0.07, 9),          # short pieces, both ends clipped
@@ -204,6 +230,11 @@ def test_deepest_items_are_balanced_and_an_overfull_chunk_reports_an_infinite_er
     plan = tt.make_plan(m, m.params, np.array([0.1]), np.array([10.0]), 0)
     cf, cc = plan.meta.caps
     assert 0 < cf < tt.CELL_CHUNK * 8 * m.n_bands and 0 < cc <= tt.CELL_CHUNK * m.n_bands
+    # every level's valid parents fill the first chunks: the chunks after them hold only padding
+    # (the run skips those)
+    for par, count in zip(plan.parents, plan.counts):
+        live = -(-count // tt.CELL_CHUNK) * tt.CELL_CHUNK
+        assert np.sum(par[:live, 0] >= 0) == count and np.all(par[live:] < 0)
     n = np.array([5, 0, 9, 1, 7, 3, 3, 8])
     tot = n[tt._balanced(n, 2)].reshape(2, -1).sum(axis=1)
     assert sorted(tot) == [17, 19]

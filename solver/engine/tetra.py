@@ -121,10 +121,19 @@ def _det_bary(lam):
             + d[..., 0, 2] * (d[..., 1, 0] * d[..., 2, 1] - d[..., 1, 1] * d[..., 2, 0]))
 
 
+def _bary_mean(lam, A):
+    """Σ_i lam_i A_i (..., nc) for barycentric weights ``lam`` (..., 4); ``A`` None stands for the
+    identity (the four barycentric coordinates themselves: ``lam``), written as broadcast
+    products (a batched product of such small matrices is several times slower on CPU)."""
+    if A is None:
+        return lam
+    return sum(lam[..., i, None] * A[..., i, :] for i in range(4))
+
+
 def _prism(E, e, A):
     """∫ A θ(E − ε) over the reference tetrahedron (volume 1) for ε2 ≤ E ≤ ε3: the prism with
     ends (v1, p13, p14) and (v2, p23, p24), cut into three tetrahedra; p_ij = v_i + t_ij (v_j − v_i).
-    ``E`` (...,), ``e`` (..., 4) sorted, ``A`` (..., 4, nc)."""
+    ``E`` (...,), ``e`` (..., 4) sorted, ``A`` (..., 4, nc) or None (the identity)."""
     eye = jnp.eye(4)
 
     def p(i, j):
@@ -140,7 +149,7 @@ def _prism(E, e, A):
         lam = jnp.stack(verts, axis=-2)                               # (..., 4 vertices, 4 bary)
         vol = jnp.abs(_det_bary(lam))
         centre = jnp.mean(lam, axis=-2)                               # (..., 4)
-        total = total + vol[..., None] * jnp.einsum("...i,...ic->...c", centre, A)
+        total = total + vol[..., None] * _bary_mean(centre, A)
     return total
 
 
@@ -148,9 +157,9 @@ def _corner_tet(E, e, A):
     """Occupied part for ε1 ≤ E ≤ ε2: the tetrahedron at v1 scaled by t_i = (E−ε1)/(ε_i−ε1)."""
     t = jnp.clip((E[..., None] - e[..., :1]) / _safe(e[..., 1:] - e[..., :1]), 0.0, 1.0)   # (..., 3)
     vol = jnp.prod(t, axis=-1)
-    a1 = A[..., 0, :]
-    mean = a1 + jnp.einsum("...i,...ic->...c", t, A[..., 1:, :] - a1[..., None, :]) / 4.0
-    return vol[..., None] * mean
+    # barycentric centroid of the scaled tetrahedron: v1 + Σ_i t_i (v_i − v1)/4
+    centre = jnp.concatenate([1.0 - jnp.sum(t, axis=-1, keepdims=True) / 4.0, t / 4.0], axis=-1)
+    return vol[..., None] * _bary_mean(centre, A)
 
 
 def _top_tet(E, e, A):
@@ -158,9 +167,8 @@ def _top_tet(E, e, A):
     s_i = (ε4−E)/(ε4−ε_i)."""
     s = jnp.clip((e[..., 3:] - E[..., None]) / _safe(e[..., 3:] - e[..., :3]), 0.0, 1.0)
     vol = jnp.prod(s, axis=-1)
-    a4 = A[..., 3, :]
-    mean = a4 + jnp.einsum("...i,...ic->...c", s, A[..., :3, :] - a4[..., None, :]) / 4.0
-    return jnp.mean(A, axis=-2) - vol[..., None] * mean
+    centre = jnp.concatenate([s / 4.0, 1.0 - jnp.sum(s, axis=-1, keepdims=True) / 4.0], axis=-1)
+    return _bary_mean(jnp.full(centre.shape, 0.25), A) - vol[..., None] * _bary_mean(centre, A)
 
 
 def cumulative(E, e, A):
@@ -184,14 +192,16 @@ def piece_coefficients(e, A):
     """Quartic coefficients q (..., 3 pieces, 5 powers, nc) of C on each piece [ε_k, ε_{k+1}] in
     s ∈ [0, 1] (C(ε_k + s(ε_{k+1} − ε_k)) − C(ε_k) = Σ_m q_m s^m, q_0 = 0 up to rounding; unit
     volume): the occupied volume is cubic in E and the mean of the linear A over it linear, so
-    five exact samples per piece determine it.  Empty pieces get zeros."""
+    five exact samples per piece determine it.  Empty pieces get zeros.  ``A`` None: the identity
+    (nc = 4, the measures of the four barycentric coordinates)."""
     out = []
     for k, fn in enumerate((_corner_tet, _prism, _top_tet)):
         lo, hi = e[..., k], e[..., k + 1]
         Es = lo[..., None] + (hi - lo)[..., None] * jnp.asarray(_S).reshape((1,) * lo.ndim + (5,))
-        samp = fn(Es, e[..., None, :], A[..., None, :, :])                           # (..., 5, nc)
+        samp = fn(Es, e[..., None, :], None if A is None else A[..., None, :, :])    # (..., 5, nc)
         samp = samp - samp[..., :1, :]
-        q = jnp.einsum("ms,...sc->...mc", jnp.asarray(_VINV), samp)
+        q = jnp.stack([sum(float(_VINV[m, j]) * samp[..., j, :] for j in range(1, 5)) for m in range(5)],
+                      axis=-2)
         out.append(jnp.where((hi > lo)[..., None, None], q, 0.0))
     return jnp.stack(out, axis=-3)
 
@@ -223,8 +233,7 @@ def vertex_coefficients(e):
     """Piece polynomials of the four barycentric weights, (..., 3, 5, 4): C is linear in the vertex
     factors, C(E) = Σ_v C_v(E) A_v with C_v the measure of the barycentric coordinate λ_v, so the
     quartic fit and the projection run on four columns and the factors enter once, at the end."""
-    eye = jnp.broadcast_to(jnp.eye(4), e.shape[:-1] + (4, 4))
-    return piece_coefficients(e, eye)
+    return piece_coefficients(e, None)
 
 
 def project(acc, e, qv, A, e_lo, delta, M):
@@ -244,7 +253,8 @@ def project(acc, e, qv, A, e_lo, delta, M):
     for k in range(3):
         lo, hi = x[:, k], x[:, k + 1]
         s0 = jnp.clip(-lo / _safe(hi - lo), 0.0, 1.0)
-        pk = jnp.einsum("nmv,nm->nv", qv[:, k], _powers(s0, qv.shape[2]))
+        pw = _powers(s0, qv.shape[2])
+        pk = sum(qv[:, k, m] * pw[:, m, None] for m in range(qv.shape[2]))
         part = part + jnp.where((lo < 0)[:, None], pk, 0.0)
     below = below + jnp.einsum("nv,nvc->c", part, A)
     jref = M // 2
@@ -274,7 +284,8 @@ def project(acc, e, qv, A, e_lo, delta, M):
         Lb = L[:, None]
         w = (_hat_weights(lo_b - (jf - 1), Lb, sA(l0), sA(jnp.maximum(l1, l0)))
              + _hat_weights((jf + 1) - lo_b, -Lb, sA(r0), sA(jnp.maximum(r1, r0))))       # (N, 4, 5)
-        rows.append(jnp.einsum("nkm,nmv->nkv", jnp.where(ok[..., None], w, 0.0), qk))   # (N, 4, 4)
+        w = jnp.where(ok[..., None], w, 0.0)
+        rows.append(sum(w[:, :, m, None] * qk[:, None, m, :] for m in range(5)))          # (N, 4, 4)
         idx.append(jnp.where(ok, cand, M))
         # interior knots ja+2 .. jb−2 of long pieces: ∫Λ_j g = g(j) + g''(j)/12 for the cubic
         # g = dC/dx = Σ G_m u^m (u = x − lo), as a cubic polynomial of y = j − jref
@@ -637,7 +648,10 @@ def make_plan(model, params, mu, temperature, resolution: int, cap: int = 250000
             nf = np.sum(cut & valid[..., None], axis=(1, 2))
             cutp, _ = _intersects(_merged(E27[:, PARENT_CORNERS]), DEPOSIT_MARGIN * s_l, lo, hi)    # (B, nb)
             nc_ = np.sum(cutp & valid, axis=-1)
-            order = _balanced(nf, B // CELL_CHUNK)
+            # the valid rows (first) dealt into the fewest chunks; the chunks after them hold only
+            # padding, which the run skips
+            nv = CELL_CHUNK * -(-cur.shape[0] // CELL_CHUNK)
+            order = np.concatenate([_balanced(nf[:nv], nv // CELL_CHUNK), np.arange(nv, B)])
             par, nf, nc_ = par[order], nf[order], nc_[order]
             caps = (_cap(nf), _cap(nc_))
             parents.append(par)
@@ -664,6 +678,10 @@ def _factors(model, params, k, sea):
     return e, f
 
 
+#: _EARLIER[i, j]: vertex j comes before vertex i among equal energies
+_EARLIER = np.arange(4)[None, :] < np.arange(4)[:, None]
+
+
 def _tet_items(E, F):
     """Tetrahedra of cells with corner energies ``E`` (..., 8, nb) and factors ``F`` (..., 8, nb, nc):
     flat sorted vertex energies (N, 4) and factors (N, 4, nc), N = (...)·6·nb."""
@@ -671,8 +689,13 @@ def _tet_items(E, F):
     Ft = jnp.moveaxis(F[..., TETS, :, :], -2, -4)                # (..., nb, 6, 4, nc)
     nc = F.shape[-1]
     Et, Ft = Et.reshape(-1, 4), Ft.reshape(-1, 4, nc)
-    order = jnp.argsort(jax.lax.stop_gradient(Et), axis=-1)
-    return jnp.take_along_axis(Et, order, -1), jnp.take_along_axis(Ft, order[..., None], -2)
+    # sorted by rank (ties by vertex index): four elements need no general sort
+    es = jax.lax.stop_gradient(Et)
+    lower = (es[:, None, :] < es[:, :, None]) | ((es[:, None, :] == es[:, :, None]) & _EARLIER[None])
+    rank = jnp.sum(lower, axis=-1)                                         # (N, 4): vertex i -> place
+    at = rank[:, None, :] == jnp.arange(4)[None, :, None]                  # (N, place, vertex)
+    order = jnp.sum(jnp.where(at, jnp.arange(4)[None, None, :], 0), axis=-1)
+    return jnp.sum(jnp.where(at, Et[:, None, :], 0.0), axis=-1), jnp.take_along_axis(Ft, order[..., None], -2)
 
 
 def build_tables(model, params, meta: TetraMeta, arrays, mu, kt, sea):
@@ -796,9 +819,14 @@ def build_tables(model, params, meta: TetraMeta, arrays, mu, kt, sea):
                         ac = proj(m_)(ac, et, qv, ft, e_lo_t, dl)
             return (bf, bc, stale, af, ac), None
 
+        def live_body(carry, i, body=body, valid=valid):
+            # a chunk of padding only (the plan puts the valid parents first): nothing to add
+            live = jnp.any(jax.lax.dynamic_slice_in_dim(valid, i * CELL_CHUNK, CELL_CHUNK))
+            return jax.lax.cond(live, lambda c: body(c, i)[0], lambda c: c, carry), None
+
         zero = jnp.zeros((nc,))
         (bf_l, bc_l, stale, acc_f, acc_c), _ = jax.lax.scan(
-            jax.checkpoint(body), (zero, zero, stale, acc_f, acc_c), jnp.arange(nchunk))
+            jax.checkpoint(live_body), (zero, zero, stale, acc_f, acc_c), jnp.arange(nchunk))
         below = below + bf_l
         below_c = below_c + bc_l
     tab_f, bel_f = jax.vmap(partial(finish_table, M=M))(acc_f)
