@@ -55,6 +55,24 @@ def test_piece_polynomials_reproduce_the_cumulative_measure():
                                        atol=1e-13)
 
 
+@pytest.mark.parametrize("c", [2, 4, 8])
+def test_a_coarsened_table_is_the_table_deposited_at_the_wider_spacing(c):
+    # a shared table read by a hotter level is coarsened to that level's spacing: the hats of
+    # width cδ are exact combinations of the fine hats, so it must equal the direct deposit at cδ
+    # (every knot but the last coarse one, whose right half the direct table drops at its top)
+    qv = tt.vertex_coefficients(jnp.asarray(E4)[None])
+    M, delta, e_lo = 256, 0.02, E4[0] - 1.3
+    fine = lambda d, m: tt.finish_table(tt.project((jnp.zeros((m, 3)), jnp.zeros((m + 1, 4, 3)), jnp.zeros(3)),
+                                                   jnp.asarray(E4)[None], qv, jnp.asarray(A4)[None], e_lo, d, m), m)
+    t_f, below_f = fine(delta, M)
+    t_c, below_c = fine(c * delta, M // c)
+    got = np.asarray(tt.coarsen(t_f, c))
+    assert got.shape == (M // c, 3)
+    np.testing.assert_allclose(got[:-1], np.asarray(t_c)[:-1], rtol=0, atol=1e-12)
+    np.testing.assert_allclose(np.asarray(below_f), np.asarray(below_c), rtol=0, atol=1e-14)
+    assert np.abs(np.asarray(t_c)).max() > 1e-3                 # the tetrahedron lies inside the table
+
+
 def test_barycentric_measures_equal_the_general_rule_with_unit_factors():
     # vertex_coefficients takes a short path for A = identity (the four barycentric measures);
     # it must equal the general path with the identity matrix as vertex factors, degenerate

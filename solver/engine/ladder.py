@@ -146,9 +146,11 @@ def factor_layout(dim, sea):
 def _factor_layout(dim, sea):
     om = () if dim == 2 else (3,)
     d2, d3 = (dim, dim), (dim,) * 3
-    items = [("one", (), ()), ("gg", d2, ((0, 1),)), ("gom", (dim,) + om, ()), ("hg", d3, ((0, 1),)),
-             ("ggg", d3, ((0, 1, 2),)), ("bcp", d3, ((1, 2),)), ("lor", d2, ()), ("om", om, ()),
-             ("abs_om", (), ()), ("sc_dip", (), ()), ("sc_dr2", (), ()), ("sc_bcp", (), ())]
+    # the Lorentz (ordinary Hall, B ∥ z) factor exists in 2D only: 3D tables carry no zero columns
+    lor = [("lor", d2, ())] if dim == 2 else []
+    items = ([("one", (), ()), ("gg", d2, ((0, 1),)), ("gom", (dim,) + om, ()), ("hg", d3, ((0, 1),)),
+              ("ggg", d3, ((0, 1, 2),)), ("bcp", d3, ((1, 2),))] + lor
+             + [("om", om, ()), ("abs_om", (), ()), ("sc_dip", (), ()), ("sc_dr2", (), ()), ("sc_bcp", (), ())])
     if sea:
         items.append(("dom", (dim,) + om, ()))
     out, start = {}, 0
@@ -188,7 +190,7 @@ def point_factors(model, params, k, sea):
         omv = om[:, None]
         omn = jnp.abs(om)
     else:
-        lor = jnp.zeros((nb, dim, dim))
+        lor = None                               # no Lorentz factor in 3D (factor_layout)
         gom = g[:, :, None] * om[:, None, :]
         omv = om
         omn = jnp.sqrt(jnp.sum(om * om, axis=-1))
@@ -203,8 +205,9 @@ def point_factors(model, params, k, sea):
         pick = _factor_layout(dim, False)[0][name].pick
         return x if pick is None else x[:, np.asarray(pick)]
 
-    parts = [jnp.ones((nb, 1)), stored("gg", gg), gom.reshape(nb, -1), stored("hg", hg),
-             stored("ggg", ggg), stored("bcp", bcp), lor.reshape(nb, -1), omv.reshape(nb, -1)] + scales
+    parts = ([jnp.ones((nb, 1)), stored("gg", gg), gom.reshape(nb, -1), stored("hg", hg),
+              stored("ggg", ggg), stored("bcp", bcp)] + ([] if lor is None else [lor.reshape(nb, -1)])
+             + [omv.reshape(nb, -1)] + scales)
     if sea:
         dom = jax.jacfwd(lambda q: geometry_at(model, q, params)[3])(k)     # (nb, [3,] d) ∂_bΩ
         if dim == 3:
@@ -462,6 +465,14 @@ def _column_sum(vals, layout, name, weight):
     return expand_cols(knot_contract(weight, vals[..., cols.cols]), cols)
 
 
+def _lorentz(s, weight, layout, P):
+    """The Lorentz sum Σ F τ² g ε g h (2D); zero in 3D, where the layout has no such columns."""
+    if "lor" in layout:
+        return s("lor", weight)
+    dim = layout["gg"].shape[0]
+    return jnp.zeros((P, dim, dim))
+
+
 def _kernel_sums_dc(vals, occ, E, mu, tau, dtau, layout, sea):
     """:func:`_kernel_sums` for a static field (ω = 0): τ̃_ω = τ̃_2ω = τ is real, so the Drude and
     dipole sums equal their dc forms and χ^2ω = χ^dc; real arithmetic only (about half the work)."""
@@ -475,7 +486,7 @@ def _kernel_sums_dc(vals, occ, E, mu, tau, dtau, layout, sea):
     return Moments(density=s("one", f0), dos=s("one", F), drude=c(drude0),
                    ahe=s("om", f0), dipole=s("gom", F), dipole_tau=c(s("gom", Ft)),
                    drude2_2w=c(second), drude2_0=c(second),
-                   bcp=s("bcp", F), lorentz=s("lor", Ft * tau),
+                   bcp=s("bcp", F), lorentz=_lorentz(s, Ft * tau, layout, E.shape[0]),
                    thermo1=s("gg", Ft * de), thermo2=s("gg", Ft * de * de),
                    drude0=drude0, nernst=s("om", occ["s"]),
                    scale_ahe=s("abs_om", f0), scale_dipole=s("sc_dip", F),
@@ -512,7 +523,7 @@ def _kernel_sums(vals, occ, E, mu, temp, tau_eval, tau_arr, omega, layout, sea):
                    ahe=s("om", f0), dipole=s("gom", F), dipole_tau=s("gom", Fc * t1),
                    drude2_2w=s("hg", Fc * t1 * t2) + s("ggg", Fc * t1 * dt2),
                    drude2_0=s("hg", Fc * t1 * tauc) + s("ggg", Fc * t1 * dtauc),
-                   bcp=s("bcp", F), lorentz=s("lor", F * tau * tau),
+                   bcp=s("bcp", F), lorentz=_lorentz(s, F * tau * tau, layout, E.shape[0]),
                    thermo1=s("gg", F * de * tau), thermo2=s("gg", F * de * de * tau),
                    drude0=s("gg", F * tau), nernst=s("om", occ["s"]),
                    scale_ahe=s("abs_om", f0), scale_dipole=s("sc_dip", F),

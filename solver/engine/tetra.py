@@ -317,6 +317,22 @@ def finish_table(acc, M):
     return table + c[:, 0] + y * (c[:, 1] + y * (c[:, 2] + y * c[:, 3])), below
 
 
+def coarsen(table, c: int):
+    """The knot table (M, nc) of spacing δ as the table of spacing cδ on the knots 0, c, 2c, …
+    (M/c of them): the hat of width cδ is Σ_r (1 − |r|/c) Λ_{ci+r} on the fine knots, so
+    T'_i = Σ_{|r|<c} (1 − |r|/c) table_{ci+r} = ∫ Λ'_i dC exactly (the right half only at knot 0:
+    the measure below it is in ``below``; the fine knots past the last coarse one are dropped,
+    as the measure above the last knot is)."""
+    if c == 1:
+        return table
+    M, nc = table.shape
+    pad = jnp.concatenate([jnp.zeros((c, nc)), table, jnp.zeros((c, nc))])
+    out = 0.0
+    for r in range(-(c - 1), c):
+        out = out + (1.0 - abs(r) / c) * pad[c + r: c + r + M: c]
+    return out
+
+
 # --------------------------------------------------------------------------------------------
 # cells, corners and plans
 # --------------------------------------------------------------------------------------------
@@ -835,10 +851,11 @@ def build_tables(model, params, meta: TetraMeta, arrays, mu, kt, sea):
     for k in range(K):
         extra, extra_c = (below, below_c) if k == 0 else (0.0, 0.0)
         t = 0 if meta.shared else k
-        # shared: level k reads the one table, ρ·2^(nt−k) knots per k_BT_k
-        rho_k = meta.rho * 2 ** (meta.nt - k) if meta.shared else meta.rho
-        levels.append(dict(fine=(tab_f[t], bel_f[t] + extra), coarse=(tab_c[t], bel_c[t] + extra_c),
-                           e_lo=e_lo[t], delta=delta[t], rho=rho_k))
+        # shared: level k reads the one table coarsened to its own spacing, ρ knots per k_BT_k
+        c = 2 ** (meta.nt - k) if meta.shared else 1
+        levels.append(dict(fine=(coarsen(tab_f[t], c), bel_f[t] + extra),
+                           coarse=(coarsen(tab_c[t], c), bel_c[t] + extra_c),
+                           e_lo=e_lo[t], delta=delta[t] * c, rho=meta.rho))
     info = {"kt_ladder": ktl, "overflow": stale | ~fits, "vol": vol, "layout": layout}
     return levels, info
 
