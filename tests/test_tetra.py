@@ -73,6 +73,19 @@ def test_a_coarsened_table_is_the_table_deposited_at_the_wider_spacing(c):
     assert np.abs(np.asarray(t_c)).max() > 1e-3                 # the tetrahedron lies inside the table
 
 
+def test_plan_energies_equal_numpy_eigenvalues_block_by_block():
+    # the plan's energies (closed two-band form where the model has one) against numpy's eigvalsh
+    # of the model's Hamiltonian blocks at the same points
+    m = build("weyl", tilt=0.3, node_position=0.3)
+    red = np.random.default_rng(2).random((5, 7, 3))
+    got = np.asarray(tt._energies(m, m.params, jnp.asarray(red)))
+    b = np.asarray(m.reciprocal_vectors())
+    H = np.stack([np.asarray(m.hamiltonian(jnp.asarray(q @ b), m.params)) for q in red.reshape(-1, 3)])
+    want = np.linalg.eigvalsh(H).reshape(red.shape[:-1] + H.shape[1:-1])
+    assert got.shape == want.shape == (5, 7, m.n_bands // m.block_size, m.block_size)
+    np.testing.assert_allclose(got, want, rtol=0, atol=1e-12)
+
+
 def test_barycentric_measures_equal_the_general_rule_with_unit_factors():
     # vertex_coefficients takes a short path for A = identity (the four barycentric measures);
     # it must equal the general path with the identity matrix as vertex factors, degenerate

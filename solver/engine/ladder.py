@@ -51,6 +51,7 @@ from scipy.optimize import minimize
 from crosswind.models.geometry import geometry_at
 from crosswind.models.units import KB_EVK as KB
 from crosswind.solver.engine.kernels import Moments, tau_tilde
+from crosswind.solver.engine.mesh import energies_at
 from crosswind.solver.engine.occupation import T_FLOOR, occupations
 
 W = 20.0                   # window half-width in k_BT: neglected weight ~ e^-20 ≈ 2e-9
@@ -815,7 +816,7 @@ def hotspot_width(model, params, probe=96):
 @jax.jit
 def _block_gaps_jit(model, params, k):
     def one(q):
-        w = jnp.linalg.eigvalsh(model.hamiltonian(q, params))          # (S, m) per block
+        w = energies_at(model, q, params, ordered=False).reshape(-1, model.block_size)   # (S, m)
         return jnp.min(w[:, 1:] - w[:, :-1])
     return jax.vmap(one)(k)
 

@@ -61,6 +61,7 @@ import numpy as np
 
 from crosswind.models.units import KB_EVK as KB
 from crosswind.solver.engine import ladder as _ladder
+from crosswind.solver.engine.mesh import energies_at
 from crosswind.solver.engine.occupation import T_FLOOR
 
 W = _ladder.W
@@ -522,10 +523,11 @@ def mu_groups(mu, temperature, limit: float | None = None):
 
 @jax.jit
 def _energies(model, params, red):
-    """Band energies per block (…, S, m) at reduced points ``red`` (…, 3): eigvalsh only."""
+    """Band energies per block (…, S, m) at reduced points ``red`` (…, 3): no derivatives (the
+    closed two-band form d0 ± |d| where the model has one, else eigvalsh)."""
     b = model.reciprocal_vectors(params)
-    w = jax.vmap(lambda q: jnp.linalg.eigvalsh(model.hamiltonian(q @ b, params)))(red.reshape(-1, red.shape[-1]))
-    return w.reshape(red.shape[:-1] + w.shape[1:])
+    w = jax.vmap(lambda q: energies_at(model, q @ b, params, ordered=False))(red.reshape(-1, red.shape[-1]))
+    return w.reshape(red.shape[:-1] + (-1, model.block_size))
 
 
 def _merged(Eb):
@@ -604,7 +606,7 @@ def _cap(n):
 
 def make_plan(model, params, mu, temperature, resolution: int, cap: int = 250000) -> TetraPlan:
     """Cell structure for concrete conditions: level-0 n0³ cells, split down to L levels wherever a
-    cell reaches the window of the level-0 table (energies only, eigvalsh); a level with more than
+    cell reaches the window of the level-0 table (energies only, :func:`_energies`); a level with more than
     ``cap`` cells to split ends the refinement there (the nested estimate then reports the
     accuracy reached)."""
     if model.dim != 3:
@@ -728,7 +730,7 @@ def build_tables(model, params, meta: TetraMeta, arrays, mu, kt, sea):
     e_lo, delta, fits, (lo, hi) = table_ranges(jax.lax.stop_gradient(mu), ktl, meta.rho, M, meta.shared)
     # a plan made for colder conditions: the level-0 table would cut their windows short
     fits = fits & (jnp.max(jax.lax.stop_gradient(kt)) <= ktl[0] * (1 + 1e-9))
-    # stale: a leaf that reaches the window by more than rounding (plan: eigvalsh in numpy)
+    # stale: a leaf that reaches the window by more than rounding (plan: energies without derivatives)
     tight = 1 - 1e-9
     diag = jnp.max(jnp.sqrt(jnp.sum((jnp.asarray(_SIGNS) @ b) ** 2, axis=-1)))
     slack = lambda n: meta.slack * 0.5 * diag / n
