@@ -81,7 +81,7 @@ RESOLUTIONS = ((12, 3), (16, 4), (16, 5), (24, 5), (32, 5), (40, 5))
 RHO = 8.0                  # knots per k_BT of a temperature level
 #: largest shared table: a plan with several temperature levels whose windows all fit one table at
 #: the deepest level's spacing (at most this many knots) deposits every cell once, into that table
-#: (the levels' condition sums read it with ρ·2^(nt−k) knots per k_BT_k), instead of once per level
+#: (level k reads it coarsened by 2^(nt−k), ρ knots per k_BT_k: :func:`coarsen`), instead of once per level
 M_SHARED = 4096
 CELL_CHUNK = 32            # parent cells per chunk of the refined levels (27 corners each)
 POINT_CHUNK = 4096         # level-0 points per chunk
