@@ -121,7 +121,9 @@ def _blocks_dvector(model: BandModel, k, params, tol):
     """Per-block geometry at one k from the closed two-band forms."""
     dim = model.dim
     f = model.dvector
-    if model.jet is not None:                                        # explicit Bloch sums
+    if model.dvector_jet is not None:                                # written-out d-vector jet
+        (d0, dv), (jd0, jdv), (hd0, hdv) = model.dvector_jet(k, params)
+    elif model.jet is not None:                                      # explicit Bloch sums
         (d0, dv), (jd0, jdv), (hd0, hdv) = dvector_jet(*model.jet(k, params))
     else:
         d0, dv = f(k, params)                                        # (S,), (S, 3)

@@ -48,6 +48,7 @@ import numpy as np
 from .band_model import BandModel
 from .domain import Lattice
 from .params import Parameter, ParamSpec
+from .phases import bloch_phase
 
 
 class TightBindingFileError(ValueError):
@@ -261,7 +262,7 @@ def _make_hamiltonian(defn: _Definition):
         vals = values(params)
         h = jnp.zeros((m, m), dtype=jnp.complex128)
         if nh:
-            phase = jnp.exp(1j * (jnp.asarray(delta) @ k).astype(jnp.complex128))   # (nh,)
+            phase = bloch_phase(jnp.asarray(delta) @ k)                              # (nh,)
             h = h.at[fi, ti].add(_evaluate(hop_c, vals) * phase)
             h = h + jnp.conj(h.T)
         h = h.at[diag, diag].add(jnp.real(_evaluate(on_c, vals)).astype(jnp.complex128))
@@ -282,7 +283,7 @@ def _make_hamiltonian(defn: _Definition):
         d2h = jnp.zeros((m, m, d, d), dtype=jnp.complex128)
         if nh:
             dl = jnp.asarray(delta)
-            t = _evaluate(hop_c, vals) * jnp.exp(1j * (dl @ k).astype(jnp.complex128))   # (nh,)
+            t = _evaluate(hop_c, vals) * bloch_phase(dl @ k)                             # (nh,)
             dc = dl.astype(jnp.complex128)
             h = h.at[fi, ti].add(t)
             dh = dh.at[fi, ti].add(t[:, None] * 1j * dc)

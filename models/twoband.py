@@ -3,6 +3,7 @@ from __future__ import annotations
 
 from functools import cache
 
+import jax
 import jax.numpy as jnp
 
 PAULI = jnp.array([[[0, 1], [1, 0]], [[0, -1j], [1j, 0]], [[1, 0], [0, -1]]], dtype=jnp.complex128)
@@ -29,6 +30,28 @@ def dvector_jet(h, dh, d2h):
         return d0, d
 
     return split(h), split(dh), split(d2h)
+
+
+def blocks_of(d0, d):
+    """Blocks H = d0·1 + d·σ of shape (S, 2, 2, *t) from d0 (S, *t) and d (S, 3, *t) (any trailing
+    derivative axes t: the map is linear, so it holds for every k-derivative too)."""
+    cx = jax.lax.complex
+    zero = jnp.zeros_like(d0)
+    dx, dy, dz = d[:, 0], d[:, 1], d[:, 2]
+    return jnp.stack([jnp.stack([cx(d0 + dz, zero), cx(dx, -dy)], axis=1),
+                      jnp.stack([cx(dx, dy), cx(d0 - dz, zero)], axis=1)], axis=1)
+
+
+@cache
+def jet_of(dvector_jet):
+    """The blocks' jet ``(H, ∂H, ∂²H)`` from a d-vector jet ``((d0, d), (∂d0, ∂d), (∂²d0, ∂²d))``
+    (one object per function, for JAX's compilation cache)."""
+
+    def jet(k, params):
+        return tuple(blocks_of(a, b) for a, b in dvector_jet(k, params))
+
+    jet.__name__ = f"jet_of_{getattr(dvector_jet, '__name__', 'dvector_jet')}"
+    return jet
 
 
 @cache

@@ -55,7 +55,7 @@ def test_two_band_geometry_is_the_same_with_the_jet_or_nested_autodiff():
     for model in (build("honeycomb", staggered=0.2, strain_xx=0.01),
                   build("haldane", t2=0.12, phi=0.7, mass=0.1), load_tight_binding(str(path))):
         assert model.dvector is not None and model.jet is not None
-        plain = replace(model, jet=None)
+        plain = replace(model, jet=None, dvector_jet=None)
         for k in K:
             for a, b in zip(geometry_at(model, k), geometry_at(plain, k)):
                 np.testing.assert_allclose(a, b, rtol=1e-10, atol=1e-12)
@@ -80,7 +80,7 @@ def test_weyl_lattice_jet_equals_autodiff():
     # geometry through either route
     from dataclasses import replace
     model = build("weyl", tilt=0.3, node_position=0.3, mass=0.8)
-    plain = replace(model, jet=None)
+    plain = replace(model, jet=None, dvector_jet=None)
     for k in jnp.asarray([[0.31, -0.17, 0.52], [1.12, 0.44, -0.9], [-0.73, 0.95, 0.05]]):
         h, dh, d2h = model.jet(k, model.params)
         np.testing.assert_allclose(h, model.hamiltonian(k, model.params), atol=1e-13)
@@ -90,3 +90,30 @@ def test_weyl_lattice_jet_equals_autodiff():
                                    atol=1e-11)
         for a, b in zip(geometry_at(model, k), geometry_at(plain, k)):
             np.testing.assert_allclose(a, b, rtol=1e-10, atol=1e-12)
+
+
+def test_written_out_dvector_jets_equal_autodiff_of_the_dvector():
+    """BandModel.dvector_jet of the two-band lattice models against nested jax.jacfwd of their
+    d-vector, and the band geometry with the d-vector jet, with the blocks' jet only, and with
+    neither: the same."""
+    from dataclasses import replace
+    cases = ((build("honeycomb", staggered=0.2, strain_xx=0.01, strain_xy=-0.004), K),
+             (build("haldane", t2=0.12, phi=0.7, mass=0.1), K),
+             (build("weyl", tilt=0.3, node_position=0.3, mass=0.8),
+              jnp.asarray([[0.31, -0.17, 0.52], [1.12, 0.44, -0.9], [-0.73, 0.95, 0.05]])))
+    for model, ks in cases:
+        assert model.dvector_jet is not None
+        blocks_only = replace(model, dvector_jet=None)
+        plain = replace(model, jet=None, dvector_jet=None)
+        for k in ks:
+            (d0, d), (jd0, jd), (hd0, hd) = model.dvector_jet(k, model.params)
+            r0, r = model.dvector(k, model.params)
+            j0, j = jax.jacfwd(model.dvector)(k, model.params)
+            h0, h = jax.jacfwd(jax.jacfwd(model.dvector))(k, model.params)
+            for a, b, tol in ((d0, r0, 1e-13), (d, r, 1e-13), (jd0, j0, 1e-12), (jd, j, 1e-12),
+                              (hd0, h0, 1e-11), (hd, h, 1e-11)):
+                assert a.shape == b.shape
+                np.testing.assert_allclose(a, b, atol=tol)
+            for a, b, c in zip(geometry_at(model, k), geometry_at(blocks_only, k), geometry_at(plain, k)):
+                np.testing.assert_allclose(a, b, rtol=1e-10, atol=1e-12)
+                np.testing.assert_allclose(a, c, rtol=1e-10, atol=1e-12)

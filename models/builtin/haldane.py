@@ -11,15 +11,15 @@ Topological for |M| < 3√3|t2 sin φ| with lower-band Chern number C = +sgn(sin
 """
 from __future__ import annotations
 
-import jax
 import jax.numpy as jnp
 import numpy as np
 
 from ..band_model import BandModel
 from ..domain import Lattice
 from ..params import ParamSpec, pop_lattice_length, real
+from ..phases import sincos
 from ..registry import register
-from ..twoband import bind_length, hamiltonian_of
+from ..twoband import bind_length, hamiltonian_of, jet_of
 
 SPEC = ParamSpec((
     real("t1", "eV", 1.0, "nearest-neighbour hopping", -20.0, 20.0),
@@ -36,20 +36,22 @@ _B = np.array([_A[1] - _A[2], _A[2] - _A[0], _A[0] - _A[1]])
 def dvector(k, p, acc=1.42):
     a = jnp.asarray(_A) * acc
     b = jnp.asarray(_B) * acc
-    ka, kb = a @ k, b @ k
-    d0 = 2 * p["t2"] * jnp.cos(p["phi"]) * jnp.sum(jnp.cos(kb))
-    dz = p["mass"] - 2 * p["t2"] * jnp.sin(p["phi"]) * jnp.sum(jnp.sin(kb))
-    d = jnp.stack([p["t1"] * jnp.sum(jnp.cos(ka)), p["t1"] * jnp.sum(jnp.sin(ka)), dz])
+    sa, ca = sincos(a @ k)
+    sb, cb = sincos(b @ k)
+    d0 = 2 * p["t2"] * jnp.cos(p["phi"]) * jnp.sum(cb)
+    dz = p["mass"] - 2 * p["t2"] * jnp.sin(p["phi"]) * jnp.sum(sb)
+    d = jnp.stack([p["t1"] * jnp.sum(ca), p["t1"] * jnp.sum(sa), dz])
     return d0[None], d[None]
 
 
-def hamiltonian_jet(k, p, acc=1.42):
-    """H (1, 2, 2) and its first and second k-derivatives as explicit Bloch sums of the d-vector
-    above (∂_a cos(k·r) = −r_a sin(k·r), ∂_a∂_b cos(k·r) = −r_a r_b cos(k·r), likewise for sin)."""
+def dvector_jet(k, p, acc=1.42):
+    """The d-vector above and its first and second k-derivatives as explicit Bloch sums
+    (∂_a cos(k·r) = −r_a sin(k·r), ∂_a∂_b cos(k·r) = −r_a r_b cos(k·r), likewise for sin); shapes
+    as ``BandModel.dvector_jet``."""
     a = jnp.asarray(_A) * acc
     b = jnp.asarray(_B) * acc
-    ka, kb = a @ k, b @ k
-    ca, sa, cb, sb = jnp.cos(ka), jnp.sin(ka), jnp.cos(kb), jnp.sin(kb)
+    sa, ca = sincos(a @ k)
+    sb, cb = sincos(b @ k)
     c0 = 2 * p["t2"] * jnp.cos(p["phi"])
     cz = 2 * p["t2"] * jnp.sin(p["phi"])
     aa = a[:, :, None] * a[:, None, :]
@@ -60,12 +62,10 @@ def hamiltonian_jet(k, p, acc=1.42):
     hh = (-c0 * jnp.einsum("i,iab->ab", cb, bb), -p["t1"] * jnp.einsum("i,iab->ab", ca, aa),
           -p["t1"] * jnp.einsum("i,iab->ab", sa, aa), cz * jnp.einsum("i,iab->ab", sb, bb))
 
-    def block(d0, dx, dy, dz):
-        cx, zero = jax.lax.complex, jnp.zeros_like(dx)
-        return jnp.stack([jnp.stack([cx(d0 + dz, zero), cx(dx, -dy)]),
-                          jnp.stack([cx(dx, dy), cx(d0 - dz, zero)])])[None]
+    def split(d0, dx, dy, dz):
+        return d0[None], jnp.stack([dx, dy, dz])[None]
 
-    return block(*d), block(*g), block(*hh)
+    return split(*d), split(*g), split(*hh)
 
 
 SPEC_FULL = ParamSpec(SPEC.parameters + (
@@ -81,10 +81,12 @@ def build_haldane(p, s) -> BandModel:
     acc = pop_lattice_length(p, "bond_length", "haldane")
     dv = bind_length(dvector, acc)
     h = hamiltonian_of(dv)
+    djet = bind_length(dvector_jet, acc)
     a = _A * acc
     lattice = Lattice(vectors=(tuple(a[1] - a[2]), tuple(a[2] - a[0])),
                       positions=((0.0, 0.0), tuple(-a[0])))
     return BandModel(name="haldane", dim=2, hamiltonian=h, params=p, spec=SPEC_FULL, domain=lattice,
-                     degeneracy=1.0, blocks=1, block_size=2, dvector=dv, jet=bind_length(hamiltonian_jet, acc),
+                     degeneracy=1.0, blocks=1, block_size=2, dvector=dv, jet=jet_of(djet),
+                     dvector_jet=djet,
                      static=(("bond_length", acc),), description="Haldane model",
                      source="Haldane 1988")

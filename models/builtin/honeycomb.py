@@ -48,9 +48,10 @@ import numpy as np
 from ..band_model import BandModel
 from ..domain import Lattice
 from ..params import ParamSpec, choice, pop_lattice_length, real
+from ..phases import sincos
 from ..registry import build, register
 from ..strain import deform, deformation, scaled_hopping, strain_tensor, uniaxial
-from ..twoband import bind_length, hamiltonian_of
+from ..twoband import bind_length, hamiltonian_of, jet_of
 
 S3 = np.sqrt(3.0)
 #: bond vectors A -> B in units of a_cc (rows)
@@ -84,32 +85,26 @@ def dvector(k, p, acc):
     eps = strain_of(p)
     new = deform(bonds, eps)                                  # δ_i' (3, 2)
     t = scaled_hopping(p["hopping"], bonds, eps, p["beta"])   # t_i (3,)
-    phase = new @ k
-    d = jnp.stack([-jnp.sum(t * jnp.cos(phase)), jnp.sum(t * jnp.sin(phase)), p["staggered"]])
+    sn, cs = sincos(new @ k)
+    d = jnp.stack([-jnp.sum(t * cs), jnp.sum(t * sn), p["staggered"]])
     return jnp.zeros((1,)), d[None]
 
 
-def hamiltonian_jet(k, p, acc):
-    """H (1, 2, 2) and its first and second k-derivatives as explicit Bloch sums: with
-    h(k) = −Σ_i t_i e^{ik·δ_i'} the off-diagonal element, ∂_a h = −Σ_i t_i (iδ'_ia) e^{ik·δ_i'} and
-    ∂_a∂_b h = Σ_i t_i δ'_ia δ'_ib e^{ik·δ_i'}; the diagonal ±Δ does not depend on k."""
+def dvector_jet(k, p, acc):
+    """The d-vector and its first and second k-derivatives as explicit Bloch sums (c_i, s_i =
+    t_i cos, t_i sin of k·δ_i'): d = (−Σc_i, Σs_i, Δ), ∂_a d = (Σ s_i δ'_ia, Σ c_i δ'_ia, 0),
+    ∂_a∂_b d = (Σ c_i δ'_ia δ'_ib, −Σ s_i δ'_ia δ'_ib, 0); d0 = 0.  Shapes as ``BandModel.dvector_jet``."""
     bonds = jnp.asarray(BONDS * acc)
     eps = strain_of(p)
     new = deform(bonds, eps)                                  # δ_i' (3, 2)
     t = scaled_hopping(p["hopping"], bonds, eps, p["beta"])   # t_i (3,)
-    phase = new @ k
-    c, s = t * jnp.cos(phase), t * jnp.sin(phase)
-    cx = jax.lax.complex
-    h01 = cx(-jnp.sum(c), -jnp.sum(s))
-    dh01 = cx(s @ new, -(c @ new))                             # (2,)
+    sn, cs = sincos(new @ k)
+    c, s = t * cs, t * sn
     nn = new[:, :, None] * new[:, None, :]
-    d2h01 = cx(jnp.einsum("i,iab->ab", c, nn), jnp.einsum("i,iab->ab", s, nn))
-    dz = jnp.asarray(p["staggered"]).astype(jnp.complex128)
-    h = jnp.stack([jnp.stack([dz, h01]), jnp.stack([jnp.conj(h01), -dz])])
-    zero1, zero2 = jnp.zeros_like(dh01), jnp.zeros_like(d2h01)
-    dh = jnp.stack([jnp.stack([zero1, dh01]), jnp.stack([jnp.conj(dh01), zero1])])
-    d2h = jnp.stack([jnp.stack([zero2, d2h01]), jnp.stack([jnp.conj(d2h01), zero2])])
-    return h[None], dh[None], d2h[None]
+    d = jnp.stack([-jnp.sum(c), jnp.sum(s), jnp.asarray(p["staggered"], dtype=jnp.float64)])
+    jd = jnp.stack([s @ new, c @ new, jnp.zeros(2)])
+    hd = jnp.stack([jnp.einsum("i,iab->ab", c, nn), -jnp.einsum("i,iab->ab", s, nn), jnp.zeros((2, 2))])
+    return (jnp.zeros((1,)), d[None]), (jnp.zeros((1, 2)), jd[None]), (jnp.zeros((1, 2, 2)), hd[None])
 
 
 def valley_point(lattice_constant: float = 2.46, valley: int = 1) -> np.ndarray:
@@ -160,13 +155,14 @@ def build_honeycomb(p, s) -> BandModel:
     acc = a / S3
     dv = bind_length(dvector, acc)
     h = hamiltonian_of(dv)
+    djet = bind_length(dvector_jet, acc)
     bonds = BONDS * acc
     lattice = Lattice(vectors=(tuple(bonds[0] - bonds[1]), tuple(bonds[0] - bonds[2])),
                       positions=((0.0, 0.0), tuple(bonds[0])))
     static = (("degeneracy", s["degeneracy"]), ("lattice_constant", a))
     return BandModel(name="honeycomb", dim=2, hamiltonian=h, params=p, spec=SPEC, domain=lattice,
                      degeneracy=float(s["degeneracy"]), blocks=1, block_size=2, dvector=dv,
-                     jet=bind_length(hamiltonian_jet, acc), deformation=deformation_of, static=static,
+                     jet=jet_of(djet), dvector_jet=djet, deformation=deformation_of, static=static,
                      description="honeycomb lattice (graphene-like)", source=SPEC.owner)
 
 

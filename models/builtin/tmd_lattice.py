@@ -39,6 +39,7 @@ import numpy as np
 from ..band_model import BandModel
 from ..domain import Lattice
 from ..params import ParamSpec, pop_lattice_length, real
+from ..phases import bloch_phase
 from ..registry import register
 from ..strain import deform, deformation, scaled_hopping, strain_tensor
 from ..twoband import bind_length
@@ -98,7 +99,7 @@ def hamiltonian(k, p, a=3.190):
     bonds = jnp.asarray(_UNIT_BONDS * a)
     new = deform(bonds, eps)                                             # (6, 2) Å
     scale = scaled_hopping(1.0, bonds, eps, p["beta"])                   # (6,)
-    phase = jnp.exp(1j * (new @ k).astype(jnp.complex128))                # (6,)
+    phase = bloch_phase(new @ k)                                        # (6,)
     e = (hopping_matrices(p) * scale[:, None, None]).astype(jnp.complex128)
     onsite = jnp.stack([p["e1"], p["e2"], p["e2"]])
     h0 = jnp.diag(onsite).astype(jnp.complex128) + jnp.sum(e * phase[:, None, None], axis=0)
@@ -113,7 +114,7 @@ def hamiltonian_jet(k, p, a=3.190):
     bonds = jnp.asarray(_UNIT_BONDS * a)
     new = deform(bonds, eps)                                             # (6, 2) Å
     scale = scaled_hopping(1.0, bonds, eps, p["beta"])                   # (6,)
-    phase = jnp.exp(1j * (new @ k).astype(jnp.complex128))                # (6,)
+    phase = bloch_phase(new @ k)                                        # (6,)
     e = (hopping_matrices(p) * scale[:, None, None]).astype(jnp.complex128) * phase[:, None, None]
     onsite = jnp.stack([p["e1"], p["e2"], p["e2"]])
     h0 = jnp.diag(onsite).astype(jnp.complex128) + jnp.sum(e, axis=0)

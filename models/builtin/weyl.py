@@ -24,15 +24,15 @@ giving (e²/h)(2π/a − 2k0)/(2π).)  A generic lattice model of this type is c
 """
 from __future__ import annotations
 
-import jax
 import jax.numpy as jnp
 import numpy as np
 
 from ..band_model import BandModel
 from ..domain import Lattice
 from ..params import ParamSpec, pop_lattice_length, real
+from ..phases import sincos
 from ..registry import register
-from ..twoband import bind_length, hamiltonian_of
+from ..twoband import bind_length, hamiltonian_of, jet_of
 
 SPEC = ParamSpec((
     real("hopping", "eV", 1.0, "hopping t (node dispersion along x and in the y–z plane)", -20.0, 20.0),
@@ -46,23 +46,23 @@ SPEC = ParamSpec((
 
 
 def dvector(k, p, a=3.0):
-    ka = k * a
+    s, c = sincos(k * a)
     t, m = p["hopping"], p["mass"]
     k0a = p["node_position"] * np.pi
-    dx = t * (jnp.cos(k0a) - jnp.cos(ka[0])) + m * (2.0 - jnp.cos(ka[1]) - jnp.cos(ka[2]))
-    d = jnp.stack([dx, t * jnp.sin(ka[1]), t * jnp.sin(ka[2])])
-    d0 = p["tilt"] * jnp.sin(ka[0])
+    dx = t * (jnp.cos(k0a) - c[0]) + m * (2.0 - c[1] - c[2])
+    d = jnp.stack([dx, t * s[1], t * s[2]])
+    d0 = p["tilt"] * s[0]
     return d0[None], d[None]
 
 
-def hamiltonian_jet(k, p, a=3.0):
-    """H (1, 2, 2) and its first and second k-derivatives written out (the cosines and sines of
+def dvector_jet(k, p, a=3.0):
+    """The d-vector and its first and second k-derivatives written out (the cosines and sines of
     k_i a and their derivatives a·(−sin, cos), a²·(−cos, −sin)): d0 and d depend on one component
     of k each term, so every second derivative is diagonal in the axes."""
     ka = k * a
     t, m, w = p["hopping"], p["mass"], p["tilt"]
     k0a = p["node_position"] * np.pi
-    c, s = jnp.cos(ka), jnp.sin(ka)
+    s, c = sincos(ka)
     dx = t * (jnp.cos(k0a) - c[0]) + m * (2.0 - c[1] - c[2])
     d0, dy, dz = w * s[0], t * s[1], t * s[2]
     zero = jnp.zeros_like(dx)
@@ -77,12 +77,10 @@ def hamiltonian_jet(k, p, a=3.0):
     hy = jnp.diag(jnp.stack([zero, -t * a * a * s[1], zero]))
     hz = jnp.diag(jnp.stack([zero, zero, -t * a * a * s[2]]))
 
-    def mat(e0, ex, ey, ez):
-        cx = jax.lax.complex
-        return jnp.stack([jnp.stack([cx(e0 + ez, zero * ez), cx(ex, -ey)]),
-                          jnp.stack([cx(ex, ey), cx(e0 - ez, zero * ez)])])
+    def split(e0, ex, ey, ez):
+        return e0[None], jnp.stack([ex, ey, ez])[None]
 
-    return mat(d0, dx, dy, dz)[None], mat(g0, gx, gy, gz)[None], mat(h0, hx, hy, hz)[None]
+    return split(d0, dx, dy, dz), split(g0, gx, gy, gz), split(h0, hx, hy, hz)
 
 
 @register("weyl", SPEC,
@@ -95,9 +93,11 @@ def build_weyl(p, s) -> BandModel:
     a = pop_lattice_length(p, "lattice_constant", "weyl")
     dv = bind_length(dvector, a)
     h = hamiltonian_of(dv)
+    djet = bind_length(dvector_jet, a)
     lattice = Lattice(vectors=((a, 0.0, 0.0), (0.0, a, 0.0), (0.0, 0.0, a)),
                       positions=((0.0, 0.0, 0.0), (0.0, 0.0, 0.0)))
     return BandModel(name="weyl", dim=3, hamiltonian=h, params=p, spec=SPEC, domain=lattice,
-                     degeneracy=1.0, blocks=1, block_size=2, dvector=dv, jet=bind_length(hamiltonian_jet, a),
+                     degeneracy=1.0, blocks=1, block_size=2, dvector=dv, jet=jet_of(djet),
+                     dvector_jet=djet,
                      static=(("lattice_constant", a),), description="Weyl pair on a cubic lattice",
                      source="common practice")
