@@ -101,6 +101,23 @@ def test_a_chunk_of_hot_conditions_skips_the_levels_it_does_not_need_exactly(hal
             np.testing.assert_allclose(a, b, rtol=1e-13, atol=1e-13 * np.abs(b).max(), err_msg=name)
 
 
+def test_padding_chunks_of_a_refined_level_are_skipped_without_changing_the_sums(haldane_ladder):
+    """A plan with every refined budget raised by whole chunks of padding (zero-weight cells that
+    the scan skips) gives the same fine and coarse sums as the fitted plan, and every level flags the same number of
+    cells (the skipped points' outputs are never read)."""
+    from dataclasses import replace
+    model, plan, run, f, c = haldane_ladder
+    wide = replace(plan, budgets=tuple(b + 3 * 4096 // 4 for b in plan.budgets))
+    f2, c2, _, info = run(model, jnp.asarray(MU), jnp.asarray(T), wide)
+    assert not bool(info["overflow"])
+    info0 = run(model, jnp.asarray(MU), jnp.asarray(T), plan)[3]
+    np.testing.assert_array_equal(np.asarray(info["flagged"]), np.asarray(info0["flagged"]))
+    for got, want in ((f2, f), (c2, c)):
+        for name in ("density", "dos", "drude", "dipole", "ahe", "bcp"):
+            a, b = np.asarray(getattr(got, name)), np.asarray(getattr(want, name))
+            np.testing.assert_allclose(a, b, rtol=1e-12, atol=1e-13 * np.abs(b).max(), err_msg=name)
+
+
 def test_response_engine_option_and_k_point_count():
     model = build("haldane")
     dirac = build("massive-dirac")

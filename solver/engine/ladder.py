@@ -383,7 +383,18 @@ def build_tables(model, params, plan: Plan, mu, kt, sea, chunk=4096):
                           e_lo, 2 * delta)
             return (af, ac), (jax.lax.stop_gradient(e), gn)
 
-        (acc_f, acc_c), (e, gn) = jax.lax.scan(jax.checkpoint(body), (acc_f, acc_c), jnp.arange(nch))
+        def skip(accs, i):
+            zeros = jnp.zeros((c, nb))
+            return accs, (zeros, zeros)
+
+        def live_body(accs, i):
+            # a refined level's budget beyond its flagged cells is padding (weight 0) gathered in
+            # its trailing chunks (the flagged cells come first): those chunks are skipped.  The
+            # outputs of a skipped point are never read (the next level flags valid points only)
+            live = jnp.any(jax.lax.dynamic_slice_in_dim(wp, i * c, c) > 0)
+            return jax.lax.cond(live, body, skip, accs, i)
+
+        (acc_f, acc_c), (e, gn) = jax.lax.scan(jax.checkpoint(live_body), (acc_f, acc_c), jnp.arange(nch))
         return acc_f, acc_c, e.reshape(-1, nb)[:n], gn.reshape(-1, nb)[:n]
 
     levels = []
