@@ -14,8 +14,9 @@ import pytest
 from crosswind.models import build
 from crosswind.solver import response
 from crosswind.solver.engine import ladder as ld
+from crosswind.solver.engine import response as resp_engine
 from crosswind.solver.engine.occupation import thermal_energy
-from crosswind.solver.engine.scattering import as_scattering
+from crosswind.solver.engine.scattering import MatthiessenTau, PowerLawTau, as_scattering
 from crosswind.validation.fermi_contour import uniform_grid_reference
 
 MU = np.array([1.2, 1.3])
@@ -335,3 +336,71 @@ def test_window_coverage_measures_the_union_of_the_windows():
     np.testing.assert_allclose(np.asarray(got), want, rtol=0, atol=1e-14)
     none = ld.window_coverage(jnp.asarray(x), jnp.asarray(mu), jnp.zeros(mu.size, bool), R)
     assert np.all(np.asarray(none) == 0.0)
+
+
+def test_sweep_groups_join_conditions_with_equal_keys_only():
+    keys = np.array([[0.1, 50.0], [0.2, 50.0], [0.1, 50.0], [0.1, 80.0], [0.2, 50.0], [0.1, 80.0],
+                     [0.1, 50.0], [0.2, 50.0]])
+    rep, group = (np.asarray(a) for a in ld.sweep_groups(keys, chunk=2))
+    assert rep.shape == (4,) and group.shape == (8,)                # 3 distinct keys, padded to 4
+    np.testing.assert_array_equal(keys[rep[group]], keys)           # every condition's row holds its key
+    assert len(set(group.tolist())) == 3
+    assert ld.sweep_groups(keys, chunk=8) is None                   # fewer than 2 chunks of conditions
+    assert ld.sweep_groups(np.arange(16.0)[:, None], chunk=2) is None   # all distinct: nothing to share
+
+
+@pytest.mark.parametrize("engine", ["ladder", pytest.param("tetra", marks=pytest.mark.slow)])
+def test_a_sweep_sharing_its_ladder_temperature_sums_gives_the_same_response(engine, monkeypatch):
+    """Conditions that differ in T alone (τ free of T) read the sums at the ladder temperatures
+    from one member of their (μ, τ) group; the result must be that of every condition summing
+    every level itself.  Temperatures cover every step of the ladder: hotter than its top level,
+    inside each step, below the deepest level (T² extrapolation) and T = 0."""
+    if engine == "ladder":
+        model, mus = build("haldane"), [1.2, 1.25, 1.3]
+        plan = ld.make_plan(model, model.params, jnp.asarray([1.25]), jnp.asarray([10.0]), 0)
+        ktl = np.asarray(ld.ladder_temperatures(model, model.params, plan)[0]) / float(thermal_energy(1.0))
+        temps = np.concatenate([[0.0], 0.7 * ktl, [1.3 * ktl[0]]])
+    else:
+        # the tetrahedra's temperature levels follow the conditions (20, 10, 5 K here)
+        model, mus = build("weyl", tilt=0.3, node_position=0.3), [0.08, 0.1, 0.12]
+        temps = np.array([5.0, 8.0, 12.0, 20.0])
+    mu, temp, tau = np.meshgrid(mus, temps, [50.0, 80.0], indexing="ij")
+    kw = dict(mu=mu, temperature=temp, tau=tau, engine=engine, resolution=0)
+    used = []
+    real = ld.sweep_groups
+
+    def spy(keys, chunk=128):
+        out = real(keys, chunk=2)
+        used.append(out is not None and out[0].shape[0] < keys.shape[0])
+        return out
+
+    monkeypatch.setattr(ld, "sweep_groups", spy)
+    shared = response(model, **kw)
+    monkeypatch.setattr(ld, "sweep_groups", lambda keys, chunk=128: None)
+    apart = response(model, plan=shared.resolution.plan, **kw)
+    assert used and all(used)
+    for name in ("density", "dos", "sigma", "sigma_anomalous", "dipole", "chi", "chi_dc", "seebeck",
+                 "thermal_conductivity", "nernst"):
+        # the same sums up to rounding: values and their error estimates (differences of sums)
+        # agree to 1e-9 of the field's largest value or estimate (the thermoelectric sums cancel
+        # to ~1e-4 of their terms, the Haldane dipole vanishes by symmetry; a level counted twice
+        # or left out differs by far more)
+        err = np.asarray(getattr(apart.error, name))
+        scale = max(np.max(np.abs(np.asarray(getattr(apart, name)))), np.max(err[np.isfinite(err)], initial=0.0))
+        for a, b in ((getattr(shared, name), getattr(apart, name)),
+                     (getattr(shared.error, name), getattr(apart.error, name))):
+            a, b = np.asarray(a), np.asarray(b)
+            assert np.array_equal(np.isfinite(a), np.isfinite(b)), name
+            ok = np.isfinite(b)
+            assert np.max(np.abs(a[ok] - b[ok]), initial=0.0) <= 1e-9 * scale, name
+
+
+def test_a_temperature_dependent_tau_keeps_temperature_in_the_sharing_key():
+    mu, temp = np.repeat([0.1, 0.2], 4), np.tile([1.0, 5.0, 10.0, 20.0], 2)
+    tau = {"tau0": np.full(8, 50.0)}
+    free = resp_engine._sharing_keys(mu, temp, tau, True)
+    bound = resp_engine._sharing_keys(mu, temp, tau, False)
+    assert free.shape == (8, 2) and bound.shape == (8, 3)
+    assert len(np.unique(free, axis=0)) == 2 and len(np.unique(bound, axis=0)) == 8
+    assert as_scattering(50.0).temperature_free and PowerLawTau(50.0, exponent=1.0).temperature_free
+    assert not MatthiessenTau(100.0, 50.0).temperature_free

@@ -623,38 +623,25 @@ def _tree_add(a, b):
     return jax.tree_util.tree_map(jnp.add, a, b)
 
 
-def condition_sums(levels, info, plan: Plan, mu, kt, temp, tau_eval, tau_arr, omega, filled, sea,
-                   which="fine"):
-    """Kernel sums for conditions (P,) from the tables of :func:`build_tables`, with the T²
-    extrapolation below the deepest level.  Returns ``(sums, extrapolation_error)``."""
-    ktl = info["kt_ladder"]
-    L = plan.levels
-    layout, vol = info["layout"], info["vol"]
-    kstar = [jnp.maximum(kt, ktl[lv]) for lv in range(L + 1)]
-    partial = []
-    total = None
-    for lv in range(L + 1):
-        lev = levels[lv]
-        # knots per k_BT of the level (a table shared by several levels carries its own)
-        rho = lev.get("rho", plan.rho) * (1.0 if which == "fine" else 0.5)
-        delta = lev["delta"] if which == "fine" else 2 * lev["delta"]
-        acc = lev[which]
-        if lv == 0:
-            part = _level_sums(acc, lev["e_lo"], delta, mu, kstar[0], None, kstar[0], temp, tau_eval,
-                               tau_arr, omega, layout, sea, rho, True, filled * vol)
-        else:
-            def refined(acc=acc, lev=lev, delta=delta, lv=lv, rho=rho):
-                return _level_sums(acc, lev["e_lo"], delta, mu, kstar[lv], kstar[lv - 1], ktl[lv - 1], temp,
-                                   tau_eval, tau_arr, omega, layout, sea, rho, False, 0.0)
-            # a condition with k_BT ≥ k_BT_{l−1} has φ(T*_l) = φ(T*_{l−1}): its level-l sum is
-            # exactly zero.  A block of conditions that all are (ladder_moments sorts them by
-            # temperature) skips the level's knot sums
-            # (the zero branch takes its structure from the running total: no second trace)
-            part = jax.lax.cond(jnp.any(kt < ktl[lv - 1]), refined,
-                                lambda t=total: jax.tree_util.tree_map(jnp.zeros_like, t))
-        total = part if total is None else _tree_add(total, part)
-        partial.append(total)
-    # below the deepest level: X(T) = X0 + a T² from the partial sums at T_L and T_{L-1}
+def _level_part(levels, info, plan, lv, which, mu, k_hi, k_lo, temp, tau_eval, tau_arr, omega, filled, sea):
+    """Level ``lv``'s knot sums Σ_j table_j [φ(E_j; k_hi) − φ(E_j; k_lo)] (level 0: φ(k_hi) and the
+    filled states below its table) for conditions (P,), from the ``which`` ("fine"/"coarse") tables."""
+    lev = levels[lv]
+    # knots per k_BT of the level (a table shared by several levels carries its own)
+    rho = lev.get("rho", plan.rho) * (1.0 if which == "fine" else 0.5)
+    delta = lev["delta"] if which == "fine" else 2 * lev["delta"]
+    if lv == 0:
+        return _level_sums(lev[which], lev["e_lo"], delta, mu, k_hi, None, k_hi, temp, tau_eval, tau_arr,
+                           omega, info["layout"], sea, rho, True, filled * info["vol"])
+    return _level_sums(lev[which], lev["e_lo"], delta, mu, k_hi, k_lo, info["kt_ladder"][lv - 1], temp,
+                       tau_eval, tau_arr, omega, info["layout"], sea, rho, False, 0.0)
+
+
+def _extrapolated(total, partial, kt, ktl, L):
+    """The sums returned for conditions (P,) with running totals ``partial[l]`` over levels 0..l
+    (each the full result at k_BT_l for a condition colder than it) and final ``total``: below the
+    deepest level, X(T) = X0 + a T² from the partial sums at T_L and T_{L−1}, with the spread
+    against the same from T_{L−1} and T_{L−2} as its error.  Returns ``(sums, error)``."""
     below = kt < ktl[L]
     tL, t1 = ktl[L], ktl[L - 1] if L >= 1 else ktl[L]
 
@@ -675,42 +662,179 @@ def condition_sums(levels, info, plan: Plan, mu, kt, temp, tau_eval, tau_arr, om
     return result, err
 
 
+def condition_sums(levels, info, plan: Plan, mu, kt, temp, tau_eval, tau_arr, omega, filled, sea,
+                   which="fine"):
+    """Kernel sums for conditions (P,) from the tables of :func:`build_tables`, with the T²
+    extrapolation below the deepest level.  Returns ``(sums, extrapolation_error)``."""
+    ktl = info["kt_ladder"]
+    L = plan.levels
+    kstar = [jnp.maximum(kt, ktl[lv]) for lv in range(L + 1)]
+    partial = []
+    total = None
+    for lv in range(L + 1):
+        if lv == 0:
+            part = _level_part(levels, info, plan, 0, which, mu, kstar[0], None, temp, tau_eval, tau_arr,
+                               omega, filled, sea)
+        else:
+            def refined(lv=lv):
+                return _level_part(levels, info, plan, lv, which, mu, kstar[lv], kstar[lv - 1], temp,
+                                   tau_eval, tau_arr, omega, filled, sea)
+            # a condition with k_BT ≥ k_BT_{l−1} has φ(T*_l) = φ(T*_{l−1}): its level-l sum is
+            # exactly zero.  A block of conditions that all are (ladder_moments sorts them by
+            # temperature) skips the level's knot sums
+            # (the zero branch takes its structure from the running total: no second trace)
+            part = jax.lax.cond(jnp.any(kt < ktl[lv - 1]), refined,
+                                lambda t=total: jax.tree_util.tree_map(jnp.zeros_like, t))
+        total = part if total is None else _tree_add(total, part)
+        partial.append(total)
+    return _extrapolated(total, partial, kt, ktl, L)
+
+
+def step_level(kt, ktl):
+    """(P,) the ladder level whose temperature step holds each k_BT: 0 for k_BT ≥ k_BT_0, l for
+    k_BT_l ≤ k_BT < k_BT_{l−1}, L + 1 below the deepest level.  Every level before it sums
+    φ(T_l) − φ(T_{l−1}) at ladder temperatures only (:func:`ladder_partials`), the level itself
+    φ(T) − φ(T_{l−1}), and every level after it exactly zero."""
+    return jnp.sum(kt[:, None] < ktl[None, :], axis=1)
+
+
+def ladder_partials(levels, info, plan: Plan, mu, temp, tau_eval, tau_arr, omega, filled, sea, which):
+    """Running totals over levels 0..l (l = 0..L) of the sums at the ladder temperatures alone,
+    stacked (L + 1, P, ...): what every condition colder than k_BT_l has summed up to level l.
+    They depend on the condition through μ and τ only (and T only inside a T-dependent τ)."""
+    ktl = info["kt_ladder"]
+    out, total = [], None
+    for lv in range(plan.levels + 1):
+        k_hi = jnp.broadcast_to(ktl[lv], mu.shape)
+        k_lo = None if lv == 0 else jnp.broadcast_to(ktl[lv - 1], mu.shape)
+        part = _level_part(levels, info, plan, lv, which, mu, k_hi, k_lo, temp, tau_eval, tau_arr, omega,
+                           filled, sea)
+        total = part if total is None else _tree_add(total, part)
+        out.append(total)
+    return jax.tree_util.tree_map(lambda *x: jnp.stack(x), *out)
+
+
+def grouped_condition_sums(levels, info, plan: Plan, mu, kt, temp, tau_eval, tau_arr, omega, filled, sea,
+                           partials, group, which="fine"):
+    """:func:`condition_sums` for conditions (P,) whose ladder-temperature totals are already known:
+    ``partials`` from :func:`ladder_partials` over the distinct (μ, τ) of a sweep, ``group`` (P,)
+    each condition's row in them.  Only the level of each condition's own temperature step
+    (:func:`step_level`) is summed here; the levels before it are read from ``partials`` (the same
+    sums in the same order) and the T² extrapolation below the deepest level from their last three."""
+    ktl = info["kt_ladder"]
+    L = plan.levels
+    lp = step_level(kt, ktl)
+
+    def own(lv):
+        k_lo = None if lv == 0 else jnp.maximum(kt, ktl[lv - 1])
+        return _level_part(levels, info, plan, lv, which, mu, jnp.maximum(kt, ktl[lv]), k_lo, temp,
+                           tau_eval, tau_arr, omega, filled, sea)
+
+    shape = jax.eval_shape(partial(own, 0))
+    zeros = lambda: jax.tree_util.tree_map(lambda a: jnp.zeros(a.shape, a.dtype), shape)
+    step = None
+    for lv in range(L + 1):
+        at = lp == lv
+        part = jax.lax.cond(jnp.any(at), partial(own, lv), zeros)
+        part = jax.tree_util.tree_map(lambda x, at=at: jnp.where(_b(at, x), x, 0.0), part)
+        step = part if step is None else _tree_add(step, part)
+    before = jnp.clip(lp - 1, 0, L)
+    read = lambda lv: jax.tree_util.tree_map(lambda x: x[lv, group], partials)
+    prior = jax.tree_util.tree_map(lambda x: jnp.where(_b(lp >= 1, x), x, 0.0), read(before))
+    total = _tree_add(prior, step)
+    # below the deepest level every level is at ladder temperatures: total = partial[L]
+    return _extrapolated(total, {lv: read(lv) for lv in range(max(L - 2, 0), L + 1)}, kt, ktl, L)
+
+
 def _b(v, like):
     """Broadcast a (P,) array against ``like`` (P, ...)."""
     return v.reshape(v.shape + (1,) * (like.ndim - 1))
 
 
 def ladder_moments(model, params, plan: Plan, mu, kt, temp, tau_eval, tau_arr, omega, filled, sea,
-                   chunk=4096, condition_chunk=128):
+                   chunk=4096, condition_chunk=128, groups=None):
     """Fine and coarse kernel sums for P conditions from one ladder.  Returns
     ``(fine, coarse, extrapolation_error, info)``; conditions are processed in chunks of
     ``condition_chunk`` (memory bounded for any number of conditions)."""
     levels, info = build_tables(model, params, plan, mu, kt, sea, chunk)
     return moments_from_tables(levels, info, plan, mu, kt, temp, tau_eval, tau_arr, omega, filled, sea,
-                               condition_chunk)
+                               condition_chunk, groups)
+
+
+def sweep_groups(keys, chunk=128):
+    """Conditions that share their ladder-temperature sums, from concrete per-condition ``keys``
+    (P, n): μ, every τ parameter, and T where τ depends on it.  Returns ``(rep, group)`` for
+    :func:`moments_from_tables` (``rep`` (G,) one member of each distinct key in order of μ,
+    padded by repeats to a power of two of at least ``chunk`` rows; ``group`` (P,) each
+    condition's row), or None when sharing would save less than half of the rows (G > P/2)."""
+    keys = np.asarray(keys, dtype=float)
+    P = keys.shape[0]
+    if P < 2 * chunk:
+        return None
+    _, first, group = np.unique(keys, axis=0, return_index=True, return_inverse=True)
+    G = _pow2(first.size, floor=chunk)
+    if G > P // 2:
+        return None
+    rep = np.concatenate([first, np.full(G - first.size, first[-1])])
+    return jnp.asarray(rep, jnp.int32), jnp.asarray(group.reshape(P), jnp.int32)
+
+
+def _padded(x, n):
+    """``x`` (P, ...) extended to n rows by repeating its last row."""
+    pad = n - x.shape[0]
+    return jnp.concatenate([x, jnp.broadcast_to(x[-1:], (pad,) + x.shape[1:])]) if pad else x
 
 
 def moments_from_tables(levels, info, plan, mu, kt, temp, tau_eval, tau_arr, omega, filled, sea,
-                        condition_chunk=128):
+                        condition_chunk=128, groups=None):
     """:func:`ladder_moments` from tables already built (also those of
-    :mod:`crosswind.solver.engine.tetra`)."""
+    :mod:`crosswind.solver.engine.tetra`).
+
+    ``groups`` = (rep (G,), group (P,)) marks conditions that share μ and τ (a μ × T sweep with a
+    temperature-free τ): the sums at the ladder temperatures, which depend on nothing else, are
+    formed once per group (``rep`` the index of one member of each, padded by repeats) and each
+    condition adds the level of its own temperature step only (:func:`grouped_condition_sums`):
+    the same sums, at about 1/(L + 1) of the per-condition work."""
     P = mu.shape[0]
     cc = min(condition_chunk, P)
     nch = _chunks(P, cc)
-    pad = nch * cc - P
-    padv = lambda x: jnp.concatenate([x, jnp.broadcast_to(x[-1:], (pad,) + x.shape[1:])]) if pad else x
+    padv = lambda x: _padded(x, nch * cc)
+    partials = None
+    if groups is not None:
+        rep, group = groups
+        G = rep.shape[0]
+        gc = min(condition_chunk, G)
+        ngc = _chunks(G, gc)
+        pick = lambda x: _padded(jnp.take(x, rep, axis=0), ngc * gc).reshape((ngc, gc) + x.shape[1:])
+
+        def ladder_rows(a):
+            m, t, ta = a
+            return tuple(ladder_partials(levels, info, plan, m, t, tau_eval, ta, omega, filled, sea, w)
+                         for w in ("fine", "coarse"))
+
+        rows = jax.lax.map(ladder_rows, (pick(mu), pick(temp), jax.tree_util.tree_map(pick, tau_arr)))
+        # (chunks, L + 1, gc, ...) -> (L + 1, chunks·gc, ...)
+        partials = jax.tree_util.tree_map(
+            lambda x: jnp.moveaxis(x, 0, 1).reshape((x.shape[1], ngc * gc) + x.shape[3:]), rows)
     # conditions sorted hot to cold, so that a chunk's conditions need the same ladder levels
     # (condition_sums skips a level none of them needs); the results are put back in order below
     # (and by μ within a temperature: neighbouring windows can share one table slice)
     order = jnp.lexsort((jax.lax.stop_gradient(mu), -jax.lax.stop_gradient(kt)))
     take = lambda x: jnp.take(x, order, axis=0)
     mu, kt, temp, tau_arr = take(mu), take(kt), take(temp), jax.tree_util.tree_map(take, tau_arr)
-    args = (padv(mu), padv(kt), padv(temp), jax.tree_util.tree_map(padv, tau_arr))
+    grp = padv(take(groups[1])) if groups is not None else jnp.zeros((nch * cc,), jnp.int32)
+    args = (padv(mu), padv(kt), padv(temp), jax.tree_util.tree_map(padv, tau_arr), grp)
 
     def one(a):
-        m, k, t, ta = a
-        f, ef = condition_sums(levels, info, plan, m, k, t, tau_eval, ta, omega, filled, sea, "fine")
-        c, ec = condition_sums(levels, info, plan, m, k, t, tau_eval, ta, omega, filled, sea, "coarse")
+        m, k, t, ta, g = a
+        if partials is None:
+            f, ef = condition_sums(levels, info, plan, m, k, t, tau_eval, ta, omega, filled, sea, "fine")
+            c, ec = condition_sums(levels, info, plan, m, k, t, tau_eval, ta, omega, filled, sea, "coarse")
+        else:
+            f, ef = grouped_condition_sums(levels, info, plan, m, k, t, tau_eval, ta, omega, filled, sea,
+                                           partials[0], g, "fine")
+            c, ec = grouped_condition_sums(levels, info, plan, m, k, t, tau_eval, ta, omega, filled, sea,
+                                           partials[1], g, "coarse")
         ex = jax.tree_util.tree_map(jnp.maximum, ef, ec)
         return f, c, ex
 

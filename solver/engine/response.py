@@ -444,22 +444,23 @@ def _field_errors(a: Response, b: Response) -> Response:
 
 
 @partial(jax.jit, static_argnames=("plan", "tau_eval", "filled", "sea"))
-def _ladder_at(model, mu, kt, temp, tau_arr, omega, *, plan, tau_eval, filled, sea):
+def _ladder_at(model, mu, kt, temp, tau_arr, omega, groups=None, *, plan, tau_eval, filled, sea):
     tau_col = jax.tree_util.tree_map(lambda a: a[:, None], tau_arr)
     f, c, ex, info = _ladder.ladder_moments(model, model.params, plan, mu, kt, temp, tau_eval, tau_col,
-                                            omega, filled, sea)
+                                            omega, filled, sea, groups=groups)
     return f, c, ex, info["overflow"], info["flagged"]
 
 
-def _run_ladder(model, mu, kt, temp, tau_arr, omega, res, kw, plan, traced):
+def _run_ladder(model, mu, kt, temp, tau_arr, omega, res, kw, plan, traced, groups=None):
     """One ladder evaluation; a run whose flagged cells overflowed a budget is repeated with
-    budgets raised from the counts it reports (concrete calls only)."""
+    budgets raised from the counts it reports (concrete calls only).  ``groups``: conditions that
+    share their ladder-temperature sums (:func:`crosswind.solver.engine.ladder.sweep_groups`)."""
     if plan is None:
         plan = _ladder.make_plan(model, model.params, mu, temp, res)
     tried = []
     for _ in range(4):
         tried.append(plan)
-        f, c, ex, over, flagged = _ladder_at(model, mu, kt, temp, tau_arr, omega, plan=plan, **kw)
+        f, c, ex, over, flagged = _ladder_at(model, mu, kt, temp, tau_arr, omega, groups, plan=plan, **kw)
         if traced or not bool(over):
             break
         new = _ladder.make_plan(model, model.params, mu, temp, res, flagged=np.asarray(flagged), old=plan)
@@ -610,8 +611,17 @@ def _resolution_loop(run, nres, resolution, max_level, plan, rtol, model, tau_ma
     return lev, tried, fine, err, bad, k_points
 
 
+def _sharing_keys(muf, Tf, tauf, temperature_free):
+    """(P, n) per-condition keys of :func:`crosswind.solver.engine.ladder.sweep_groups`: μ, every τ
+    parameter, and T unless τ is free of it."""
+    cols = [np.asarray(muf)] + [np.asarray(a) for a in jax.tree_util.tree_leaves(tauf)]
+    if not temperature_free:
+        cols.append(np.asarray(Tf))
+    return np.stack(cols, axis=1)
+
+
 def _ladder_path(model, muf, kt, Tf, tauf, omega, kw, rtol, resolution, max_level, intrinsic, plan,
-                 traced, tau_max):
+                 traced, tau_max, keys=None):
     """Energy-resolved ladder (:mod:`crosswind.solver.engine.ladder`): one program per resolution
     computes the fine and the nested coarse sums for every condition."""
     if not isinstance(model.domain, Lattice):
@@ -622,8 +632,10 @@ def _ladder_path(model, muf, kt, Tf, tauf, omega, kw, rtol, resolution, max_leve
         raise ValueError("response: with engine='ladder' under jax.grad/jit pass plan=..., the plan of "
                          "a concrete call: response(...).resolution.plan")
 
+    groups = _ladder.sweep_groups(keys) if keys is not None else None
+
     def run(lev, given):
-        f, c, ex, over, tried = _run_ladder(model, muf, kt, Tf, tauf, omega, lev, kw, given, traced)
+        f, c, ex, over, tried = _run_ladder(model, muf, kt, Tf, tauf, omega, lev, kw, given, traced, groups)
         return (tried,) + _nested_errors(f, c, ex, over, model, Tf, intrinsic)
 
     lev, tried, fine, err, bad, k_points = _resolution_loop(run, nres, resolution, max_level, plan, rtol,
@@ -636,10 +648,10 @@ def _ladder_path(model, muf, kt, Tf, tauf, omega, kw, rtol, resolution, max_leve
 
 
 @partial(jax.jit, static_argnames=("meta", "tau_eval", "filled", "sea"))
-def _tetra_at(model, mu, kt, temp, tau_arr, omega, arrays, *, meta, tau_eval, filled, sea):
+def _tetra_at(model, mu, kt, temp, tau_arr, omega, arrays, groups=None, *, meta, tau_eval, filled, sea):
     tau_col = jax.tree_util.tree_map(lambda a: a[:, None], tau_arr)
     f, c, ex, info = _tetra.tetra_moments(model, model.params, meta, arrays, mu, kt, temp, tau_eval, tau_col,
-                                          omega, filled, sea)
+                                          omega, filled, sea, groups=groups)
     return f, c, ex, info["overflow"]
 
 
@@ -651,7 +663,7 @@ TETRA_AUTO_MAX_T = 150.0
 
 
 def _tetra_path(model, muf, kt, Tf, tauf, omega, kw, rtol, resolution, max_level, intrinsic, plan,
-                traced, tau_max):
+                traced, tau_max, keys=None):
     """Linear tetrahedra on refined cells (:mod:`crosswind.solver.engine.tetra`, 3D lattices): one
     program per resolution computes the fine and the nested coarse sums for every condition.  A
     concrete sweep whose μ range does not fit one plan's energy tables (a few hundred k_BT at the
@@ -676,7 +688,7 @@ def _tetra_path(model, muf, kt, Tf, tauf, omega, kw, rtol, resolution, max_level
         groups = None
     args = (model, kt, Tf, tauf, omega, kw, rtol, resolution, max_level, intrinsic)
     if groups is None:
-        return _tetra_group(muf, *args, plan, tau_max)
+        return _tetra_group(muf, *args, plan, tau_max, keys)
     gid = groups.group_of(np.asarray(muf))
     idxs, parts = [], []
     for g in range(len(groups.cuts) + 1):
@@ -688,7 +700,8 @@ def _tetra_path(model, muf, kt, Tf, tauf, omega, kw, rtol, resolution, max_level
         sub = lambda a, idx=idx: a[idx]
         given = groups.plans[g] if groups.plans else None
         parts.append(_tetra_group(muf[idx], model, kt[idx], Tf[idx], jax.tree_util.tree_map(sub, tauf), omega,
-                                  kw, rtol, resolution, max_level, intrinsic, given, tau_max))
+                                  kw, rtol, resolution, max_level, intrinsic, given, tau_max,
+                                  None if keys is None else keys[idx]))
     return _stitch_groups(parts, idxs, int(muf.shape[0]), groups)
 
 
@@ -721,13 +734,15 @@ def _stitch_groups(parts, idxs, P, groups):
     return fine, err, bad, info
 
 
-def _tetra_group(muf, model, kt, Tf, tauf, omega, kw, rtol, resolution, max_level, intrinsic, plan, tau_max):
+def _tetra_group(muf, model, kt, Tf, tauf, omega, kw, rtol, resolution, max_level, intrinsic, plan, tau_max,
+                 keys=None):
     """:func:`_tetra_path` for conditions whose μ range fits one plan."""
     nres = len(_tetra.RESOLUTIONS)
+    shared = _ladder.sweep_groups(keys) if keys is not None else None
 
     def run(lev, given):
         pl = given if given is not None else _tetra.make_plan(model, model.params, muf, Tf, lev)
-        f, c, ex, over = _tetra_at(model, muf, kt, Tf, tauf, omega, pl.arrays(), meta=pl.meta, **kw)
+        f, c, ex, over = _tetra_at(model, muf, kt, Tf, tauf, omega, pl.arrays(), shared, meta=pl.meta, **kw)
         return ([pl],) + _nested_errors(f, c, ex, over, model, Tf, intrinsic, richardson=True)
 
     lev, tried, fine, err, bad, k_points = _resolution_loop(run, nres, resolution, max_level, plan, rtol,
@@ -1020,6 +1035,8 @@ def response(model: BandModel, mu, temperature, tau, frequency=0.0, *, rtol: flo
     omega_sums = None if (not _is_traced(frequency) and np.all(np.asarray(frequency) == 0)) else omega
     kw = dict(tau_eval=type(scat).evaluate, filled=neutral_filling(model), sea=dipole_route == "both")
     traced = _is_traced(model.params, muf, Tf, tauf, omega)
+    # concrete sweeps: conditions that differ in T alone (τ free of T) share the ladder's sums
+    keys = None if traced else _sharing_keys(muf, Tf, tauf, getattr(scat, "temperature_free", False))
     if resolution is None and traced:
         raise ValueError("response: pass a fixed mesh, e.g. resolution=2, when differentiating or "
                          "tracing (automatic refinement compares concrete values)")
@@ -1033,10 +1050,10 @@ def response(model: BandModel, mu, temperature, tau, frequency=0.0, *, rtol: flo
                                           _shells if engine == "shells" else _rays)
     elif engine == "tetra":
         fine, err, bad, info = _tetra_path(model, muf, kt, Tf, tauf, omega_sums, kw, rtol, resolution,
-                                           max_level, intrinsic, plan, traced, tau_max)
+                                           max_level, intrinsic, plan, traced, tau_max, keys)
     elif engine == "ladder":
         fine, err, bad, info = _ladder_path(model, muf, kt, Tf, tauf, omega_sums, kw, rtol, resolution,
-                                            max_level, intrinsic, plan, traced, tau_max)
+                                            max_level, intrinsic, plan, traced, tau_max, keys)
     else:
         fine, err, bad, info = _mesh_path(model, muf, kt, Tf, tauf, omega, dict(kw, chunk=chunk), rtol,
                                           resolution, max_level, intrinsic, estimate_error, tau_max, P,

@@ -49,6 +49,9 @@ def _require(owner: str, name: str, value, ok, rule: str, fix: str) -> None:
 @dataclass(frozen=True)
 class ConstantTau:
     tau: object  # fs, scalar or array
+    #: τ does not depend on T: conditions of a sweep that differ in T alone share their sums at the
+    #: ladder temperatures (crosswind.solver.engine.ladder.sweep_groups)
+    temperature_free = True
 
     def arrays(self):
         return {"tau0": jnp.asarray(self.tau, dtype=jnp.float64)}
@@ -66,6 +69,7 @@ class PowerLawTau:
     reference_energy: float = 0.0  # eV
     energy_scale: float = 0.1      # eV
     smoothing: float = 1e-4        # eV
+    temperature_free = True        # τ(ε) only (see ConstantTau)
 
     def __post_init__(self):
         own = "PowerLawTau"
@@ -99,6 +103,7 @@ class MatthiessenTau:
     tau_impurity: object            # fs
     tau_phonon: object              # fs, phonon-limited τ at T_ref
     reference_temperature: float = 300.0  # K
+    temperature_free = False              # τ depends on T (see ConstantTau)
 
     def __post_init__(self):
         _require("MatthiessenTau", "reference_temperature", self.reference_temperature, lambda a: a > 0,

@@ -863,9 +863,9 @@ def build_tables(model, params, meta: TetraMeta, arrays, mu, kt, sea):
 
 
 def tetra_moments(model, params, meta, arrays, mu, kt, temp, tau_eval, tau_arr, omega, filled, sea,
-                  condition_chunk=128):
+                  condition_chunk=128, groups=None):
     """Fine and coarse kernel sums for P conditions from one cell structure (the ladder's condition
     sums: :func:`crosswind.solver.engine.ladder.moments_from_tables`)."""
     levels, info = build_tables(model, params, meta, arrays, mu, kt, sea)
     return _ladder.moments_from_tables(levels, info, meta, mu, kt, temp, tau_eval, tau_arr, omega, filled,
-                                       sea, condition_chunk)
+                                       sea, condition_chunk, groups)
