@@ -1,5 +1,9 @@
 """Process settings: float64 and the persistent compilation cache (models/runtime.py)."""
+import os
+
 import jax
+import jax.numpy as jnp
+import pytest
 
 from crosswind.models import runtime
 
@@ -51,12 +55,8 @@ def test_jaxlib_version_is_read_as_numbers():
 def test_xla_tuning_reaches_the_compiler():
     """Importing crosswind.models set the flag before JAX started (tests/conftest.py imports it
     first): a reduction that XLA would hand to YNNPACK compiles as its own fused loop."""
-    import os
-
-    import jax.numpy as jnp
     lo, hi = runtime._YNN_OFF_VERSIONS
     if not (lo <= runtime._jaxlib_version() < hi) or os.environ.get("CROSSWIND_XLA_TUNING") == "off":
-        import pytest
         pytest.skip("the tuning flag does not apply to this jaxlib")
     assert "--xla_cpu_experimental_ynn_fusion_type=" in os.environ.get("XLA_FLAGS", "")
     a = jnp.ones((100000, 2))

@@ -204,7 +204,8 @@ def _isotropic_reference(v, mu, kt, cutoff):
     shell 4πq²dq/(2π)³ with ε = ħvq)."""
     hv = v * HV
     g = lambda e: e * e / (2 * np.pi ** 2 * hv ** 3)
-    F = lambda e: 1.0 / (4 * kt * np.cosh((e - mu) / (2 * kt)) ** 2)
+    # −∂f/∂ε = sech²(x/2)/(4k_BT) = e^{−|x|}/(k_BT (1 + e^{−|x|})²): no cosh overflow in the tails
+    F = lambda e: np.exp(-abs(e - mu) / kt) / (kt * (1 + np.exp(-abs(e - mu) / kt)) ** 2)
     top = hv * cutoff
     pts = [mu - 40 * kt, mu, mu + 40 * kt]
     pts = [p for p in pts if -top < p < top]
