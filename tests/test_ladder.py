@@ -376,6 +376,11 @@ def test_a_sweep_sharing_its_ladder_temperature_sums_gives_the_same_response(eng
 
     monkeypatch.setattr(ld, "sweep_groups", spy)
     shared = response(model, **kw)
+    if engine == "ladder":
+        # new sweep values of the same structure reuse the compiled program
+        size = resp_engine._ladder_at._cache_size()
+        response(model, **dict(kw, mu=mu + 0.01, temperature=temp * 1.1), plan=shared.resolution.plan)
+        assert resp_engine._ladder_at._cache_size() == size
     monkeypatch.setattr(ld, "sweep_groups", lambda keys, chunk=128: None)
     apart = response(model, plan=shared.resolution.plan, **kw)
     assert used and all(used)
