@@ -16,7 +16,13 @@ from crosswind.solver import response
 from crosswind.solver.engine import ladder as ld
 from crosswind.solver.engine import response as resp_engine
 from crosswind.solver.engine.occupation import thermal_energy
-from crosswind.solver.engine.scattering import MatthiessenTau, PowerLawTau, as_scattering
+from crosswind.solver.engine.scattering import (
+    ConstantTau,
+    MatthiessenTau,
+    PowerLawTau,
+    as_scattering,
+    temperature_free,
+)
 from crosswind.validation.fermi_contour import uniform_grid_reference
 
 MU = np.array([1.2, 1.3])
@@ -407,5 +413,13 @@ def test_a_temperature_dependent_tau_keeps_temperature_in_the_sharing_key():
     bound = resp_engine._sharing_keys(mu, temp, tau, False)
     assert free.shape == (8, 2) and bound.shape == (8, 3)
     assert len(np.unique(free, axis=0)) == 2 and len(np.unique(bound, axis=0)) == 8
-    assert as_scattering(50.0).temperature_free and PowerLawTau(50.0, exponent=1.0).temperature_free
-    assert not MatthiessenTau(100.0, 50.0).temperature_free
+    assert temperature_free(as_scattering(50.0)) and temperature_free(PowerLawTau(50.0, exponent=1.0))
+    assert not temperature_free(MatthiessenTau(100.0, 50.0))
+
+    class WarmingTau(ConstantTau):            # a subclass with a T-dependent τ of its own
+        @staticmethod
+        def evaluate(arr, energy, temperature):
+            t = arr["tau0"] / (1.0 + temperature / 100.0) + 0.0 * energy
+            return t, jnp.zeros_like(t)
+
+    assert as_scattering(WarmingTau(50.0)) is not None and not temperature_free(WarmingTau(50.0))

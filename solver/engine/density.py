@@ -134,7 +134,8 @@ def _newton(f, x0, lo, hi, tol, iterations):
         conv = ((slope > 0) & (jnp.abs(step) < tol)) | (fx == 0)
         xn = x - step
         xn = jnp.where((slope > 0) & (xn > a) & (xn < b), xn, 0.5 * (a + b))
-        xn = jnp.where(conv, x - jnp.where(slope > 0, step, 0.0), xn)
+        # the converging step is applied, kept inside the bracket (a root never leaves a known bound)
+        xn = jnp.where(conv, jnp.clip(x - jnp.where(slope > 0, step, 0.0), a, b), xn)
         return a, b, xn, i + 1, conv | (b - a < tol), x, fx
 
     def more(st):

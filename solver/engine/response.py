@@ -69,7 +69,7 @@ from crosswind.solver.engine.inputs import check_arguments
 from crosswind.solver.engine.kernels import Moments, moments, moments_indexed
 from crosswind.solver.engine.memory import budget_bytes, condition_block
 from crosswind.solver.engine.occupation import T_FLOOR, thermal_energy
-from crosswind.solver.engine.scattering import as_scattering
+from crosswind.solver.engine.scattering import as_scattering, temperature_free
 from crosswind.solver.pytrees import pytree_dataclass, static
 from crosswind.solver.vocabulary import units_of
 
@@ -1036,7 +1036,7 @@ def response(model: BandModel, mu, temperature, tau, frequency=0.0, *, rtol: flo
     kw = dict(tau_eval=type(scat).evaluate, filled=neutral_filling(model), sea=dipole_route == "both")
     traced = _is_traced(model.params, muf, Tf, tauf, omega)
     # concrete sweeps: conditions that differ in T alone (τ free of T) share the ladder's sums
-    keys = None if traced else _sharing_keys(muf, Tf, tauf, getattr(scat, "temperature_free", False))
+    keys = None if traced else _sharing_keys(muf, Tf, tauf, temperature_free(scat))
     if resolution is None and traced:
         raise ValueError("response: pass a fixed mesh, e.g. resolution=2, when differentiating or "
                          "tracing (automatic refinement compares concrete values)")

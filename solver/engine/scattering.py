@@ -121,6 +121,13 @@ class MatthiessenTau:
         return t, jnp.zeros_like(t)
 
 
+def temperature_free(scat) -> bool:
+    """Whether ``scat``'s τ is free of T, as its own class declares (``temperature_free`` in the
+    class body itself: a subclass that inherits the flag with an ``evaluate`` of its own might depend
+    on T, and counts as depending on it).  Sweeps share sums across temperatures only when true."""
+    return bool(type(scat).__dict__.get("temperature_free", False))
+
+
 def as_scattering(tau):
     """Accept a number/array (constant τ in fs) or one of the scattering objects."""
     if isinstance(tau, (ConstantTau, PowerLawTau, MatthiessenTau)):
