@@ -693,36 +693,18 @@ def condition_sums(levels, info, plan: Plan, mu, kt, temp, tau_eval, tau_arr, om
 def step_level(kt, ktl):
     """(P,) the ladder level whose temperature step holds each k_BT: 0 for k_BT ≥ k_BT_0, l for
     k_BT_l ≤ k_BT < k_BT_{l−1}, L + 1 below the deepest level.  Every level before it sums
-    φ(T_l) − φ(T_{l−1}) at ladder temperatures only (:func:`ladder_partials`), the level itself
+    φ(T_l) − φ(T_{l−1}) at ladder temperatures only (shared by a sweep: :func:`shared_totals`), the level itself
     φ(T) − φ(T_{l−1}), and every level after it exactly zero."""
     return jnp.sum(kt[:, None] < ktl[None, :], axis=1)
 
 
-def ladder_partials(levels, info, plan: Plan, mu, temp, tau_eval, tau_arr, omega, filled, sea, which):
-    """Running totals over levels 0..l (l = 0..L) of the sums at the ladder temperatures alone,
-    stacked (L + 1, P, ...): what every condition colder than k_BT_l has summed up to level l.
-    They depend on the condition through μ and τ only (and T only inside a T-dependent τ)."""
+def step_sums(levels, info, plan: Plan, mu, kt, temp, tau_eval, tau_arr, omega, filled, sea, which="fine"):
+    """The term of each condition's own temperature step alone (:func:`step_level`): level s's sum
+    of φ(T*_s) − φ(T*_{s−1}) (level 0: φ(T*_0) with the filled states below its table), zero below
+    the deepest level.  A condition at exactly k_BT_l gives the ladder-temperature term of level l,
+    φ(T_l) − φ(T_{l−1}), of its (μ, τ).  A chunk (sorted by temperature) sums only the levels its
+    conditions' steps are on."""
     ktl = info["kt_ladder"]
-    out, total = [], None
-    for lv in range(plan.levels + 1):
-        k_hi = jnp.broadcast_to(ktl[lv], mu.shape)
-        k_lo = None if lv == 0 else jnp.broadcast_to(ktl[lv - 1], mu.shape)
-        part = _level_part(levels, info, plan, lv, which, mu, k_hi, k_lo, temp, tau_eval, tau_arr, omega,
-                           filled, sea)
-        total = part if total is None else _tree_add(total, part)
-        out.append(total)
-    return jax.tree_util.tree_map(lambda *x: jnp.stack(x), *out)
-
-
-def grouped_condition_sums(levels, info, plan: Plan, mu, kt, temp, tau_eval, tau_arr, omega, filled, sea,
-                           partials, group, which="fine"):
-    """:func:`condition_sums` for conditions (P,) whose ladder-temperature totals are already known:
-    ``partials`` from :func:`ladder_partials` over the distinct (μ, τ) of a sweep, ``group`` (P,)
-    each condition's row in them.  Only the level of each condition's own temperature step
-    (:func:`step_level`) is summed here; the levels before it are read from ``partials`` (the same
-    sums in the same order) and the T² extrapolation below the deepest level from their last three."""
-    ktl = info["kt_ladder"]
-    L = plan.levels
     lp = step_level(kt, ktl)
 
     def own(lv):
@@ -733,16 +715,31 @@ def grouped_condition_sums(levels, info, plan: Plan, mu, kt, temp, tau_eval, tau
     shape = jax.eval_shape(partial(own, 0))
     zeros = lambda: jax.tree_util.tree_map(lambda a: jnp.zeros(a.shape, a.dtype), shape)
     step = None
-    for lv in range(L + 1):
+    for lv in range(plan.levels + 1):
         at = lp == lv
         part = jax.lax.cond(jnp.any(at), partial(own, lv), zeros)
         part = jax.tree_util.tree_map(lambda x, at=at: jnp.where(_b(at, x), x, 0.0), part)
         step = part if step is None else _tree_add(step, part)
-    before = jnp.clip(lp - 1, 0, L)
-    read = lambda lv: jax.tree_util.tree_map(lambda x: x[lv, group], partials)
-    prior = jax.tree_util.tree_map(lambda x: jnp.where(_b(lp >= 1, x), x, 0.0), read(before))
+    return step
+
+
+def shared_totals(step, virtual, group, kt, ktl, L):
+    """:func:`condition_sums` of conditions (P,) from their own step terms ``step`` and the
+    ladder-temperature terms ``virtual`` (L + 1, G, ...) of the (μ, τ) groups (``group`` (P,) each
+    condition's row): the running totals over the levels before a condition's step, plus its step,
+    and the T² extrapolation below the deepest level from the totals at T_L … T_{L−2}; the same
+    terms added in the same order.  Returns ``(sums, extrapolation_error)``."""
+    running, totals = None, []
+    for lv in range(L + 1):
+        term = jax.tree_util.tree_map(lambda x, lv=lv: x[lv], virtual)
+        running = term if running is None else _tree_add(running, term)
+        totals.append(running)
+    stacked = jax.tree_util.tree_map(lambda *x: jnp.stack(x), *totals)            # (L + 1, G, ...)
+    read = lambda lv: jax.tree_util.tree_map(lambda x: x[lv, group], stacked)
+    lp = step_level(kt, ktl)
+    prior = jax.tree_util.tree_map(lambda x: jnp.where(_b(lp >= 1, x), x, 0.0), read(jnp.clip(lp - 1, 0, L)))
     total = _tree_add(prior, step)
-    # below the deepest level every level is at ladder temperatures: total = partial[L]
+    # below the deepest level every level is at ladder temperatures: total = the group's last total
     return _extrapolated(total, {lv: read(lv) for lv in range(max(L - 2, 0), L + 1)}, kt, ktl, L)
 
 
@@ -791,58 +788,55 @@ def moments_from_tables(levels, info, plan, mu, kt, temp, tau_eval, tau_arr, ome
     :mod:`crosswind.solver.engine.tetra`).
 
     ``groups`` = (rep (G,), group (P,)) marks conditions that share μ and τ (a μ × T sweep with a
-    temperature-free τ): the sums at the ladder temperatures, which depend on nothing else, are
-    formed once per group (``rep`` the index of one member of each, padded by repeats) and each
-    condition adds the level of its own temperature step only (:func:`grouped_condition_sums`):
-    the same sums, at about 1/(L + 1) of the per-condition work."""
+    temperature-free τ): their terms at the ladder temperatures depend on nothing else, so they are
+    formed once per group, as the step terms of one member of each group (``rep``, padded by
+    repeats) placed at every k_BT_l (:func:`step_sums`), and each condition sums the term of its own
+    step only (:func:`shared_totals`): the same sums, at about 1/(L + 1) of the per-condition work,
+    and one compiled set of level sums as without groups."""
     P = mu.shape[0]
-    cc = min(condition_chunk, P)
-    nch = _chunks(P, cc)
-    padv = lambda x: _padded(x, nch * cc)
-    partials = None
+    cond_args = (mu, kt, temp, tau_arr)
     if groups is not None:
         rep, group = groups
-        G = rep.shape[0]
-        gc = min(condition_chunk, G)
-        ngc = _chunks(G, gc)
-        pick = lambda x: _padded(jnp.take(x, rep, axis=0), ngc * gc).reshape((ngc, gc) + x.shape[1:])
-
-        def ladder_rows(a):
-            m, t, ta = a
-            return tuple(ladder_partials(levels, info, plan, m, t, tau_eval, ta, omega, filled, sea, w)
-                         for w in ("fine", "coarse"))
-
-        rows = jax.lax.map(ladder_rows, (pick(mu), pick(temp), jax.tree_util.tree_map(pick, tau_arr)))
-        # (chunks, L + 1, gc, ...) -> (L + 1, chunks·gc, ...)
-        partials = jax.tree_util.tree_map(
-            lambda x: jnp.moveaxis(x, 0, 1).reshape((x.shape[1], ngc * gc) + x.shape[3:]), rows)
+        G, K = rep.shape[0], plan.levels + 1
+        ktl = info["kt_ladder"]
+        # G × (L + 1) more conditions: each group's member at every ladder temperature
+        per_level = lambda x: jnp.tile(jnp.take(x, rep, axis=0), (K,) + (1,) * (x.ndim - 1))
+        extra = (per_level(mu), jnp.repeat(ktl, G), per_level(temp), jax.tree_util.tree_map(per_level, tau_arr))
+        cond_args = jax.tree_util.tree_map(lambda x, y: jnp.concatenate([x, y]), cond_args, extra)
+    N = cond_args[0].shape[0]
+    cc = min(condition_chunk, N)
+    nch = _chunks(N, cc)
+    padv = lambda x: _padded(x, nch * cc)
     # conditions sorted hot to cold, so that a chunk's conditions need the same ladder levels
     # (condition_sums skips a level none of them needs); the results are put back in order below
     # (and by μ within a temperature: neighbouring windows can share one table slice)
-    order = jnp.lexsort((jax.lax.stop_gradient(mu), -jax.lax.stop_gradient(kt)))
+    m_all, kt_all = cond_args[0], cond_args[1]
+    order = jnp.lexsort((jax.lax.stop_gradient(m_all), -jax.lax.stop_gradient(kt_all)))
     take = lambda x: jnp.take(x, order, axis=0)
-    mu, kt, temp, tau_arr = take(mu), take(kt), take(temp), jax.tree_util.tree_map(take, tau_arr)
-    grp = padv(take(groups[1])) if groups is not None else jnp.zeros((nch * cc,), jnp.int32)
-    args = (padv(mu), padv(kt), padv(temp), jax.tree_util.tree_map(padv, tau_arr), grp)
+    args = jax.tree_util.tree_map(lambda x: padv(take(x)), cond_args)
 
     def one(a):
-        m, k, t, ta, g = a
-        if partials is None:
-            f, ef = condition_sums(levels, info, plan, m, k, t, tau_eval, ta, omega, filled, sea, "fine")
-            c, ec = condition_sums(levels, info, plan, m, k, t, tau_eval, ta, omega, filled, sea, "coarse")
-        else:
-            f, ef = grouped_condition_sums(levels, info, plan, m, k, t, tau_eval, ta, omega, filled, sea,
-                                           partials[0], g, "fine")
-            c, ec = grouped_condition_sums(levels, info, plan, m, k, t, tau_eval, ta, omega, filled, sea,
-                                           partials[1], g, "coarse")
-        ex = jax.tree_util.tree_map(jnp.maximum, ef, ec)
-        return f, c, ex
+        m, k, t, ta = a
+        if groups is not None:
+            return tuple(step_sums(levels, info, plan, m, k, t, tau_eval, ta, omega, filled, sea, w)
+                         for w in ("fine", "coarse"))
+        f, ef = condition_sums(levels, info, plan, m, k, t, tau_eval, ta, omega, filled, sea, "fine")
+        c, ec = condition_sums(levels, info, plan, m, k, t, tau_eval, ta, omega, filled, sea, "coarse")
+        return f, c, jax.tree_util.tree_map(jnp.maximum, ef, ec)
 
     split = lambda x: x.reshape((nch, cc) + x.shape[1:])
     out = jax.lax.map(one, jax.tree_util.tree_map(split, args))
     back = jnp.argsort(order)
-    out = jax.tree_util.tree_map(lambda x: jnp.take(x.reshape((nch * cc,) + x.shape[2:])[:P], back, axis=0), out)
-    return out[0], out[1], out[2], info
+    out = jax.tree_util.tree_map(lambda x: jnp.take(x.reshape((nch * cc,) + x.shape[2:])[:N], back, axis=0), out)
+    if groups is None:
+        return out[0], out[1], out[2], info
+    real = lambda x: x[:P]
+    virtual = lambda x: x[P:].reshape((K, G) + x.shape[1:])
+    f, ef = shared_totals(jax.tree_util.tree_map(real, out[0]), jax.tree_util.tree_map(virtual, out[0]), group,
+                          kt, ktl, plan.levels)
+    c, ec = shared_totals(jax.tree_util.tree_map(real, out[1]), jax.tree_util.tree_map(virtual, out[1]), group,
+                          kt, ktl, plan.levels)
+    return f, c, jax.tree_util.tree_map(jnp.maximum, ef, ec), info
 
 
 # --------------------------------------------------------------------------------------------
