@@ -422,4 +422,4 @@ def test_a_temperature_dependent_tau_keeps_temperature_in_the_sharing_key():
             t = arr["tau0"] / (1.0 + temperature / 100.0) + 0.0 * energy
             return t, jnp.zeros_like(t)
 
-    assert as_scattering(WarmingTau(50.0)) is not None and not temperature_free(WarmingTau(50.0))
+    assert isinstance(as_scattering(WarmingTau(50.0)), WarmingTau) and not temperature_free(WarmingTau(50.0))

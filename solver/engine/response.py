@@ -611,11 +611,12 @@ def _resolution_loop(run, nres, resolution, max_level, plan, rtol, model, tau_ma
     return lev, tried, fine, err, bad, k_points
 
 
-def _sharing_keys(muf, Tf, tauf, temperature_free):
+def _sharing_keys(muf, Tf, tauf, free_of_t):
     """(P, n) per-condition keys of :func:`crosswind.solver.engine.ladder.sweep_groups`: μ, every τ
-    parameter, and T unless τ is free of it."""
+    parameter, and T unless τ is free of it (``free_of_t``: :func:`~crosswind.solver.engine.
+    scattering.temperature_free`)."""
     cols = [np.asarray(muf)] + [np.asarray(a) for a in jax.tree_util.tree_leaves(tauf)]
-    if not temperature_free:
+    if not free_of_t:
         cols.append(np.asarray(Tf))
     return np.stack(cols, axis=1)
 
