@@ -21,6 +21,7 @@ from crosswind.solver.engine.scattering import (
     MatthiessenTau,
     PowerLawTau,
     as_scattering,
+    energy_free,
     temperature_free,
 )
 from crosswind.validation.fermi_contour import uniform_grid_reference
@@ -423,3 +424,50 @@ def test_a_temperature_dependent_tau_keeps_temperature_in_the_sharing_key():
             return t, jnp.zeros_like(t)
 
     assert isinstance(as_scattering(WarmingTau(50.0)), WarmingTau) and not temperature_free(WarmingTau(50.0))
+
+
+@pytest.mark.parametrize("dim,sea,shared", [(2, False, False), (2, True, True), (3, False, True), (3, True, False)])
+@pytest.mark.parametrize("omega", [None, 0.05])
+def test_energy_free_tau_leaves_the_knot_sums_with_the_same_moments(dim, sea, shared, omega):
+    """A τ free of ε (constant, Matthiessen) is one number per condition: the sums that take it out
+    of the knot sums (and drop the ∂τ/∂ε term) equal the general per-knot form to rounding."""
+    layout, nc = ld.factor_layout(dim, sea)
+    P, Q = 7, 40
+    rng = np.random.default_rng(dim + 2 * sea)
+    vals = jnp.asarray(rng.normal(size=(Q, nc) if shared else (P, Q, nc)))
+    mu = jnp.asarray(rng.uniform(0.1, 0.2, P))
+    kt = jnp.asarray(rng.uniform(1e-3, 5e-3, P))
+    E = mu[:, None] + kt[:, None] * jnp.linspace(-20.0, 20.0, Q)[None, :] if not shared else \
+        jnp.broadcast_to(jnp.linspace(0.05, 0.25, Q)[None, :], (P, Q))
+    occ = ld._occupations(E, mu, kt)
+    temp = kt / 8.617333262e-5
+    for scat in (ConstantTau(jnp.asarray(rng.uniform(20.0, 90.0, P))), MatthiessenTau(400.0, 100.0)):
+        fn = type(scat).evaluate
+        assert energy_free(fn)
+        arr = jax.tree_util.tree_map(lambda a: jnp.broadcast_to(a, (P,))[:, None], scat.arrays())
+        free = ld._kernel_sums(vals, occ, E, mu, temp, fn, arr, omega, layout, sea)
+        general = ld._kernel_sums(vals, occ, E, mu, temp, lambda a, e, t, fn=fn: fn(a, e, t), arr, omega, layout, sea)
+        for name in free.__dataclass_fields__:
+            a, b = getattr(free, name), getattr(general, name)
+            if b is None:
+                assert a is None, name
+                continue
+            a, b = np.asarray(a), np.asarray(b)
+            assert a.shape == b.shape, name
+            np.testing.assert_allclose(a, b, rtol=1e-12, atol=1e-12 * np.max(np.abs(b)), err_msg=name)
+
+
+def test_only_the_energy_free_tau_functions_themselves_count_as_energy_free():
+    assert energy_free(type(as_scattering(50.0)).evaluate) and energy_free(MatthiessenTau.evaluate)
+    assert not energy_free(PowerLawTau.evaluate)
+
+    class Inherited(ConstantTau):              # the same function: still free of ε
+        pass
+
+    class Warming(ConstantTau):                # its own τ(ε): never taken for energy-free
+        @staticmethod
+        def evaluate(arr, energy, temperature):
+            t = arr["tau0"] * (1.0 + energy) ** 2
+            return t, 2.0 * arr["tau0"] * (1.0 + energy)
+
+    assert energy_free(Inherited.evaluate) and not energy_free(Warming.evaluate)

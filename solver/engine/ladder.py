@@ -53,6 +53,7 @@ from crosswind.models.units import KB_EVK as KB
 from crosswind.solver.engine.kernels import Moments, tau_tilde
 from crosswind.solver.engine.mesh import energies_at
 from crosswind.solver.engine.occupation import T_FLOOR, occupations
+from crosswind.solver.engine.scattering import energy_free
 
 W = 20.0                   # window half-width in k_BT: neglected weight ~ e^-20 ≈ 2e-9
 #: conditions per chunk from which the knot sums also compile the shared-slice form (matrix
@@ -506,12 +507,44 @@ def _kernel_sums_dc(vals, occ, E, mu, tau, dtau, layout, sea):
                    dipole_sea=s("dom", f0) if sea else None)
 
 
+def _kernel_sums_free(vals, occ, E, mu, temp, tau_eval, tau_arr, omega, layout, sea):
+    """:func:`_kernel_sums` for a τ free of the band energy (``scattering.energy_free``): τ is one
+    number per condition, so every τ factor leaves the knot sum and ∂τ/∂ε = 0 removes the ``ggg``
+    term; the knot weights are f0, F, F(ε − μ), F(ε − μ)² and s alone (no per-knot τ products)."""
+    tau, _ = tau_eval(tau_arr, E[:, :1], temp[:, None])
+    tau = tau[:, 0]
+    F, f0 = occ["F"], occ["f0"]
+    de = E - jnp.broadcast_to(mu[:, None], E.shape)
+    s = lambda name, weight: _column_sum(vals, layout, name, weight)
+    b = lambda t, x: t.reshape(t.shape + (1,) * (x.ndim - 1)) * x
+    Fgg, Fhg, Fgom = s("gg", F), s("hg", F), s("gom", F)
+    drude0 = b(tau, Fgg)
+    Fde = F * de
+    common = dict(density=s("one", f0), dos=s("one", F), ahe=s("om", f0), dipole=Fgom, bcp=s("bcp", F),
+                  lorentz=b(tau * tau, _lorentz(s, F, layout, E.shape[0])), thermo1=b(tau, s("gg", Fde)),
+                  thermo2=b(tau, s("gg", Fde * de)), drude0=drude0, nernst=s("om", occ["s"]),
+                  scale_ahe=s("abs_om", f0), scale_dipole=s("sc_dip", F),
+                  scale_drude2=b(tau * tau, s("sc_dr2", F)), scale_bcp=s("sc_bcp", F),
+                  dipole_sea=s("dom", f0) if sea else None)
+    c = lambda x: x.astype(jnp.complex128)
+    if omega is None:
+        second = c(b(tau * tau, Fhg))
+        return Moments(drude=c(drude0), dipole_tau=c(b(tau, Fgom)), drude2_2w=second, drude2_0=second, **common)
+    zero = jnp.zeros_like(tau)
+    t1, _ = tau_tilde(tau, zero, omega)
+    t2, _ = tau_tilde(tau, zero, 2.0 * omega)
+    return Moments(drude=b(t1, c(Fgg)), dipole_tau=b(t1, c(Fgom)), drude2_2w=b(t1 * t2, c(Fhg)),
+                   drude2_0=b(t1 * c(tau), c(Fhg)), **common)
+
+
 def _kernel_sums(vals, occ, E, mu, temp, tau_eval, tau_arr, omega, layout, sea):
     """The kernel sums of :func:`crosswind.solver.engine.kernels.point_kernels` (a
     :class:`~crosswind.solver.engine.kernels.Moments`, natural units, degeneracy not applied) from
     knot values ``vals`` (P, Q, nc) and occupation weights ``occ`` (each (P, Q)); ``E`` (P, Q) the
     knot energies.  ``omega=None`` marks a static field
     (the real-arithmetic path of :func:`_kernel_sums_dc`)."""
+    if energy_free(tau_eval):
+        return _kernel_sums_free(vals, occ, E, mu, temp, tau_eval, tau_arr, omega, layout, sea)
     tau, dtau = tau_eval(tau_arr, E, jnp.broadcast_to(temp[:, None], E.shape))
     if omega is None:
         return _kernel_sums_dc(vals, occ, E, mu, tau, dtau, layout, sea)

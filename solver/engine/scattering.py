@@ -128,6 +128,17 @@ def temperature_free(scat) -> bool:
     return bool(type(scat).__dict__.get("temperature_free", False))
 
 
+def energy_free(evaluate) -> bool:
+    """Whether the τ function ``evaluate`` (a class's ``evaluate``) is free of the band energy:
+    τ is then one number per condition and ∂τ/∂ε = 0, so the energy-resolved engines take τ out of
+    their knot sums (``ladder._kernel_sums_free``).  Decided by the function itself, so a subclass
+    with an ``evaluate`` of its own is never taken for energy-free."""
+    return evaluate in _ENERGY_FREE
+
+
+_ENERGY_FREE = (ConstantTau.evaluate, MatthiessenTau.evaluate)
+
+
 def as_scattering(tau):
     """Accept a number/array (constant τ in fs) or one of the scattering objects."""
     if isinstance(tau, (ConstantTau, PowerLawTau, MatthiessenTau)):
