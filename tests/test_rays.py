@@ -214,3 +214,28 @@ def test_shared_slice_knot_sums_equal_per_condition_windows():
         a = np.asarray(getattr(shared, field))
         b = np.concatenate([np.asarray(getattr(o, field)) for o in own])
         np.testing.assert_allclose(a, b, rtol=1e-11, atol=1e-11 * np.max(np.abs(b)))
+
+
+def test_a_call_counts_its_own_crossings_and_reports_a_plan_with_a_margin():
+    """The call's own runs keep just the crossings counted at its parameters (no slot margin);
+    the plan it reports for reuse at other parameters carries the 25 % margin and gives the same
+    sums where both apply."""
+    m = build("massive-dirac", **TILTED)
+    mu, T = np.linspace(0.14, 0.17, 5), 5.0
+    kt = np.full(5, float(thermal_energy(T)))
+    r = response(m, mu=mu, temperature=T, tau=100.0, resolution=1, engine="rays")
+    counts = []
+    for lev in (0, 1):
+        p, g = rays.make_plan(m, m.params, mu, kt, lev, margin=1.0)
+        counts.append((p, int(np.max(np.asarray(rays._crossing_counts(m, m.params, g, angles=p.angles))))))
+    # the case tells the two apart: at level 0 the margin takes a larger slot bucket
+    assert rays.slot_count(counts[0][1], 1.0) < rays.slot_count(counts[0][1])
+    centres = len(m.domain.centers)
+    assert _info(r).k_points == sum(p.k_points(centres) for p, _ in counts)
+    plan, grid = _info(r).plan
+    assert plan.slots >= rays.SLOT_MARGIN * counts[1][1]
+    again = response(m, mu=mu, temperature=T, tau=100.0, resolution=1, plan=_info(r).plan, engine="rays",
+                     estimate_error=False)
+    for name in ("density", "sigma", "dipole", "chi"):
+        a, b = np.asarray(getattr(r, name)), np.asarray(getattr(again, name))
+        np.testing.assert_allclose(b, a, rtol=1e-12, atol=1e-12 * np.max(np.abs(a)), err_msg=name)

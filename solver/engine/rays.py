@@ -98,6 +98,12 @@ class RayPlan:
     def nodes_per_ray(self) -> int:
         return self.panels * self.nodes + 2 * self.nodes
 
+    def reusable(self, n_bands: int) -> RayPlan:
+        """This plan with the :data:`SLOT_MARGIN` for reuse at other parameters (a call's own
+        run uses the crossings counted at its parameters alone)."""
+        wide = max(self.slots, _bucket(int(self.slots * SLOT_MARGIN), 16))
+        return dataclasses.replace(self, slots=min(wide, 2 * n_bands * self.levels))
+
     def k_points(self, centres: int) -> int:
         """Points where the band geometry is evaluated (probe and bisection evaluate energies only)."""
         return centres * self.angles * self.nodes_per_ray()
@@ -164,9 +170,24 @@ def breakpoints(mu, kt, t_res, spacing):
     return np.asarray(out)
 
 
-def make_plan(model: BandModel, params, mu, kt, resolution: int, slots: int | None = None):
+#: crossing panels a plan keeps per ray beyond the most crossings counted on its rays, for reuse
+#: at other parameters (``resolution.plan`` under ``jax.grad`` or in a fit); a call's own concrete
+#: run needs no margin (it counts at its own parameters and repeats with a new plan on overflow)
+SLOT_MARGIN = 1.25
+
+
+def slot_count(found: int, margin: float = SLOT_MARGIN) -> int:
+    """Crossing panels per ray for ``found`` crossings on the busiest ray: ``margin``·found + 4,
+    rounded up to a multiple of 16 (coarse, so that a sweep's new values seldom change the shape
+    and recompile)."""
+    return _bucket(int(found * margin) + 4, 16)
+
+
+def make_plan(model: BandModel, params, mu, kt, resolution: int, slots: int | None = None,
+              margin: float = SLOT_MARGIN):
     """Plan and grid for the conditions (μ, k_BT) (eV) at ``resolution`` (index into
-    ``RESOLUTIONS``).  ``slots`` (crossing panels per ray) defaults to a count on the model."""
+    ``RESOLUTIONS``).  ``slots`` (crossing panels per ray) defaults to
+    :func:`slot_count` of a count on the model with ``margin``."""
     angles, nodes, c, rho, t_res = RESOLUTIONS[resolution]
     bps = breakpoints(mu, kt, t_res, c)
     nlev = _bucket(len(bps), 16)
@@ -182,7 +203,7 @@ def make_plan(model: BandModel, params, mu, kt, resolution: int, slots: int | No
     grid = RayGrid(jnp.asarray(padded), jnp.asarray(e_lo), jnp.asarray(delta))
     if slots is None:
         found = int(np.max(np.asarray(_crossing_counts(model, params, grid, angles=angles))))
-        slots = _bucket(int(found * 1.25) + 4, 8)
+        slots = slot_count(found, margin)
     slots = min(slots, 2 * model.n_bands * nlev)
     cold = bool(np.any(np.asarray(kt) < KB * t_res))
     return RayPlan(angles, nodes, nlev, slots, knots, tables, rho, t_res, cold), grid

@@ -786,7 +786,9 @@ def _run_rays(model, mu, kt, temp, tau_arr, omega, res, kw, plan, traced, eng=_r
     """One evaluation of the shared ray rule; a concrete run whose rays had more crossings than
     the plan's slots (or whose windows left the knot tables) is repeated with a new plan."""
     if plan is None:
-        plan = eng.make_plan(model, model.params, np.asarray(mu), np.asarray(kt), res)
+        # this run counts the crossings at its own parameters: no slot margin (the plan it reports
+        # for reuse carries one, _rays_path)
+        plan = eng.make_plan(model, model.params, np.asarray(mu), np.asarray(kt), res, margin=1.0)
     at = _shells_at if eng is _shells else _rays_at
     tried = []
     for _ in range(3):
@@ -794,7 +796,7 @@ def _run_rays(model, mu, kt, temp, tau_arr, omega, res, kw, plan, traced, eng=_r
         sums, ex, over = at(model, plan[1], mu, kt, temp, tau_arr, omega, plan=plan[0], **kw)
         if traced or not bool(over):
             break
-        counted = eng.make_plan(model, model.params, np.asarray(mu), np.asarray(kt), res)
+        counted = eng.make_plan(model, model.params, np.asarray(mu), np.asarray(kt), res, margin=1.0)
         plan = (counted if counted[0].slots > plan[0].slots else
                 eng.make_plan(model, model.params, np.asarray(mu), np.asarray(kt), res,
                                 slots=2 * plan[0].slots))
@@ -823,7 +825,9 @@ def _rays_path(model, muf, kt, Tf, tauf, omega, kw, rtol, resolution, max_level,
         sums, ex, over, tried = _run_rays(model, muf, kt, Tf, tauf, omega, lev, kw, given, traced, eng)
         nonlocal k_points
         k_points += sum(p[0].k_points(centres) for p in tried)
-        runs[lev] = (sums, ex, over, tried[-1])
+        used = tried[-1]
+        # a plan made here is reported with the slot margin for reuse at other parameters
+        runs[lev] = (sums, ex, over, used if used is given else (used[0].reusable(model.n_bands), used[1]))
         attempts[lev] = len(tried)
         return runs[lev]
 

@@ -71,6 +71,10 @@ class ShellPlan:
     def slots(self) -> int:
         return self.energy.slots
 
+    def reusable(self, n_bands: int) -> ShellPlan:
+        """This plan with the slot margin for reuse at other parameters (:meth:`RayPlan.reusable`)."""
+        return dataclasses.replace(self, energy=self.energy.reusable(n_bands))
+
     @property
     def directions(self) -> int:
         return 2 * self.n_cos * self.n_phi
@@ -152,17 +156,19 @@ def _energy_plan(mu, kt, resolution):
     return _rays.RayPlan(angles, nodes, nlev, 1, knots, tables, rho, t_res, cold), grid
 
 
-def make_plan(model: BandModel, params, mu, kt, resolution: int, slots: int | None = None):
+def make_plan(model: BandModel, params, mu, kt, resolution: int, slots: int | None = None,
+              margin: float = _rays.SLOT_MARGIN):
     """Plan and grid for the conditions (μ, k_BT) (eV) at ``resolution``: the energy settings of
     ``rays.RESOLUTIONS[resolution]``, the directions of ``RESOLUTIONS[resolution]``; ``slots``
-    defaults to a count of the crossings on every ray (with a margin)."""
+    defaults to :func:`crosswind.solver.engine.rays.slot_count` of a count of the crossings on
+    every ray with ``margin``."""
     _check(model)
     n_cos, n_phi, nodes = RESOLUTIONS[resolution]
     energy, grid = _energy_plan(mu, kt, resolution)
     energy = dataclasses.replace(energy, nodes=nodes, angles=2 * n_cos * n_phi)
     if slots is None:
         found = int(np.max(np.asarray(_crossing_counts(model, params, grid, n_cos=n_cos, n_phi=n_phi))))
-        slots = _rays._bucket(int(found * 1.25) + 4, 8)
+        slots = _rays.slot_count(found, margin)
     slots = min(slots, 2 * model.n_bands * energy.levels)
     return ShellPlan(dataclasses.replace(energy, slots=slots), n_cos, n_phi), grid
 
