@@ -130,8 +130,9 @@ class Resolution:
     * ``plan``: the plan of the last pass (ladder: :class:`~crosswind.solver.engine.ladder.Plan`;
       tetra: :class:`~crosswind.solver.engine.tetra.TetraPlan`, or
       :class:`~crosswind.solver.engine.tetra.TetraGroups` for a sweep split into μ groups; rays:
-      ``(RayPlan, RayGrid)``); pass ``plan=r.resolution.plan`` to ``response`` under
-      ``jax.grad``/``jax.jit``;
+      ``(RayPlan, RayGrid)``, with 25 % more crossing slots than the call's own run kept, for
+      other parameter values: ``rays.RayPlan.reusable``); pass ``plan=r.resolution.plan`` to
+      ``response`` under ``jax.grad``/``jax.jit``;
     * ``attempts`` (int): passes at ``level`` (a run whose budget overflowed is repeated);
     * ``levels`` (int, ladder and tetra): temperature levels of the plan.
     """
