@@ -11,7 +11,7 @@ from crosswind.solver import response
 from crosswind.solver.engine import rays
 from crosswind.solver.engine.occupation import thermal_energy
 from crosswind.solver.engine.response import _rays_at
-from crosswind.solver.engine.scattering import ConstantTau
+from crosswind.solver.engine.scattering import ConstantTau, MatthiessenTau
 from validation.references import dirac_density, tilted_dipole_quadrature
 
 TILTED = dict(velocity=5e5, mass=0.1, tilt=5e4)
@@ -239,3 +239,27 @@ def test_a_call_counts_its_own_crossings_and_reports_a_plan_with_a_margin():
     for name in ("density", "sigma", "dipole", "chi"):
         a, b = np.asarray(getattr(r, name)), np.asarray(getattr(again, name))
         np.testing.assert_allclose(b, a, rtol=1e-12, atol=1e-12 * np.max(np.abs(a)), err_msg=name)
+
+
+@pytest.mark.parametrize("frequency", [pytest.param(0.0, marks=pytest.mark.slow), 5e11])
+def test_tau_gradients_through_the_energy_free_sums_match_central_differences(frequency):
+    """τ leaves the knot sums when it is free of ε (constant, Matthiessen): ∂/∂τ of χ and of the
+    ac Drude σ by jax.grad with a fixed plan against central differences (goal: every field
+    differentiable in τ; the ac field makes τ̃_ω = τ/(1 + iωτ) complex)."""
+    m = build("massive-dirac", **TILTED)
+    kw = dict(mu=0.15, temperature=10.0, resolution=0, engine="rays", frequency=frequency)
+    plan = _info(response(m, tau=100.0, **kw)).plan
+
+    def fields(tau):
+        r = response(m, tau=tau, plan=plan, estimate_error=False, **kw)
+        return r.chi[1, 0, 0].real, r.sigma[0, 0].real
+
+    def fields_matthiessen(t_ph):
+        r = response(m, tau=MatthiessenTau(400.0, t_ph), plan=plan, estimate_error=False, **kw)
+        return r.chi[1, 0, 0].real, r.sigma[0, 0].real
+
+    for f, x, h in ((fields, 100.0, 1e-3), (fields_matthiessen, 150.0, 1e-3)):
+        g = np.asarray(jax.jacfwd(lambda t: jnp.stack(f(t)))(x))
+        fd = (np.asarray(f(x + h)) - np.asarray(f(x - h))) / (2 * h)
+        assert np.all(np.isfinite(g)) and np.all(np.abs(fd) > 0)
+        np.testing.assert_allclose(g, fd, rtol=1e-6, err_msg=f.__name__)
