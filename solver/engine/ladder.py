@@ -486,25 +486,29 @@ def _lorentz(s, weight, layout, P):
     return jnp.zeros((P, dim, dim))
 
 
+def _tau_free_fields(s, occ, sea):
+    """The fields without τ (density, DOS, Hall, dipole, BCP, Nernst sums and their scales) from
+    the knot-sum function ``s(name, weight)`` and the occupations: the same in every form below."""
+    F, f0 = occ["F"], occ["f0"]
+    return dict(density=s("one", f0), dos=s("one", F), ahe=s("om", f0), dipole=s("gom", F), bcp=s("bcp", F),
+                nernst=s("om", occ["s"]), scale_ahe=s("abs_om", f0), scale_dipole=s("sc_dip", F),
+                scale_bcp=s("sc_bcp", F), dipole_sea=s("dom", f0) if sea else None)
+
+
 def _kernel_sums_dc(vals, occ, E, mu, tau, dtau, layout, sea):
     """:func:`_kernel_sums` for a static field (ω = 0): τ̃_ω = τ̃_2ω = τ is real, so the Drude and
     dipole sums equal their dc forms and χ^2ω = χ^dc; real arithmetic only (about half the work)."""
-    F, f0 = occ["F"], occ["f0"]
+    F = occ["F"]
     s = lambda name, weight: _column_sum(vals, layout, name, weight)
     c = lambda x: x.astype(jnp.complex128)
     Ft = F * tau
     de = E - jnp.broadcast_to(mu[:, None], E.shape)
     drude0 = s("gg", Ft)
     second = s("hg", Ft * tau) + s("ggg", Ft * dtau)
-    return Moments(density=s("one", f0), dos=s("one", F), drude=c(drude0),
-                   ahe=s("om", f0), dipole=s("gom", F), dipole_tau=c(s("gom", Ft)),
-                   drude2_2w=c(second), drude2_0=c(second),
-                   bcp=s("bcp", F), lorentz=_lorentz(s, Ft * tau, layout, E.shape[0]),
-                   thermo1=s("gg", Ft * de), thermo2=s("gg", Ft * de * de),
-                   drude0=drude0, nernst=s("om", occ["s"]),
-                   scale_ahe=s("abs_om", f0), scale_dipole=s("sc_dip", F),
-                   scale_drude2=s("sc_dr2", Ft * tau), scale_bcp=s("sc_bcp", F),
-                   dipole_sea=s("dom", f0) if sea else None)
+    return Moments(drude=c(drude0), dipole_tau=c(s("gom", Ft)), drude2_2w=c(second), drude2_0=c(second),
+                   lorentz=_lorentz(s, Ft * tau, layout, E.shape[0]), thermo1=s("gg", Ft * de),
+                   thermo2=s("gg", Ft * de * de), drude0=drude0, scale_drude2=s("sc_dr2", Ft * tau),
+                   **_tau_free_fields(s, occ, sea))
 
 
 def _kernel_sums_free(vals, occ, E, mu, temp, tau_eval, tau_arr, omega, layout, sea):
@@ -513,19 +517,16 @@ def _kernel_sums_free(vals, occ, E, mu, temp, tau_eval, tau_arr, omega, layout, 
     term; the knot weights are f0, F, F(ε − μ), F(ε − μ)² and s alone (no per-knot τ products)."""
     tau, _ = tau_eval(tau_arr, E[:, :1], temp[:, None])
     tau = tau[:, 0]
-    F, f0 = occ["F"], occ["f0"]
+    F = occ["F"]
     de = E - jnp.broadcast_to(mu[:, None], E.shape)
     s = lambda name, weight: _column_sum(vals, layout, name, weight)
     b = lambda t, x: t.reshape(t.shape + (1,) * (x.ndim - 1)) * x
-    Fgg, Fhg, Fgom = s("gg", F), s("hg", F), s("gom", F)
+    common = _tau_free_fields(s, occ, sea)
+    Fgg, Fhg, Fgom = s("gg", F), s("hg", F), common["dipole"]
     drude0 = b(tau, Fgg)
     Fde = F * de
-    common = dict(density=s("one", f0), dos=s("one", F), ahe=s("om", f0), dipole=Fgom, bcp=s("bcp", F),
-                  lorentz=b(tau * tau, _lorentz(s, F, layout, E.shape[0])), thermo1=b(tau, s("gg", Fde)),
-                  thermo2=b(tau, s("gg", Fde * de)), drude0=drude0, nernst=s("om", occ["s"]),
-                  scale_ahe=s("abs_om", f0), scale_dipole=s("sc_dip", F),
-                  scale_drude2=b(tau * tau, s("sc_dr2", F)), scale_bcp=s("sc_bcp", F),
-                  dipole_sea=s("dom", f0) if sea else None)
+    common.update(lorentz=b(tau * tau, _lorentz(s, F, layout, E.shape[0])), thermo1=b(tau, s("gg", Fde)),
+                  thermo2=b(tau, s("gg", Fde * de)), drude0=drude0, scale_drude2=b(tau * tau, s("sc_dr2", F)))
     c = lambda x: x.astype(jnp.complex128)
     if omega is None:
         second = c(b(tau * tau, Fhg))
@@ -551,7 +552,7 @@ def _kernel_sums(vals, occ, E, mu, temp, tau_eval, tau_arr, omega, layout, sea):
     t1, _ = tau_tilde(tau, dtau, omega)
     t2, dt2 = tau_tilde(tau, dtau, 2.0 * omega)
     tauc, dtauc = tau.astype(jnp.complex128), dtau.astype(jnp.complex128)
-    F, f0 = occ["F"], occ["f0"]
+    F = occ["F"]
 
     def s(name, weight):
         cols = layout[name]
@@ -564,16 +565,13 @@ def _kernel_sums(vals, occ, E, mu, temp, tau_eval, tau_arr, omega, layout, sea):
 
     Fc = F.astype(jnp.complex128)
     de = E - jnp.broadcast_to(mu[:, None], E.shape)
-    return Moments(density=s("one", f0), dos=s("one", F), drude=s("gg", Fc * t1),
-                   ahe=s("om", f0), dipole=s("gom", F), dipole_tau=s("gom", Fc * t1),
+    return Moments(drude=s("gg", Fc * t1), dipole_tau=s("gom", Fc * t1),
                    drude2_2w=s("hg", Fc * t1 * t2) + s("ggg", Fc * t1 * dt2),
                    drude2_0=s("hg", Fc * t1 * tauc) + s("ggg", Fc * t1 * dtauc),
-                   bcp=s("bcp", F), lorentz=_lorentz(s, F * tau * tau, layout, E.shape[0]),
+                   lorentz=_lorentz(s, F * tau * tau, layout, E.shape[0]),
                    thermo1=s("gg", F * de * tau), thermo2=s("gg", F * de * de * tau),
-                   drude0=s("gg", F * tau), nernst=s("om", occ["s"]),
-                   scale_ahe=s("abs_om", f0), scale_dipole=s("sc_dip", F),
-                   scale_drude2=s("sc_dr2", F * tau * tau), scale_bcp=s("sc_bcp", F),
-                   dipole_sea=s("dom", f0) if sea else None)
+                   drude0=s("gg", F * tau), scale_drude2=s("sc_dr2", F * tau * tau),
+                   **_tau_free_fields(s, occ, sea))
 
 
 def _window_values(acc, e_lo, delta, start, Q):
