@@ -233,7 +233,9 @@ def test_a_call_counts_its_own_crossings_and_reports_a_plan_with_a_margin():
     centres = len(m.domain.centers)
     assert _info(r).k_points == sum(p.k_points(centres) for p, _ in counts)
     plan, grid = _info(r).plan
+    # the reported plan is the call's own plan widened by the margin (more slots than it used)
     assert plan.slots >= rays.SLOT_MARGIN * counts[1][1]
+    assert plan.slots == counts[1][0].reusable(m.n_bands).slots > counts[1][0].slots
     again = response(m, mu=mu, temperature=T, tau=100.0, resolution=1, plan=_info(r).plan, engine="rays",
                      estimate_error=False)
     for name in ("density", "sigma", "dipole", "chi"):
