@@ -10,7 +10,7 @@ unit, a long name (dataset ``long_name`` attribute, figure labels, summary) and 
 checked when a scenario is loaded.
 
 Result fields (:data:`FIELDS`) are the arrays a sweep writes: response tensors in SI units
-(docs/theory.md §1 lists the conventions), Hall-bar readings and bookkeeping.  Model parameters
+(docs/theory.md §0.1 lists the conventions), Hall-bar readings and bookkeeping.  Model parameters
 are knobs too; their units come from the model's own parameter table
 (:class:`crosswind.models.params.ParamSpec`), so they are not repeated here.
 
@@ -187,7 +187,8 @@ KNOBS: dict[str, Knob] = {k.name: k for k in (
 #: the carrier knobs: a scenario gives exactly one
 CARRIERS = ("gate_V", "density_cm2", "mu_eV")
 
-#: relaxation-time knobs of each scattering kind (docs/theory.md §6), in the order of the constructor
+#: relaxation-time knobs of each scattering kind (docs/scenario-files.md, [conditions.scattering]; the
+#: classes in solver/engine/scattering.py), in the order of the constructor
 SCATTERING = {"constant": ("tau_fs",),
               "power-law": ("tau0_fs", "exponent", "reference_energy_eV", "energy_scale_eV"),
               "matthiessen": ("tau_impurity_fs", "tau_phonon_fs", "reference_temperature_K")}

@@ -38,7 +38,7 @@ START_TOL = 1e-7  # eV: the same for the first phase (on energies computed once,
 
 def parallel_plate_capacitance(thickness_nm, permittivity=3.9):
     """Gate capacitance per area (F/m²) of a dielectric of ``thickness_nm`` (nm) and relative
-    permittivity ``permittivity``: ε0εr/d (no quantum capacitance; docs/theory.md §9)."""
+    permittivity ``permittivity``: ε0εr/d (no quantum capacitance; docs/theory.md §10)."""
     if np.any(np.asarray(thickness_nm) <= 0):
         raise ValueError("gate_density: the dielectric thickness must be positive (nm)")
     if np.any(np.asarray(permittivity) <= 0):

@@ -964,7 +964,8 @@ def response(model: BandModel, mu, temperature, tau, frequency=0.0, *, rtol: flo
     is refused there: the Fermi-sea form misses the monopole at each node, §16.2), the ladder for
     2D lattice models with automatic resolution (``resolution=None``), the tetrahedra for 3D
     lattice models with automatic resolution when no temperature exceeds ``TETRA_AUTO_MAX_T``
-    (150 K), and the node quadrature ("mesh") otherwise.
+    (150 K), the shared rays for 2D continuum models with automatic resolution, and the node
+    quadrature ("mesh") otherwise.
     ``engine="ladder"`` (lattice models) uses the energy-resolved ladder of
     :mod:`crosswind.solver.engine.ladder`: the band geometry is evaluated once per call for all
     conditions (sweeps over μ, T, τ and ω cost energy sums, not k-points) on shells around the

@@ -345,11 +345,18 @@ _CUBE = np.array(list(itertools.product(range(2), repeat=3)))            # corne
 CHILD_CORNERS = np.array([[9 * (o[0] + d[0]) + 3 * (o[1] + d[1]) + (o[2] + d[2]) for d in _CUBE]
                           for o in _CUBE])
 PARENT_CORNERS = np.array([9 * 2 * d[0] + 3 * 2 * d[1] + 2 * d[2] for d in _CUBE])
-#: the parent's linear interpolant at the 27 points: the Kuhn triangulation of the children
-#: refines the parent's (both are the arrangements x_i ∈ Z, x_i − x_j ∈ Z at their spacing), so the
-#: point q ∈ {0, 1, 2}³ is the midpoint of the parent edge 2⌊q/2⌋–2⌈q/2⌉ and takes the mean of its ends
-_HALF_LO = np.array([9 * 2 * (o[0] // 2) + 3 * 2 * (o[1] // 2) + 2 * (o[2] // 2) for o in _OFFS27])
-_HALF_HI = np.array([9 * 2 * (-(-o[0] // 2)) + 3 * 2 * (-(-o[1] // 2)) + 2 * (-(-o[2] // 2)) for o in _OFFS27])
+
+
+def _edge_ends(q):
+    """The ends 2⌊q/2⌋ and 2⌈q/2⌉ (componentwise) of the coarse edge whose midpoint or end the fine
+    point ``q`` (…, 3) is, in units of the fine spacing: the coarse grid's linear interpolant at
+    ``q`` is the mean of its values at the two ends (the Kuhn triangulation of the fine cells
+    refines the coarse one: both are the arrangements x_i ∈ Z, x_i − x_j ∈ Z at their spacing)."""
+    return 2 * (q // 2), 2 * (-(-q // 2))
+
+
+#: the parent's linear interpolant at the 27 points (each the midpoint or an end of a parent edge)
+_HALF_LO, _HALF_HI = (e @ np.array([9, 3, 1]) for e in _edge_ends(_OFFS27))
 #: corner weights folded onto the 27 points: S_FINE[o, p] = Σ_d w_d [corner d of child o is p]; S_HALF
 #: the same for the parent's interpolant at those corners; S_PARENT[p] for the parent cell itself
 S_FINE = np.zeros((8, 27))
@@ -559,7 +566,7 @@ def _block_ends(n0):
     idx = np.stack(np.meshgrid(*([np.arange(n0)] * 3), indexing="ij"), -1).reshape(-1, 1, 3)
     blk, q = 2 * (idx // 2), (idx % 2) + _CUBE[None]                                 # (n0³, 8, 3)
     out = []
-    for end in (2 * (q // 2), 2 * (-(-q // 2))):
+    for end in _edge_ends(q):
         c = (blk + end) % n0
         out.append(c[..., 0] * n0 * n0 + c[..., 1] * n0 + c[..., 2])
     return out

@@ -91,7 +91,7 @@ class ChainResult:
 # ------------------------------------------------------------------------------ the chain ------
 def gate_capacitance(device) -> float:
     """Gate capacitance per area (F/m²) of the scenario's [device]: ``capacitance_nF_cm2`` when
-    given, else the parallel plate ε0εr/d (docs/theory.md §9)."""
+    given, else the parallel plate ε0εr/d (docs/theory.md §10)."""
     if device.capacitance_nF_cm2 is not None:
         return device.capacitance_nF_cm2 * 1e-9 / 1e-4
     return parallel_plate_capacitance(device.dielectric_nm, device.permittivity)
