@@ -195,7 +195,8 @@ def test_shared_slice_knot_sums_equal_per_condition_windows():
     tabs = (jnp.asarray(rng.normal(size=(R, M, nc))), jnp.asarray(rng.normal(size=(R, nc))),
             jnp.asarray(rng.normal(size=(R, nc))))
     plan = rays.RayPlan(48, 6, 16, 8, M, R, 8.0, 1.0)
-    grid = rays.RayGrid(jnp.zeros(16), jnp.asarray(0.0), jnp.asarray(1e-4))
+    # breakpoints over every window (a condition outside them would be reported as not fitting)
+    grid = rays.RayGrid(jnp.linspace(0.0, 0.2, 16), jnp.asarray(0.0), jnp.asarray(1e-4))
     mu = jnp.asarray(np.sort(rng.uniform(0.1, 0.103, P)))
     kt = jnp.asarray(rng.uniform(0.88e-3, 1.5e-3, P))            # all on table 0 (ρδ0 = 0.8 meV)
     temp = kt / 8.617333262e-5
@@ -265,3 +266,32 @@ def test_tau_gradients_through_the_energy_free_sums_match_central_differences(fr
         fd = (np.asarray(f(x + h)) - np.asarray(f(x - h))) / (2 * h)
         assert np.all(np.isfinite(g)) and np.all(np.abs(fd) > 0)
         np.testing.assert_allclose(g, fd, rtol=1e-6, err_msg=f.__name__)
+
+
+def test_a_reused_plan_flags_conditions_it_does_not_resolve():
+    """A plan reused under jit (a fit, jax.grad) at conditions it was not made for gives error =
+    inf where its knot tables or breakpoints do not resolve the condition (before, a 10 K plan
+    read at 40 K returned a density of states 47 % low with no flag), and stays finite for the
+    steps of a finite difference.  The flagged values are checked to be wrong (over 10 % off a
+    fresh call at the same condition)."""
+    m = build("massive-dirac", velocity=5e5, mass=0.1)
+    mus = np.linspace(0.12, 0.30, 6)
+    p10 = _info(response(m, mu=mus, temperature=10.0, tau=100.0, resolution=0, engine="rays")).plan
+    p50 = _info(response(m, mu=mus, temperature=50.0, tau=100.0, resolution=0, engine="rays")).plan
+
+    def at(plan, mu, T):
+        return jax.jit(lambda mu, T: (lambda r: (r.dos, r.error.dos))(
+            response(m, mu=mu, temperature=T, tau=100.0, resolution=0, plan=plan, estimate_error=False)))(mu, T)
+
+    kt10 = float(thermal_energy(10.0))
+    cases = [(p10, 0.2, 10.0, True), (p10, 0.2 + 1e-4, 10.0 + 1e-3, True), (p10, 0.2, 10.0 - 1e-3, True),
+             (p10, 0.2, 40.0, False), (p50, 0.2, 4.0, False), (p10, 0.30 + 30 * kt10, 10.0, False)]
+    for plan, mu, T, ok in cases:
+        dos, err = at(plan, mu, T)
+        assert bool(np.isfinite(float(err)) or np.isnan(float(err))) == ok, (mu, T)
+        if not ok:
+            assert np.isposinf(float(err))
+    # the flagged cases are the wrong ones: the fresh call's value is the reference
+    for plan, mu, T in ((p10, 0.2, 40.0), (p50, 0.2, 4.0)):
+        fresh = response(m, mu=mu, temperature=T, tau=100.0, resolution=0, engine="rays")
+        assert abs(float(at(plan, mu, T)[0]) / float(fresh.dos) - 1) > 0.1

@@ -34,7 +34,9 @@ Placement (rays, breakpoints, knots) is wrapped in ``stop_gradient``; μ, T, τ 
 knot sums, so their derivatives are exact derivatives of those sums, and model parameters act
 through the geometry at the placed nodes.  The error estimate is |fine − coarse| between two
 resolutions (as for the node quadrature), plus the extrapolation spread; a plan whose panel
-slots or knot window do not hold the conditions reports an infinite error (``overflow``).
+slots or knot window do not hold the conditions, or whose breakpoints and knot tables do not
+resolve a condition's window (a plan reused at another T or μ, :func:`_covered`), reports an
+infinite error (``overflow``).
 """
 from __future__ import annotations
 
@@ -78,8 +80,9 @@ RESOLUTIONS = ((24, 5, 3.0, 6.0, 2.0), (48, 6, 2.5, 8.0, 1.0), (64, 8, 2.0, 12.0
 class RayPlan:
     """Static shape of one ray integration: ``angles`` rays per centre, ``nodes`` Gauss nodes per
     panel, ``levels`` energy breakpoints (padded), ``slots`` crossing panels kept per ray,
-    ``knots`` per table, ``tables`` knot tables (spacings δ_0·2^r), ``rho``, ``t_res`` (K) and
-    whether some condition is colder than ``t_res`` (``extrapolate``)."""
+    ``knots`` per table, ``tables`` knot tables (spacings δ_0·2^r), ``rho``, ``t_res`` (K),
+    whether some condition is colder than ``t_res`` (``extrapolate``) and the breakpoint spacing
+    ``spacing`` (c, in units of a condition's k_BT; inf: unchecked)."""
 
     angles: int
     nodes: int
@@ -90,6 +93,7 @@ class RayPlan:
     rho: float
     t_res: float
     extrapolate: bool = False
+    spacing: float = float("inf")
 
     @property
     def panels(self) -> int:
@@ -206,7 +210,7 @@ def make_plan(model: BandModel, params, mu, kt, resolution: int, slots: int | No
         slots = slot_count(found, margin)
     slots = min(slots, 2 * model.n_bands * nlev)
     cold = bool(np.any(np.asarray(kt) < KB * t_res))
-    return RayPlan(angles, nodes, nlev, slots, knots, tables, rho, t_res, cold), grid
+    return RayPlan(angles, nodes, nlev, slots, knots, tables, rho, t_res, cold, c), grid
 
 
 # --------------------------------------------------------------------------------------------
@@ -458,6 +462,33 @@ def _knot_windows(plan, grid, mu, kt_occ):
     return r, delta, start
 
 
+#: slack of :func:`_covered` for a plan reused at other conditions (a finite-difference step in T
+#: or μ, a fit): knots per k_BT down to ρ/√2, breakpoint gaps up to this factor × the plan's spacing
+REUSE_SLACK = 1.5
+
+
+def _covered(plan, grid, mu, kt_occ):
+    """(P,) whether the plan resolves each condition (μ, k_BT) (a plan reused at other conditions,
+    under ``jax.grad`` or in a fit, may not): a knot table with at least ρ/√2 knots per k_BT and
+    none finer than the window holds, and energy breakpoints over μ ± W k_BT (where the occupations
+    start to taper) no farther apart than ``REUSE_SLACK``·c·k_BT.  A plan's own conditions always
+    pass (:func:`breakpoints`: every gap that reaches a window is at most c times its k_BT)."""
+    kt_s = jax.lax.stop_gradient(kt_occ)
+    m = jax.lax.stop_gradient(mu)
+    x = jnp.log2(kt_s / (plan.rho * jax.lax.stop_gradient(grid.delta)))
+    table_ok = (x >= -0.5) & (x < plan.tables)
+    bps = jax.lax.stop_gradient(grid.breakpoints)
+    real = bps < 0.5 * PAD_ENERGY
+    first, last = bps[0], jnp.max(jnp.where(real, bps, -jnp.inf))
+    lo, hi = m - W * kt_s, m + W * kt_s
+    inside = (lo >= first) & (hi <= last)
+    a, b = bps[:-1], bps[1:]
+    tol = 1e-6 * kt_s[:, None]
+    reach = (b[None, :] > lo[:, None] + tol) & (a[None, :] < hi[:, None] - tol) & real[None, 1:]
+    gap = jnp.max(jnp.where(reach, (b - a)[None, :], 0.0), axis=1)
+    return table_ok & inside & (gap <= REUSE_SLACK * plan.spacing * kt_s)
+
+
 def _shared_span(plan):
     """Knots of a window shared by a chunk of conditions: a condition's own window plus a quarter
     of it for the spread of the conditions' windows (sorted neighbours in a sweep)."""
@@ -501,7 +532,7 @@ def _sums_at(tabs, plan, grid, layout, mu, kt_occ, temp, tau_eval, tau_arr, omeg
     Q, U = _window(plan), _shared_span(plan)
     e_lo = jax.lax.stop_gradient(grid.e_lo)
     r, delta, start = _knot_windows(plan, grid, mu, kt_occ)
-    fits = (start >= 1) & (start + Q <= M - 3)
+    fits = (start >= 1) & (start + Q <= M - 3) & _covered(plan, grid, mu, kt_occ)
     csum = jnp.concatenate([jnp.zeros((R, 1, tables.shape[-1])), jnp.cumsum(tables, axis=1)], axis=1)
     rest = (layout, mu, kt_occ, temp, tau_eval, tau_arr, omega, sea)
 

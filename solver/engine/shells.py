@@ -153,7 +153,7 @@ def _energy_plan(mu, kt, resolution):
     grid = _rays.RayGrid(jnp.asarray(np.concatenate([bps, np.full(nlev - len(bps), _rays.PAD_ENERGY)])),
                          jnp.asarray(e_lo), jnp.asarray(delta))
     cold = bool(np.any(np.asarray(kt) < KB * t_res))
-    return _rays.RayPlan(angles, nodes, nlev, 1, knots, tables, rho, t_res, cold), grid
+    return _rays.RayPlan(angles, nodes, nlev, 1, knots, tables, rho, t_res, cold, c), grid
 
 
 def make_plan(model: BandModel, params, mu, kt, resolution: int, slots: int | None = None,
