@@ -5,6 +5,7 @@ import jax.numpy as jnp
 import numpy as np
 import pytest
 from scipy import constants as C
+from scipy.integrate import quad
 
 from crosswind.models import build
 from crosswind.solver import response
@@ -138,7 +139,7 @@ def test_too_few_crossing_slots_is_overflow_and_a_concrete_call_reruns():
     m = build("massive-dirac", **TILTED)
     mu, kt = jnp.array([0.15]), thermal_energy(jnp.array([10.0]))
     plan, grid = rays.make_plan(m, m.params, np.asarray(mu), np.asarray(kt), 1, slots=4)
-    _, _, over = _rays_at(m, grid, mu, kt, jnp.array([10.0]), {"tau0": jnp.array([100.0])},
+    _, _, over, _ = _rays_at(m, grid, mu, kt, jnp.array([10.0]), {"tau0": jnp.array([100.0])},
                           jnp.asarray(0.0), plan=plan, tau_eval=ConstantTau.evaluate, filled=0, sea=False)
     assert bool(over)
     r = response(m, mu=0.15, temperature=10.0, tau=100.0, resolution=1, plan=(plan, grid))
@@ -208,7 +209,7 @@ def test_shared_slice_knot_sums_equal_per_condition_windows():
                              {"tau0": tau["tau0"][sl]}, None, False)
 
     assert P >= rays.SHARED_MIN
-    shared, fits = sums(slice(None))
+    shared, fits, _ = sums(slice(None))
     assert bool(jnp.all(fits))
     own = [sums(slice(i, i + 8))[0] for i in range(0, P, 8)]
     for field in ("density", "dos", "drude", "dipole", "ahe", "bcp", "drude2_2w", "thermo2", "nernst"):
@@ -295,3 +296,36 @@ def test_a_reused_plan_flags_conditions_it_does_not_resolve():
     for plan, mu, T in ((p10, 0.2, 40.0), (p50, 0.2, 4.0)):
         fresh = response(m, mu=mu, temperature=T, tau=100.0, resolution=0, engine="rays")
         assert abs(float(at(plan, mu, T)[0]) / float(fresh.dos) - 1) > 0.1
+
+
+def _activated_density(mu, T, mass, velocity):
+    """n(μ, T) of one massive Dirac cone (g(ε) = |ε|/(2πħ²v²) for |ε| > Δ, relative to
+    neutrality), m⁻²: electrons above Δ minus holes below −Δ, by scipy quadrature over ±60 k_BT of
+    each edge (weight beyond: e^-60)."""
+    kt = C.k / C.e * T
+    hv = velocity * C.hbar / C.e * 1e10                                      # eV Å
+    occ = lambda e, m: e / (1.0 + np.exp((e - m) / kt))
+    ne = quad(occ, mass, mass + 60 * kt, args=(mu,), epsabs=0.0, epsrel=1e-12, limit=200)[0]
+    nh = quad(occ, mass, mass + 60 * kt, args=(-mu,), epsabs=0.0, epsrel=1e-12, limit=200)[0]
+    return (ne - nh) / (2 * np.pi * hv ** 2) * 1e20
+
+
+def test_mu_in_a_gap_reports_the_window_truncation():
+    """μ in the gap of a massive Dirac cone (Δ = 0.1 eV) at 50 K, x = 9, 14 and 19 k_BT below the
+    band edge: the thermally activated sums lose about e^{−(W − x)} of themselves beyond the window
+    μ ± W k_BT (W = 20), at every resolution.  The error must bound the true error of the density
+    (against scipy quadrature of ∫ g f0) and the call must not claim convergence where the loss
+    exceeds rtol, nor refine in vain.  Before the tail term the estimate was 9e-6 of the density
+    against a true error of 1.2e-3 at x = 14, and the call said converged."""
+    mass, velocity, T = 0.1, 5e5, 50.0
+    m = build("massive-dirac", velocity=velocity, mass=mass)
+    kt = C.k / C.e * T
+    for x, converged in ((9.3, True), (13.9, False), (18.6, False)):
+        mu = mass - x * kt
+        r = response(m, mu=mu, temperature=T, tau=100.0, rtol=1e-3)
+        info = _info(r)
+        ref = _activated_density(mu, T, mass, velocity)
+        assert abs(float(r.density) - ref) <= float(r.error.density), (x, float(r.density) / ref - 1)
+        assert info.converged is converged, x
+        assert info.level == 1, x                       # the truncation does not fall with resolution
+    assert abs(float(r.density) / ref - 1) > 0.05       # x = 18.6: the loss is real (about 11 %)

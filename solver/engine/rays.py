@@ -496,9 +496,32 @@ def _shared_span(plan):
     return Q + Q // 4
 
 
+#: safety factor of :func:`tail_fraction` (the bound holds with about a factor 2 to spare for a
+#: band edge in a gap, measured on a massive Dirac cone; the factor covers the (ε − μ)² weight of the
+#: thermal conductivity's sums)
+TAIL_SAFETY = 4.0
+
+
+def tail_fraction(states, E, mu, kt):
+    """(P,) bound on the fraction of a condition's window sums lost beyond the window μ ± W k_BT:
+    TAIL_SAFETY·e^{−(W − x)}, with x k_BT the distance from μ to the nearest knot that holds states
+    (``states`` (P, Q) or (Q,), nonzero there; knot energies ``E`` (P, Q)); 1 when none is within
+    reach.  With μ inside a band x ≈ 0 and the bound is e^{−W}-small; with μ in a gap at x k_BT from
+    a band edge the thermally activated sums decay as e^{−x} from the edge, and the part beyond the
+    window is e^{−(W − x)} of them (μ 14 k_BT below the edge of a massive Dirac cone lost 1.2e-3 of
+    its density, which the estimate of 9e-6 had missed; docs/theory.md §14.3)."""
+    E, mu, kt = (jax.lax.stop_gradient(a) for a in (E, mu, kt))
+    x = jnp.abs(E - mu[:, None]) / kt[:, None]
+    near = jnp.min(jnp.where(jnp.broadcast_to(states != 0, x.shape), x, jnp.inf), axis=1)
+    return jnp.minimum(1.0, TAIL_SAFETY * jnp.exp(jnp.minimum(near, 2 * W) - W))
+
+
 def _window_moments(vals, E, pre, post, layout, mu, kt_occ, temp, tau_eval, tau_arr, omega, sea):
     """Moments from knot values ``vals`` ((P, Q, nc), or (Q, nc) shared by all conditions), knot
-    energies ``E`` (P, Q), and the table sums below (``pre``) and above (``post``) the knots (P, nc)."""
+    energies ``E`` (P, Q), and the table sums below (``pre``) and above (``post``) the knots (P, nc);
+    and the :func:`tail_fraction` of each condition."""
+    states = jnp.abs(_cols(vals, layout, "one")) + jnp.abs(_cols(vals, layout, "hole_one"))
+    tail = tail_fraction(states, E, mu, kt_occ)
     occ = _tapered(_occupations(E, mu, kt_occ), E, mu, kt_occ)
     out = _kernel_sums(vals, occ, E, mu, temp, tau_eval, tau_arr, omega, layout, sea)
     f0 = occ["f0"]
@@ -514,12 +537,13 @@ def _window_moments(vals, E, pre, post, layout, mu, kt_occ, temp, tau_eval, tau_
         hole = _cols(vals, layout, "hole_dom")
         new["dipole_sea"] = (knot_contract(f0, _cols(vals, layout, "dom")) + _cols(pre, layout, "dom")
                              - knot_contract(1.0 - f0, hole) - _cols(post, layout, "hole_dom"))
-    return dataclasses.replace(out, **new)
+    return dataclasses.replace(out, **new), tail
 
 
 def _sums_at(tabs, plan, grid, layout, mu, kt_occ, temp, tau_eval, tau_arr, omega, sea):
     """Kernel sums (:class:`~crosswind.solver.engine.kernels.Moments`) for conditions (P,) at
-    occupation temperatures ``kt_occ`` (P,), and whether each condition's window fits the tables.
+    occupation temperatures ``kt_occ`` (P,), whether each condition's window fits the tables, and
+    each condition's :func:`tail_fraction`.
 
     Each condition sums the knots of its own window (Q knots gathered per condition); when all
     conditions of the chunk read the same table and their windows lie within
@@ -561,8 +585,10 @@ def _sums_at(tabs, plan, grid, layout, mu, kt_occ, temp, tau_eval, tau_arr, omeg
 
     can_share = jnp.all(r == r0) & (jnp.max(start) + Q <= s0 + U) & (s0 >= 0) & (s0 + U <= M)
     if U > M or mu.shape[0] < SHARED_MIN:
-        return own(None), fits
-    return jax.lax.cond(can_share, shared, own, None), fits
+        sums, tail = own(None)
+    else:
+        sums, tail = jax.lax.cond(can_share, shared, own, None)
+    return sums, fits, tail
 
 
 def _bshape(v, like):
@@ -571,20 +597,21 @@ def _bshape(v, like):
 
 def condition_sums(tabs, plan, grid, layout, mu, kt, temp, tau_eval, tau_arr, omega, sea):
     """Sums for conditions (P,), with the T² extrapolation below ``plan.t_res`` (only when the
-    plan has cold conditions, ``plan.extrapolate``).  Returns ``(sums, extrapolation_error, fits)``."""
+    plan has cold conditions, ``plan.extrapolate``).  Returns ``(sums, extrapolation_error, fits,
+    tail)``, ``tail`` the :func:`tail_fraction` at max(T, t_res)."""
     ktr = KB * plan.t_res
     args = (tabs, plan, grid, layout, mu)
     rest = (temp, tau_eval, tau_arr, omega, sea)
     k0 = jnp.maximum(kt, ktr)
-    s0, f0 = _sums_at(*args, k0, *rest)
+    s0, f0, tail = _sums_at(*args, k0, *rest)
     if not plan.extrapolate:
         # every condition of a plan without cold ones is resolved (traced values colder than
         # t_res would be evaluated at t_res: reported as overflow)
         zero = jax.tree_util.tree_map(lambda x: jnp.zeros(x.shape), s0)
-        return s0, zero, f0 & (kt >= ktr)
+        return s0, zero, f0 & (kt >= ktr), tail
     k1, k2 = jnp.maximum(kt, 2 * ktr), jnp.maximum(kt, 4 * ktr)
-    s1, f1 = _sums_at(*args, k1, *rest)
-    s2, f2 = _sums_at(*args, k2, *rest)
+    s1, f1, _ = _sums_at(*args, k1, *rest)
+    s2, f2, _ = _sums_at(*args, k2, *rest)
     cold = kt < ktr
 
     def ext(a, b, ka, kb):
@@ -595,14 +622,15 @@ def condition_sums(tabs, plan, grid, layout, mu, kt, temp, tau_eval, tau_arr, om
     e2 = ext(s1, s2, k1, k2)
     res = jax.tree_util.tree_map(lambda x, y: jnp.where(_bshape(cold, x), x, y), e1, s0)
     err = jax.tree_util.tree_map(lambda x, y: jnp.where(_bshape(cold, x), jnp.abs(x - y), 0.0), e1, e2)
-    return res, err, f0 & jnp.where(cold, f1 & f2, True)
+    return res, err, f0 & jnp.where(cold, f1 & f2, True), tail
 
 
 def ray_moments(model, params, plan: RayPlan, grid: RayGrid, mu, kt, temp, tau_eval, tau_arr, omega,
                 filled, sea, condition_chunk=128):
     """Kernel sums (natural units, degeneracy not applied) for P conditions from one ray set.
-    Returns ``(sums, extrapolation_error, overflow)``; ``sums`` and ``extrapolation_error`` are
-    :class:`~crosswind.solver.engine.kernels.Moments`."""
+    Returns ``(sums, extrapolation_error, overflow, tail)``; ``sums`` and ``extrapolation_error``
+    are :class:`~crosswind.solver.engine.kernels.Moments`, ``tail`` (P,) the
+    :func:`tail_fraction` of each condition."""
     if isinstance(model.domain, Lattice) or model.dim != 2:
         raise ValueError("rays: the shared ray rule integrates 2D continuum (k·p) models")
     tables, below, above, over, layout = build_tables(model, params, plan, grid, filled, sea)
@@ -627,5 +655,5 @@ def ray_moments(model, params, plan: RayPlan, grid: RayGrid, mu, kt, temp, tau_e
     out = jax.lax.map(one, jax.tree_util.tree_map(split, args))
     back = jnp.zeros_like(order).at[order].set(jnp.arange(P, dtype=order.dtype))
     out = jax.tree_util.tree_map(lambda x: x.reshape((nch * cc,) + x.shape[2:])[:P][back], out)
-    sums, err, fits = out
-    return sums, err, over | ~jnp.all(fits)
+    sums, err, fits, tail = out
+    return sums, err, over | ~jnp.all(fits), tail

@@ -769,10 +769,24 @@ def _shells_at(model, grid, mu, kt, temp, tau_arr, omega, *, plan, tau_eval, fil
                                  filled, sea)
 
 
+def _tail_errors(fine: Response, tail) -> Response:
+    """The window-truncation part of the error (:func:`crosswind.solver.engine.rays.tail_fraction`
+    ``tail`` (P,) times each field): the anomalous Hall conductivity, a Fermi-sea sum of the filled
+    bands, gets none (σ takes its Drude part's); the ratios (Hall coefficient, Seebeck, Lorenz)
+    twice the fraction (both of their sums lose a tail); non-finite ratios none."""
+    b = lambda x: tail.reshape(tail.shape + (1,) * (x.ndim - 1))
+    part = lambda x: jnp.where(jnp.isfinite(x), b(x) * jnp.abs(x), 0.0)
+    err = jax.tree_util.tree_map(part, fine)
+    ratios = {k: 2.0 * getattr(err, k) for k in ("hall_coefficient", "seebeck", "lorenz")}
+    return dataclasses.replace(err, sigma=part(fine.sigma_drude),
+                               sigma_anomalous=jnp.zeros(fine.sigma_anomalous.shape), **ratios)
+
+
 @partial(jax.jit, static_argnames=("intrinsic",))
-def _energy_errors(f, ex, coarse, over, model, temp, intrinsic):
+def _energy_errors(f, ex, coarse, over, tail, model, temp, intrinsic):
     """SI fields of the sums ``f`` and their error: |fine − coarse| (NaN without a coarser run)
-    plus the spread of the T² extrapolation ``ex``; inf where a plan overflowed."""
+    plus the spread of the T² extrapolation ``ex`` and the window truncation (:func:`_tail_errors`
+    of ``tail``); inf where a plan overflowed.  Returns ``(fine, error, error less the truncation)``."""
     fine = _to_si(f, model, temp, intrinsic)
     shifted = _to_si(jax.tree_util.tree_map(lambda a, b: a + b.astype(a.dtype), f, ex), model, temp, intrinsic)
     spread = _field_errors(shifted, fine)
@@ -780,7 +794,8 @@ def _energy_errors(f, ex, coarse, over, model, temp, intrinsic):
         diff = jax.tree_util.tree_map(lambda a: jnp.full(a.shape, jnp.nan), spread)
     else:
         diff = _field_errors(fine, _to_si(coarse, model, temp, intrinsic))
-    return fine, jax.tree_util.tree_map(lambda u, v: jnp.where(over, jnp.inf, u + v), diff, spread)
+    resolvable = jax.tree_util.tree_map(lambda u, v: jnp.where(over, jnp.inf, u + v), diff, spread)
+    return fine, jax.tree_util.tree_map(jnp.add, resolvable, _tail_errors(fine, tail)), resolvable
 
 
 def _run_rays(model, mu, kt, temp, tau_arr, omega, res, kw, plan, traced, eng=_rays):
@@ -794,14 +809,14 @@ def _run_rays(model, mu, kt, temp, tau_arr, omega, res, kw, plan, traced, eng=_r
     tried = []
     for _ in range(3):
         tried.append(plan)
-        sums, ex, over = at(model, plan[1], mu, kt, temp, tau_arr, omega, plan=plan[0], **kw)
+        sums, ex, over, tail = at(model, plan[1], mu, kt, temp, tau_arr, omega, plan=plan[0], **kw)
         if traced or not bool(over):
             break
         counted = eng.make_plan(model, model.params, np.asarray(mu), np.asarray(kt), res, margin=1.0)
         plan = (counted if counted[0].slots > plan[0].slots else
                 eng.make_plan(model, model.params, np.asarray(mu), np.asarray(kt), res,
                                 slots=2 * plan[0].slots))
-    return sums, ex, over, tried
+    return sums, (ex, tail), over, tried
 
 
 def _rays_path(model, muf, kt, Tf, tauf, omega, kw, rtol, resolution, max_level, intrinsic, plan,
@@ -833,12 +848,12 @@ def _rays_path(model, muf, kt, Tf, tauf, omega, kw, rtol, resolution, max_level,
         return runs[lev]
 
     def errors(lev):
-        f, ex, over, _ = runs[lev]
+        f, (ex, tail), over, _ = runs[lev]
         c = None
         if lev - 1 in runs:
             c, _, over_c, _ = runs[lev - 1]
             over = over | over_c
-        return _energy_errors(f, ex, c, over, model, Tf, intrinsic)
+        return _energy_errors(f, ex, c, over, tail, model, Tf, intrinsic)
 
     bad = None
     if resolution is None:
@@ -847,9 +862,11 @@ def _rays_path(model, muf, kt, Tf, tauf, omega, kw, rtol, resolution, max_level,
         lev = 1
         run(1)
         while True:
-            fine, err = errors(lev)
+            fine, err, resolvable = errors(lev)
             bad = _converged(fine, err, runs[lev][0], rtol, model, tau_max)
-            if not bad or lev >= top:
+            # the window truncation (μ in a gap near a band edge) is the same at every resolution:
+            # refine only while the rest of the error is above the tolerance
+            if not bad or lev >= top or not _converged(fine, resolvable, runs[lev][0], rtol, model, tau_max):
                 break
             lev += 1
             run(lev)
@@ -860,7 +877,7 @@ def _rays_path(model, muf, kt, Tf, tauf, omega, kw, rtol, resolution, max_level,
         run(lev, plan)
         if lev > 0 and estimate_error and not traced:
             run(lev - 1)
-        fine, err = errors(lev)
+        fine, err, _ = errors(lev)
     info = {"engine": name, "level": lev, "plan": runs[lev][3], "attempts": attempts[lev],
             "k_points": int(k_points)}
     return fine, err, bad, info

@@ -286,7 +286,7 @@ def build_tables(model, params, plan: ShellPlan, grid, filled, chunk=2048):
 def shell_moments(model, params, plan: ShellPlan, grid, mu, kt, temp, tau_eval, tau_arr, omega,
                   filled, sea=False, condition_chunk=128):
     """Kernel sums (natural units, degeneracy not applied) for P conditions from one shell set.
-    Returns ``(sums, extrapolation_error, overflow)`` as :func:`crosswind.solver.engine.rays.ray_moments`."""
+    Returns ``(sums, extrapolation_error, overflow, tail)`` as :func:`crosswind.solver.engine.rays.ray_moments`."""
     _check(model)
     if sea:
         raise ValueError("shells: the Fermi-sea dipole misses the monopole δ-function at each Weyl node "
@@ -295,10 +295,9 @@ def shell_moments(model, params, plan: ShellPlan, grid, mu, kt, temp, tau_eval, 
 
     def one(a):
         m, k, t, ta = a
-        s, e, fits = _rays.condition_sums(tabs, plan.energy, grid, layout, m[None], k[None], t[None],
-                                          tau_eval, jax.tree_util.tree_map(lambda v: v[None], ta), omega,
-                                          False)
-        return jax.tree_util.tree_map(lambda v: v[0], (s, e, fits))
+        out = _rays.condition_sums(tabs, plan.energy, grid, layout, m[None], k[None], t[None],
+                                   tau_eval, jax.tree_util.tree_map(lambda v: v[None], ta), omega, False)
+        return jax.tree_util.tree_map(lambda v: v[0], out)
 
-    sums, err, fits = jax.lax.map(one, (mu, kt, temp, tau_arr), batch_size=min(condition_chunk, mu.shape[0]))
-    return sums, err, over | ~jnp.all(fits)
+    sums, err, fits, tail = jax.lax.map(one, (mu, kt, temp, tau_arr), batch_size=min(condition_chunk, mu.shape[0]))
+    return sums, err, over | ~jnp.all(fits), tail
