@@ -329,3 +329,23 @@ def test_mu_in_a_gap_reports_the_window_truncation():
         assert info.converged is converged, x
         assert info.level == 1, x                       # the truncation does not fall with resolution
     assert abs(float(r.density) / ref - 1) > 0.05       # x = 18.6: the loss is real (about 11 %)
+
+
+def test_t0_extrapolation_next_to_a_band_edge_is_bounded():
+    """Below t_res the sums are extrapolated in T² (Sommerfeld); a step of the density of states
+    within a few k_B·t_res of μ breaks that law, and the spread of two extrapolations cannot see it
+    (both scales smear the step alike).  Massive Dirac cone at T = 0, fixed resolution 1 (t_res =
+    1 K): the DOS against its closed form |μ|/(2πħ²v²) above the gap, 0 inside, must lie within
+    the error (before the band-edge term: value 3.8e35 against 0 with an error of 8.0e34); far
+    from the edge the estimate stays as tight as before (a few per cent)."""
+    mass, velocity = 0.1, 5e5
+    m = build("massive-dirac", velocity=velocity, mass=mass)
+    kr = C.k / C.e * 1.0
+    hv = velocity * C.hbar / C.e * 1e10
+    xs = np.array([-0.3, 0.3, 1.0, 12.0])
+    r = response(m, mu=mass + xs * kr, temperature=0.0, tau=100.0, resolution=1, engine="rays")
+    for i, x in enumerate(xs):
+        mu = mass + x * kr
+        ref = (abs(mu) / (2 * np.pi * hv ** 2) if abs(mu) > mass else 0.0) * 1e20 / C.e
+        assert abs(float(r.dos[i]) - ref) <= float(r.error.dos[i]), x
+    assert float(r.error.dos[-1]) < 0.05 * ref

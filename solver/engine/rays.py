@@ -516,12 +516,29 @@ def tail_fraction(states, E, mu, kt):
     return jnp.minimum(1.0, TAIL_SAFETY * jnp.exp(jnp.minimum(near, 2 * W) - W))
 
 
-def _window_moments(vals, E, pre, post, layout, mu, kt_occ, temp, tau_eval, tau_arr, omega, sea):
+def edge_distance(states, E, mu, kt, reach):
+    """(P,) a lower bound on the distance from μ to the nearest band edge within the window, in
+    units of ``kt`` (inf if there is none).  The nodes of a ray sit some tenths of k_BT apart in
+    energy, finer than the knots, so single knots between them hold nothing: a knot counts as
+    holding states when one within ``reach`` knots does, which moves an edge by up to ``reach``
+    knots towards its empty side; that many knot spacings are taken off the distance."""
+    E, mu, kt = (jax.lax.stop_gradient(a) for a in (E, mu, kt))
+    s = jnp.broadcast_to(states != 0, E.shape).astype(jnp.int32)
+    c = jnp.pad(jnp.cumsum(s, axis=1), ((0, 0), (reach + 1, reach)), mode="edge").at[:, :reach + 1].set(0)
+    n = E.shape[1]
+    held = (c[:, 2 * reach + 1:2 * reach + 1 + n] - c[:, :n]) > 0        # any within ±reach knots
+    edge = held[:, 1:] != held[:, :-1]
+    x = jnp.abs(0.5 * (E[:, 1:] + E[:, :-1]) - mu[:, None]) / kt[:, None]
+    shift = reach * (E[:, 1] - E[:, 0]) / kt
+    return jnp.maximum(jnp.min(jnp.where(edge, x, jnp.inf), axis=1) - shift, 0.0)
+
+
+def _window_moments(vals, E, pre, post, reach, layout, mu, kt_occ, temp, tau_eval, tau_arr, omega, sea):
     """Moments from knot values ``vals`` ((P, Q, nc), or (Q, nc) shared by all conditions), knot
     energies ``E`` (P, Q), and the table sums below (``pre``) and above (``post``) the knots (P, nc);
-    and the :func:`tail_fraction` of each condition."""
+    and, per condition, the :func:`tail_fraction` and the :func:`edge_distance` (``reach`` knots)."""
     states = jnp.abs(_cols(vals, layout, "one")) + jnp.abs(_cols(vals, layout, "hole_one"))
-    tail = tail_fraction(states, E, mu, kt_occ)
+    tail = tail_fraction(states, E, mu, kt_occ), edge_distance(states, E, mu, kt_occ, reach)
     occ = _tapered(_occupations(E, mu, kt_occ), E, mu, kt_occ)
     out = _kernel_sums(vals, occ, E, mu, temp, tau_eval, tau_arr, omega, layout, sea)
     f0 = occ["f0"]
@@ -543,7 +560,7 @@ def _window_moments(vals, E, pre, post, layout, mu, kt_occ, temp, tau_eval, tau_
 def _sums_at(tabs, plan, grid, layout, mu, kt_occ, temp, tau_eval, tau_arr, omega, sea):
     """Kernel sums (:class:`~crosswind.solver.engine.kernels.Moments`) for conditions (P,) at
     occupation temperatures ``kt_occ`` (P,), whether each condition's window fits the tables, and
-    each condition's :func:`tail_fraction`.
+    each condition's (:func:`tail_fraction`, :func:`edge_distance`).
 
     Each condition sums the knots of its own window (Q knots gathered per condition); when all
     conditions of the chunk read the same table and their windows lie within
@@ -558,6 +575,9 @@ def _sums_at(tabs, plan, grid, layout, mu, kt_occ, temp, tau_eval, tau_arr, omeg
     r, delta, start = _knot_windows(plan, grid, mu, kt_occ)
     fits = (start >= 1) & (start + Q <= M - 3) & _covered(plan, grid, mu, kt_occ)
     csum = jnp.concatenate([jnp.zeros((R, 1, tables.shape[-1])), jnp.cumsum(tables, axis=1)], axis=1)
+    # the nodes of a ray lie at most about one k_BT apart in energy inside the window (panels of
+    # c ≤ 3 k_BT with 5 or more Gauss nodes), i.e. 2ρ knots of the finest table a condition reads
+    reach = int(2 * plan.rho) + 2
     rest = (layout, mu, kt_occ, temp, tau_eval, tau_arr, omega, sea)
 
     def below_above(rr, lo, hi):
@@ -569,7 +589,7 @@ def _sums_at(tabs, plan, grid, layout, mu, kt_occ, temp, tau_eval, tau_arr, omeg
         j = start[:, None] + jnp.arange(Q, dtype=jnp.int32)[None, :]
         vals = tables[r[:, None], jnp.clip(j, 0, M - 1)]                      # (P, Q, nc)
         E = e_lo + j.astype(jnp.float64) * delta[:, None]
-        return _window_moments(vals, E, *below_above(r, start, start + Q), *rest)
+        return _window_moments(vals, E, *below_above(r, start, start + Q), reach, *rest)
 
     s0 = jnp.min(start)
     r0 = r[0]
@@ -581,7 +601,7 @@ def _sums_at(tabs, plan, grid, layout, mu, kt_occ, temp, tau_eval, tau_arr, omeg
         E = jnp.broadcast_to(e_lo + j.astype(jnp.float64) * delta[0], (mu.shape[0], U))
         rr = jnp.full_like(r, r0)
         return _window_moments(vals, E, *below_above(rr, jnp.full_like(start, s), jnp.full_like(start, s + U)),
-                               *rest)
+                               reach, *rest)
 
     can_share = jnp.all(r == r0) & (jnp.max(start) + Q <= s0 + U) & (s0 >= 0) & (s0 + U <= M)
     if U > M or mu.shape[0] < SHARED_MIN:
@@ -589,6 +609,13 @@ def _sums_at(tabs, plan, grid, layout, mu, kt_occ, temp, tau_eval, tau_arr, omeg
     else:
         sums, tail = jax.lax.cond(can_share, shared, own, None)
     return sums, fits, tail
+
+
+#: factor of the band-edge term of the T² extrapolation's error (:func:`condition_sums`), and the
+#: Fermi-surface sums (weighted by −∂f0/∂ε or the entropy) it applies to
+EDGE_SAFETY = 2.0
+SURFACE_SUMS = ("dos", "drude", "dipole", "dipole_tau", "drude2_2w", "drude2_0", "bcp", "lorentz", "thermo1",
+                "thermo2", "drude0", "nernst")
 
 
 def _bshape(v, like):
@@ -603,7 +630,7 @@ def condition_sums(tabs, plan, grid, layout, mu, kt, temp, tau_eval, tau_arr, om
     args = (tabs, plan, grid, layout, mu)
     rest = (temp, tau_eval, tau_arr, omega, sea)
     k0 = jnp.maximum(kt, ktr)
-    s0, f0, tail = _sums_at(*args, k0, *rest)
+    s0, f0, (tail, edge) = _sums_at(*args, k0, *rest)
     if not plan.extrapolate:
         # every condition of a plan without cold ones is resolved (traced values colder than
         # t_res would be evaluated at t_res: reported as overflow)
@@ -622,6 +649,17 @@ def condition_sums(tabs, plan, grid, layout, mu, kt, temp, tau_eval, tau_arr, om
     e2 = ext(s1, s2, k1, k2)
     res = jax.tree_util.tree_map(lambda x, y: jnp.where(_bshape(cold, x), x, y), e1, s0)
     err = jax.tree_util.tree_map(lambda x, y: jnp.where(_bshape(cold, x), jnp.abs(x - y), 0.0), e1, e2)
+    # a band edge x·k_BT_res from μ breaks the T² law of the Fermi-surface sums below t_res (their
+    # step at the edge is smeared alike at t_res, 2t_res and 4t_res, so the two extrapolations agree
+    # on a wrong value): EDGE_SAFETY·e^{−x} of the larger of the extrapolated and the t_res value is
+    # added (the Fermi-sea sums — density, Hall — are continuous at an edge and keep the spread)
+    near = EDGE_SAFETY * jnp.exp(-jnp.minimum(edge, 50.0))
+
+    def step(name):
+        x, s, e = getattr(e1, name), getattr(s0, name), getattr(err, name)
+        return e + jnp.where(_bshape(cold, e), _bshape(near, e) * jnp.maximum(jnp.abs(x), jnp.abs(s)), 0.0)
+
+    err = dataclasses.replace(err, **{name: step(name) for name in SURFACE_SUMS})
     return res, err, f0 & jnp.where(cold, f1 & f2, True), tail
 
 
