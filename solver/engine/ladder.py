@@ -668,11 +668,62 @@ def _level_part(levels, info, plan, lv, which, mu, k_hi, k_lo, temp, tau_eval, t
                        tau_eval, tau_arr, omega, info["layout"], sea, rho, False, 0.0)
 
 
-def _extrapolated(total, partial, kt, ktl, L):
+def edge_distance(states, E, mu, kt, reach):
+    """(P,) a lower bound on the distance from μ to the nearest band edge within the window, in
+    units of ``kt`` (inf if there is none).  The nodes of a ray sit some tenths of k_BT apart in
+    energy, finer than the knots, so single knots between them hold nothing: a knot counts as
+    holding states when one within ``reach`` knots does, which moves an edge by up to ``reach``
+    knots towards its empty side; that many knot spacings are taken off the distance.  (Used by the
+    T² extrapolation's error here and in :mod:`crosswind.solver.engine.rays`.)"""
+    E, mu, kt = (jax.lax.stop_gradient(a) for a in (E, mu, kt))
+    s = jnp.broadcast_to(states != 0, E.shape).astype(jnp.int32)
+    c = jnp.pad(jnp.cumsum(s, axis=1), ((0, 0), (reach + 1, reach)), mode="edge").at[:, :reach + 1].set(0)
+    n = E.shape[1]
+    held = (c[:, 2 * reach + 1:2 * reach + 1 + n] - c[:, :n]) > 0        # any within ±reach knots
+    edge = held[:, 1:] != held[:, :-1]
+    x = jnp.abs(0.5 * (E[:, 1:] + E[:, :-1]) - mu[:, None]) / kt[:, None]
+    shift = reach * (E[:, 1] - E[:, 0]) / kt
+    return jnp.maximum(jnp.min(jnp.where(edge, x, jnp.inf), axis=1) - shift, 0.0)
+
+
+#: factor of the band-edge term of the T² extrapolation's error (:func:`_extrapolated`,
+#: :func:`crosswind.solver.engine.rays.condition_sums`) and the distance (in k_BT of the deepest
+#: level) within which an edge is looked for: beyond it the term is below 2e-5 of the value
+EDGE_SAFETY = 2.0
+EDGE_SEARCH = 12.0
+
+
+def deepest_edges(levels, info, plan, mu):
+    """(P,) :func:`edge_distance` from each μ to the nearest band edge, in units of the deepest
+    level's k_BT_L, read from the states ("one" column) of that level's fine table within
+    ``EDGE_SEARCH`` k_BT_L of μ (inf if none); that table resolves every state near μ on knots of
+    k_BT_L/ρ, so an edge is placed within two knots."""
+    L = plan.levels
+    lev = levels[L]
+    table = lev["fine"][0]
+    M = table.shape[0]
+    rho = lev.get("rho", plan.rho)
+    ktl = jax.lax.stop_gradient(info["kt_ladder"][L])
+    delta = jax.lax.stop_gradient(lev["delta"])
+    e_lo = jax.lax.stop_gradient(lev["e_lo"])
+    half = int(np.ceil(EDGE_SEARCH * rho)) + 4
+    m = jax.lax.stop_gradient(mu)
+    j = jnp.floor((m - e_lo) / delta).astype(jnp.int32)[:, None] + jnp.arange(-half, half + 1, dtype=jnp.int32)[None, :]
+    one = table[jnp.clip(j, 0, M - 1), info["layout"]["one"].start]
+    states = jnp.where((j >= 0) & (j < M), one, 0.0)
+    E = e_lo + j.astype(jnp.float64) * delta
+    return edge_distance(states, E, m, jnp.full(m.shape, ktl), 2)
+
+
+def _extrapolated(total, partial, kt, ktl, L, edge=None):
     """The sums returned for conditions (P,) with running totals ``partial[l]`` over levels 0..l
     (each the full result at k_BT_l for a condition colder than it) and final ``total``: below the
     deepest level, X(T) = X0 + a T² from the partial sums at T_L and T_{L−1}, with the spread
-    against the same from T_{L−1} and T_{L−2} as its error.  Returns ``(sums, error)``."""
+    against the same from T_{L−1} and T_{L−2} as its error.  A band edge ``edge`` (P,) k_BT_L from μ
+    (:func:`deepest_edges`) breaks the T² law (a 2D step of the density of states gives
+    X(T) − X(0) ∝ k_BT ln(1 + e^{−d/k_BT}), and the two extrapolations agree on a wrong value): the
+    error then also gets EDGE_SAFETY·e^{−x} of the larger of the extrapolated and the T_L value,
+    for every field (the density's step is a kink, smaller still).  Returns ``(sums, error)``."""
     below = kt < ktl[L]
     tL, t1 = ktl[L], ktl[L - 1] if L >= 1 else ktl[L]
 
@@ -687,6 +738,11 @@ def _extrapolated(total, partial, kt, ktl, L):
         sel = lambda x, y: jnp.where(_b(below, x), x, y)
         result = jax.tree_util.tree_map(sel, ext1, total)
         err = jax.tree_util.tree_map(lambda x, y: jnp.where(_b(below, x), jnp.abs(x - y), 0.0), ext1, ext2)
+        if edge is not None:
+            near = EDGE_SAFETY * jnp.exp(-jnp.minimum(edge, 50.0))
+            err = jax.tree_util.tree_map(
+                lambda e, x, y: e + jnp.where(_b(below, e), _b(near, e) * jnp.maximum(jnp.abs(x), jnp.abs(y)), 0.0),
+                err, ext1, partial[L])
     else:
         result = total
         err = jax.tree_util.tree_map(lambda x: jnp.where(_b(below, x), jnp.inf, 0.0), total)
@@ -718,7 +774,7 @@ def condition_sums(levels, info, plan: Plan, mu, kt, temp, tau_eval, tau_arr, om
                                 lambda t=total: jax.tree_util.tree_map(jnp.zeros_like, t))
         total = part if total is None else _tree_add(total, part)
         partial.append(total)
-    return _extrapolated(total, partial, kt, ktl, L)
+    return _extrapolated(total, partial, kt, ktl, L, deepest_edges(levels, info, plan, mu) if L >= 2 else None)
 
 
 def step_level(kt, ktl):
@@ -754,7 +810,7 @@ def step_sums(levels, info, plan: Plan, mu, kt, temp, tau_eval, tau_arr, omega, 
     return step
 
 
-def shared_totals(step, virtual, group, kt, ktl, L):
+def shared_totals(step, virtual, group, kt, ktl, L, edge=None):
     """:func:`condition_sums` of conditions (P,) from their own step terms ``step`` and the
     ladder-temperature terms ``virtual`` (L + 1, G, ...) of the (μ, τ) groups (``group`` (P,) each
     condition's row): the running totals over the levels before a condition's step, plus its step,
@@ -771,7 +827,7 @@ def shared_totals(step, virtual, group, kt, ktl, L):
     prior = jax.tree_util.tree_map(lambda x: jnp.where(_b(lp >= 1, x), x, 0.0), read(jnp.clip(lp - 1, 0, L)))
     total = _tree_add(prior, step)
     # below the deepest level every level is at ladder temperatures: total = the group's last total
-    return _extrapolated(total, {lv: read(lv) for lv in range(max(L - 2, 0), L + 1)}, kt, ktl, L)
+    return _extrapolated(total, {lv: read(lv) for lv in range(max(L - 2, 0), L + 1)}, kt, ktl, L, edge)
 
 
 def _b(v, like):
@@ -863,10 +919,11 @@ def moments_from_tables(levels, info, plan, mu, kt, temp, tau_eval, tau_arr, ome
         return out[0], out[1], out[2], info
     real = lambda x: x[:P]
     virtual = lambda x: x[P:].reshape((K, G) + x.shape[1:])
+    edge = deepest_edges(levels, info, plan, mu) if plan.levels >= 2 else None
     f, ef = shared_totals(jax.tree_util.tree_map(real, out[0]), jax.tree_util.tree_map(virtual, out[0]), group,
-                          kt, ktl, plan.levels)
+                          kt, ktl, plan.levels, edge)
     c, ec = shared_totals(jax.tree_util.tree_map(real, out[1]), jax.tree_util.tree_map(virtual, out[1]), group,
-                          kt, ktl, plan.levels)
+                          kt, ktl, plan.levels, edge)
     return f, c, jax.tree_util.tree_map(jnp.maximum, ef, ec), info
 
 
@@ -875,8 +932,8 @@ def moments_from_tables(levels, info, plan, mu, kt, temp, tau_eval, tau_arr, ome
 # --------------------------------------------------------------------------------------------
 
 #: per resolution index (K): conditions colder than this are extrapolated in T² from the deepest
-#: levels (the extrapolation's own error estimate tells when k_BT is not small against the
-#: distance of μ to a band edge; a higher resolution then goes colder)
+#: levels (when k_BT is not small against the distance of μ to a band edge, the extrapolation's
+#: error grows by the edge term of _extrapolated; a higher resolution then goes colder)
 T_DEEP = (16.0, 8.0, 4.0, 2.0, 1.0, 0.5)
 
 

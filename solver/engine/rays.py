@@ -52,12 +52,14 @@ from crosswind.models.band_model import BandModel
 from crosswind.models.domain import Lattice
 from crosswind.models.units import KB_EVK as KB
 from crosswind.solver.engine.ladder import (
+    EDGE_SAFETY,
     SHARED_MIN,
     Cols,
     _kernel_sums,
     _lagrange,
     _occupations,
     column_values,
+    edge_distance,
     factor_layout,
     knot_contract,
     point_factors,
@@ -516,23 +518,6 @@ def tail_fraction(states, E, mu, kt):
     return jnp.minimum(1.0, TAIL_SAFETY * jnp.exp(jnp.minimum(near, 2 * W) - W))
 
 
-def edge_distance(states, E, mu, kt, reach):
-    """(P,) a lower bound on the distance from μ to the nearest band edge within the window, in
-    units of ``kt`` (inf if there is none).  The nodes of a ray sit some tenths of k_BT apart in
-    energy, finer than the knots, so single knots between them hold nothing: a knot counts as
-    holding states when one within ``reach`` knots does, which moves an edge by up to ``reach``
-    knots towards its empty side; that many knot spacings are taken off the distance."""
-    E, mu, kt = (jax.lax.stop_gradient(a) for a in (E, mu, kt))
-    s = jnp.broadcast_to(states != 0, E.shape).astype(jnp.int32)
-    c = jnp.pad(jnp.cumsum(s, axis=1), ((0, 0), (reach + 1, reach)), mode="edge").at[:, :reach + 1].set(0)
-    n = E.shape[1]
-    held = (c[:, 2 * reach + 1:2 * reach + 1 + n] - c[:, :n]) > 0        # any within ±reach knots
-    edge = held[:, 1:] != held[:, :-1]
-    x = jnp.abs(0.5 * (E[:, 1:] + E[:, :-1]) - mu[:, None]) / kt[:, None]
-    shift = reach * (E[:, 1] - E[:, 0]) / kt
-    return jnp.maximum(jnp.min(jnp.where(edge, x, jnp.inf), axis=1) - shift, 0.0)
-
-
 def _window_moments(vals, E, pre, post, reach, layout, mu, kt_occ, temp, tau_eval, tau_arr, omega, sea):
     """Moments from knot values ``vals`` ((P, Q, nc), or (Q, nc) shared by all conditions), knot
     energies ``E`` (P, Q), and the table sums below (``pre``) and above (``post``) the knots (P, nc);
@@ -611,9 +596,8 @@ def _sums_at(tabs, plan, grid, layout, mu, kt_occ, temp, tau_eval, tau_arr, omeg
     return sums, fits, tail
 
 
-#: factor of the band-edge term of the T² extrapolation's error (:func:`condition_sums`), and the
-#: Fermi-surface sums (weighted by −∂f0/∂ε or the entropy) it applies to
-EDGE_SAFETY = 2.0
+#: the Fermi-surface sums (weighted by −∂f0/∂ε or the entropy) that get the band-edge term of the
+#: T² extrapolation's error (:func:`condition_sums`; ``ladder.EDGE_SAFETY``)
 SURFACE_SUMS = ("dos", "drude", "dipole", "dipole_tau", "drude2_2w", "drude2_0", "bcp", "lorentz", "thermo1",
                 "thermo2", "drude0", "nernst")
 
