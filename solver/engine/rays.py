@@ -523,7 +523,7 @@ def _window_moments(vals, E, pre, post, reach, layout, mu, kt_occ, temp, tau_eva
     energies ``E`` (P, Q), and the table sums below (``pre``) and above (``post``) the knots (P, nc);
     and, per condition, the :func:`tail_fraction` and the :func:`edge_distance` (``reach`` knots)."""
     states = jnp.abs(_cols(vals, layout, "one")) + jnp.abs(_cols(vals, layout, "hole_one"))
-    tail = tail_fraction(states, E, mu, kt_occ), edge_distance(states, E, mu, kt_occ, reach)
+    bounds = tail_fraction(states, E, mu, kt_occ), edge_distance(states, E, mu, kt_occ, reach)
     occ = _tapered(_occupations(E, mu, kt_occ), E, mu, kt_occ)
     out = _kernel_sums(vals, occ, E, mu, temp, tau_eval, tau_arr, omega, layout, sea)
     f0 = occ["f0"]
@@ -539,7 +539,7 @@ def _window_moments(vals, E, pre, post, reach, layout, mu, kt_occ, temp, tau_eva
         hole = _cols(vals, layout, "hole_dom")
         new["dipole_sea"] = (knot_contract(f0, _cols(vals, layout, "dom")) + _cols(pre, layout, "dom")
                              - knot_contract(1.0 - f0, hole) - _cols(post, layout, "hole_dom"))
-    return dataclasses.replace(out, **new), tail
+    return dataclasses.replace(out, **new), bounds
 
 
 def _sums_at(tabs, plan, grid, layout, mu, kt_occ, temp, tau_eval, tau_arr, omega, sea):
@@ -590,10 +590,10 @@ def _sums_at(tabs, plan, grid, layout, mu, kt_occ, temp, tau_eval, tau_arr, omeg
 
     can_share = jnp.all(r == r0) & (jnp.max(start) + Q <= s0 + U) & (s0 >= 0) & (s0 + U <= M)
     if U > M or mu.shape[0] < SHARED_MIN:
-        sums, tail = own(None)
+        sums, bounds = own(None)
     else:
-        sums, tail = jax.lax.cond(can_share, shared, own, None)
-    return sums, fits, tail
+        sums, bounds = jax.lax.cond(can_share, shared, own, None)
+    return sums, fits, bounds
 
 
 #: the Fermi-surface sums (weighted by −∂f0/∂ε or the entropy) that get the band-edge term of the
