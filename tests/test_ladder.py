@@ -302,22 +302,27 @@ def _random_sums_inputs(P, M, nc, seed=0):
     return table, below, mu, kt, tau
 
 
-@pytest.mark.parametrize("first", [True, False])
+@pytest.mark.parametrize("first", [True, False, "views"])
 def test_shared_slice_knot_sums_equal_per_condition_windows(first):
     """The matrix-product form over one shared table slice (chunks of ≥ SHARED_MIN conditions)
-    gives the sums of one gathered window per condition (small chunks), to rounding."""
+    gives the sums of one gathered window per condition (small chunks), to rounding; also on
+    level 0's second view (``views``: knots 2δ, the form hot conditions read)."""
     layout, nc = ld.factor_layout(2, False)
     P, M, rho = 96, 1024, 6.0
     table, below, mu, kt, tau = _random_sums_inputs(P, M, nc)
-    e_lo, delta = 0.03, 0.9e-3 / rho / (1 if first else 2)
+    acc, view = (table, below), None
+    if first == "views":
+        acc, view = ld.hot_views(acc, 2), jnp.ones((P,), jnp.int32)
+    e_lo, delta = 0.03, 0.9e-3 / rho / (2 if first is False else 1) / (2 if first == "views" else 1)
     tau_eval = as_scattering(80.0).evaluate
-    kt_lo = kt if first else 0.5 * kt
-    kt_win = kt if first else jnp.full((P,), 0.9e-3)
+    kt_lo = 0.5 * kt if first is False else kt
+    kt_win = jnp.full((P,), 0.9e-3) if first is False else kt
     temp = kt / 8.617333262e-5
 
     def sums(sl):
-        return ld._level_sums((table, below), e_lo, delta, mu[sl], kt[sl], kt_lo[sl], kt_win[sl], temp[sl],
-                              tau_eval, {"tau0": tau["tau0"][sl]}, None, layout, False, rho, first, 0.0)
+        return ld._level_sums(acc, e_lo, delta, mu[sl], kt[sl], kt_lo[sl], kt_win[sl], temp[sl],
+                              tau_eval, {"tau0": tau["tau0"][sl]}, None, layout, False, rho, first is not False,
+                              0.0, None if view is None else view[sl])
 
     shared = sums(slice(None))
     assert P >= ld.SHARED_MIN
@@ -510,3 +515,64 @@ def test_t0_extrapolation_next_to_a_band_edge_is_bounded():
     ref = _pocket_density_t0(m, mu)
     assert abs(float(r.density) - ref) > 0.01 * ref          # the case is a hard one: 1.7 % off
     assert abs(float(r.density) - ref) <= float(r.error.density)
+
+
+def test_coarsened_tables_keep_the_moments_of_every_state():
+    """A level-0 table re-deposited onto knots of twice the spacing (the views hot conditions
+    read) keeps Σ (E − c)^m, m ≤ 3, of the deposited states, as a direct deposit at 2δ does
+    (moment conditions of cubic Lagrange interpolation, common practice); the states lie well
+    inside the table, as every window does."""
+    rng = np.random.default_rng(3)
+    M, delta, e_lo = 256, 0.01, -1.0
+    e = jnp.asarray(rng.uniform(e_lo + M * delta / 4, e_lo + 3 * M * delta / 4, (500, 2)))
+    f = jnp.asarray(rng.normal(size=(500, 2, 3)))
+    w = jnp.asarray(rng.uniform(0.5, 1.5, 500))
+    acc = ld._deposit(ld._new_acc(M, 3), e, f, w, e_lo, delta)
+    views = ld.hot_views(acc, 3)
+    for v, (table, below) in enumerate(zip(*views)):
+        knots = e_lo + np.arange(M) * delta * 2 ** v
+        for m in range(4):
+            want = np.einsum("n,nb,nbc->c", np.asarray(w), (np.asarray(e) - 0.3) ** m, np.asarray(f))
+            got = np.asarray(table).T @ (knots - 0.3) ** m
+            np.testing.assert_allclose(got, want, rtol=1e-11, atol=1e-11 * np.max(np.abs(want)))
+        np.testing.assert_array_equal(np.asarray(below), 0.0)
+
+
+def test_a_hot_partner_condition_leaves_a_cold_one_unchanged():
+    """Level 0's knots stay k_BT_0/ρ apart whatever the hottest condition of the call; hotter
+    conditions read coarsened views of the same table.  Gapped, strained honeycomb, μ = 0.3 eV at
+    20 K, resolution 0: a (−1 eV, 6000 K) partner in the same call changed its density of states,
+    Drude weight, dipole and density by 21–36 % when the partner set the level-0 spacing.  The hot
+    condition itself must match a plain numpy uniform grid (converged at 6000 K) within its
+    estimate, and a plan reused for a still hotter condition must report overflow."""
+    m = build("honeycomb", staggered=0.2, strain_xx=0.01)
+    scat = as_scattering(TAU)
+
+    @partial(jax.jit, static_argnames=("plan",))
+    def run(mu, temp, plan):
+        tau = jax.tree_util.tree_map(lambda a: jnp.broadcast_to(a, mu.shape)[:, None], scat.arrays())
+        return ld.ladder_moments(m, m.params, plan, mu, thermal_energy(temp), temp, type(scat).evaluate, tau,
+                                 0.0, 1, False)
+
+    def at(mu, temp):
+        mu, temp = jnp.asarray(mu), jnp.asarray(temp)
+        plan = ld.make_plan(m, m.params, mu, temp, 0)
+        out = run(mu, temp, plan)
+        assert not bool(out[3]["overflow"])
+        return plan, out
+
+    _, (alone, _, _, _) = at([0.3], [20.0])
+    plan, (both, coarse, ex, _) = at([0.3, -1.0], [20.0, 6000.0])
+    assert plan.views == 5 and plan.kt0 < 0.04
+    for field in ("dos", "drude0", "dipole", "density"):
+        a, b = np.asarray(getattr(alone, field))[0], np.asarray(getattr(both, field))[0]
+        assert np.max(np.abs(a - b)) <= 1e-7 * np.max(np.abs(a)), field
+    ref = uniform_grid_reference(m, -1.0, 6000.0, 400)
+    vol = float(jnp.abs(jnp.linalg.det(m.reciprocal_vectors())) / (2 * np.pi) ** 2)
+    for want, get in ((ref["dos"], lambda x: x.dos[1]), (ref["drude"][0, 0], lambda x: x.drude0[1, 0, 0] / TAU),
+                      (ref["density"] - vol, lambda x: x.density[1])):
+        err = abs(float(get(both)) - float(get(coarse))) + float(get(ex))
+        assert abs(float(get(both)) - want) <= err
+        assert err <= 1e-4 * abs(want)
+    hotter = run(jnp.asarray([0.3, -1.0]), jnp.asarray([20.0, 9000.0]), plan)
+    assert bool(hotter[3]["overflow"])

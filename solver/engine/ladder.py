@@ -22,7 +22,9 @@ Energy axis.  Each point and band deposits w·A onto knots E_lo + jδ_l of its l
 cubic Lagrange weights of its energy (the moments Σ (E_j − ε)^m, m ≤ 3, are preserved), so for
 any smooth φ, Σ_j table_j φ(E_j) = Σ_k w A φ(ε) + O(δ⁴φ'''').  With δ_l = k_BT_l/ρ the tables
 are built once per call, independently of μ, T, τ and ω; every condition is then a short sum
-over the knots within its window (conditions cost knots, not k-points).
+over the knots within its window (conditions cost knots, not k-points).  Level 0 keeps δ_0 =
+k_BT_0/ρ whatever the hottest condition; one hotter than k_BT_0 reads a view of its table coarsened
+to 2^v δ_0 (:func:`hot_views`), so that a hot partner never coarsens a cold condition's sums.
 
 Below the deepest level (T < T_L) the partial sums X(T_L), X(T_{L−1}), X(T_{L−2}) — each the full
 result at that temperature — are extrapolated in T² (Sommerfeld expansion, valid when k_BT_L is
@@ -67,7 +69,10 @@ PROBE = 24                 # points per direction of the v_max probe grid
 class Plan:
     """Static shape of one ladder: ``n0`` level-0 points per reciprocal vector, ``budgets[l-1]``
     cells of level l−1 refined at level l, ``knots[l]`` energy knots of level l (fine), ``kappa``
-    (k_BT_0 = κ v_max h_0) and ``rho`` (δ_l = k_BT_l/ρ)."""
+    (k_BT_0 = κ v_max h_0), ``rho`` (δ_l = k_BT_l/ρ) and ``views``: 0 when no condition is hotter
+    than k_BT_0, else the number of views of level 0's tables that such conditions read (view v:
+    knots 2^v δ_0, :func:`hot_views`), so that a condition up to 2^views k_BT_0 sums knots of
+    ρ–2ρ per k_BT while the level-0 spacing stays k_BT_0/ρ whatever the hottest condition."""
 
     n0: int
     budgets: tuple
@@ -75,6 +80,7 @@ class Plan:
     kappa: float
     rho: float
     kt0: float | None = None      # k_BT_0 in eV, fixed by make_plan (None: from the probe, traced)
+    views: int = 0
 
     @property
     def levels(self) -> int:
@@ -287,6 +293,45 @@ def _new_acc(M, nc):
     return (jnp.zeros((M, nc)), jnp.zeros((nc,)))
 
 
+def hot_view_count(ratio):
+    """:attr:`Plan.views` for the hottest condition at ``ratio`` = k_BT_max/k_BT_0:
+    ⌊log2 ratio⌋ + 1, or 0 when no condition is hotter than k_BT_0."""
+    return int(np.floor(np.log2(ratio * (1 + 1e-12)))) + 1 if ratio > 1 else 0
+
+
+def coarsened(acc):
+    """``acc`` = (table (M, nc), below) re-deposited onto knots of twice the spacing, the same
+    first knot: fine knot 2k sits on coarse knot k, fine knot 2k+1 halfway between k and k+1 and
+    goes to k−1 … k+2 with the cubic Lagrange weights of t = 1/2, (−1, 9, 9, −1)/16.  The moments
+    Σ (E_j − ε)^m, m ≤ 3, of every deposited state are preserved (a composition of two maps that
+    preserve them), so a sum over the coarse knots keeps the O(δ⁴ φ⁗) accuracy of a direct
+    deposit at 2δ.  A share below the first knot joins ``below``; shares beyond the last knot
+    (states above every window) are dropped.  Returns ((M/2, nc), below)."""
+    table, below = acc
+    even, odd = table[0::2], table[1::2]
+    z1 = jnp.zeros((1,) + odd.shape[1:])
+    z2 = jnp.zeros((2,) + odd.shape[1:])
+    prev1 = jnp.concatenate([z1, odd[:-1]])                 # odd[k−1]
+    prev2 = jnp.concatenate([z2, odd[:-2]])                 # odd[k−2]
+    next1 = jnp.concatenate([odd[1:], z1])                  # odd[k+1]
+    out = even + (9.0 / 16.0) * (odd + prev1) - (1.0 / 16.0) * (next1 + prev2)
+    return out, below - odd[0] / 16.0
+
+
+def hot_views(acc, count):
+    """``count`` views of level 0's table: the table itself and its successive :func:`coarsened`
+    forms, zero-padded to the table's length and stacked: ((count, M, nc), (count, nc))."""
+    views = [acc]
+    for _ in range(count - 1):
+        views.append(coarsened(views[-1]))
+    M = acc[0].shape[0]
+
+    def pad(t):
+        return jnp.concatenate([t, jnp.zeros((M - t.shape[0],) + t.shape[1:])]) if t.shape[0] < M else t
+
+    return jnp.stack([pad(v[0]) for v in views]), jnp.stack([v[1] for v in views])
+
+
 # --------------------------------------------------------------------------------------------
 # the ladder
 # --------------------------------------------------------------------------------------------
@@ -345,14 +390,17 @@ def build_tables(model, params, plan: Plan, mu, kt, sea, chunk=4096):
         any_rel = jnp.any(relevant)
         mlo, mhi = jnp.where(any_rel, mlo, 0.0), jnp.where(any_rel, mhi, 0.0)
         delta = ktl[level] / plan.rho
-        if level == 0:
-            delta = jnp.maximum(delta, jnp.max(kt_s) / plan.rho)
         M = plan.knots[level]
         # knots on a fixed lattice of spacing δ (a small change of μ never moves them)
         centre = jnp.floor(0.5 * (mlo + mhi) / delta) * delta
         e_lo = centre - (M // 2) * delta
         # the window must fit: reported as overflow otherwise
-        fits = (mhi - mlo + 2 * W * kt_window + 12 * delta) <= (M - 1) * delta
+        stencil = 2 ** max(plan.views - 1, 0) if level == 0 else 1
+        fits = (mhi - mlo + 2 * W * kt_window + 12 * stencil * delta) <= (M - 1) * delta
+        if level == 0:
+            # a condition hotter than the views of level 0 hold (a plan reused for hotter
+            # conditions) would need more knots than its window sums
+            fits = fits & (jnp.max(kt_s) <= 2.0 ** plan.views * ktl[0] * (1 + 1e-12))
         return e_lo, delta, fits
 
     stride = 2 ** dim
@@ -416,6 +464,9 @@ def build_tables(model, params, plan: Plan, mu, kt, sea, chunk=4096):
     acc_f, acc_c, e_prev, g_prev = evaluate(red0, jnp.full((n0 ** dim,), vol / n0 ** dim), e_lo, delta,
                                             cmask0, _new_acc(M0, nc), _new_acc((M0 + 1) // 2, nc))
     levels.append(dict(fine=acc_f, coarse=acc_c, e_lo=e_lo, delta=delta))
+    if plan.views:
+        # conditions hotter than k_BT_0 read views of level 0 (Plan.views)
+        levels[0]["views"] = dict(fine=hot_views(acc_f, plan.views), coarse=hot_views(acc_c, plan.views))
     red_prev, valid_prev = red0, jnp.ones((n0 ** dim,), bool)
     flagged_all, overflow_all, fits_all = [], [], [fits]
     sub = np.stack(np.meshgrid(*([np.array([-0.25, 0.25])] * dim), indexing="ij"), -1).reshape(-1, dim)
@@ -574,34 +625,42 @@ def _kernel_sums(vals, occ, E, mu, temp, tau_eval, tau_arr, omega, layout, sea):
                    **_tau_free_fields(s, occ, sea))
 
 
-def _window_values(acc, e_lo, delta, start, Q):
-    """Knot values (P, Q, nc) and energies (P, Q) from knot index ``start`` (P,); knots outside
-    the table read as zero."""
-    table = acc[0]
-    M = table.shape[0]
+def _window_values(tables, view, e_lo, delta, start, Q):
+    """Knot values (P, Q, nc) and energies (P, Q) from knot index ``start`` (P,) of each
+    condition's view ``view`` (P,) of the stacked ``tables`` (V, M, nc), whose knots are spaced
+    ``delta`` (P,); knots outside the table read as zero."""
+    M = tables.shape[1]
     j = start[:, None] + jnp.arange(Q, dtype=jnp.int32)[None, :]
     inside = (j >= 0) & (j < M)
-    v = jnp.where(inside[..., None], table[jnp.clip(j, 0, M - 1)], 0.0)
-    return v, e_lo + j.astype(jnp.float64) * delta
+    v = jnp.where(inside[..., None], tables[view[:, None], jnp.clip(j, 0, M - 1)], 0.0)
+    return v, e_lo + j.astype(jnp.float64) * delta[:, None]
 
 
 def _level_sums(acc, e_lo, delta, mu, kt_hi, kt_lo, kt_win, temp, tau_eval, tau_arr, omega, layout,
-                sea, rho, first, filled_vol):
+                sea, rho, first, filled_vol, view=None):
     """Σ_j table_j [φ(E_j; kt_hi) − φ(E_j; kt_lo)] over the knots within W·kt_win of μ (for the
     first level: φ(kt_hi) alone, plus the fully occupied states below the window).
 
+    ``view`` (P,), level 0 only: ``acc`` then holds the stacked views of :func:`hot_views` and
+    each condition reads view v (knots 2^v δ, ρ–2ρ per k_BT of the hot conditions, so the first
+    level's window then sums twice the knots).
+
     Each condition sums the Q knots of its own window; when the windows of all conditions of the
     chunk lie within one slice of the table (the whole table when it has at most 4Q knots, else 2Q
-    knots around neighbours in μ: ladder_moments sorts them), they read that shared slice instead,
-    with every weight set to zero outside the condition's own window (f0 to 1 below it on the first
-    level), and the sums become matrix products: the same sums."""
-    Q = int(2 * (W + 1) * rho * (1 if first else 2)) + 8
-    table, below = acc
-    M = table.shape[0]
+    knots around neighbours in μ: ladder_moments sorts them) of one view, they read that shared
+    slice instead, with every weight set to zero outside the condition's own window (f0 to 1 below
+    it on the first level), and the sums become matrix products: the same sums."""
+    Q = int(2 * (W + 1) * rho * (1 if first and view is None else 2)) + 8
+    tables, belows = acc
+    if view is None:
+        tables, belows = tables[None], belows[None]
+        view = jnp.zeros(mu.shape, jnp.int32)
+    M = tables.shape[1]
+    dv = delta * 2.0 ** view.astype(jnp.float64)                                     # (P,)
     # the shared slice: the whole table when it is short (one matrix product over at most 4Q
     # knots still beats Q gathered knots per condition), else 2Q knots
     U = M if M <= 4 * Q else 2 * Q
-    start = jnp.floor(jax.lax.stop_gradient((mu - W * kt_win - e_lo) / delta)).astype(jnp.int32) - 2
+    start = jnp.floor(jax.lax.stop_gradient((mu - W * kt_win - e_lo) / dv)).astype(jnp.int32) - 2
 
     def occupations(E):
         occ = _occupations(E, mu, kt_hi)
@@ -613,8 +672,9 @@ def _level_sums(acc, e_lo, delta, mu, kt_hi, kt_lo, kt_win, temp, tau_eval, tau_
     def finish(out, lo):
         if not first:
             return out
-        csum = jnp.concatenate([jnp.zeros((1, table.shape[1])), jnp.cumsum(table, axis=0)])
-        pre = below[None, :] + csum[jnp.clip(lo, 0, M)]                               # (P, nc)
+        csum = jnp.concatenate([jnp.zeros((tables.shape[0], 1, tables.shape[2])), jnp.cumsum(tables, axis=1)],
+                               axis=1)
+        pre = belows[view] + csum[view, jnp.clip(lo, 0, M)]                          # (P, nc)
         add = {}
         for key, name in (("density", "one"), ("ahe", "om"), ("scale_ahe", "abs_om"),
                           ("dipole_sea", "dom")):
@@ -624,16 +684,17 @@ def _level_sums(acc, e_lo, delta, mu, kt_hi, kt_lo, kt_win, temp, tau_eval, tau_
         return dataclasses.replace(out, **add)
 
     def own(_):
-        vals, E = _window_values(acc, e_lo, delta, start, Q)
+        vals, E = _window_values(tables, view, e_lo, dv, start, Q)
         return finish(_kernel_sums(vals, occupations(E), E, mu, temp, tau_eval, tau_arr, omega, layout, sea),
                       start)
 
     s0 = jnp.clip(jnp.min(start), 0, M - U)
+    v0 = view[0]
 
     def shared(_):
-        vals = jax.lax.dynamic_slice(table, (s0, jnp.int32(0)), (U, table.shape[1]))      # (U, nc)
+        vals = jax.lax.dynamic_slice(tables[v0], (s0, jnp.int32(0)), (U, tables.shape[2]))   # (U, nc)
         j = s0 + jnp.arange(U, dtype=jnp.int32)
-        E = jnp.broadcast_to(e_lo + j.astype(jnp.float64) * delta, (mu.shape[0], U))
+        E = jnp.broadcast_to(e_lo + j.astype(jnp.float64) * dv[0], (mu.shape[0], U))
         rel = j[None, :] - start[:, None]
         inside = (rel >= 0) & (rel < Q)
         occ = {k: jnp.where(inside, v, 0.0) for k, v in occupations(E).items()}
@@ -644,9 +705,11 @@ def _level_sums(acc, e_lo, delta, mu, kt_hi, kt_lo, kt_win, temp, tau_eval, tau_
 
     if mu.shape[0] < SHARED_MIN:
         return own(None)
-    # every condition's window (its part inside the table: outside it reads zero) in the slice
+    # every condition's window (its part inside the table: outside it reads zero) in the slice,
+    # all of one view
     can_share = ((jnp.clip(jnp.min(start), 0, M) >= s0)
-                 & (jnp.clip(jnp.max(start) + Q, 0, M) <= s0 + U))
+                 & (jnp.clip(jnp.max(start) + Q, 0, M) <= s0 + U)
+                 & jnp.all(view == v0))
     return jax.lax.cond(can_share, shared, own, None)
 
 
@@ -662,8 +725,14 @@ def _level_part(levels, info, plan, lv, which, mu, k_hi, k_lo, temp, tau_eval, t
     rho = lev.get("rho", plan.rho) * (1.0 if which == "fine" else 0.5)
     delta = lev["delta"] if which == "fine" else 2 * lev["delta"]
     if lv == 0:
-        return _level_sums(lev[which], lev["e_lo"], delta, mu, k_hi, None, k_hi, temp, tau_eval, tau_arr,
-                           omega, info["layout"], sea, rho, True, filled * info["vol"])
+        if "views" not in lev:
+            return _level_sums(lev[which], lev["e_lo"], delta, mu, k_hi, None, k_hi, temp, tau_eval, tau_arr,
+                               omega, info["layout"], sea, rho, True, filled * info["vol"])
+        # a condition hotter than k_BT_0 reads the view of ρ–2ρ knots per its k_BT (Plan.views)
+        ratio = jax.lax.stop_gradient(k_hi / info["kt_ladder"][0])
+        view = jnp.clip(jnp.floor(jnp.log2(ratio * (1 + 1e-12))), 0, plan.views - 1).astype(jnp.int32)
+        return _level_sums(lev["views"][which], lev["e_lo"], delta, mu, k_hi, None, k_hi, temp, tau_eval,
+                           tau_arr, omega, info["layout"], sea, rho, True, filled * info["vol"], view)
     return _level_sums(lev[which], lev["e_lo"], delta, mu, k_hi, k_lo, info["kt_ladder"][lv - 1], temp,
                        tau_eval, tau_arr, omega, info["layout"], sea, rho, False, 0.0)
 
@@ -994,7 +1063,10 @@ def make_plan(model, params, mu, temperature, resolution: int, flagged=None, old
     ktl = ktl0 / 2.0 ** np.arange(L + 1)
     span = float(np.ptp(mu)) if mu.size else 0.0
     k0 = max(ktl0, float(kt.max()))
-    knots = [_pow2((span + 2 * W * k0 + 16 * k0 / rho) / (k0 / rho) + 16)]
+    views = hot_view_count(k0 / ktl0)
+    # level 0 keeps knots of k_BT_0/ρ and grows to hold the hottest window (with room for the
+    # four-knot stencils of its coarsest view)
+    knots = [_pow2((span + 2 * W * k0 + 16 * 2 ** max(views - 1, 0) * ktl0 / rho) / (ktl0 / rho) + 16)]
     for lev in range(1, L + 1):
         knots.append(_pow2((span + 2 * W * ktl[lev - 1]) / (ktl[lev] / rho) + 32))
     if old is not None and flagged is not None and len(old.budgets) == L and old.n0 == n0 \
@@ -1008,7 +1080,7 @@ def make_plan(model, params, mu, temperature, resolution: int, flagged=None, old
     else:
         counts = _level_counts(model, params, n0, mu, kt, ktl)
         budgets = tuple(_round(BUDGET_SLACK * c + 64, 256) for c in counts)
-    return Plan(n0, budgets, tuple(knots), kappa, rho, float(ktl0))
+    return Plan(n0, budgets, tuple(knots), kappa, rho, float(ktl0), views)
 
 
 def hotspot_width(model, params, probe=96):
