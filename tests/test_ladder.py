@@ -576,3 +576,20 @@ def test_a_hot_partner_condition_leaves_a_cold_one_unchanged():
         assert err <= 1e-4 * abs(want)
     hotter = run(jnp.asarray([0.3, -1.0]), jnp.asarray([20.0, 9000.0]), plan)
     assert bool(hotter[3]["overflow"])
+
+
+def test_mu_deep_in_a_gap_reports_the_window_truncation():
+    """μ in the gap of the TMD lattice, 30–40 k_BT below the conduction band (100 and 150 K,
+    resolution 1): the thermally activated sums lie at the edge of, or beyond, the windows of
+    W k_BT, the same at every resolution, so |fine − coarse| cannot see what they lose.  The
+    error must bound the distance to a plain numpy uniform grid (converged to 1e-14 at n = 300);
+    before the window-truncation term (``ladder.window_tails``) the density of states was 3.0e19
+    off with an error of 2.7e17, and 8.2e25 off with 2.0e25 (J⁻¹ m⁻²)."""
+    m = build("tmd-lattice")
+    mu, temp = [1.25, 1.3], [100.0, 150.0]
+    r = response(m, mu=mu, temperature=temp, tau=100.0, engine="ladder", resolution=1)
+    for p in range(2):
+        ref = uniform_grid_reference(m, mu[p], temp[p], 300)["dos"] * m.degeneracy * 1e20 / 1.602176634e-19
+        got, err = float(np.asarray(r.dos)[p]), float(np.asarray(r.error.dos)[p])
+        assert abs(got - ref) > 0.02 * ref                     # the case is a hard one
+        assert abs(got - ref) <= err

@@ -784,6 +784,60 @@ def deepest_edges(levels, info, plan, mu):
     return edge_distance(states, E, m, jnp.full(m.shape, ktl), 2)
 
 
+#: safety factor of the window-truncation bounds (:func:`window_tails`, and
+#: :func:`crosswind.solver.engine.rays.tail_fraction`: there the bound holds with about a factor 2
+#: to spare for a band edge in a gap, measured on a massive Dirac cone; the factor covers the
+#: (ε − μ)² weight of the thermal conductivity's sums)
+TAIL_SAFETY = 4.0
+
+
+def window_tails(levels, info, plan, mu, kt):
+    """(P,) bound on the fraction of each condition's sums lost to the windows: (s + 1)·
+    TAIL_SAFETY·e^{−(W − x)} (at most 1), x k_BT* the distance from μ to the nearest state,
+    k_BT* = max(k_BT, k_BT_L), s the level of the condition's temperature step.
+
+    Every level l ≤ s sums the states within W k_BT_{l−1} ≥ W k_BT* of μ in full; a state farther
+    out is left with the telescoped part φ(T_m) of the levels that reach it, and W k_BT_m < d
+    there, so each such shell of states keeps at most e^{−W} of its weight where the truth is
+    smaller still.  With μ in a gap x k_BT* from a band edge, the sums themselves are ~e^{−x} of
+    that weight: a fraction e^{−(W − x)} per shell (a 2D step of the density of states), one shell
+    per level.  x is read from the fine table of the condition's own step level (level 0's view
+    for hot conditions), whose knots (at most k_BT*/ρ apart) cover the window: a knot that holds
+    states proves one within 2 knots (the deposit's stencil), so x is taken 2 knots farther out,
+    an upper bound, and the bound is conservative.  μ inside a band gives x ≈ 2/ρ and ~1e-8."""
+    ktl = jax.lax.stop_gradient(info["kt_ladder"])
+    L = plan.levels
+    m = jax.lax.stop_gradient(mu)
+    kts = jnp.maximum(jax.lax.stop_gradient(kt), ktl[L])
+    s = jnp.minimum(step_level(kts, ktl), L)
+    one = info["layout"]["one"].start
+    near = jnp.full(m.shape, jnp.inf)
+    for lv in range(L + 1):
+        lev = levels[lv]
+        table = lev["fine"][0]
+        delta = jax.lax.stop_gradient(lev["delta"]) * jnp.ones(m.shape)
+        view = jnp.zeros(m.shape, jnp.int32)
+        if lv == 0 and "views" in lev:
+            table = lev["views"]["fine"][0]
+            view = jnp.clip(jnp.floor(jnp.log2(kts / ktl[0] * (1 + 1e-12))), 0, plan.views - 1).astype(jnp.int32)
+            delta = delta * 2.0 ** view.astype(jnp.float64)
+        else:
+            table = table[None]
+        # the window ±(W + 1) k_BT*: ρ–2ρ knots per k_BT* on the step level
+        per = (1 if lv == 0 and "views" not in lev else 2) * lev.get("rho", plan.rho)
+        Q = int(2 * (W + 1) * per) + 8
+        M = table.shape[1]
+        e_lo = jax.lax.stop_gradient(lev["e_lo"])
+        j = (jnp.floor((m - (W + 1) * kts - e_lo) / delta).astype(jnp.int32) - 2)[:, None] \
+            + jnp.arange(Q, dtype=jnp.int32)[None, :]
+        held = jnp.where((j >= 0) & (j < M), table[view[:, None], jnp.clip(j, 0, M - 1), one], 0.0) != 0
+        d = jnp.abs(e_lo + j.astype(jnp.float64) * delta[:, None] - m[:, None])
+        d = jnp.min(jnp.where(held, d, jnp.inf), axis=1) + 2 * delta
+        near = jnp.where(s == lv, d, near)
+    x = jnp.minimum(near / kts, 2 * W)
+    return jnp.minimum(1.0, (s + 1).astype(jnp.float64) * TAIL_SAFETY * jnp.exp(x - W))
+
+
 def _extrapolated(total, partial, kt, ktl, L, edge=None):
     """The sums returned for conditions (P,) with running totals ``partial[l]`` over levels 0..l
     (each the full result at k_BT_l for a condition colder than it) and final ``total``: below the
@@ -911,7 +965,7 @@ def ladder_moments(model, params, plan: Plan, mu, kt, temp, tau_eval, tau_arr, o
     ``condition_chunk`` (memory bounded for any number of conditions)."""
     levels, info = build_tables(model, params, plan, mu, kt, sea, chunk)
     return moments_from_tables(levels, info, plan, mu, kt, temp, tau_eval, tau_arr, omega, filled, sea,
-                               condition_chunk, groups)
+                               condition_chunk, groups, tails=True)
 
 
 def sweep_groups(keys, chunk=128):
@@ -939,9 +993,10 @@ def _padded(x, n):
 
 
 def moments_from_tables(levels, info, plan, mu, kt, temp, tau_eval, tau_arr, omega, filled, sea,
-                        condition_chunk=128, groups=None):
+                        condition_chunk=128, groups=None, tails=False):
     """:func:`ladder_moments` from tables already built (also those of
-    :mod:`crosswind.solver.engine.tetra`).
+    :mod:`crosswind.solver.engine.tetra`).  ``tails``: also return each condition's
+    :func:`window_tails` as ``info["tail"]`` (P,) (the ladder's own tables only).
 
     ``groups`` = (rep (G,), group (P,)) marks conditions that share μ and τ (a μ × T sweep with a
     temperature-free τ): their terms at the ladder temperatures depend on nothing else, so they are
@@ -973,17 +1028,20 @@ def moments_from_tables(levels, info, plan, mu, kt, temp, tau_eval, tau_arr, ome
 
     def one(a):
         m, k, t, ta = a
+        tail = (window_tails(levels, info, plan, m, k),) if tails else ()
         if groups is not None:
             return tuple(step_sums(levels, info, plan, m, k, t, tau_eval, ta, omega, filled, sea, w)
-                         for w in ("fine", "coarse"))
+                         for w in ("fine", "coarse")) + tail
         f, ef = condition_sums(levels, info, plan, m, k, t, tau_eval, ta, omega, filled, sea, "fine")
         c, ec = condition_sums(levels, info, plan, m, k, t, tau_eval, ta, omega, filled, sea, "coarse")
-        return f, c, jax.tree_util.tree_map(jnp.maximum, ef, ec)
+        return (f, c, jax.tree_util.tree_map(jnp.maximum, ef, ec)) + tail
 
     split = lambda x: x.reshape((nch, cc) + x.shape[1:])
     out = jax.lax.map(one, jax.tree_util.tree_map(split, args))
     back = jnp.argsort(order)
     out = jax.tree_util.tree_map(lambda x: jnp.take(x.reshape((nch * cc,) + x.shape[2:])[:N], back, axis=0), out)
+    if tails:
+        info = dict(info, tail=out[-1][:P])
     if groups is None:
         return out[0], out[1], out[2], info
     real = lambda x: x[:P]

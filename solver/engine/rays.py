@@ -54,6 +54,7 @@ from crosswind.models.units import KB_EVK as KB
 from crosswind.solver.engine.ladder import (
     EDGE_SAFETY,
     SHARED_MIN,
+    TAIL_SAFETY,
     Cols,
     _kernel_sums,
     _lagrange,
@@ -496,12 +497,6 @@ def _shared_span(plan):
     of it for the spread of the conditions' windows (sorted neighbours in a sweep)."""
     Q = _window(plan)
     return Q + Q // 4
-
-
-#: safety factor of :func:`tail_fraction` (the bound holds with about a factor 2 to spare for a
-#: band edge in a gap, measured on a massive Dirac cone; the factor covers the (ε − μ)² weight of the
-#: thermal conductivity's sums)
-TAIL_SAFETY = 4.0
 
 
 def tail_fraction(states, E, mu, kt):

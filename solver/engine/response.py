@@ -449,7 +449,7 @@ def _ladder_at(model, mu, kt, temp, tau_arr, omega, groups=None, *, plan, tau_ev
     tau_col = jax.tree_util.tree_map(lambda a: a[:, None], tau_arr)
     f, c, ex, info = _ladder.ladder_moments(model, model.params, plan, mu, kt, temp, tau_eval, tau_col,
                                             omega, filled, sea, groups=groups)
-    return f, c, ex, info["overflow"], info["flagged"]
+    return f, c, (ex, info["tail"]), info["overflow"], info["flagged"]
 
 
 def _run_ladder(model, mu, kt, temp, tau_arr, omega, res, kw, plan, traced, groups=None):
@@ -471,11 +471,13 @@ def _run_ladder(model, mu, kt, temp, tau_arr, omega, res, kw, plan, traced, grou
     return f, c, ex, over, tried
 
 
-def _nested_errors(fine_m, coarse_m, ex_m, over, model, temp, intrinsic, richardson=False):
-    """(moments returned, the same in SI, error) from the fine and the nested coarse sums of one
-    run: the error is |fine − coarse| (SI) plus the T² extrapolation's spread, inf where a plan
-    overflowed.  The ladder returns the fine sums (its trapezoid sums converge spectrally: the
-    coarse sums are far worse).  ``richardson`` (tetrahedra): fine and coarse both carry the O(h²)
+def _nested_errors(fine_m, coarse_m, ex_m, over, model, temp, intrinsic, richardson=False, tail=None):
+    """(moments returned, the same in SI, error, error less the window truncation) from the fine
+    and the nested coarse sums of one run: the error is |fine − coarse| (SI) plus the T²
+    extrapolation's spread, inf where a plan overflowed, plus the window truncation of
+    :func:`_tail_errors` where ``tail`` (P,) is given (the ladder: ``ladder.window_tails``).  The
+    ladder returns the fine sums (its trapezoid sums converge spectrally: the coarse sums are far
+    worse).  ``richardson`` (tetrahedra): fine and coarse both carry the O(h²)
     error of linear interpolation, so the moments returned are R = fine + (fine − coarse)/3, in
     which the h² terms cancel (docs/theory.md §16.6), and the error stays |fine − coarse|: three
     times the correction applied.  For errors e(2h) = 2^p e(h) of one sign, |R − X| = |4 − 2^p| e/3,
@@ -489,7 +491,9 @@ def _nested_errors(fine_m, coarse_m, ex_m, over, model, temp, intrinsic, richard
     fine = _to_si(fine_m, model, temp, intrinsic) if richardson else out
     diff = _field_errors(fine, _to_si(coarse_m, model, temp, intrinsic))
     err = jax.tree_util.tree_map(lambda u, v: jnp.where(over, jnp.inf, u + v), diff, _field_errors(shifted, out))
-    return val, out, err
+    if tail is None:
+        return val, out, err, err
+    return val, out, jax.tree_util.tree_map(jnp.add, err, _tail_errors(out, tail)), err
 
 
 # fields integrated over the Fermi sea with the uniform rule; every other field lives in the
@@ -583,21 +587,23 @@ def _mesh_path(model, muf, kt, Tf, tauf, omega, kw, rtol, resolution, max_level,
 
 
 def _resolution_loop(run, nres, resolution, max_level, plan, rtol, model, tau_max, spacing=None):
-    """``run(level, plan)`` → (plans tried, fine moments, fine Response, error) at the fixed
-    ``resolution`` (with ``plan``), or from level 1 up until every field converges (or the top
-    level): one level at a time, or, with ``spacing`` (a length per level, finest first reached
-    last), to the level :func:`_predicted_level` predicts from the last two levels' estimates.
-    Returns (level, plans tried, fine, err, unconverged fields or None, k-points of every run)."""
+    """``run(level, plan)`` → (plans tried, fine moments, fine Response, error, the error less the
+    window truncation) at the fixed ``resolution`` (with ``plan``), or from level 1 up until every
+    field converges (or the top level, or only the window truncation, which no resolution reduces,
+    is above the tolerance): one level at a time, or, with ``spacing`` (a length per level, finest
+    first reached last), to the level :func:`_predicted_level` predicts from the last two levels'
+    estimates.  Returns (level, plans tried, fine, err, unconverged fields or None, k-points of
+    every run)."""
     bad = None
     if resolution is None:
         top = nres - 1 if max_level is None else min(max_level, nres - 1)
         lev, k_points, status = 1, 0, {}
         while True:
-            tried, f, fine, err = run(lev, None)
+            tried, f, fine, err, resolvable = run(lev, None)
             k_points += sum(p.k_points(model.dim) for p in tried)
-            status[lev] = _field_status(fine, err, f, rtol, model, tau_max)
-            bad = _converged(fine, err, f, rtol, model, tau_max, status[lev])
-            if not bad or lev >= top:
+            status[lev] = _field_status(fine, resolvable, f, rtol, model, tau_max)
+            bad = _converged(fine, err, f, rtol, model, tau_max)
+            if not bad or lev >= top or not _converged(fine, resolvable, f, rtol, model, tau_max, status[lev]):
                 break
             if spacing is not None and lev - 1 in status:
                 lev = _predicted_level(status[lev - 1], status[lev], lev, top, spacing)
@@ -607,7 +613,7 @@ def _resolution_loop(run, nres, resolution, max_level, plan, rtol, model, tau_ma
         if not (0 <= resolution <= nres - 1):
             raise ValueError(f"response: resolution must be a level 0..{nres - 1}")
         lev = resolution
-        tried, f, fine, err = run(lev, plan)
+        tried, f, fine, err, _ = run(lev, plan)
         k_points = sum(p.k_points(model.dim) for p in tried)
     return lev, tried, fine, err, bad, k_points
 
@@ -637,8 +643,8 @@ def _ladder_path(model, muf, kt, Tf, tauf, omega, kw, rtol, resolution, max_leve
     groups = _ladder.sweep_groups(keys) if keys is not None else None
 
     def run(lev, given):
-        f, c, ex, over, tried = _run_ladder(model, muf, kt, Tf, tauf, omega, lev, kw, given, traced, groups)
-        return (tried,) + _nested_errors(f, c, ex, over, model, Tf, intrinsic)
+        f, c, (ex, tail), over, tried = _run_ladder(model, muf, kt, Tf, tauf, omega, lev, kw, given, traced, groups)
+        return (tried,) + _nested_errors(f, c, ex, over, model, Tf, intrinsic, tail=tail)
 
     lev, tried, fine, err, bad, k_points = _resolution_loop(run, nres, resolution, max_level, plan, rtol,
                                                             model, tau_max)
@@ -771,9 +777,10 @@ def _shells_at(model, grid, mu, kt, temp, tau_arr, omega, *, plan, tau_eval, fil
 
 def _tail_errors(fine: Response, tail) -> Response:
     """The window-truncation part of the error (:func:`crosswind.solver.engine.rays.tail_fraction`
-    ``tail`` (P,) times each field): the anomalous Hall conductivity, a Fermi-sea sum of the filled
-    bands, gets none (σ takes its Drude part's); the ratios (Hall coefficient, Seebeck, Lorenz)
-    twice the fraction (both of their sums lose a tail); non-finite ratios none."""
+    or :func:`crosswind.solver.engine.ladder.window_tails` ``tail`` (P,) times each field): the
+    anomalous Hall conductivity, a Fermi-sea sum of the filled bands, gets none (σ takes its Drude
+    part's); the ratios (Hall coefficient, Seebeck, Lorenz) twice the fraction (both of their sums
+    lose a tail); non-finite ratios none."""
     b = lambda x: tail.reshape(tail.shape + (1,) * (x.ndim - 1))
     part = lambda x: jnp.where(jnp.isfinite(x), b(x) * jnp.abs(x), 0.0)
     err = jax.tree_util.tree_map(part, fine)
