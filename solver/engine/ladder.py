@@ -299,6 +299,13 @@ def hot_view_count(ratio):
     return int(np.floor(np.log2(ratio * (1 + 1e-12)))) + 1 if ratio > 1 else 0
 
 
+def view_of(kt, kt0, views):
+    """(P,) the view of level 0 (:func:`hot_views`) a condition at ``kt`` reads: ⌊log2(k_BT/k_BT_0)⌋,
+    within 0 … views − 1 (ρ–2ρ knots per k_BT for a hot condition, the table itself otherwise)."""
+    ratio = jax.lax.stop_gradient(kt / kt0)
+    return jnp.clip(jnp.floor(jnp.log2(ratio * (1 + 1e-12))), 0, views - 1).astype(jnp.int32)
+
+
 def coarsened(acc):
     """``acc`` = (table (M, nc), below) re-deposited onto knots of twice the spacing, the same
     first knot: fine knot 2k sits on coarse knot k, fine knot 2k+1 halfway between k and k+1 and
@@ -321,6 +328,9 @@ def coarsened(acc):
 def hot_views(acc, count):
     """``count`` views of level 0's table: the table itself and its successive :func:`coarsened`
     forms, zero-padded to the table's length and stacked: ((count, M, nc), (count, nc))."""
+    if count > 1 and acc[0].shape[0] % 2 ** (count - 1):
+        raise ValueError(f"hot_views: a table of {acc[0].shape[0]} knots cannot be halved {count - 1} times; "
+                         "level 0 needs a multiple of 2^(views - 1) knots (make_plan gives a power of two)")
     views = [acc]
     for _ in range(count - 1):
         views.append(coarsened(views[-1]))
@@ -729,8 +739,7 @@ def _level_part(levels, info, plan, lv, which, mu, k_hi, k_lo, temp, tau_eval, t
             return _level_sums(lev[which], lev["e_lo"], delta, mu, k_hi, None, k_hi, temp, tau_eval, tau_arr,
                                omega, info["layout"], sea, rho, True, filled * info["vol"])
         # a condition hotter than k_BT_0 reads the view of ρ–2ρ knots per its k_BT (Plan.views)
-        ratio = jax.lax.stop_gradient(k_hi / info["kt_ladder"][0])
-        view = jnp.clip(jnp.floor(jnp.log2(ratio * (1 + 1e-12))), 0, plan.views - 1).astype(jnp.int32)
+        view = view_of(k_hi, info["kt_ladder"][0], plan.views)
         return _level_sums(lev["views"][which], lev["e_lo"], delta, mu, k_hi, None, k_hi, temp, tau_eval,
                            tau_arr, omega, info["layout"], sea, rho, True, filled * info["vol"], view)
     return _level_sums(lev[which], lev["e_lo"], delta, mu, k_hi, k_lo, info["kt_ladder"][lv - 1], temp,
@@ -803,8 +812,10 @@ def window_tails(levels, info, plan, mu, kt):
     that weight: a fraction e^{−(W − x)} per shell (a 2D step of the density of states), one shell
     per level.  x is read from the fine table of the condition's own step level (level 0's view
     for hot conditions), whose knots (at most k_BT*/ρ apart) cover the window: a knot that holds
-    states proves one within 2 knots (the deposit's stencil), so x is taken 2 knots farther out,
-    an upper bound, and the bound is conservative.  μ inside a band gives x ≈ 2/ρ and ~1e-8."""
+    states proves one within 2 knots (the deposit's stencil; 3 knots of a coarsened view, whose
+    re-deposit spreads a state up to 2.87 knots), so x is taken that much farther out, an upper
+    bound, and the bound is conservative.  μ inside a band gives x of 2–3 knots, 2.5/ρ at most,
+    and t ≈ (L + 1)·4·e^{2.5/ρ − W}, about 1e-7."""
     ktl = jax.lax.stop_gradient(info["kt_ladder"])
     L = plan.levels
     m = jax.lax.stop_gradient(mu)
@@ -819,7 +830,7 @@ def window_tails(levels, info, plan, mu, kt):
         view = jnp.zeros(m.shape, jnp.int32)
         if lv == 0 and "views" in lev:
             table = lev["views"]["fine"][0]
-            view = jnp.clip(jnp.floor(jnp.log2(kts / ktl[0] * (1 + 1e-12))), 0, plan.views - 1).astype(jnp.int32)
+            view = view_of(kts, ktl[0], plan.views)
             delta = delta * 2.0 ** view.astype(jnp.float64)
         else:
             table = table[None]
@@ -832,7 +843,8 @@ def window_tails(levels, info, plan, mu, kt):
             + jnp.arange(Q, dtype=jnp.int32)[None, :]
         held = jnp.where((j >= 0) & (j < M), table[view[:, None], jnp.clip(j, 0, M - 1), one], 0.0) != 0
         d = jnp.abs(e_lo + j.astype(jnp.float64) * delta[:, None] - m[:, None])
-        d = jnp.min(jnp.where(held, d, jnp.inf), axis=1) + 2 * delta
+        reach = jnp.where(view > 0, 3.0, 2.0) * delta
+        d = jnp.min(jnp.where(held, d, jnp.inf), axis=1) + reach
         near = jnp.where(s == lv, d, near)
     x = jnp.minimum(near / kts, 2 * W)
     return jnp.minimum(1.0, (s + 1).astype(jnp.float64) * TAIL_SAFETY * jnp.exp(x - W))

@@ -493,7 +493,7 @@ def _nested_errors(fine_m, coarse_m, ex_m, over, model, temp, intrinsic, richard
     err = jax.tree_util.tree_map(lambda u, v: jnp.where(over, jnp.inf, u + v), diff, _field_errors(shifted, out))
     if tail is None:
         return val, out, err, err
-    return val, out, jax.tree_util.tree_map(jnp.add, err, _tail_errors(out, tail)), err
+    return val, out, jax.tree_util.tree_map(jnp.add, err, _tail_errors(out, tail, temp)), err
 
 
 # fields integrated over the Fermi sea with the uniform rule; every other field lives in the
@@ -775,17 +775,22 @@ def _shells_at(model, grid, mu, kt, temp, tau_arr, omega, *, plan, tau_eval, fil
                                  filled, sea)
 
 
-def _tail_errors(fine: Response, tail) -> Response:
+def _tail_errors(fine: Response, tail, temp) -> Response:
     """The window-truncation part of the error (:func:`crosswind.solver.engine.rays.tail_fraction`
     or :func:`crosswind.solver.engine.ladder.window_tails` ``tail`` (P,) times each field): the
     anomalous Hall conductivity, a Fermi-sea sum of the filled bands, gets none (σ takes its Drude
-    part's); the ratios (Hall coefficient, Seebeck, Lorenz) twice the fraction (both of their sums
-    lose a tail); non-finite ratios none."""
+    part's); the density, whose filled states below the window are counted exactly, only its
+    thermally activated part, t·k_BT·|dos| (temperatures ``temp`` (P,), K; for a band edge
+    x k_BT from μ both lose e^{−(W − x)} of sums ∝ e^{−x}, and n ≈ k_BT·dos there); the ratios
+    (Hall coefficient, Seebeck, Lorenz) twice the fraction (both of their sums lose a tail);
+    non-finite ratios none."""
     b = lambda x: tail.reshape(tail.shape + (1,) * (x.ndim - 1))
     part = lambda x: jnp.where(jnp.isfinite(x), b(x) * jnp.abs(x), 0.0)
     err = jax.tree_util.tree_map(part, fine)
     ratios = {k: 2.0 * getattr(err, k) for k in ("hall_coefficient", "seebeck", "lorenz")}
-    return dataclasses.replace(err, sigma=part(fine.sigma_drude),
+    kt_joule = KB_EVK * E_CHARGE * jnp.maximum(jnp.asarray(temp, jnp.float64), 0.0)
+    density = jnp.where(jnp.isfinite(fine.dos), tail * kt_joule * jnp.abs(fine.dos), 0.0)
+    return dataclasses.replace(err, sigma=part(fine.sigma_drude), density=density.reshape(fine.density.shape),
                                sigma_anomalous=jnp.zeros(fine.sigma_anomalous.shape), **ratios)
 
 
@@ -802,7 +807,7 @@ def _energy_errors(f, ex, coarse, over, tail, model, temp, intrinsic):
     else:
         diff = _field_errors(fine, _to_si(coarse, model, temp, intrinsic))
     resolvable = jax.tree_util.tree_map(lambda u, v: jnp.where(over, jnp.inf, u + v), diff, spread)
-    return fine, jax.tree_util.tree_map(jnp.add, resolvable, _tail_errors(fine, tail)), resolvable
+    return fine, jax.tree_util.tree_map(jnp.add, resolvable, _tail_errors(fine, tail, temp)), resolvable
 
 
 def _run_rays(model, mu, kt, temp, tau_arr, omega, res, kw, plan, traced, eng=_rays):
