@@ -735,13 +735,11 @@ def _level_part(levels, info, plan, lv, which, mu, k_hi, k_lo, temp, tau_eval, t
     rho = lev.get("rho", plan.rho) * (1.0 if which == "fine" else 0.5)
     delta = lev["delta"] if which == "fine" else 2 * lev["delta"]
     if lv == 0:
-        if "views" not in lev:
-            return _level_sums(lev[which], lev["e_lo"], delta, mu, k_hi, None, k_hi, temp, tau_eval, tau_arr,
-                               omega, info["layout"], sea, rho, True, filled * info["vol"])
         # a condition hotter than k_BT_0 reads the view of ρ–2ρ knots per its k_BT (Plan.views)
-        view = view_of(k_hi, info["kt_ladder"][0], plan.views)
-        return _level_sums(lev["views"][which], lev["e_lo"], delta, mu, k_hi, None, k_hi, temp, tau_eval,
-                           tau_arr, omega, info["layout"], sea, rho, True, filled * info["vol"], view)
+        hot = "views" in lev
+        view = view_of(k_hi, info["kt_ladder"][0], plan.views) if hot else None
+        return _level_sums(lev["views"][which] if hot else lev[which], lev["e_lo"], delta, mu, k_hi, None, k_hi,
+                           temp, tau_eval, tau_arr, omega, info["layout"], sea, rho, True, filled * info["vol"], view)
     return _level_sums(lev[which], lev["e_lo"], delta, mu, k_hi, k_lo, info["kt_ladder"][lv - 1], temp,
                        tau_eval, tau_arr, omega, info["layout"], sea, rho, False, 0.0)
 
@@ -885,9 +883,10 @@ def _extrapolated(total, partial, kt, ktl, L, edge=None):
 
 
 def condition_sums(levels, info, plan: Plan, mu, kt, temp, tau_eval, tau_arr, omega, filled, sea,
-                   which="fine"):
+                   which="fine", edge=None):
     """Kernel sums for conditions (P,) from the tables of :func:`build_tables`, with the T²
-    extrapolation below the deepest level.  Returns ``(sums, extrapolation_error)``."""
+    extrapolation below the deepest level (``edge``: :func:`deepest_edges` of the conditions, read
+    once for the fine and the coarse sums).  Returns ``(sums, extrapolation_error)``."""
     ktl = info["kt_ladder"]
     L = plan.levels
     kstar = [jnp.maximum(kt, ktl[lv]) for lv in range(L + 1)]
@@ -909,7 +908,7 @@ def condition_sums(levels, info, plan: Plan, mu, kt, temp, tau_eval, tau_arr, om
                                 lambda t=total: jax.tree_util.tree_map(jnp.zeros_like, t))
         total = part if total is None else _tree_add(total, part)
         partial.append(total)
-    return _extrapolated(total, partial, kt, ktl, L, deepest_edges(levels, info, plan, mu) if L >= 2 else None)
+    return _extrapolated(total, partial, kt, ktl, L, edge)
 
 
 def step_level(kt, ktl):
@@ -1044,8 +1043,9 @@ def moments_from_tables(levels, info, plan, mu, kt, temp, tau_eval, tau_arr, ome
         if groups is not None:
             return tuple(step_sums(levels, info, plan, m, k, t, tau_eval, ta, omega, filled, sea, w)
                          for w in ("fine", "coarse")) + tail
-        f, ef = condition_sums(levels, info, plan, m, k, t, tau_eval, ta, omega, filled, sea, "fine")
-        c, ec = condition_sums(levels, info, plan, m, k, t, tau_eval, ta, omega, filled, sea, "coarse")
+        edge = deepest_edges(levels, info, plan, m) if plan.levels >= 2 else None
+        f, ef = condition_sums(levels, info, plan, m, k, t, tau_eval, ta, omega, filled, sea, "fine", edge)
+        c, ec = condition_sums(levels, info, plan, m, k, t, tau_eval, ta, omega, filled, sea, "coarse", edge)
         return (f, c, jax.tree_util.tree_map(jnp.maximum, ef, ec)) + tail
 
     split = lambda x: x.reshape((nch, cc) + x.shape[1:])
