@@ -75,8 +75,8 @@ PAD_ENERGY = 1e9             # padding breakpoints (eV): never crossed
 
 #: per resolution: (angles per centre, Gauss nodes per panel, breakpoint spacing c in k_BT,
 #: knots per k_BT rho, extrapolation temperature t_res in K)
-RESOLUTIONS = ((24, 5, 3.0, 6.0, 2.0), (48, 6, 2.5, 8.0, 1.0), (64, 8, 2.0, 12.0, 0.5),
-               (96, 10, 1.5, 16.0, 0.25), (192, 12, 1.0, 20.0, 0.125))
+RESOLUTIONS = ((24, 5, 3.0, 6.0, 2.0), (48, 6, 2.5, 8.0, 1.0), (96, 8, 2.0, 12.0, 0.5),
+               (192, 10, 1.5, 16.0, 0.25), (384, 12, 1.0, 20.0, 0.125))
 
 
 @dataclass(frozen=True)
