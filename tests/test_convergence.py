@@ -37,3 +37,22 @@ def test_refined_lattice_dipole_converges_fast():
     d = [float(response(m, mu=0.7, temperature=300.0, tau=100.0, resolution=lev).dipole[0]) for lev in (1, 2, 3)]
     diffs = np.abs(np.diff(d))
     assert diffs[1] < 1e-2 * diffs[0]
+
+
+def test_a_valley_cancelled_hall_conductivity_in_the_gap_does_not_hold_refinement_back():
+    """Strained MoS2 with both valleys, μ mid-gap at 10 K: σ_xy is the sum of two opposite
+    Fermi-sea Hall conductivities (time reversal, Xiao, Yao, Niu, PRL 99, 236809, 2007), zero up to
+    rounding (about 1e-24 S).  Its error is judged against 1e-2 of the anomalous Hall integrand
+    magnitude, as σ_anomalous's is; before, the σ tensor was judged against its own rounding-level
+    size, and the automatic call climbed to the top resolution (4) and reported σ unconverged.
+    The diagonal, a Drude part that no symmetry cancels, keeps its own size: bilayer graphene
+    (U = 0.05 eV) at μ = 10 meV and 10 K, where σ_xx ≈ 1.5e-12 S is thermally activated from the
+    gap edge and carries the window truncation's 25 %, still reports σ unconverged."""
+    m = build("tmd", material="MoS2", strain_xx=0.01)
+    r = response(m, mu=0.0, temperature=10.0, tau=100.0)
+    assert r.resolution.level == 1 and r.resolution.converged
+    assert abs(float(r.sigma[0, 1].real)) < 1e-20 and float(r.error.sigma[0, 1]) < 1e-20
+    b = build("bilayer-graphene")
+    rb = response(b, mu=0.01, temperature=10.0, tau=100.0)
+    assert "sigma" in rb.resolution.unconverged_fields
+    assert float(rb.error.sigma[0, 0]) > 1e-3 * abs(float(rb.sigma[0, 0].real)) > 0
