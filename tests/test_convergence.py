@@ -56,3 +56,19 @@ def test_a_valley_cancelled_hall_conductivity_in_the_gap_does_not_hold_refinemen
     rb = response(b, mu=0.01, temperature=10.0, tau=100.0)
     assert "sigma" in rb.resolution.unconverged_fields
     assert float(rb.error.sigma[0, 0]) > 1e-3 * abs(float(rb.sigma[0, 0].real)) > 0
+
+
+def test_curvature_that_vanishes_pointwise_by_symmetry_does_not_hold_refinement_back():
+    """Bilayer graphene at U = 0 (both valleys, μ = 30 meV, 10 K): inversion and time reversal make
+    Ω vanish at every k (McCann & Koshino, Rep. Prog. Phys. 76, 056503, 2013), so σ_anomalous and
+    the dipole are rounding noise (about 1e-19 S and 1e-25 m), and so are their integrand
+    magnitudes, the symmetry floor of the acceptance rule.  Before, the automatic call climbed to
+    the top resolution (4) and reported both unconverged; now errors below rtol·1e-9 of their
+    natural units (e²/h, and the length 1/k_s of the model's wavevector scale) count as resolved."""
+    m = build("bilayer-graphene", asymmetry=0.0)
+    r = response(m, mu=0.03, temperature=10.0, tau=100.0)
+    assert r.resolution.level == 1 and r.resolution.converged
+    e2h = C.e ** 2 / C.h
+    assert abs(float(r.sigma_anomalous[0, 1].real)) < 1e-12 * e2h
+    assert float(r.error.sigma_anomalous[0, 1]) < 1e-12 * e2h
+    assert float(np.max(np.asarray(r.error.dipole))) < 1e-12 * 1e-10          # m, against 1/k_s ≈ 670 Å

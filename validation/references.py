@@ -149,10 +149,12 @@ def bilayer_box_grid(params, cond, half_width=0.04, n=1000):
     (``params`` keys as the model's: gamma0, gamma1, gamma3, gamma4, dimer_shift, asymmetry,
     sublattice_asymmetry, lattice_constant; missing keys take the model's defaults).  The two
     lowest bands are filled at neutrality: n = 2 Σ∫ [f0(ε_upper) − (1 − f0(ε_lower))] d²k/(2π)².
-    Outside the box every band lies more than 0.1 eV from a μ of a few meV (γ1-split bands and
-    (ħv0k)²/γ1 at k = 0.04 Å⁻¹), so at a few kelvin the truncation is below e^{−500}; the midpoint
+    On the box's edge every band lies about 0.1 eV or more from a μ of a few meV (γ1-split bands
+    and (ħv0k)²/γ1 at k = 0.04 Å⁻¹: 580 k_BT at 2 K), so the truncation is negligible; the midpoint
     rule converges spectrally once h resolves k_BT/|∇ε| (μ = 0.5 meV, 2 K, U = 0: n = 1000 and
     2000 agree to 1e-9 in the density and 4e-8 in the density of states)."""
+    if params.get("valleys") != 1 or params.get("degeneracy", 2) != 2:
+        raise ValueError("bilayer_box_grid: pass valleys=1 (the grid covers valley K only, spin degeneracy 2)")
     defaults = {"gamma0": 3.16, "gamma1": 0.381, "gamma3": 0.38, "gamma4": 0.14, "dimer_shift": 0.022,
                 "asymmetry": 0.05, "sublattice_asymmetry": 0.0, "lattice_constant": 2.46}
     p = {**defaults, **{k: v for k, v in params.items() if k in defaults}}

@@ -386,24 +386,59 @@ def _floors(mom, model, tau_max):
             "dipole": dip * L ** (3 - d), "chi": chi, "chi_dc": chi}
 
 
+#: a Berry-curvature field whose error is below this fraction of its natural unit (:func:`_natural_units`)
+#: times rtol is resolved to rounding level: e.g. σ_xy in a gap of graphene-like bands whose curvature
+#: vanishes identically by PT symmetry, where the integrand magnitude itself is rounding noise
+ROUNDING_ZERO = 1e-9
+
+
+def _natural_units(model):
+    """SI units that the Berry-curvature fields take on for curvature of the model's own size
+    (Ω ~ 1/k_s², k_s the shortest reciprocal vector of a lattice or the mesh-placement wavevector
+    of a continuum model): the anomalous Hall conductivity (e²/h)·k_s^(d−2), the dipole
+    k_s^(d−3) (a length in 2D, a number in 3D)."""
+    if isinstance(model.domain, Lattice):
+        k_s = float(np.linalg.norm(np.asarray(model.reciprocal_vectors()), axis=1).min())
+    else:
+        k_s = float(model.domain.scale_for(model.params))
+    k_si, d = k_s / ANGSTROM, model.dim
+    return {"sigma_anomalous": E ** 2 / (2 * np.pi * HB) * k_si ** (d - 2), "dipole": k_si ** (d - 3)}
+
+
+def _excess(part):
+    """Error over allowance of an (error, allowed) pair, for ranking: NaN errors rank first."""
+    diff, allowed = part
+    if np.isnan(diff):
+        return np.inf
+    return diff / allowed if allowed > 0 else (np.inf if diff > 0 else 0.0)
+
+
 def _field_status(fine, err, mom_fine, rtol, model, tau_max):
     """{field: (largest estimated error, allowed error, size)}: ``rtol`` times the field's size,
-    or, for a field that vanishes by symmetry, times 1e-2 of its integrand magnitude.  The
+    or, for a field that vanishes by symmetry, times 1e-2 of its integrand magnitude; for the
+    anomalous Hall conductivity and the dipole at least :data:`ROUNDING_ZERO` of their natural
+    units (:func:`_natural_units`), because a curvature that vanishes pointwise by symmetry (PT:
+    graphene, bilayer graphene at U = 0) leaves an integrand magnitude of rounding size too.  The
     off-diagonal components of σ take the floor of the anomalous Hall conductivity, whose valley
     or spin partners cancel there (μ in the gap of a time-reversal-invariant insulator: a
     Fermi-sea sum at rounding level); its diagonal, a Drude part that no symmetry cancels, is
-    judged against the size of σ alone.  Of the two parts the one with the larger error relative
-    to its allowance is reported."""
+    judged against the size of σ alone, and so is the off-diagonal Drude part (an anisotropic
+    σ_xy^Drude, ``err.sigma_drude``), while σ_anomalous keeps its own check.  Of the parts the one
+    with the larger error relative to its allowance is reported (a NaN error counts as the
+    largest)."""
     out = {}
     floors = _floors(mom_fine, model, tau_max)
+    for name, unit in _natural_units(model).items():
+        floors[name] = max(floors[name], 1e2 * ROUNDING_ZERO * unit)
     for name in ("density", "sigma", "sigma_anomalous", "dipole", "chi", "chi_dc"):
         a, e = np.asarray(getattr(fine, name)), np.asarray(getattr(err, name))
         size = float(np.max(np.abs(a))) if a.size else 0.0
         if name == "sigma" and e.size:
             off = ~np.eye(e.shape[-1], dtype=bool)
-            parts = [(float(np.max(e[..., ~off])), rtol * size),
+            drude = np.asarray(err.sigma_drude)
+            parts = [(float(np.max(e[..., ~off])), rtol * size), (float(np.max(drude[..., off])), rtol * size),
                      (float(np.max(e[..., off])), rtol * max(size, floors["sigma_anomalous"] * 1e-2))]
-            diff, allowed = max(parts, key=lambda p: p[0] / p[1] if p[1] > 0 else (np.inf if p[0] > 0 else 0.0))
+            diff, allowed = max(parts, key=_excess)
             out[name] = (diff, allowed, size)
             continue
         floor = floors.get(name, 0.0) * 1e-2
