@@ -149,8 +149,9 @@ def bilayer_box_grid(params, cond, half_width=0.04, n=1000):
     (``params`` keys as the model's: gamma0, gamma1, gamma3, gamma4, dimer_shift, asymmetry,
     sublattice_asymmetry, lattice_constant; missing keys take the model's defaults).  The two
     lowest bands are filled at neutrality: n = 2 Σ∫ [f0(ε_upper) − (1 − f0(ε_lower))] d²k/(2π)².
-    On the box's edge every band lies about 0.1 eV or more from a μ of a few meV (γ1-split bands
-    and (ħv0k)²/γ1 at k = 0.04 Å⁻¹: 580 k_BT at 2 K), so the truncation is negligible; the midpoint
+    On the box's edge every band must lie at least 40 k_BT from μ (checked; else ValueError): for
+    U = 0 and μ of a few meV they lie about 0.1 eV away (580 k_BT at 2 K), but at U = 0.2 eV and
+    μ = 0.12 eV, 10 K, 0.04 Å⁻¹ cut 1.7e-4 of the density of states; the midpoint
     rule converges spectrally once h resolves k_BT/|∇ε| (μ = 0.5 meV, 2 K, U = 0: n = 1000 and
     2000 agree to 1e-9 in the density and 4e-8 in the density of states)."""
     if params.get("valleys") != 1 or params.get("degeneracy", 2) != 2:
@@ -163,10 +164,8 @@ def bilayer_box_grid(params, cond, half_width=0.04, n=1000):
     u, dp, dl, g1 = p["asymmetry"], p["dimer_shift"], p["sublattice_asymmetry"], p["gamma1"]
     diag = ((-u + dl) / 2, (-u + 2 * dp - dl) / 2, (u + 2 * dp + dl) / 2, (u - dl) / 2)
     kt, mu = KB * cond["temperature"], cond["mu"]
-    x = ((np.arange(n) + 0.5) / n * 2.0 - 1.0) * half_width
-    dens = dos = 0.0
-    for row in range(0, n, 64):
-        kx, ky = np.meshgrid(x[row:row + 64], x, indexing="ij")
+
+    def energies(kx, ky):
         pi = (kx + 1j * ky).ravel()
         pc = np.conj(pi)
         h = np.zeros((pi.size, 4, 4), complex)
@@ -175,7 +174,21 @@ def bilayer_box_grid(params, cond, half_width=0.04, n=1000):
         h[:, 0, 1], h[:, 0, 2], h[:, 0, 3] = v0 * pc, -v4 * pc, v3 * pi
         h[:, 1, 2], h[:, 1, 3], h[:, 2, 3] = g1, -v4 * pc, v0 * pc
         h = h + np.conj(np.transpose(np.triu(h, 1), (0, 2, 1)))
-        z = (np.linalg.eigvalsh(h) - mu) / kt
+        return np.linalg.eigvalsh(h)
+
+    # the box must hold every state within 40 k_BT of μ (the occupations' tails beyond are e^{−40})
+    t = np.linspace(-half_width, half_width, 4 * n)
+    edge = np.concatenate([np.stack([t, np.full_like(t, c)], 1) for c in (-half_width, half_width)]
+                          + [np.stack([np.full_like(t, c), t], 1) for c in (-half_width, half_width)])
+    gap = float(np.min(np.abs(energies(edge[:, 0], edge[:, 1]) - mu)))
+    if gap < 40.0 * kt:
+        raise ValueError(f"bilayer_box_grid: a band comes within {gap / kt:.1f} k_BT of μ on the box's edge; "
+                         "raise half_width")
+    x = ((np.arange(n) + 0.5) / n * 2.0 - 1.0) * half_width
+    dens = dos = 0.0
+    for row in range(0, n, 64):
+        kx, ky = np.meshgrid(x[row:row + 64], x, indexing="ij")
+        z = (energies(kx, ky) - mu) / kt
         f0 = 0.5 * (1.0 - np.tanh(0.5 * z))
         dens += np.sum(f0[:, 2:]) - np.sum(1.0 - f0[:, :2])
         dos += np.sum(0.25 / np.cosh(0.5 * np.clip(z, -700.0, 700.0)) ** 2) / kt
