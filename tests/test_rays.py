@@ -369,3 +369,15 @@ def test_trigonal_warping_pockets_of_bilayer_graphene_against_a_cartesian_grid()
     assert err < 1e-5
     assert err * dens <= float(r.error.density) < 1e-3 * dens
     assert abs(float(r.dos) - dos) <= float(r.error.dos)
+
+
+def test_the_bilayer_reference_grid_refuses_a_box_too_small_or_two_valleys():
+    """The Cartesian reference counts only the states inside its box around K: at U = 0.2 eV,
+    μ = 0.1228 eV and 10 K a band comes within 5 k_BT of μ on the edge of ±0.04 Å⁻¹ (that box had
+    cut 1.7e-4 of the density of states), so it refuses; it also refuses a model with two valleys."""
+    cond = dict(mu=0.1228, temperature=10.0)
+    with pytest.raises(ValueError, match=r"within 4\.\d k_BT of μ on the box's edge; raise half_width"):
+        bilayer_box_grid(dict(valleys=1, asymmetry=0.2), cond, n=50)
+    with pytest.raises(ValueError, match="pass valleys=1"):
+        bilayer_box_grid(dict(asymmetry=0.2), cond, n=50)
+    assert np.isfinite(bilayer_box_grid(dict(valleys=1, asymmetry=0.2), cond, half_width=0.06, n=50)[0])
