@@ -97,10 +97,12 @@ class RayPlan:
     t_res: float
     extrapolate: bool = False
     spacing: float = float("inf")
+    satellites: int = 0
 
     @property
     def panels(self) -> int:
-        return len(GEOMETRIC) + self.slots
+        # with satellites every ray also breaks where it meets their circles (_circle_breaks)
+        return len(GEOMETRIC) + self.slots + circle_breaks(self.satellites)
 
     def nodes_per_ray(self) -> int:
         return self.panels * self.nodes + 2 * self.nodes
@@ -112,18 +114,22 @@ class RayPlan:
         return dataclasses.replace(self, slots=min(wide, 2 * n_bands * self.levels))
 
     def k_points(self, centres: int) -> int:
-        """Points where the band geometry is evaluated (probe and bisection evaluate energies only)."""
-        return centres * self.angles * self.nodes_per_ray()
+        """Points where the band geometry is evaluated (probe and bisection evaluate energies only):
+        the rays of the model's ``centres`` and of the plan's satellites."""
+        return (centres + self.satellites) * self.angles * self.nodes_per_ray()
 
 
 @pytree_dataclass
 class RayGrid:
     """The placement arrays of a plan (leaves; new values never recompile): energy breakpoints
-    (levels,), the first knot ``e_lo`` and the finest knot spacing ``delta`` (eV)."""
+    (levels,), the first knot ``e_lo`` and the finest knot spacing ``delta`` (eV), and the
+    satellite centres (S, 3): k_x, k_y (1/Å) and the partition radius R (:func:`satellites`;
+    None without)."""
 
     breakpoints: jax.Array
     e_lo: jax.Array
     delta: jax.Array
+    satellites: jax.Array | None = None
 
 
 def _gauss(n):
@@ -190,11 +196,154 @@ def slot_count(found: int, margin: float = SLOT_MARGIN) -> int:
     return _bucket(int(found * margin) + 4, 16)
 
 
+#: satellite centres (band touchings away from the model's centre; docs/theory.md §14.3, item 6):
+#: probe directions of the search, the largest gap that counts as a touching (in units of the
+#: breakpoint spacing c·k_BT of the coldest window), at most this many, the partition radius R as
+#: this share of the distance to the nearest other centre, and the circles (in units of R) where
+#: every ray gets a breakpoint (the partition weight changes between R/2 and R)
+SAT_ANGLES = 90
+SAT_GAP = 2.0
+SAT_MAX = 8
+SAT_SHARE = 0.45
+SAT_RADII = (0.5, 0.75, 1.0)
+#: satellites whose circles one ray keeps as breakpoints (a ray from the centre meets at most one
+#: disk when the satellites are 60° apart, as in bilayer graphene; a satellite's own rays keep
+#: only its own circles)
+SAT_PER_RAY = 2
+
+
+def circle_breaks(satellites: int) -> int:
+    """Breakpoints per ray where it meets satellite circles (:func:`_circle_breaks`)."""
+    return 2 * len(SAT_RADII) * min(satellites, SAT_PER_RAY)
+
+
+@partial(jax.jit, static_argnames=("angles",))
+def _probe_blocks(model, params, c, *, angles):
+    """Band energies block by block on a polar probe grid around ``c``: points (A, R, 2) and
+    energies (A, R, blocks, block size)."""
+    kr = probe_radii(model.domain.scale_for(params))[1::2]
+    pts = c[None, None, :] + kr[None, :, None] * _directions(angles)[:, None, :]
+    e = jax.vmap(jax.vmap(lambda q: energies_at(model, q, params, ordered=False)))(pts)
+    return pts, e.reshape(e.shape[:2] + (model.blocks, model.block_size))
+
+
+@jax.jit
+def _zoom_to_touching(model, params, k0, block, band, step):
+    """Positions (N, 2) of the smallest gap between bands ``band``, ``band`` + 1 of ``block`` near
+    ``k0`` (N, 2), the gaps there and the pairs' mean energies (eV): a 5×5 grid of spacing ``step`` around each point,
+    moved to its smallest gap and halved, 48 times (the point stays inside each grid)."""
+    offs = jnp.stack(jnp.meshgrid(jnp.arange(-2.0, 3.0), jnp.arange(-2.0, 3.0), indexing="ij"), -1).reshape(-1, 2)
+
+    def pair(k, b, n):
+        e = energies_at(model, k, params, ordered=False).reshape(model.blocks, model.block_size)[b]
+        return e[n + 1] - e[n], 0.5 * (e[n + 1] + e[n])
+
+    def gap(k, b, n):
+        return pair(k, b, n)[0]
+
+    def body(_, state):
+        k, h = state
+        pts = k[:, None, :] + h[:, :, None] * offs[None, :, :]                        # (N, 25, 2)
+        g = jax.vmap(lambda q, b, n: jax.vmap(lambda x: gap(x, b, n))(q))(pts, block, band)
+        best = jnp.take_along_axis(pts, jnp.argmin(g, axis=1)[:, None, None], axis=1)[:, 0]
+        return best, 0.5 * h
+
+    k, _ = jax.lax.fori_loop(0, 48, body, (k0, step))
+    return (k,) + jax.vmap(pair)(k, block, band)
+
+
+def satellites(model: BandModel, params, mu, kt, t_res, spacing) -> np.ndarray:
+    """Band touchings away from the model's (single) centre whose energy lies in the union of
+    the windows μ ± (W+2)k_BT: (S, 3) rows k_x, k_y (1/Å) and a partition radius R (1/Å).
+
+    A touching away from the centre (the satellite Dirac points of trigonal warping in bilayer
+    graphene) puts a cone apex inside the window where the rays from the centre pass at every
+    distance: the band velocity turns round there, and the angular rule converges only as h².
+    Such a point becomes a centre of its own rays (polar coordinates about a cone apex are
+    smooth), with the partition of unity ψ_j(|k − k_j|/R_j) for its rays and 1 − Σ_j ψ_j for the
+    centre's (ψ = 1 within R/2, 0 beyond R, C∞ between: :func:`_partition`).  Search: local minima
+    of each adjacent pair's gap within a block on a polar probe grid, refined by a shrinking 5×5
+    grid (:func:`_zoom_to_touching`); a touching is kept when its gap is below ``SAT_GAP``·``spacing``·k_BT_min,
+    it lies farther than s/4 from the centre (s the model's wavevector scale) and within reach of a
+    window.  R is ``SAT_SHARE`` of the distance to the nearest other centre."""
+    dom = model.domain
+    if isinstance(dom, Lattice) or model.dim != 2 or len(dom.centers) != 1 or model.block_size < 2:
+        return np.zeros((0, 3))
+    p = jax.lax.stop_gradient(params)
+    win = effective_windows(mu, kt, t_res)
+    lo = float(np.min(win[:, 0] - (W + 2) * win[:, 1]))
+    hi = float(np.max(win[:, 0] + (W + 2) * win[:, 1]))
+    tol = SAT_GAP * spacing * float(win[:, 1].min())
+    c = np.asarray(dom.centers[0], dtype=float)
+    s = float(dom.scale_for(p))
+    pts, e = (np.asarray(a) for a in _probe_blocks(model, p, jnp.asarray(c), angles=SAT_ANGLES))
+    gap = e[..., 1:] - e[..., :-1]                                   # (A, R, blocks, pairs)
+    mid = 0.5 * (e[..., 1:] + e[..., :-1])
+    # local minima over the 3×3 neighbourhood (periodic in angle, not at the radial ends)
+    padded = np.concatenate([gap[-1:], gap, gap[:1]], axis=0)
+    local = np.ones(gap.shape, dtype=bool)
+    local[:, 0] = local[:, -1] = False
+    rise = np.zeros(gap.shape)
+    for da in (-1, 0, 1):
+        for dr in (-1, 0, 1):
+            if da or dr:
+                shifted = np.roll(padded, -dr, axis=1)[1 + da:1 + da + gap.shape[0]]
+                local &= gap <= shifted
+                rise = np.maximum(rise, shifted - gap)
+    # a touching next to a probe point leaves a gap there no larger than the gap's rise to the
+    # neighbouring points (it grows linearly away from the touching); a finite gap does not
+    # a pair degenerate everywhere (a Kramers pair inside one block) has no touching to find
+    split = np.max(gap, axis=(0, 1)) > 10.0 * tol
+    near = local & split & (gap <= rise + tol) & (mid >= lo - gap) & (mid <= hi + gap)
+    cand = np.argwhere(near)[np.argsort(gap[near])[:4 * SAT_MAX]]
+    if not len(cand):
+        return np.zeros((0, 3))
+    cand = np.concatenate([cand, np.repeat(cand[:1], 4 * SAT_MAX - len(cand), axis=0)])   # one compiled shape
+    a, r, b, n = cand.T
+    # start grid spacing: the probe spacing there (angular and radial), so the touching is inside
+    kr = np.linalg.norm(pts[a, r] - c, axis=1)
+    step = np.maximum(kr * 2 * np.pi / SAT_ANGLES, np.linalg.norm(pts[a, r + 1] - pts[a, r - 1], axis=1))
+    ks, gs, levels = (np.asarray(x) for x in _zoom_to_touching(model, p, jnp.asarray(pts[a, r]), jnp.asarray(b),
+                                                                jnp.asarray(n), jnp.asarray(step[:, None])))
+    found = []
+    for k, g, level in zip(ks, gs, levels):
+        if g < tol and lo <= level <= hi and np.linalg.norm(k - c) > 0.25 * s:
+            if all(np.linalg.norm(k - q) > 1e-3 * s for q in found):
+                found.append(k)
+    found = found[:SAT_MAX]
+    if not found:
+        return np.zeros((0, 3))
+    ks = np.asarray(found)
+    others = np.concatenate([c[None], ks])
+    radius = []
+    for j, k in enumerate(ks):
+        d = np.linalg.norm(others - k, axis=1)
+        d[j + 1] = np.inf
+        radius.append(SAT_SHARE * d.min())
+    return np.concatenate([ks, np.asarray(radius)[:, None]], axis=1)
+
+
+def _partition(t):
+    """ψ(t): 1 for t ≤ ½, 0 for t ≥ 1, C∞ between (every derivative vanishes at both ends)."""
+    u = jnp.clip(2.0 * t - 1.0, 0.0, 1.0)
+    a = jnp.where(u < 1.0, jnp.exp(-1.0 / jnp.where(u < 1.0, 1.0 - u, 1.0)), 0.0)
+    b = jnp.where(u > 0.0, jnp.exp(-1.0 / jnp.where(u > 0.0, u, 1.0)), 0.0)
+    return a / (a + b)
+
+
+def plan_satellites(model: BandModel, params, mu, kt) -> np.ndarray:
+    """:func:`satellites` for the conditions (μ, k_BT), searched with the settings of resolution 0
+    (the widest windows and the largest gap tolerance), so that every resolution of a call uses
+    the same satellites and the same partition."""
+    return satellites(model, params, mu, kt, RESOLUTIONS[0][4], RESOLUTIONS[0][2])
+
+
 def make_plan(model: BandModel, params, mu, kt, resolution: int, slots: int | None = None,
-              margin: float = SLOT_MARGIN):
+              margin: float = SLOT_MARGIN, sats: np.ndarray | None = None):
     """Plan and grid for the conditions (μ, k_BT) (eV) at ``resolution`` (index into
     ``RESOLUTIONS``).  ``slots`` (crossing panels per ray) defaults to
-    :func:`slot_count` of a count on the model with ``margin``."""
+    :func:`slot_count` of a count on the model with ``margin``; ``sats`` (S, 3) to
+    :func:`plan_satellites` of the conditions."""
     angles, nodes, c, rho, t_res = RESOLUTIONS[resolution]
     bps = breakpoints(mu, kt, t_res, c)
     nlev = _bucket(len(bps), 16)
@@ -207,13 +356,15 @@ def make_plan(model: BandModel, params, mu, kt, resolution: int, slots: int | No
     e_lo = float(bps[0]) - 8 * coarsest
     span = float(bps[-1]) + 8 * coarsest - e_lo
     knots = _bucket(int(np.ceil(span / delta)) + window_knots(rho) + 16, 256)
-    grid = RayGrid(jnp.asarray(padded), jnp.asarray(e_lo), jnp.asarray(delta))
+    sats = plan_satellites(model, params, mu, kt) if sats is None else np.asarray(sats)
+    grid = RayGrid(jnp.asarray(padded), jnp.asarray(e_lo), jnp.asarray(delta),
+                   jnp.asarray(sats) if len(sats) else None)
     if slots is None:
         found = int(np.max(np.asarray(_crossing_counts(model, params, grid, angles=angles))))
         slots = slot_count(found, margin)
     slots = min(slots, 2 * model.n_bands * nlev)
     cold = bool(np.any(np.asarray(kt) < KB * t_res))
-    return RayPlan(angles, nodes, nlev, slots, knots, tables, rho, t_res, cold, c), grid
+    return RayPlan(angles, nodes, nlev, slots, knots, tables, rho, t_res, cold, c, len(sats)), grid
 
 
 # --------------------------------------------------------------------------------------------
@@ -260,7 +411,7 @@ def _crossing_counts(model, params, grid, *, angles):
     dom = model.domain
     s = dom.scale_for(p)
     kr = probe_radii(s)
-    centers = jnp.asarray(np.asarray(dom.centers, dtype=float))
+    centers = _ray_centres(model, grid)
     dirs = _directions(angles)
 
     def one(c, d):
@@ -268,6 +419,38 @@ def _crossing_counts(model, params, grid, *, angles):
         return jnp.sum(pos >= 0)
 
     return jax.vmap(lambda c: jax.lax.map(lambda d: one(c, d), dirs))(centers)
+
+
+def _ray_centres(model, grid):
+    """Origins of the ray sets (C + S, 2): the model's centres, then the grid's satellites."""
+    centres = jnp.asarray(np.asarray(model.domain.centers, dtype=float))
+    if grid.satellites is None:
+        return centres
+    return jnp.concatenate([centres, jax.lax.stop_gradient(grid.satellites)[:, :2]])
+
+
+def _circle_breaks(c, dvec, sats, own):
+    """Where the ray c + t·dvec (t ≥ 0) of the centre (``own`` = −1) or of satellite ``own``
+    meets the circles of radii ``SAT_RADII``·R around the satellites (S, 3), where the partition
+    weight changes: the largest :func:`circle_breaks` values of t (0 where it meets none).  A
+    satellite's own rays keep only its own circles (the weight is zero beyond R)."""
+    delta = c[None, :] - sats[:, :2]                                   # (S, 2)
+    b = delta @ dvec                                                   # (S,)
+    rho = sats[:, 2:3] * jnp.asarray(SAT_RADII)[None, :]               # (S, n)
+    disc = b[:, None] ** 2 - jnp.sum(delta * delta, axis=1)[:, None] + rho ** 2
+    root = jnp.sqrt(jnp.maximum(disc, 0.0))
+    t = jnp.stack([-b[:, None] - root, -b[:, None] + root], axis=-1)   # (S, n, 2)
+    mine = (own < 0) | (jnp.arange(sats.shape[0]) == own)
+    t = jnp.where((disc[..., None] > 0.0) & mine[:, None, None], jnp.maximum(t, 0.0), 0.0)
+    return jnp.sort(t.reshape(-1))[t.size - circle_breaks(sats.shape[0]):]
+
+
+def _partition_weights(k, sats, own):
+    """Partition-of-unity factor of nodes ``k`` (N, 2) on a ray of the centre (``own`` = −1) or of
+    satellite ``own`` ≥ 0: 1 − Σ_j ψ(|k − k_j|/R_j), or ψ(|k − k_own|/R_own)."""
+    psi = _partition(jnp.linalg.norm(k[:, None, :] - sats[None, :, :2], axis=-1) / sats[None, :, 2])   # (N, S)
+    mine = jax.nn.one_hot(own, sats.shape[0], dtype=psi.dtype)
+    return jnp.where(own < 0, 1.0 - jnp.sum(psi, axis=1), psi @ mine)
 
 
 def crossings(model, p, c, dvec, kr, levels, slots):
@@ -306,15 +489,18 @@ def ray_nodes(model: BandModel, params, plan: RayPlan, grid: RayGrid):
     s = dom.scale_for(p)
     kr = probe_radii(s)
     levels = jax.lax.stop_gradient(grid.breakpoints)
-    centers = jnp.asarray(np.asarray(dom.centers, dtype=float))
+    centers = _ray_centres(model, grid)
+    sats = None if grid.satellites is None else jax.lax.stop_gradient(grid.satellites)
+    owner = jnp.arange(centers.shape[0]) - len(dom.centers)           # −1: a model centre; j: satellite j
     dirs = _directions(plan.angles)
     x, wx = _gauss(plan.nodes)
     geo = jnp.asarray(GEOMETRIC) * s
 
-    def one_ray(c, dvec):
+    def one_ray(c, dvec, own):
         ok, kc, found = crossings(model, p, c, dvec, kr, levels, plan.slots)
         kc = jnp.where(ok, kc, 0.0)
-        bps = jnp.sort(jnp.concatenate([jnp.zeros(1), geo, kc]))
+        extra = [] if sats is None else [_circle_breaks(c, dvec, sats, own)]
+        bps = jnp.sort(jnp.concatenate([jnp.zeros(1), geo, kc] + extra))
         lo, hi = bps[:-1], bps[1:]
         r = lo[:, None] + (hi - lo)[:, None] * x[None, :]
         wr = (hi - lo)[:, None] * wx[None, :]
@@ -325,9 +511,12 @@ def ray_nodes(model: BandModel, params, plan: RayPlan, grid: RayGrid):
         r = jnp.concatenate([r.reshape(-1), rt])
         wr = jnp.concatenate([wr.reshape(-1), wrt])
         pts = c[None, :] + r[:, None] * dvec[None, :]
-        return pts, wr * r * (2 * jnp.pi / plan.angles) / (2 * jnp.pi) ** 2, found > plan.slots
+        w = wr * r * (2 * jnp.pi / plan.angles) / (2 * jnp.pi) ** 2
+        if sats is not None:
+            w = w * _partition_weights(pts, sats, own)
+        return pts, w, found > plan.slots
 
-    pts, w, over = jax.vmap(lambda c: jax.lax.map(lambda d: one_ray(c, d), dirs))(centers)
+    pts, w, over = jax.vmap(lambda c, o: jax.lax.map(lambda d: one_ray(c, d, o), dirs))(centers, owner)
     return (jax.lax.stop_gradient(pts.reshape(-1, 2)), jax.lax.stop_gradient(w.reshape(-1)),
             jnp.any(over))
 

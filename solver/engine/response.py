@@ -857,13 +857,15 @@ def _energy_errors(f, ex, coarse, over, tail, model, temp, intrinsic):
     return fine, jax.tree_util.tree_map(jnp.add, resolvable, _tail_errors(fine, tail, temp)), resolvable
 
 
-def _run_rays(model, mu, kt, temp, tau_arr, omega, res, kw, plan, traced, eng=_rays):
+def _run_rays(model, mu, kt, temp, tau_arr, omega, res, kw, plan, traced, eng=_rays, extra=None):
     """One evaluation of the shared ray rule; a concrete run whose rays had more crossings than
-    the plan's slots (or whose windows left the knot tables) is repeated with a new plan."""
+    the plan's slots (or whose windows left the knot tables) is repeated with a new plan.
+    ``extra``: keyword arguments of ``make_plan`` (the call's satellites)."""
+    extra = extra or {}
     if plan is None:
         # this run counts the crossings at its own parameters: no slot margin (the plan it reports
         # for reuse carries one, _rays_path)
-        plan = eng.make_plan(model, model.params, np.asarray(mu), np.asarray(kt), res, margin=1.0)
+        plan = eng.make_plan(model, model.params, np.asarray(mu), np.asarray(kt), res, margin=1.0, **extra)
     at = _shells_at if eng is _shells else _rays_at
     tried = []
     for _ in range(3):
@@ -871,10 +873,10 @@ def _run_rays(model, mu, kt, temp, tau_arr, omega, res, kw, plan, traced, eng=_r
         sums, ex, over, tail = at(model, plan[1], mu, kt, temp, tau_arr, omega, plan=plan[0], **kw)
         if traced or not bool(over):
             break
-        counted = eng.make_plan(model, model.params, np.asarray(mu), np.asarray(kt), res, margin=1.0)
+        counted = eng.make_plan(model, model.params, np.asarray(mu), np.asarray(kt), res, margin=1.0, **extra)
         plan = (counted if counted[0].slots > plan[0].slots else
                 eng.make_plan(model, model.params, np.asarray(mu), np.asarray(kt), res,
-                                slots=2 * plan[0].slots))
+                              slots=2 * plan[0].slots, **extra))
     return sums, (ex, tail), over, tried
 
 
@@ -895,9 +897,12 @@ def _rays_path(model, muf, kt, Tf, tauf, omega, kw, rtol, resolution, max_level,
     k_points = 0
     centres = len(model.domain.centers)
     runs, attempts = {}, {}
+    # one satellite search per call (a given plan carries its own)
+    extra = {} if eng is not _rays or traced else {"sats": _rays.plan_satellites(model, model.params,
+                                                                                 np.asarray(muf), np.asarray(kt))}
 
     def run(lev, given=None):
-        sums, ex, over, tried = _run_rays(model, muf, kt, Tf, tauf, omega, lev, kw, given, traced, eng)
+        sums, ex, over, tried = _run_rays(model, muf, kt, Tf, tauf, omega, lev, kw, given, traced, eng, extra)
         nonlocal k_points
         k_points += sum(p[0].k_points(centres) for p in tried)
         used = tried[-1]
