@@ -63,7 +63,7 @@ def test_curvature_that_vanishes_pointwise_by_symmetry_does_not_hold_refinement_
     Ω vanish at every k (McCann & Koshino, Rep. Prog. Phys. 76, 056503, 2013), so σ_anomalous and
     the dipole are rounding noise (about 1e-19 S and 1e-25 m), and so are their integrand
     magnitudes, the symmetry floor of the acceptance rule.  Before, the automatic call climbed to
-    the top resolution (4) and reported both unconverged; now errors below rtol·1e-9 of their
+    the top resolution (4) and reported both unconverged; now errors below rtol·1e-6 of their
     natural units (e²/h, and the length 1/k_s of the model's wavevector scale) count as resolved."""
     m = build("bilayer-graphene", asymmetry=0.0)
     r = response(m, mu=0.03, temperature=10.0, tau=100.0)

@@ -210,6 +210,16 @@ SAT_RADII = (0.5, 0.75, 1.0)
 #: disk when the satellites are 60° apart, as in bilayer graphene; a satellite's own rays keep
 #: only its own circles)
 SAT_PER_RAY = 2
+#: a touching: the refined gap below this (eV; a cone apex refines to rounding level, a finite gap
+#: does not, whatever the temperature); steps of the refining grid (:func:`_zoom_to_touching`);
+#: smallest partition radius in units of the model's wavevector scale s (the satellite's rays find
+#: their crossings on the model's probe grid, whose spacing near a centre is about s/40)
+SAT_TOUCH = 1e-6
+ZOOM_STEPS = 96
+SAT_MIN_RADIUS = 0.125
+#: a touching is a satellite when its energy lies within this many k_BT of some condition's μ
+#: (farther, the weight −∂f0/∂ε of its neighbourhood is below e^{−12} ≈ 6e-6)
+SAT_REACH = 12.0
 
 
 def circle_breaks(satellites: int) -> int:
@@ -230,8 +240,9 @@ def _probe_blocks(model, params, c, *, angles):
 @jax.jit
 def _zoom_to_touching(model, params, k0, block, band, step):
     """Positions (N, 2) of the smallest gap between bands ``band``, ``band`` + 1 of ``block`` near
-    ``k0`` (N, 2), the gaps there and the pairs' mean energies (eV): a 5×5 grid of spacing ``step`` around each point,
-    moved to its smallest gap and halved, 48 times (the point stays inside each grid)."""
+    ``k0`` (N, 2), the gaps there and the pairs' mean energies (eV): a 5×5 grid of spacing ``step``
+    around each point, moved to its smallest gap, and halved when its centre is already the
+    smallest, ``ZOOM_STEPS`` times."""
     offs = jnp.stack(jnp.meshgrid(jnp.arange(-2.0, 3.0), jnp.arange(-2.0, 3.0), indexing="ij"), -1).reshape(-1, 2)
 
     def pair(k, b, n):
@@ -245,16 +256,20 @@ def _zoom_to_touching(model, params, k0, block, band, step):
         k, h = state
         pts = k[:, None, :] + h[:, :, None] * offs[None, :, :]                        # (N, 25, 2)
         g = jax.vmap(lambda q, b, n: jax.vmap(lambda x: gap(x, b, n))(q))(pts, block, band)
-        best = jnp.take_along_axis(pts, jnp.argmin(g, axis=1)[:, None, None], axis=1)[:, 0]
-        return best, 0.5 * h
+        i = jnp.argmin(g, axis=1)
+        best = jnp.take_along_axis(pts, i[:, None, None], axis=1)[:, 0]
+        # the grid shrinks only once its centre is the best point (an anisotropic cone can lead a
+        # shrinking grid away along its soft direction)
+        centred = (i == 12) | (g[:, 12] <= jnp.take_along_axis(g, i[:, None], axis=1)[:, 0])
+        return best, jnp.where(centred[:, None], 0.5 * h, h)
 
-    k, _ = jax.lax.fori_loop(0, 48, body, (k0, step))
+    k, _ = jax.lax.fori_loop(0, ZOOM_STEPS, body, (k0, step))
     return (k,) + jax.vmap(pair)(k, block, band)
 
 
 def satellites(model: BandModel, params, mu, kt, t_res, spacing) -> np.ndarray:
-    """Band touchings away from the model's (single) centre whose energy lies in the union of
-    the windows μ ± (W+2)k_BT: (S, 3) rows k_x, k_y (1/Å) and a partition radius R (1/Å).
+    """Band touchings away from the model's (single) centre whose energy lies within
+    ``SAT_REACH``·k_BT of some condition's μ: (S, 3) rows k_x, k_y (1/Å) and a partition radius R (1/Å).
 
     A touching away from the centre (the satellite Dirac points of trigonal warping in bilayer
     graphene) puts a cone apex inside the window where the rays from the centre pass at every
@@ -263,9 +278,11 @@ def satellites(model: BandModel, params, mu, kt, t_res, spacing) -> np.ndarray:
     smooth), with the partition of unity ψ_j(|k − k_j|/R_j) for its rays and 1 − Σ_j ψ_j for the
     centre's (ψ = 1 within R/2, 0 beyond R, C∞ between: :func:`_partition`).  Search: local minima
     of each adjacent pair's gap within a block on a polar probe grid, refined by a shrinking 5×5
-    grid (:func:`_zoom_to_touching`); a touching is kept when its gap is below ``SAT_GAP``·``spacing``·k_BT_min,
-    it lies farther than s/4 from the centre (s the model's wavevector scale) and within reach of a
-    window.  R is ``SAT_SHARE`` of the distance to the nearest other centre."""
+    grid (:func:`_zoom_to_touching`); a touching is kept when its refined gap is below ``SAT_TOUCH``
+    (and ``SAT_GAP``·``spacing``·k_BT_min), it lies farther than s/4 from the centre (s the
+    model's wavevector scale) and its energy within ``SAT_REACH``·k_BT of some condition's μ.  R is ``SAT_SHARE`` of the
+    distance to the nearest other centre or touching, and a touching with R below
+    ``SAT_MIN_RADIUS``·s is left to the centre's rays."""
     dom = model.domain
     if isinstance(dom, Lattice) or model.dim != 2 or len(dom.centers) != 1 or model.block_size < 2:
         return np.zeros((0, 3))
@@ -291,8 +308,8 @@ def satellites(model: BandModel, params, mu, kt, t_res, spacing) -> np.ndarray:
                 local &= gap <= shifted
                 rise = np.maximum(rise, shifted - gap)
     # a touching next to a probe point leaves a gap there no larger than the gap's rise to the
-    # neighbouring points (it grows linearly away from the touching); a finite gap does not
-    # a pair degenerate everywhere (a Kramers pair inside one block) has no touching to find
+    # neighbouring points (it grows linearly away from the touching); a finite gap does not.
+    # A pair degenerate everywhere (a Kramers pair inside one block) has no touching to find
     split = np.max(gap, axis=(0, 1)) > 10.0 * tol
     near = local & split & (gap <= rise + tol) & (mid >= lo - gap) & (mid <= hi + gap)
     cand = np.argwhere(near)[np.argsort(gap[near])[:4 * SAT_MAX]]
@@ -307,20 +324,23 @@ def satellites(model: BandModel, params, mu, kt, t_res, spacing) -> np.ndarray:
                                                                 jnp.asarray(n), jnp.asarray(step[:, None])))
     found = []
     for k, g, level in zip(ks, gs, levels):
-        if g < tol and lo <= level <= hi and np.linalg.norm(k - c) > 0.25 * s:
+        reach = np.any(np.abs(level - win[:, 0]) <= SAT_REACH * win[:, 1])
+        if g < min(tol, SAT_TOUCH) and reach and np.linalg.norm(k - c) > 0.25 * s:
             if all(np.linalg.norm(k - q) > 1e-3 * s for q in found):
                 found.append(k)
-    found = found[:SAT_MAX]
     if not found:
         return np.zeros((0, 3))
     ks = np.asarray(found)
+    # R from every touching found, so that no disk holds one; a satellite too close to another
+    # touching for its disk to be resolved stays with the centre's rays (as without satellites)
     others = np.concatenate([c[None], ks])
     radius = []
     for j, k in enumerate(ks):
         d = np.linalg.norm(others - k, axis=1)
         d[j + 1] = np.inf
         radius.append(SAT_SHARE * d.min())
-    return np.concatenate([ks, np.asarray(radius)[:, None]], axis=1)
+    out = np.concatenate([ks, np.asarray(radius)[:, None]], axis=1)
+    return out[out[:, 2] >= SAT_MIN_RADIUS * s][:SAT_MAX]
 
 
 def _partition(t):

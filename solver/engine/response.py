@@ -389,7 +389,7 @@ def _floors(mom, model, tau_max):
 #: a Berry-curvature field whose error is below this fraction of its natural unit (:func:`_natural_units`)
 #: times rtol is resolved to rounding level: e.g. σ_xy in a gap of graphene-like bands whose curvature
 #: vanishes identically by PT symmetry, where the integrand magnitude itself is rounding noise
-ROUNDING_ZERO = 1e-9
+ROUNDING_ZERO = 1e-6
 
 
 def _natural_units(model):
