@@ -249,13 +249,10 @@ def _zoom_to_touching(model, params, k0, block, band, step):
         e = energies_at(model, k, params, ordered=False).reshape(model.blocks, model.block_size)[b]
         return e[n + 1] - e[n], 0.5 * (e[n + 1] + e[n])
 
-    def gap(k, b, n):
-        return pair(k, b, n)[0]
-
     def body(_, state):
         k, h = state
         pts = k[:, None, :] + h[:, :, None] * offs[None, :, :]                        # (N, 25, 2)
-        g = jax.vmap(lambda q, b, n: jax.vmap(lambda x: gap(x, b, n))(q))(pts, block, band)
+        g = jax.vmap(lambda q, b, n: jax.vmap(lambda x: pair(x, b, n)[0])(q))(pts, block, band)
         i = jnp.argmin(g, axis=1)
         best = jnp.take_along_axis(pts, i[:, None, None], axis=1)[:, 0]
         # the grid shrinks only once its centre is the best point (an anisotropic cone can lead a

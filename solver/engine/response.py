@@ -427,9 +427,9 @@ def _field_status(fine, err, mom_fine, rtol, model, tau_max):
     with the larger error relative to its allowance is reported (a NaN error counts as the
     largest)."""
     out = {}
-    floors = _floors(mom_fine, model, tau_max)
+    floors = {name: 1e-2 * value for name, value in _floors(mom_fine, model, tau_max).items()}
     for name, unit in _natural_units(model).items():
-        floors[name] = max(floors[name], 1e2 * ROUNDING_ZERO * unit)
+        floors[name] = max(floors[name], ROUNDING_ZERO * unit)
     for name in ("density", "sigma", "sigma_anomalous", "dipole", "chi", "chi_dc"):
         a, e = np.asarray(getattr(fine, name)), np.asarray(getattr(err, name))
         size = float(np.max(np.abs(a))) if a.size else 0.0
@@ -437,11 +437,11 @@ def _field_status(fine, err, mom_fine, rtol, model, tau_max):
             off = ~np.eye(e.shape[-1], dtype=bool)
             drude = np.asarray(err.sigma_drude)
             parts = [(float(np.max(e[..., ~off])), rtol * size), (float(np.max(drude[..., off])), rtol * size),
-                     (float(np.max(e[..., off])), rtol * max(size, floors["sigma_anomalous"] * 1e-2))]
+                     (float(np.max(e[..., off])), rtol * max(size, floors["sigma_anomalous"]))]
             diff, allowed = max(parts, key=_excess)
             out[name] = (diff, allowed, size)
             continue
-        floor = floors.get(name, 0.0) * 1e-2
+        floor = floors.get(name, 0.0)
         diff = float(np.max(e)) if e.size else 0.0
         out[name] = (diff, rtol * max(size, floor), size)
     return out
